@@ -1,0 +1,723 @@
+"""Forward LEED pattern and synthetic camera images with exact truth.
+
+Conventions
+-----------
+* Reciprocal quantities are crystallographic, a_i · a*_j = δ_ij, in Å⁻¹ with
+  **no factor 2π**; a beam with parallel momentum transfer g leaves at
+  sin θ = λ |g + k_in∥| (λ in Å).
+* A superstructure (domain) matrix M gives the overlayer basis in the
+  substrate basis, rows as vectors: ``(b1, b2) = M (a1, a2)``. Its reciprocal
+  net is ``(b1*, b2*) = (M⁻¹)ᵀ (a1*, a2*)``, so the beam n1 b1* + n2 b2* has
+  fractional substrate indices ``hk = n @ inv(M).T``.
+* Pixels: x to the right, y downwards, the centre of the top-left pixel at
+  (0, 0); pixel (row r, col c) has its centre at x = c, y = r. Image angles
+  are counter-clockwise on the screen, measured from +x (as in
+  :mod:`analysis.optics`).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+from collections.abc import Callable, Iterable, Iterator, Sequence
+from dataclasses import dataclass
+from fractions import Fraction
+
+import numpy as np
+from scipy.sparse import coo_matrix
+from scipy.sparse.csgraph import connected_components
+from scipy.spatial import cKDTree
+from scipy.special import erf
+
+from .errors import NetError, ParameterError
+from .nets import Net2D, reciprocal
+from .optics import ScreenGeometry, momentum_to_pixels, wavelength_A
+
+__all__ = [
+    "Pattern",
+    "GunShadow",
+    "SyntheticImage",
+    "LayerIV",
+    "forward_pattern",
+    "default_intensities",
+    "render_image",
+    "render_series",
+    "acceptance_radius_px",
+    "hk_label",
+]
+
+
+# --------------------------------------------------------------------------- pattern
+
+
+@dataclass(frozen=True, eq=False)
+class Pattern:
+    """Every beam that reaches the screen at one energy.
+
+    Attributes
+    ----------
+    hk : (K, 2) ndarray of float64
+        Fractional indices in the substrate reciprocal basis (a1*, a2*).
+    g_par : (K, 2) ndarray of float64
+        Parallel momentum transfer in the surface (x, y) axes of the optics,
+        after the sample azimuth; Å⁻¹, no 2π.
+    xy_px : (K, 2) ndarray of float64
+        (x, y) image position of each beam, pixels.
+    theta_deg : (K,) ndarray of float64
+        Polar exit angle.
+    integer : (K,) ndarray of bool
+        True for integer-order (substrate) beams.
+    domains : (K, D) ndarray of bool
+        Which overlayer domains produce each beam. An integer-order beam also
+        lists the domains whose net contains it (every domain of a
+        commensurate overlayer); a beam of the bare substrate alone has an
+        all-False row.
+    energy_eV : float
+    geometry : ScreenGeometry
+    substrate : Net2D
+        The (unrotated) substrate net, Å.
+    overlayers : (D, 2, 2) ndarray of float64
+        The domain matrices, in the order of the `domains` columns.
+    azimuth_deg : float
+        Sample azimuth used.
+    k_in_par : (2,) ndarray of float64
+        Parallel incident momentum, Å⁻¹, no 2π (zeros at normal incidence).
+    """
+
+    hk: np.ndarray
+    g_par: np.ndarray
+    xy_px: np.ndarray
+    theta_deg: np.ndarray
+    integer: np.ndarray
+    domains: np.ndarray
+    energy_eV: float
+    geometry: ScreenGeometry
+    substrate: Net2D
+    overlayers: np.ndarray
+    azimuth_deg: float = 0.0
+    k_in_par: np.ndarray = dataclasses.field(default_factory=lambda: np.zeros(2))
+
+    def __post_init__(self):
+        for name in ("hk", "g_par", "xy_px", "theta_deg", "integer", "domains", "overlayers", "k_in_par"):
+            a = np.array(getattr(self, name))
+            a.flags.writeable = False
+            object.__setattr__(self, name, a)
+
+    def __len__(self) -> int:
+        return int(self.hk.shape[0])
+
+    @property
+    def n_domains(self) -> int:
+        """Number of overlayer domains D."""
+        return int(self.domains.shape[1])
+
+    def labels(self, *, max_denominator: int = 12) -> list[str]:
+        """Index labels like ``"(1/2, 0)"`` for every beam (see :func:`hk_label`)."""
+        return [hk_label(h, k, max_denominator=max_denominator) for h, k in self.hk]
+
+
+def hk_label(h: float, k: float, *, max_denominator: int = 12) -> str:
+    """Beam label with simple fractions, e.g. ``(1/2, -1/3)``; decimals when irrational.
+
+    Examples
+    --------
+    >>> hk_label(0.5, -1 / 3), hk_label(1.0, 0.0), hk_label(0.1234567, 0.0)
+    ('(1/2, -1/3)', '(1, 0)', '(0.1235, 0)')
+    """
+
+    def one(x: float) -> str:
+        f = Fraction(float(x)).limit_denominator(max_denominator)
+        if abs(float(f) - x) > 1e-6:
+            return f"{x:.4g}"
+        return str(f.numerator) if f.denominator == 1 else f"{f.numerator}/{f.denominator}"
+
+    return f"({one(h)}, {one(k)})"
+
+
+def _rotation(angle_deg: float) -> np.ndarray:
+    """Counter-clockwise rotation acting on column vectors."""
+    c, s = math.cos(math.radians(angle_deg)), math.sin(math.radians(angle_deg))
+    return np.array([[c, -s], [s, c]])
+
+
+def _check_matrices(overlayers) -> np.ndarray:
+    mats = [np.asarray(m, dtype=np.float64) for m in overlayers]
+    for i, m in enumerate(mats):
+        if m.shape != (2, 2) or not np.all(np.isfinite(m)):
+            raise NetError(f"`overlayers[{i}]` must be a finite 2×2 matrix, got {np.asarray(overlayers[i]).tolist()}.")
+        if abs(np.linalg.det(m)) < 1e-9:
+            raise NetError(f"`overlayers[{i}]` is singular (det 0): {m.tolist()}.")
+    return np.array(mats, dtype=np.float64).reshape(-1, 2, 2)
+
+
+def _net_points(basis: np.ndarray, g_max: float) -> np.ndarray:
+    """Integer coordinates n with |n @ basis| ≤ g_max; basis rows in Å⁻¹.
+
+    |n_i| ≤ g_max |r_i| where r_i are the rows of inv(basis).T (the real-space
+    vectors dual to `basis`), which bounds the search box exactly.
+    """
+    dual = np.linalg.inv(basis).T
+    n1 = int(math.floor(g_max * np.linalg.norm(dual[0]) + 1e-9))
+    n2 = int(math.floor(g_max * np.linalg.norm(dual[1]) + 1e-9))
+    i, j = np.meshgrid(np.arange(-n1, n1 + 1), np.arange(-n2, n2 + 1), indexing="ij")
+    n = np.column_stack([i.ravel(), j.ravel()]).astype(np.float64)
+    g = n @ basis
+    return n[np.einsum("ij,ij->i", g, g) <= g_max * g_max * (1 + 1e-12)]
+
+
+def _merge(hk: np.ndarray, tol: float) -> np.ndarray:
+    """Group label of each row; rows closer than `tol` (max-norm, index units) share one."""
+    if len(hk) == 0:
+        return np.zeros(0, dtype=np.int64)
+    pairs = cKDTree(hk).query_pairs(r=tol, p=np.inf, output_type="ndarray")
+    graph = coo_matrix((np.ones(len(pairs)), (pairs[:, 0], pairs[:, 1])), shape=(len(hk), len(hk)))
+    return connected_components(graph, directed=False)[1]
+
+
+def forward_pattern(substrate: Net2D, overlayers: Sequence = (), *, energy_eV: float,
+                    geometry: ScreenGeometry, azimuth_deg: float = 0.0, k_in_par=None,
+                    merge_tol: float = 1e-6, relativistic: bool = False) -> Pattern:
+    """Every beam of a substrate plus overlayer domains that reaches the screen.
+
+    Parameters
+    ----------
+    substrate : Net2D
+        Real-space (1×1) net in Å.
+    overlayers : sequence of (2, 2) array_like of float
+        One matrix M per domain, ``(b1, b2) = M (a1, a2)``; may be fractional or
+        irrational (incommensurate). Empty for the clean surface.
+    energy_eV : float, keyword-only
+    geometry : ScreenGeometry, keyword-only
+    azimuth_deg : float, keyword-only
+        Counter-clockwise rotation of the sample's surface axes relative to the
+        surface frame of the optics.
+    k_in_par : (2,) array_like, optional
+        Parallel component of the incident wave vector in the optics' surface
+        axes, Å⁻¹ without 2π; None for normal incidence.
+    merge_tol : float, keyword-only
+        Beams whose fractional indices agree within this (each component) are
+        one beam.
+    relativistic : bool, keyword-only
+        Use the relativistic wavelength.
+
+    Returns
+    -------
+    Pattern
+        Beams sorted by |g| then by azimuth; the enumeration is bounded by the
+        screen acceptance, sin θ = λ |g + k_in∥| ≤ sin(acceptance).
+
+    Raises
+    ------
+    ParameterError
+        Bad energy, geometry or tolerance. NetError: bad matrix.
+
+    Examples
+    --------
+    >>> from analysis.nets import parse_substrate
+    >>> geom = ScreenGeometry(512.0, 512.0, 600.0)
+    >>> p = forward_pattern(parse_substrate("Cu(100)"), [[[2, 0], [0, 2]]], energy_eV=100.0, geometry=geom)
+    >>> print(len(p), int(p.integer.sum()), round(float(p.theta_deg[p.integer][1]), 3))
+    37 9 28.671
+    """
+    if not isinstance(substrate, Net2D):
+        raise NetError(f"`substrate` must be a Net2D, got {type(substrate).__name__}.")
+    if not isinstance(geometry, ScreenGeometry):
+        raise ParameterError(f"`geometry` must be a ScreenGeometry, got {type(geometry).__name__}.")
+    if not (merge_tol > 0 and math.isfinite(merge_tol)):
+        raise ParameterError(f"`merge_tol` must be a small positive number, got {merge_tol}.")
+    lam = wavelength_A(energy_eV, relativistic=relativistic)
+    kin = np.zeros(2) if k_in_par is None else np.asarray(k_in_par, dtype=np.float64).reshape(-1)
+    if kin.shape != (2,) or not np.all(np.isfinite(kin)):
+        raise ParameterError(f"`k_in_par` must be two finite numbers (Å⁻¹), got {k_in_par!r}.")
+    if lam * np.hypot(*kin) >= 1.0:
+        raise ParameterError(f"`k_in_par` {kin.tolist()} exceeds the incident momentum 1/λ = {1 / lam:.4g} Å⁻¹.")
+    mats = _check_matrices(overlayers)
+    g_max = math.sin(math.radians(geometry.acceptance_deg)) / lam + float(np.hypot(*kin))
+
+    a_star = reciprocal(substrate).vectors  # rows a1*, a2*, Å⁻¹, no 2π
+    blocks = [_net_points(a_star, g_max)]
+    owner = [np.full(len(blocks[0]), -1)]
+    for d, m in enumerate(mats):
+        m_inv_t = np.linalg.inv(m).T
+        n = _net_points(m_inv_t @ a_star, g_max)  # b* = (M⁻¹)ᵀ a*
+        blocks.append(n @ m_inv_t)  # hk = n (M⁻¹)ᵀ
+        owner.append(np.full(len(n), d))
+    hk_all = np.vstack(blocks)
+    own = np.concatenate(owner)
+    group = _merge(hk_all, merge_tol)
+    n_groups = int(group.max()) + 1 if len(group) else 0
+    first = np.full(n_groups, len(hk_all))
+    np.minimum.at(first, group, np.arange(len(hk_all)))  # substrate rows come first
+    hk = hk_all[first]
+    integer = np.zeros(n_groups, dtype=bool)
+    integer[group[own < 0]] = True
+    dom = np.zeros((n_groups, len(mats)), dtype=bool)
+    dom[group[own >= 0], own[own >= 0]] = True
+    hk = np.where(integer[:, None], np.rint(hk), hk)
+
+    g_par = (hk @ a_star) @ _rotation(azimuth_deg).T
+    xy, visible = momentum_to_pixels(g_par + kin, energy_eV, geometry, relativistic=relativistic)
+    keep = visible & np.all(np.isfinite(xy), axis=1)
+    gm = np.hypot(g_par[:, 0], g_par[:, 1])
+    order = np.lexsort((np.round(np.arctan2(g_par[:, 1], g_par[:, 0]) % (2 * np.pi), 9), np.round(gm, 9)))
+    order = order[keep[order]]
+    k_out = g_par[order] + kin
+    sin_t = np.clip(lam * np.hypot(k_out[:, 0], k_out[:, 1]), 0.0, 1.0)
+    return Pattern(hk=hk[order], g_par=g_par[order], xy_px=xy[order], theta_deg=np.degrees(np.arcsin(sin_t)),
+                   integer=integer[order], domains=dom[order].reshape(len(order), len(mats)),
+                   energy_eV=float(energy_eV), geometry=geometry, substrate=substrate, overlayers=mats,
+                   azimuth_deg=float(azimuth_deg), k_in_par=kin)
+
+
+# --------------------------------------------------------------------------- image parts
+
+
+@dataclass(frozen=True)
+class GunShadow:
+    """The electron gun and its holder, dark in front of the screen.
+
+    Attributes
+    ----------
+    offset_x_px, offset_y_px : float
+        Centre of the gun disk relative to the pattern centre (x right, y down).
+    radius_px : float
+        Radius of the gun disk.
+    arm_angle_deg : float
+        Image direction (counter-clockwise from +x) from the disk to the screen edge.
+    arm_width_px : float
+        Full width of the holder arm; 0 for no arm.
+    """
+
+    offset_x_px: float = 0.0
+    offset_y_px: float = 0.0
+    radius_px: float = 34.0
+    arm_angle_deg: float = 235.0
+    arm_width_px: float = 24.0
+
+    def __post_init__(self):
+        vals = dataclasses.astuple(self)
+        if not all(math.isfinite(v) for v in vals):
+            raise ParameterError(f"GunShadow fields must be finite, got {vals}.")
+        if self.radius_px < 0 or self.arm_width_px < 0:
+            raise ParameterError(f"GunShadow radius and arm width must be ≥ 0, got "
+                                 f"{self.radius_px} and {self.arm_width_px}.")
+
+    @classmethod
+    def scaled(cls, screen_radius: float, *, arm_angle_deg: float = 235.0, offset_px=(0.0, 0.0)) -> "GunShadow":
+        """A typical gun for a screen of radius `screen_radius` px (disk 7 %, arm 5 % of it)."""
+        return cls(float(offset_px[0]), float(offset_px[1]), 0.07 * screen_radius, arm_angle_deg,
+                   0.05 * screen_radius)
+
+    def signed_distance(self, x, y, center_px) -> np.ndarray:
+        """Distance (px) from the shadow's edge, negative inside the shadow.
+
+        Parameters
+        ----------
+        x, y : ndarray of float
+            Broadcastable pixel coordinates.
+        center_px : (x, y) of the pattern centre.
+        """
+        cx, cy = center_px[0] + self.offset_x_px, center_px[1] + self.offset_y_px
+        dx, dy = x - cx, y - cy
+        disk = np.hypot(dx, dy) - self.radius_px
+        if self.arm_width_px <= 0:
+            return disk
+        ux, uy = math.cos(math.radians(self.arm_angle_deg)), -math.sin(math.radians(self.arm_angle_deg))
+        along = dx * ux + dy * uy
+        across = np.abs(dx * uy - dy * ux)
+        arm = np.where(along >= 0, across - self.arm_width_px / 2.0, np.inf)
+        return np.minimum(disk, arm)
+
+    def to_dict(self, center_px=None) -> dict:
+        d = dataclasses.asdict(self)
+        if center_px is not None:
+            d["center_px"] = [center_px[0] + self.offset_x_px, center_px[1] + self.offset_y_px]
+        return d
+
+
+@dataclass(frozen=True, eq=False)
+class SyntheticImage:
+    """A rendered camera frame with its exact truth.
+
+    Attributes
+    ----------
+    image : (rows, cols) ndarray of uint8 or uint16
+    truth : dict
+        JSON-safe: pattern and screen centres, energy, geometry, screen, gun,
+        camera, background, substrate vectors, overlayer matrices and one
+        record per beam (see :func:`render_image`).
+    masks : dict of str to (rows, cols) ndarray of bool
+        ``"screen"`` (inside the screen disk) and ``"gun"`` (under the shadow).
+    """
+
+    image: np.ndarray
+    truth: dict
+    masks: dict
+
+    def __post_init__(self):
+        self.image.flags.writeable = False
+        for m in self.masks.values():
+            m.flags.writeable = False
+
+
+def acceptance_radius_px(geometry: ScreenGeometry, energy_eV: float = 100.0) -> float:
+    """Image radius reached at the acceptance angle (round screen, ellipticity ignored).
+
+    It does not depend on the energy: the radius is a function of θ only.
+
+    Examples
+    --------
+    >>> print(round(acceptance_radius_px(ScreenGeometry(0.0, 0.0, 500.0, acceptance_deg=30.0)), 6))
+    250.0
+    """
+    round_geom = dataclasses.replace(geometry, ellipticity=1.0, center_x_px=0.0, center_y_px=0.0)
+    k = math.sin(math.radians(geometry.acceptance_deg)) / wavelength_A(energy_eV)
+    xy, _ = momentum_to_pixels([[k * (1 - 1e-12), 0.0]], energy_eV, round_geom)
+    return float(np.hypot(*xy[0]))
+
+
+def default_intensities(pattern: Pattern, rng: np.random.Generator, *, photons: float = 20000.0,
+                        overlayer_factor: float = 0.3) -> np.ndarray:
+    """Plausible per-beam photon counts: a smooth falloff with |g|, random factors.
+
+    I = photons · (0.25 + 0.75 exp(−(sin θ / 0.55)²)) · u, u uniform in [0.35, 1),
+    times `overlayer_factor` for fractional-order beams.
+
+    Returns
+    -------
+    (K,) ndarray of float64
+        Expected photons per spot (before the gun shadow).
+    """
+    s = np.sin(np.radians(pattern.theta_deg))
+    base = photons * (0.25 + 0.75 * np.exp(-(s / 0.55) ** 2))
+    factor = rng.uniform(0.35, 1.0, len(pattern))
+    return base * factor * np.where(pattern.integer, 1.0, overlayer_factor)
+
+
+def _pixel_weights(centre: np.ndarray, sigma: np.ndarray, half: int) -> tuple[np.ndarray, np.ndarray]:
+    """1-D pixel integrals of unit Gaussians: indices (K, w) and weights (K, w).
+
+    Weight of pixel c is ∫_{c−½}^{c+½} N(t; centre, σ) dt (exact, via erf).
+    """
+    idx = np.rint(centre)[:, None].astype(np.int64) + np.arange(-half, half + 1)[None, :]
+    z = 1.0 / (math.sqrt(2.0) * sigma[:, None])
+    w = 0.5 * (erf((idx + 0.5 - centre[:, None]) * z) - erf((idx - 0.5 - centre[:, None]) * z))
+    return idx, w
+
+
+def _spots_image(xy: np.ndarray, sigma: np.ndarray, photons: np.ndarray, shape: tuple[int, int]) -> np.ndarray:
+    """Expected photons per pixel from Gaussian spots integrated over pixels."""
+    rows, cols = shape
+    out = np.zeros(rows * cols)
+    if len(xy) == 0:
+        return out.reshape(shape)
+    half = int(math.ceil(6.0 * float(sigma.max())))
+    step = max(1, 2_000_000 // (2 * half + 1) ** 2)
+    for s in range(0, len(xy), step):  # chunks keep the (K, w, w) block small
+        sl = slice(s, s + step)
+        ci, wx = _pixel_weights(xy[sl, 0], sigma[sl], half)
+        ri, wy = _pixel_weights(xy[sl, 1], sigma[sl], half)
+        val = photons[sl, None, None] * wy[:, :, None] * wx[:, None, :]
+        r = np.broadcast_to(ri[:, :, None], val.shape)
+        c = np.broadcast_to(ci[:, None, :], val.shape)
+        ok = (r >= 0) & (r < rows) & (c >= 0) & (c < cols)
+        out += np.bincount((r * cols + c)[ok], weights=val[ok], minlength=rows * cols)
+    return out.reshape(shape)
+
+
+def _background(x, y, center_px, radius: float, peak: float, gradient) -> np.ndarray:
+    """Diffuse inelastic background, photons per pixel at broadcastable (x, y):
+    a broad radial falloff times a gentle tilt."""
+    u, v = (x - center_px[0]) / radius, (y - center_px[1]) / radius
+    radial = 0.22 + 0.78 * np.exp(-(u * u + v * v) / 0.45)
+    tilt = np.clip(1.0 + gradient[0] * u + gradient[1] * v, 0.0, None)
+    return peak * radial * tilt
+
+
+def _json(x):
+    """Plain JSON value: floats (None for NaN), ints, bools, lists."""
+    if isinstance(x, (bool, np.bool_)):
+        return bool(x)
+    if isinstance(x, (int, np.integer)):
+        return int(x)
+    if isinstance(x, (float, np.floating)):
+        return float(x) if math.isfinite(x) else None
+    if isinstance(x, np.ndarray):
+        return [_json(v) for v in x.tolist()]
+    if isinstance(x, (list, tuple)):
+        return [_json(v) for v in x]
+    if isinstance(x, dict):
+        return {str(k): _json(v) for k, v in x.items()}
+    return x
+
+
+_DEFAULT = object()
+
+
+def render_image(pattern: Pattern, *, shape=(1024, 1024), rng: np.random.Generator,
+                 spot_sigma_px=2.0, intensities=None, screen_radius_px: float | None = None,
+                 screen_center_px=None, gun=_DEFAULT, background_photons: float = 40.0,
+                 background_gradient=(0.12, -0.08), read_noise_e: float = 3.0, gain: float | None = None,
+                 offset_adu: float | None = None, bit_depth: int = 16, saturate: bool = True,
+                 noise: bool = True) -> SyntheticImage:
+    """Render `pattern` as a camera frame.
+
+    Spots are Gaussians integrated exactly over each pixel (error functions), so
+    their sub-pixel truth is exact. Expected photons = (spots + diffuse
+    background) × screen transmission × gun transmission (edges soft over one
+    pixel); then Poisson shot noise, Gaussian read noise, gain, a dark offset
+    and quantisation with clipping. Outside the screen disk only the offset and
+    read noise remain.
+
+    Parameters
+    ----------
+    pattern : Pattern
+    shape : (rows, cols), keyword-only
+    rng : numpy.random.Generator, keyword-only
+        Source of every random number (noise and default intensities).
+    spot_sigma_px : float or (K,) array_like
+        Gaussian σ of each spot, pixels.
+    intensities : (K,) array_like, optional
+        Photons per spot; default :func:`default_intensities`.
+    screen_radius_px : float, optional
+        Default: the image radius of the acceptance angle.
+    screen_center_px : (x, y), optional
+        Default: the pattern centre (``geometry.center_px``).
+    gun : GunShadow or None
+        Default ``GunShadow.scaled(screen radius)``; None for no shadow.
+    background_photons : float
+        Diffuse background at the pattern centre, photons per pixel.
+    background_gradient : (gx, gy)
+        Relative change of the background per screen radius along x and y.
+    read_noise_e : float
+        Gaussian read noise, electrons (1 photon = 1 electron).
+    gain : float, optional
+        ADU per electron; default 4.0 (16-bit) or 0.25 (8-bit).
+    offset_adu : float, optional
+        Dark level; default 100 (16-bit) or 4 (8-bit).
+    bit_depth : {8, 16}
+    saturate : bool
+        True: pixels above full scale clip (real camera). False: the gain is
+        lowered so the brightest expected pixel stays below full scale.
+    noise : bool
+        False renders the rounded expected value (no shot or read noise).
+
+    Returns
+    -------
+    SyntheticImage
+        ``truth["spots"]`` has, per beam: x, y (px), h, k, label, integer,
+        domains (indices), photons (after the shadow), sigma_px,
+        background_per_px (expected at the centre), hidden (centre under the
+        gun or off the screen), partly_hidden (within 3σ of an edge) and
+        saturated.
+
+    Examples
+    --------
+    >>> from analysis.nets import parse_substrate
+    >>> geom = ScreenGeometry(128.0, 128.0, 140.0)
+    >>> p = forward_pattern(parse_substrate("Cu(100)"), energy_eV=150.0, geometry=geom)
+    >>> im = render_image(p, shape=(256, 256), rng=np.random.default_rng(0))
+    >>> print(im.image.dtype, im.image.shape, im.truth["spots"][0]["hidden"])
+    uint16 (256, 256) True
+    """
+    if not isinstance(pattern, Pattern):
+        raise ParameterError(f"`pattern` must be a Pattern from forward_pattern, got {type(pattern).__name__}.")
+    if not isinstance(rng, np.random.Generator):
+        raise ParameterError(f"`rng` must be a numpy.random.Generator, got {type(rng).__name__}.")
+    if bit_depth not in (8, 16):
+        raise ParameterError(f"`bit_depth` must be 8 or 16, got {bit_depth!r}.")
+    try:
+        rows, cols = (int(v) for v in shape)
+    except (TypeError, ValueError):
+        raise ParameterError(f"`shape` must be (rows, cols), got {shape!r}.") from None
+    if not (8 <= rows <= 8192 and 8 <= cols <= 8192):
+        raise ParameterError(f"`shape` must be between 8 and 8192 pixels a side, got {shape!r}.")
+    k = len(pattern)
+    sigma = np.broadcast_to(np.asarray(spot_sigma_px, dtype=np.float64), (k,)).copy() if np.ndim(
+        spot_sigma_px) == 0 or np.size(spot_sigma_px) == k else None
+    if sigma is None or not np.all((sigma > 0.05) & (sigma < 100)):
+        raise ParameterError(f"`spot_sigma_px` must be a number or {k} numbers in (0.05, 100) px, "
+                             f"got {np.asarray(spot_sigma_px).tolist()!r}.")
+    photons = default_intensities(pattern, rng) if intensities is None else np.asarray(intensities, dtype=np.float64)
+    if photons.shape != (k,) or not np.all(np.isfinite(photons) & (photons >= 0)):
+        raise ParameterError(f"`intensities` must be {k} non-negative photon counts, got shape {photons.shape}.")
+    for name, val in (("background_photons", background_photons), ("read_noise_e", read_noise_e)):
+        if not (val >= 0 and math.isfinite(val)):
+            raise ParameterError(f"`{name}` must be ≥ 0, got {val}.")
+    geom = pattern.geometry
+    centre = geom.center_px
+    s_centre = centre if screen_center_px is None else (float(screen_center_px[0]), float(screen_center_px[1]))
+    s_radius = acceptance_radius_px(geom) if screen_radius_px is None else float(screen_radius_px)
+    if not (s_radius > 0 and math.isfinite(s_radius)):
+        raise ParameterError(f"`screen_radius_px` must be positive, got {screen_radius_px}.")
+    gun = GunShadow.scaled(s_radius) if gun is _DEFAULT else gun
+    if gun is not None and not isinstance(gun, GunShadow):
+        raise ParameterError(f"`gun` must be a GunShadow or None, got {type(gun).__name__}.")
+    gain = (4.0 if bit_depth == 16 else 0.25) if gain is None else float(gain)
+    offset = (100.0 if bit_depth == 16 else 4.0) if offset_adu is None else float(offset_adu)
+    if not (gain > 0 and math.isfinite(gain)) or not (offset >= 0 and math.isfinite(offset)):
+        raise ParameterError(f"`gain` must be > 0 and `offset_adu` ≥ 0, got {gain} and {offset}.")
+
+    y = np.arange(rows, dtype=np.float64)[:, None]
+    x = np.arange(cols, dtype=np.float64)[None, :]
+    screen_sd = s_radius - np.hypot(x - s_centre[0], y - s_centre[1])  # > 0 inside
+    trans = np.clip(screen_sd + 0.5, 0.0, 1.0)
+    gun_sd = None
+    if gun is not None:
+        gun_sd = gun.signed_distance(x, y, centre)
+        trans = trans * np.clip(gun_sd + 0.5, 0.0, 1.0)
+    bg_args = (centre, s_radius, background_photons, background_gradient)
+    bg = _background(x, y, *bg_args)
+    mu = (_spots_image(pattern.xy_px, sigma, photons, (rows, cols)) + bg) * trans
+    full = float(2**bit_depth - 1)
+    if not saturate:
+        gain = min(gain, 0.98 * (full - offset) / max(float(mu.max()) + 5 * read_noise_e + 1e-9, 1e-9))
+    if noise:
+        electrons = rng.poisson(mu).astype(np.float64)
+        if read_noise_e > 0:
+            electrons += rng.normal(0.0, read_noise_e, mu.shape)
+    else:
+        electrons = mu
+    adu = np.clip(np.rint(offset + gain * electrons), 0.0, full)
+    image = adu.astype(np.uint8 if bit_depth == 8 else np.uint16)
+
+    masks = {"screen": screen_sd > 0, "gun": (gun_sd < 0) if gun_sd is not None else np.zeros((rows, cols), bool)}
+    spots = _spot_truth(pattern, sigma, photons, s_centre, s_radius, gun, image, full,
+                        _background(pattern.xy_px[:, 0], pattern.xy_px[:, 1], *bg_args))
+    truth = {
+        "center_px": [centre[0], centre[1]],
+        "energy_eV": pattern.energy_eV,
+        "geometry": geom.to_dict(),
+        "azimuth_deg": pattern.azimuth_deg,
+        "k_in_par_invA": pattern.k_in_par,
+        "screen": {"center_px": list(s_centre), "radius_px": s_radius},
+        "gun": None if gun is None else gun.to_dict(centre),
+        "camera": {"bit_depth": bit_depth, "gain_adu_per_e": gain, "offset_adu": offset,
+                   "read_noise_e": read_noise_e, "noise": bool(noise), "shape": [rows, cols]},
+        "background": {"photons_per_px_at_center": background_photons, "gradient": list(background_gradient)},
+        "substrate_vectors_A": pattern.substrate.vectors,
+        "substrate_label": pattern.substrate.label,
+        "overlayer_matrices": pattern.overlayers,
+        "reciprocal_convention": "crystallographic, no 2π",
+        "pixel_convention": "x right, y down, centre of the top-left pixel at (0, 0)",
+        "spots": spots,
+    }
+    return SyntheticImage(image=image, truth=_json(truth), masks=masks)
+
+
+def _spot_truth(pattern, sigma, photons, s_centre, s_radius, gun, image, full, bg_at) -> list[dict]:
+    """One JSON-ready record per beam (see :func:`render_image`)."""
+    xy = pattern.xy_px
+    screen_sd = s_radius - np.hypot(xy[:, 0] - s_centre[0], xy[:, 1] - s_centre[1])
+    gun_sd = (gun.signed_distance(xy[:, 0], xy[:, 1], pattern.geometry.center_px) if gun is not None
+              else np.full(len(xy), np.inf))
+    edge = np.minimum(screen_sd, gun_sd)
+    rows, cols = image.shape
+    labels = pattern.labels()
+    out = []
+    for i in range(len(pattern)):
+        r, c = int(round(xy[i, 1])), int(round(xy[i, 0]))
+        inside = 0 <= r < rows and 0 <= c < cols
+        hidden = bool(edge[i] <= 0 or not inside)
+        visible_frac = float(np.clip(edge[i] + 0.5, 0.0, 1.0)) if edge[i] < 3 * sigma[i] else 1.0
+        out.append({
+            "x": xy[i, 0], "y": xy[i, 1], "h": pattern.hk[i, 0], "k": pattern.hk[i, 1], "label": labels[i],
+            "integer": bool(pattern.integer[i]), "domains": np.flatnonzero(pattern.domains[i]).tolist(),
+            "theta_deg": pattern.theta_deg[i], "photons": 0.0 if hidden else photons[i] * visible_frac,
+            "photons_unshadowed": photons[i], "sigma_px": sigma[i],
+            "background_per_px": 0.0 if hidden else bg_at[i],
+            "hidden": hidden, "partly_hidden": bool(not hidden and edge[i] < 3 * sigma[i]),
+            "saturated": bool(inside and not hidden and image[r, c] >= full),
+        })
+    return out
+
+
+# --------------------------------------------------------------------------- energy series
+
+
+@dataclass(frozen=True)
+class LayerIV:
+    """Smooth synthetic I(V) curves from a stack of identical layers.
+
+    Each beam peaks where the electron's perpendicular momentum change matches
+    a multiple of the layer spacing (kinematic condition, inner potential
+    included): k_⊥,in + k_⊥,out = n / d, with k = √((E + V0) / 150.41) Å⁻¹ (no
+    2π). Peaks are Lorentzians of half-width `half_width_eV` on a weak floor,
+    damped by exp(−B k²); each beam gets its own random strengths per order
+    (from `seed`), so curves differ between beams but not between frames.
+
+    Attributes
+    ----------
+    layer_spacing_A, inner_potential_eV, half_width_eV, debye_waller_A2, photons : float
+    seed : int
+    """
+
+    layer_spacing_A: float = 1.8
+    inner_potential_eV: float = 10.0
+    half_width_eV: float = 5.0
+    debye_waller_A2: float = 0.15
+    photons: float = 30000.0
+    seed: int = 0
+
+    def __call__(self, pattern: Pattern) -> np.ndarray:
+        """Photons per beam of `pattern` at its energy; (K,) ndarray of float64."""
+        from .optics import H2_OVER_2ME_EV_A2
+
+        e = pattern.energy_eV + self.inner_potential_eV
+        g2 = np.einsum("ij,ij->i", pattern.g_par, pattern.g_par)
+        out = np.zeros(len(pattern))
+        for n in range(1, 16):
+            # energy where k + sqrt(k² − g²) = n/d  →  k = ((n/d)² + g²) / (2 n/d)
+            q = n / self.layer_spacing_A
+            k_peak = (q * q + g2) / (2.0 * q)
+            e_peak = H2_OVER_2ME_EV_A2 * k_peak**2
+            amp = self._strength(pattern.hk, n)
+            out += amp / (1.0 + ((e - e_peak) / self.half_width_eV) ** 2)
+        k2 = e / H2_OVER_2ME_EV_A2
+        scale = np.where(pattern.integer, 1.0, 0.35)
+        return self.photons * scale * (0.03 + out) * np.exp(-self.debye_waller_A2 * k2)
+
+    def _strength(self, hk: np.ndarray, n: int) -> np.ndarray:
+        """Per-beam, per-order strength in [0.2, 1), a fixed function of (hk, n, seed)."""
+        key = np.rint(np.asarray(hk) * 840).astype(np.int64)  # 840 = lcm(1..8): fractions stay distinct
+        h = (key[:, 0] * 73856093) ^ (key[:, 1] * 19349663) ^ (n * 83492791) ^ (self.seed * 2654435761)
+        return 0.2 + 0.8 * ((h % 1_000_003) / 1_000_003.0)
+
+
+def render_series(substrate: Net2D, overlayers: Sequence = (), energies_eV: Iterable[float] = (), *,
+                  geometry: ScreenGeometry, rng: np.random.Generator,
+                  intensity_fn: Callable[[Pattern], np.ndarray] | None = None,
+                  pattern_kw: dict | None = None, **render_kw) -> Iterator[tuple[Pattern, SyntheticImage]]:
+    """Render an energy series one frame at a time.
+
+    Parameters
+    ----------
+    substrate, overlayers : as for :func:`forward_pattern`.
+    energies_eV : iterable of float
+    geometry : ScreenGeometry, keyword-only
+    rng : numpy.random.Generator, keyword-only
+        Shared by all frames (noise differs frame to frame, reproducibly).
+    intensity_fn : callable(Pattern) -> (K,) photons, optional
+        Per-beam intensities at each energy; default ``LayerIV()``.
+    pattern_kw : dict, optional
+        Extra keywords for :func:`forward_pattern` (azimuth_deg, k_in_par...).
+    **render_kw
+        Passed to :func:`render_image` (shape, spot_sigma_px, gun, bit_depth...).
+
+    Yields
+    ------
+    (Pattern, SyntheticImage)
+        One frame per energy; only one frame is held at a time.
+
+    Examples
+    --------
+    >>> from analysis.nets import parse_substrate
+    >>> frames = render_series(parse_substrate("Cu(100)"), (), [80.0, 90.0], shape=(64, 64),
+    ...                        geometry=ScreenGeometry(32.0, 32.0, 30.0), rng=np.random.default_rng(1))
+    >>> [round(im.truth["energy_eV"]) for _, im in frames]
+    [80, 90]
+    """
+    fn = LayerIV() if intensity_fn is None else intensity_fn
+    for e in energies_eV:
+        pat = forward_pattern(substrate, overlayers, energy_eV=float(e), geometry=geometry, **(pattern_kw or {}))
+        yield pat, render_image(pat, rng=rng, intensities=fn(pat), **render_kw)
