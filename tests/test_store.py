@@ -1,0 +1,109 @@
+"""The store: images once by hash, analyses with tokens, on SQLite and PostgreSQL."""
+
+from __future__ import annotations
+
+import hashlib
+import multiprocessing as mp
+import secrets
+
+import pytest
+
+from analysis.errors import ParameterError
+from webapp.store import MAX_SAMPLE_CHARS, TOKEN_RE, Store
+
+
+def _image(store, data=b"\x89PNG fake bytes", name="a.png"):
+    return store.put_image(data, filename=name, width=640, height=480, thumbnail_png=b"thumb")
+
+
+def test_image_stored_once_by_content_hash(store_url):
+    s = Store(store_url)
+    sha = _image(s)
+    # SHA-256 from hashlib (FIPS 180-4), independent of the store
+    assert sha == hashlib.sha256(b"\x89PNG fake bytes").hexdigest()
+    assert _image(s, name="again.png") == sha
+    assert s.image_bytes(sha) == b"\x89PNG fake bytes"
+    assert s.image_info(sha).filename == "a.png"  # the first upload's name is kept
+    assert s.image_bytes("0" * 64) is None
+    assert s.image_bytes("../../etc/passwd") is None
+
+
+def test_save_and_get_round_trip(store_url):
+    s = Store(store_url)
+    sha = _image(s)
+    params = {"energy_eV": 72.5, "substrate": "Pt(111)"}
+    edits = {"added": [[10.5, 20.0]], "removed": [3], "center": [320.0, 240.0]}
+    result = {"overlayer": {"wood": "p(2×2)", "matrix": [[2, 0], [0, 2]]}, "spots": [{"x": 1.0, "y": 2.0}]}
+    saved = s.save_analysis(image_sha256=sha, parameters=params, edits=edits, result=result,
+                            sample_name="<b>Sample A</b>", notes="line 1\nline 2", summary="p(2×2)")
+    assert TOKEN_RE.fullmatch(saved.token)
+    got = s.get_analysis(saved.token)
+    assert got.parameters == params and got.edits == edits and got.result == result
+    assert got.sample_name == "<b>Sample A</b>" and got.notes == "line 1\nline 2"
+    assert got.width == 640 and got.image_filename == "a.png"
+    assert got.created_at.tzinfo is not None
+
+
+def test_tokens_are_unguessable_and_distinct(store_url):
+    s = Store(store_url)
+    sha = _image(s)
+    tokens = {s.save_analysis(image_sha256=sha, parameters={}, edits={}, result=None).token for _ in range(20)}
+    assert len(tokens) == 20
+    # secrets.token_urlsafe(16): 16 random bytes -> 22 URL-safe characters (Python docs)
+    assert all(len(t) == 22 for t in tokens)
+    assert s.get_analysis(secrets.token_urlsafe(16)) is None
+    assert s.get_analysis("short") is None
+
+
+def test_recent_lists_newest_first(store_url):
+    s = Store(store_url)
+    sha = _image(s)
+    made = [s.save_analysis(image_sha256=sha, parameters={"i": i}, edits={}, result=None, sample_name=f"S{i}")
+            for i in range(5)]
+    listed = s.recent(3)
+    assert [a.token for a in listed] == [a.token for a in made[::-1][:3]]
+    assert s.count_analyses() == 5
+
+
+def test_bad_input_is_refused(store_url):
+    s = Store(store_url)
+    sha = _image(s)
+    with pytest.raises(ParameterError, match="No stored image"):
+        s.save_analysis(image_sha256="f" * 64, parameters={}, edits={}, result=None)
+    with pytest.raises(ParameterError, match="Sample name is 201 characters"):
+        s.save_analysis(image_sha256=sha, parameters={}, edits={}, result=None, sample_name="x" * (MAX_SAMPLE_CHARS + 1))
+    with pytest.raises(ParameterError, match="`edits` must be a dict"):
+        s.save_analysis(image_sha256=sha, parameters={}, edits=[1], result=None)
+    with pytest.raises(ParameterError, match="non-empty bytes"):
+        s.put_image(b"", filename="e", width=1, height=1, thumbnail_png=b"")
+    assert s.count_analyses() == 0
+
+
+def _writer(url, sha, worker, n, queue):
+    s = Store(url)
+    out = []
+    for i in range(n):
+        out.append((s.save_analysis(image_sha256=sha, parameters={"worker": worker, "i": i}, edits={},
+                                    result={"n": worker * 1000 + i}).token, worker, i))
+        # the same image bytes from every process at once: still one row
+        s.put_image(b"shared image", filename="s.png", width=1, height=1, thumbnail_png=b"t")
+    queue.put(out)
+
+
+def test_processes_writing_at_once_lose_nothing(store_url):
+    s = Store(store_url)
+    sha = _image(s)
+    ctx = mp.get_context("spawn")
+    q = ctx.Queue()
+    procs = [ctx.Process(target=_writer, args=(store_url, sha, w, 15, q)) for w in range(4)]
+    for p in procs:
+        p.start()
+    results = [q.get(timeout=120) for _ in procs]
+    for p in procs:
+        p.join(timeout=60)
+    written = [t for r in results for t in r]
+    assert s.count_analyses() == 60
+    for token, worker, i in written:
+        a = s.get_analysis(token)
+        assert a.parameters == {"worker": worker, "i": i} and a.result == {"n": worker * 1000 + i}
+    assert s.image_info(hashlib.sha256(b"shared image").hexdigest()) is not None

@@ -1,0 +1,60 @@
+"""Where the web app keeps its data, read once from the environment.
+
+Environment variables
+---------------------
+RECINET_DATA_DIR       data folder (default ``./recinet-data``): SQLite file, job cache
+RECINET_DATABASE_URL   SQLAlchemy URL, e.g. ``postgresql+psycopg://user@host/db``
+RECINET_ACCESS_KEY     when set, every page and API asks for this group key
+RECINET_MAX_UPLOAD_MB  largest accepted upload in MB (default 64)
+RECINET_CELERY_BROKER  Redis URL; when set, long work runs on Celery workers
+"""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass
+from pathlib import Path
+
+from analysis.errors import ParameterError
+
+__all__ = ["Settings", "load_settings"]
+
+
+@dataclass(frozen=True)
+class Settings:
+    data_dir: Path
+    database_url: str
+    cache_dir: Path
+    access_key: str | None
+    max_upload_bytes: int
+    celery_broker: str | None
+
+    @property
+    def max_request_bytes(self) -> int:
+        """Flask's MAX_CONTENT_LENGTH: a base64 upload is 4/3 of the file, plus the JSON around it."""
+        return self.max_upload_bytes * 4 // 3 + 1024 * 1024
+
+
+def load_settings(env: dict | None = None) -> Settings:
+    """Settings from `env` (default ``os.environ``); creates the data folder when SQLite is used."""
+    env = os.environ if env is None else env
+    data_dir = Path(env.get("RECINET_DATA_DIR") or "recinet-data").expanduser().resolve()
+    url = env.get("RECINET_DATABASE_URL") or ""
+    if not url:
+        data_dir.mkdir(parents=True, exist_ok=True)
+        url = f"sqlite:///{data_dir / 'recinet.sqlite3'}"
+    raw_mb = env.get("RECINET_MAX_UPLOAD_MB") or "64"
+    try:
+        mb = float(raw_mb)
+    except ValueError:
+        raise ParameterError(f"RECINET_MAX_UPLOAD_MB must be a number of MB, got {raw_mb!r}.") from None
+    if not (0 < mb <= 1024):
+        raise ParameterError(f"RECINET_MAX_UPLOAD_MB must lie in (0, 1024], got {raw_mb!r}.")
+    return Settings(
+        data_dir=data_dir,
+        database_url=url,
+        cache_dir=data_dir / "job-cache",
+        access_key=env.get("RECINET_ACCESS_KEY") or None,
+        max_upload_bytes=int(mb * 1024 * 1024),
+        celery_broker=env.get("RECINET_CELERY_BROKER") or None,
+    )
