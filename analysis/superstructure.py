@@ -490,7 +490,8 @@ def _wood_cells(substrate: Net2D, lattice_xy: np.ndarray, *, index: int, tol: fl
     """Cells (p, q) of the lattice with p ∥ R(φ) a1, q ∥ R(φ) a2, area index × area(L).
 
     index 1: primitive cells; index 2: centred cells ((p + q)/2 in the lattice).
-    Yields (|φ|, φ, m, n, p, q) sorted with the smallest rotation first.
+    Yields (|φ_w|, φ_w, m, n, p, q, φ) sorted with the smallest rotation first, where
+    φ is the angle from a1 and φ_w the Wood angle (φ modulo the substrate's rotations).
     """
     a1, a2 = substrate.vectors
     area_l = abs(np.linalg.det(lattice_xy))
@@ -502,10 +503,16 @@ def _wood_cells(substrate: Net2D, lattice_xy: np.ndarray, *, index: int, tol: fl
     order = np.argsort(lengths, kind="stable")
     vecs, lengths = vecs[order], lengths[order]
     ang_a1 = math.atan2(a1[1], a1[0])
+    # rotating the substrate basis by a symmetry rotation gives an equivalent basis,
+    # so the Wood angle counts modulo the smallest rotation of the substrate
+    step = 2 * math.pi / sum(1 for op in point_group(substrate) if op.kind == "rotation")
     out = []
     for p, lp in zip(vecs, lengths):
         phi = math.atan2(p[1], p[0]) - ang_a1
         phi = (phi + math.pi) % (2 * math.pi) - math.pi
+        phi_w = (phi + step / 2) % step - step / 2  # in [−step/2, step/2)
+        if abs(phi_w + step / 2) < 1e-9:
+            phi_w = step / 2
         c, s = math.cos(phi), math.sin(phi)
         u = np.array([c * a2[0] - s * a2[1], s * a2[0] + c * a2[1]]) / substrate.b
         cross = vecs[:, 0] * u[1] - vecs[:, 1] * u[0]
@@ -519,10 +526,10 @@ def _wood_cells(substrate: Net2D, lattice_xy: np.ndarray, *, index: int, tol: fl
                 cc = ((p + q) / 2.0) @ inv_l
                 if np.any(np.abs(cc - np.rint(cc)) > 1e-6):
                     continue
-            out.append((round(abs(math.degrees(phi)), 6), math.degrees(phi), lp / substrate.a,
-                        lq / substrate.b, p, q))
+            out.append((round(abs(math.degrees(phi_w)), 6), math.degrees(phi_w), lp / substrate.a,
+                        lq / substrate.b, p, q, math.degrees(phi)))
             break  # the shortest parallel q makes the cell for this p
-    out.sort(key=lambda t: (t[0], -t[1], t[2] * t[3], t[2]))
+    out.sort(key=lambda t: (t[0], -round(t[1], 6), -round(t[2], 9)))  # least rotation, then R+ before R−, then m ≥ n
     return out
 
 
@@ -559,7 +566,7 @@ def wood_notation(substrate: Net2D, matrix, *, tol: float = 1e-6) -> WoodNotatio
     inv_v = np.linalg.inv(substrate.vectors)
 
     def text(cell, prefix):
-        _, phi, mm, nn, _, _ = cell
+        _, phi, mm, nn = cell[:4]
         rot = _fmt_rotation(phi)
         sides = f"({_fmt_length(mm, max(tol, 1e-6))}×{_fmt_length(nn, max(tol, 1e-6))})"
         if prefix == "p" and (rot or not (_is_int(mm, tol) and _is_int(nn, tol)) or
@@ -572,7 +579,7 @@ def wood_notation(substrate: Net2D, matrix, *, tol: float = 1e-6) -> WoodNotatio
     basis = _snap(np.array([prim[0][4], prim[0][5]]) @ inv_v) if prim else None
     use_centered = cent and abs(cent[0][1]) < 0.05 and (not prim or abs(prim[0][1]) >= 0.05)
     if use_centered:
-        _, phi, mm, nn, _, _ = cent[0]
+        _, phi, mm, nn = cent[0][:4]
         if prim:
             note = f"c-cell form; the primitive cell is {p_text}."
         else:
@@ -582,7 +589,7 @@ def wood_notation(substrate: Net2D, matrix, *, tol: float = 1e-6) -> WoodNotatio
                     f"{substrate.gamma_deg:.0f}° net); {c_text} is the centred-cell setting the trade writes.")
         return WoodNotation(c_text, p_text, c_text, mm, nn, phi, basis, note)
     if prim:
-        _, phi, mm, nn, _, _ = prim[0]
+        _, phi, mm, nn = prim[0][:4]
         return WoodNotation(p_text, p_text, c_text, mm, nn, phi, basis, "")
     return WoodNotation(None, None, c_text, math.nan, math.nan, math.nan, None,
                         f"No Wood notation exists; matrix notation {format_matrix(m)}.")
