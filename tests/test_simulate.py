@@ -17,6 +17,7 @@ import inspect
 import json
 import math
 from fractions import Fraction
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -467,3 +468,30 @@ def test_layer_iv_peaks_at_kinematic_energies():
     for e_peak in peaks:
         near = (energies > e_peak - 8) & (energies < e_peak + 8)
         assert abs(energies[near][np.argmax(curve[near])] - e_peak) < 1.5
+
+
+# ----------------------------------------------------------------- committed demo images
+
+_DEMO = sorted((Path(__file__).resolve().parent.parent / "demo_images").glob("*.json"))
+
+
+@pytest.mark.parametrize("path", _DEMO, ids=[p.stem for p in _DEMO])
+def test_demo_images_agree_with_their_truth(path):
+    from PIL import Image
+
+    truth = json.loads(path.read_text())
+    img = np.array(Image.open(path.with_suffix(".png"))).astype(float)
+    assert img.shape == tuple(truth["camera"]["shape"]) and truth["camera"]["bit_depth"] == 16
+    half = 6
+    yy, xx = np.mgrid[-half:half + 1, -half:half + 1]
+    checked = 0
+    for s in truth["spots"]:
+        if s["hidden"] or s["partly_hidden"] or s["photons"] < 4000:
+            continue
+        r, c = int(round(s["y"])), int(round(s["x"]))
+        win = img[r - half:r + half + 1, c - half:c + half + 1]
+        w = np.clip(win - np.median(win), 0, None)  # background removed by the window median
+        dx, dy = (w * (xx + c)).sum() / w.sum() - s["x"], (w * (yy + r)).sum() / w.sum() - s["y"]
+        assert math.hypot(dx, dy) < 0.35, s["label"]  # centroid with noise: a few tenths at most
+        checked += 1
+    assert checked >= 5
