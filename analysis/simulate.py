@@ -405,12 +405,29 @@ def _pixel_weights(centre: np.ndarray, sigma: np.ndarray, half: int) -> tuple[np
     return idx, w
 
 
-def _spots_image(xy: np.ndarray, sigma: np.ndarray, photons: np.ndarray, shape: tuple[int, int]) -> np.ndarray:
-    """Expected photons per pixel from Gaussian spots integrated over pixels."""
-    rows, cols = shape
+def _spots_image(xy: np.ndarray, sigma: np.ndarray, photons: np.ndarray, trans: np.ndarray
+                 ) -> tuple[np.ndarray, np.ndarray]:
+    """Expected photons per pixel from Gaussian spots integrated over pixels.
+
+    Parameters
+    ----------
+    xy : (K, 2) spot centres (x, y) px; sigma, photons : (K,)
+    trans : (rows, cols) ndarray of float64
+        Screen × gun transmission in [0, 1], applied to the spots.
+
+    Returns
+    -------
+    image : (rows, cols) ndarray of float64
+        Spot photons per pixel after the transmission.
+    seen : (K,) ndarray of float64
+        Photons of each spot that land on the image and pass the transmission.
+    """
+    rows, cols = trans.shape
     out = np.zeros(rows * cols)
+    seen = np.zeros(len(xy))
     if len(xy) == 0:
-        return out.reshape(shape)
+        return out.reshape(rows, cols), seen
+    t_flat = trans.ravel()
     half = int(math.ceil(6.0 * float(sigma.max())))
     step = max(1, 2_000_000 // (2 * half + 1) ** 2)
     for s in range(0, len(xy), step):  # chunks keep the (K, w, w) block small
@@ -421,8 +438,21 @@ def _spots_image(xy: np.ndarray, sigma: np.ndarray, photons: np.ndarray, shape: 
         r = np.broadcast_to(ri[:, :, None], val.shape)
         c = np.broadcast_to(ci[:, None, :], val.shape)
         ok = (r >= 0) & (r < rows) & (c >= 0) & (c < cols)
-        out += np.bincount((r * cols + c)[ok], weights=val[ok], minlength=rows * cols)
-    return out.reshape(shape)
+        flat = np.where(ok, r * cols + c, 0)
+        val = np.where(ok, val * t_flat[flat], 0.0)
+        seen[sl] = val.sum(axis=(1, 2))
+        out += np.bincount(flat.ravel(), weights=val.ravel(), minlength=rows * cols)
+    return out.reshape(rows, cols), seen
+
+
+def _per_spot(value, k: int, name: str) -> np.ndarray:
+    """A scalar or K values as a (K,) float64 array."""
+    a = np.asarray(value, dtype=np.float64)
+    if a.ndim == 0:
+        return np.full(k, float(a))
+    if a.shape != (k,):
+        raise ParameterError(f"`{name}` must be a number or {k} numbers, got shape {a.shape}.")
+    return a.copy()
 
 
 def _background(x, y, center_px, radius: float, peak: float, gradient) -> np.ndarray:
@@ -506,10 +536,12 @@ def render_image(pattern: Pattern, *, shape=(1024, 1024), rng: np.random.Generat
     -------
     SyntheticImage
         ``truth["spots"]`` has, per beam: x, y (px), h, k, label, integer,
-        domains (indices), photons (after the shadow), sigma_px,
-        background_per_px (expected at the centre), hidden (centre under the
-        gun or off the screen), partly_hidden (within 3σ of an edge) and
-        saturated.
+        domains (indices), theta_deg, photons (expected photons that reach the
+        image, after the screen edge and gun shadow), photons_unshadowed,
+        sigma_px, background_per_px (expected diffuse photons per pixel at the
+        spot centre, after the shadow), hidden (centre under the gun or off the
+        screen), partly_hidden (within 3σ of an edge) and saturated (centre
+        pixel at full scale).
 
     Examples
     --------
@@ -533,9 +565,8 @@ def render_image(pattern: Pattern, *, shape=(1024, 1024), rng: np.random.Generat
     if not (8 <= rows <= 8192 and 8 <= cols <= 8192):
         raise ParameterError(f"`shape` must be between 8 and 8192 pixels a side, got {shape!r}.")
     k = len(pattern)
-    sigma = np.broadcast_to(np.asarray(spot_sigma_px, dtype=np.float64), (k,)).copy() if np.ndim(
-        spot_sigma_px) == 0 or np.size(spot_sigma_px) == k else None
-    if sigma is None or not np.all((sigma > 0.05) & (sigma < 100)):
+    sigma = _per_spot(spot_sigma_px, k, "spot_sigma_px")
+    if not np.all((sigma > 0.05) & (sigma < 100)):
         raise ParameterError(f"`spot_sigma_px` must be a number or {k} numbers in (0.05, 100) px, "
                              f"got {np.asarray(spot_sigma_px).tolist()!r}.")
     photons = default_intensities(pattern, rng) if intensities is None else np.asarray(intensities, dtype=np.float64)
@@ -568,7 +599,8 @@ def render_image(pattern: Pattern, *, shape=(1024, 1024), rng: np.random.Generat
         trans = trans * np.clip(gun_sd + 0.5, 0.0, 1.0)
     bg_args = (centre, s_radius, background_photons, background_gradient)
     bg = _background(x, y, *bg_args)
-    mu = (_spots_image(pattern.xy_px, sigma, photons, (rows, cols)) + bg) * trans
+    spots_mu, seen = _spots_image(pattern.xy_px, sigma, photons, trans)
+    mu = spots_mu + bg * trans
     full = float(2**bit_depth - 1)
     if not saturate:
         gain = min(gain, 0.98 * (full - offset) / max(float(mu.max()) + 5 * read_noise_e + 1e-9, 1e-9))
@@ -582,7 +614,7 @@ def render_image(pattern: Pattern, *, shape=(1024, 1024), rng: np.random.Generat
     image = adu.astype(np.uint8 if bit_depth == 8 else np.uint16)
 
     masks = {"screen": screen_sd > 0, "gun": (gun_sd < 0) if gun_sd is not None else np.zeros((rows, cols), bool)}
-    spots = _spot_truth(pattern, sigma, photons, s_centre, s_radius, gun, image, full,
+    spots = _spot_truth(pattern, sigma, photons, seen, s_centre, s_radius, gun, image, full,
                         _background(pattern.xy_px[:, 0], pattern.xy_px[:, 1], *bg_args))
     truth = {
         "center_px": [centre[0], centre[1]],
@@ -605,7 +637,7 @@ def render_image(pattern: Pattern, *, shape=(1024, 1024), rng: np.random.Generat
     return SyntheticImage(image=image, truth=_json(truth), masks=masks)
 
 
-def _spot_truth(pattern, sigma, photons, s_centre, s_radius, gun, image, full, bg_at) -> list[dict]:
+def _spot_truth(pattern, sigma, photons, seen, s_centre, s_radius, gun, image, full, bg_at) -> list[dict]:
     """One JSON-ready record per beam (see :func:`render_image`)."""
     xy = pattern.xy_px
     screen_sd = s_radius - np.hypot(xy[:, 0] - s_centre[0], xy[:, 1] - s_centre[1])
@@ -619,13 +651,13 @@ def _spot_truth(pattern, sigma, photons, s_centre, s_radius, gun, image, full, b
         r, c = int(round(xy[i, 1])), int(round(xy[i, 0]))
         inside = 0 <= r < rows and 0 <= c < cols
         hidden = bool(edge[i] <= 0 or not inside)
-        visible_frac = float(np.clip(edge[i] + 0.5, 0.0, 1.0)) if edge[i] < 3 * sigma[i] else 1.0
+        t_centre = float(np.clip(screen_sd[i] + 0.5, 0, 1) * np.clip(gun_sd[i] + 0.5, 0, 1))
         out.append({
             "x": xy[i, 0], "y": xy[i, 1], "h": pattern.hk[i, 0], "k": pattern.hk[i, 1], "label": labels[i],
             "integer": bool(pattern.integer[i]), "domains": np.flatnonzero(pattern.domains[i]).tolist(),
-            "theta_deg": pattern.theta_deg[i], "photons": 0.0 if hidden else photons[i] * visible_frac,
+            "theta_deg": pattern.theta_deg[i], "photons": seen[i],
             "photons_unshadowed": photons[i], "sigma_px": sigma[i],
-            "background_per_px": 0.0 if hidden else bg_at[i],
+            "background_per_px": bg_at[i] * t_centre,
             "hidden": hidden, "partly_hidden": bool(not hidden and edge[i] < 3 * sigma[i]),
             "saturated": bool(inside and not hidden and image[r, c] >= full),
         })
