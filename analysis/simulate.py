@@ -150,6 +150,9 @@ def _check_matrices(overlayers) -> np.ndarray:
     return np.array(mats, dtype=np.float64).reshape(-1, 2, 2)
 
 
+_MAX_CANDIDATES = 4_000_000
+
+
 def _net_points(basis: np.ndarray, g_max: float) -> np.ndarray:
     """Integer coordinates n with |n @ basis| ≤ g_max; basis rows in Å⁻¹.
 
@@ -159,6 +162,9 @@ def _net_points(basis: np.ndarray, g_max: float) -> np.ndarray:
     dual = np.linalg.inv(basis).T
     n1 = int(math.floor(g_max * np.linalg.norm(dual[0]) + 1e-9))
     n2 = int(math.floor(g_max * np.linalg.norm(dual[1]) + 1e-9))
+    if (2 * n1 + 1) * (2 * n2 + 1) > _MAX_CANDIDATES:
+        raise ParameterError(f"Too many beams to enumerate ({(2 * n1 + 1) * (2 * n2 + 1)} candidates for a net "
+                             f"with rows {np.round(basis, 6).tolist()} Å⁻¹); lower the energy or check the matrix.")
     i, j = np.meshgrid(np.arange(-n1, n1 + 1), np.arange(-n2, n2 + 1), indexing="ij")
     n = np.column_stack([i.ravel(), j.ravel()]).astype(np.float64)
     g = n @ basis

@@ -508,3 +508,8 @@ def test_demo_images_agree_with_their_truth(path):
         assert math.hypot(dx, dy) < 0.35, s["label"]  # centroid with noise: a few tenths at most
         checked += 1
     assert checked >= 5
+
+
+def test_huge_overlayer_cell_is_refused():
+    with pytest.raises(ParameterError, match="Too many beams to enumerate"):
+        forward_pattern(parse_substrate("Cu(100)"), [5000.0 * np.eye(2)], energy_eV=100.0, geometry=GEOM)
