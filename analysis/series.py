@@ -1,0 +1,1537 @@
+"""Energy series: energies per frame, beam tracking, integrated intensities, I(V) curves.
+
+A LEED energy series is a stack of camera frames recorded while the electron energy
+steps. Every beam moves radially about the pattern centre: at normal incidence it leaves
+at sin θ = λ |g| with λ = √(150.4 / E) Å, so on a distant camera its radius falls as
+1/√E. This module
+
+* reads the energy of each frame (CSV or JSON sidecar, a number in each file name, or a
+  start and a step) and checks it (:func:`read_energy_file`, :func:`energies_from_names`,
+  :func:`energies_from_start_step`, :func:`check_energies`);
+* lists the beams of a substrate plus overlayer domains with their symmetry-equivalence
+  classes (:func:`beams_from_nets`, :class:`BeamSet`);
+* measures a spot's integrated intensity with a local background (annulus mean or a
+  fitted plane) or by a profile fit, with saturation flags and a counting-statistics
+  uncertainty (:func:`integrate_spots`);
+* tracks every beam through the stack, frames streamed one at a time: predict from the
+  current screen geometry, refine locally, integrate, and refit the geometry from all
+  frames so far (:func:`track_series`);
+* fits the screen geometry (centre, scale per √eV, distortion, rotation) from all frames
+  jointly, with uncertainties (:func:`fit_series_geometry`);
+* builds I(V) curves, averages symmetry-equivalent beams with the Pendry and
+  Zanazzi–Jona R-factors among them (:func:`average_equivalent`), and exports CSV and
+  JSON (:func:`write_csv`, :func:`write_json`).
+
+Conventions: pixel arrays are (row, col) inside; positions at the API are (x, y) pixels
+as in :mod:`analysis.optics` (x right, y down, the centre of the top-left pixel at
+(0, 0)). Parallel momenta are Å⁻¹ without 2π. Intensities are in the frames' own units
+(ADU) summed over pixels, divided by the beam current when one is given.
+"""
+
+from __future__ import annotations
+
+import csv
+import io as _stdio
+import json
+import math
+import os
+import re
+import sys
+import tempfile
+import time
+from collections.abc import Callable, Iterable, Iterator, Sequence
+from dataclasses import dataclass, field, replace
+from fractions import Fraction
+from pathlib import Path
+
+import numpy as np
+
+from .errors import FitError, ImageError, NetError, ParameterError, RecinetError, SeriesError
+from .nets import Net2D, parse_substrate, point_group, reciprocal
+from .optics import H2_OVER_2ME_EV_A2, ScreenGeometry, momentum_to_pixels
+from .rfactor import pairwise_pendry_r, zanazzi_jona_r
+
+__all__ = [
+    "EnergyTable",
+    "read_energy_file",
+    "energies_from_names",
+    "energies_from_start_step",
+    "check_energies",
+    "DEFAULT_NAME_PATTERN",
+    "BeamSet",
+    "beam_label",
+    "beams_from_nets",
+    "symmetry_ops",
+    "SpotIntegrals",
+    "integrate_spots",
+    "SeriesCalibration",
+    "fit_series_geometry",
+    "IVResult",
+    "track_series",
+    "BeamGroup",
+    "average_equivalent",
+    "smooth_curve",
+    "iv_table",
+    "write_csv",
+    "result_to_dict",
+    "write_json",
+    "add_iv_parser",
+    "FLAG_OFF_SCREEN",
+    "FLAG_MASKED",
+    "FLAG_SATURATED",
+    "FLAG_CROWDED",
+    "FLAG_NOT_REFINED",
+    "FLAG_NAMES",
+    "BLOCKING_FLAGS",
+]
+
+# --------------------------------------------------------------------------- flags
+
+FLAG_OFF_SCREEN = 1  # beyond the acceptance, outside the image or its aperture crosses the edge
+FLAG_MASKED = 2  # the aperture touches masked pixels (gun shadow, holder arm, outside the screen)
+FLAG_SATURATED = 4  # a pixel in the aperture is at the saturation level
+FLAG_CROWDED = 8  # another beam is closer than one aperture diameter
+FLAG_NOT_REFINED = 16  # too weak to refine: integrated at the predicted position (kept)
+FLAG_NAMES = {FLAG_OFF_SCREEN: "off_screen", FLAG_MASKED: "masked", FLAG_SATURATED: "saturated",
+              FLAG_CROWDED: "crowded", FLAG_NOT_REFINED: "not_refined"}
+# Flags that leave a point out of the curves (empty CSV cells).
+BLOCKING_FLAGS = FLAG_OFF_SCREEN | FLAG_MASKED | FLAG_SATURATED | FLAG_CROWDED
+
+
+# --------------------------------------------------------------------------- energies
+
+# Default: the last number in the file name, optionally followed by "eV" (e.g.
+# "scan_0042_105.5eV.tif" -> 105.5, "frame_120.png" -> 120).
+DEFAULT_NAME_PATTERN = r"(\d+(?:[.,]\d+)?)(?:\s*_?eV)?(?!.*\d)"
+
+
+@dataclass(frozen=True, eq=False)
+class EnergyTable:
+    """Energies (and optionally beam currents) of the frames of a series.
+
+    Attributes
+    ----------
+    energy_eV : (F,) ndarray of float64
+        Electron energy of each frame, in frame order, eV.
+    current : (F,) ndarray of float64 or None
+        Beam current of each frame in any unit (intensities are divided by it).
+    frame : tuple of str or None
+        The sidecar's `frame` column (file names, or frame numbers as text), if any.
+    source : str
+        Where the energies came from (file name, ``"file names"``, ``"start/step"``).
+    """
+
+    energy_eV: np.ndarray
+    current: np.ndarray | None = None
+    frame: tuple | None = None
+    source: str = ""
+
+    def __post_init__(self):
+        e = np.array(self.energy_eV, dtype=np.float64).reshape(-1)
+        e.flags.writeable = False
+        object.__setattr__(self, "energy_eV", e)
+        if self.current is not None:
+            c = np.array(self.current, dtype=np.float64).reshape(-1)
+            c.flags.writeable = False
+            object.__setattr__(self, "current", c)
+
+    def __len__(self) -> int:
+        return int(self.energy_eV.size)
+
+
+def _frame_text(i: int, names: Sequence[str] | None) -> str:
+    if names is not None and i < len(names) and names[i]:
+        return f"frame {i} ({names[i]})"
+    return f"frame {i}"
+
+
+def check_energies(energy_eV, names: Sequence[str] | None = None) -> np.ndarray:
+    """Validate the energies of a series: finite, positive, strictly monotonic.
+
+    Parameters
+    ----------
+    energy_eV : (F,) array_like of float
+        Energies in frame order, eV. Increasing or decreasing series are both accepted.
+    names : sequence of str, optional
+        Frame names for the messages.
+
+    Returns
+    -------
+    (F,) ndarray of float64
+
+    Raises
+    ------
+    SeriesError
+        Naming the first bad frame.
+
+    Examples
+    --------
+    >>> check_energies([50, 51, 52]).tolist()
+    [50.0, 51.0, 52.0]
+    """
+    try:
+        e = np.array(energy_eV, dtype=np.float64).reshape(-1)
+    except (TypeError, ValueError):
+        raise SeriesError(f"Energies must be numbers, got {energy_eV!r}.") from None
+    if e.size == 0:
+        raise SeriesError("The series has no energies.")
+    for i, v in enumerate(e):
+        if not (math.isfinite(v) and v > 0):
+            raise SeriesError(f"Energy of {_frame_text(i, names)} must be a positive number of eV, got {v!r}.")
+    if e.size > 1:
+        d = np.diff(e)
+        dup = np.flatnonzero(d == 0)
+        if dup.size:
+            i = int(dup[0])
+            raise SeriesError(f"{_frame_text(i, names).capitalize()} and {_frame_text(i + 1, names)} both "
+                              f"have {e[i]:g} eV: energies must not repeat.")
+        sign = np.sign(d[0])
+        bad = np.flatnonzero(np.sign(d) != sign)
+        if bad.size:
+            i = int(bad[0]) + 1
+            way = "increase" if sign > 0 else "decrease"
+            raise SeriesError(f"Energy of {_frame_text(i, names)} is {e[i]:g} eV after {e[i - 1]:g} eV: "
+                              f"the energies must {way} steadily (not monotonic).")
+    e.flags.writeable = False
+    return e
+
+
+def _to_float(text, what: str) -> float:
+    try:
+        return float(str(text).strip().replace(",", ".") if isinstance(text, str) else text)
+    except (TypeError, ValueError):
+        raise SeriesError(f"{what}: {text!r} is not a number.") from None
+
+
+def _table_from_columns(cols: dict, source: str) -> EnergyTable:
+    """Build an EnergyTable from lower-cased column lists (strings or numbers)."""
+    key = "energy_ev" if "energy_ev" in cols else "energy" if "energy" in cols else None
+    if key is None:
+        raise SeriesError(f"{source}: no energy column; name it 'energy_eV' or 'energy' "
+                          f"(found {sorted(cols) or 'none'}).")
+    raw_e = cols[key]
+    n = len(raw_e)
+    if n == 0:
+        raise SeriesError(f"{source}: the energy column is empty.")
+    frames = None
+    if "frame" in cols:
+        frames = tuple("" if v is None else str(v).strip() for v in cols["frame"])
+    energies, currents = [], None
+    for i, v in enumerate(raw_e):
+        label = f"{source}: row {i + 1}" + (f" (frame {frames[i]})" if frames and frames[i] else "")
+        if v is None or (isinstance(v, str) and not v.strip()):
+            raise SeriesError(f"{label} has no energy.")
+        energies.append(_to_float(v, label))
+    if "current" in cols:
+        currents = []
+        for i, v in enumerate(cols["current"]):
+            label = f"{source}: row {i + 1}"
+            c = _to_float(v, label + " current")
+            if not (math.isfinite(c) and c > 0):
+                raise SeriesError(f"{label}: beam current must be positive, got {v!r}.")
+            currents.append(c)
+    table = EnergyTable(np.array(energies), None if currents is None else np.array(currents), frames, source)
+    if frames is not None:
+        table = _order_by_frame_column(table)
+    return table
+
+
+def _order_by_frame_column(t: EnergyTable) -> EnergyTable:
+    """Rows whose `frame` holds numbers are put in frame order (0- or 1-based, consecutive)."""
+    fr = t.frame
+    if not all(re.fullmatch(r"[+-]?\d+", f or "") for f in fr):
+        return t  # file names: matched to the series' names later
+    nums = np.array([int(f) for f in fr])
+    order = np.argsort(nums, kind="stable")
+    s = nums[order]
+    if np.any(np.diff(s) == 0):
+        k = int(np.flatnonzero(np.diff(s) == 0)[0])
+        raise SeriesError(f"{t.source}: frame {s[k]} is listed twice.")
+    if s[0] not in (0, 1) or np.any(np.diff(s) != 1):
+        missing = sorted(set(range(int(s[0]), int(s[-1]) + 1)) - set(s.tolist()))
+        raise SeriesError(f"{t.source}: frame numbers must run from 0 or 1 without gaps; "
+                          f"missing {missing[:5] or [0]}.")
+    cur = None if t.current is None else t.current[order]
+    return EnergyTable(t.energy_eV[order], cur, tuple(fr[i] for i in order), t.source)
+
+
+def read_energy_file(path) -> EnergyTable:
+    """Read a CSV or JSON sidecar listing the energy (and current) of every frame.
+
+    CSV: a header row, then one row per frame in frame order; the energy column is named
+    ``energy_eV`` or ``energy`` (case-insensitive); optional ``frame`` (file names, or
+    frame numbers from 0 or 1, which set the order) and ``current`` columns. Commas,
+    semicolons or tabs separate the columns.
+
+    JSON: either a list of numbers, a list of row objects with the same keys, or an
+    object with lists under those keys (``{"energy_eV": [...], "current": [...]}``).
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+
+    Returns
+    -------
+    EnergyTable
+
+    Raises
+    ------
+    SeriesError
+        Missing file, no energy column, a cell that is not a number (naming its row).
+
+    Examples
+    --------
+    >>> import tempfile, os
+    >>> d = tempfile.mkdtemp(); p = os.path.join(d, "e.csv")
+    >>> _ = open(p, "w").write("frame,energy_eV,current\\n1,50,1.0\\n2,52,1.1\\n")
+    >>> t = read_energy_file(p)
+    >>> print(t.energy_eV.tolist(), t.current.tolist())
+    [50.0, 52.0] [1.0, 1.1]
+    """
+    p = Path(path)
+    if not p.is_file():
+        raise SeriesError(f"Energy file {p.name} not found ({p}).")
+    try:
+        text = p.read_text(encoding="utf-8-sig")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise SeriesError(f"Energy file {p.name} cannot be read as text ({type(exc).__name__}).") from None
+    if not text.strip():
+        raise SeriesError(f"Energy file {p.name} is empty.")
+    if p.suffix.lower() == ".json" or text.lstrip()[:1] in "[{":
+        return _energy_json(text, p.name)
+    return _energy_csv(text, p.name)
+
+
+def _energy_csv(text: str, source: str) -> EnergyTable:
+    lines = [ln for ln in text.splitlines() if ln.strip() and not ln.lstrip().startswith("#")]
+    try:
+        dialect = csv.Sniffer().sniff(lines[0], delimiters=",;\t")
+    except csv.Error:
+        dialect = csv.excel
+    rows = list(csv.reader(lines, dialect))
+    header = [h.strip().lower() for h in rows[0]]
+    if all(re.fullmatch(r"[+-]?\d+(\.\d*)?", h) for h in header if h):
+        raise SeriesError(f"{source}: the first row must be a header naming the columns "
+                          f"(e.g. 'energy_eV'), got {rows[0]}.")
+    cols: dict[str, list] = {h: [] for h in header if h}
+    for r, row in enumerate(rows[1:], start=2):
+        if len(row) < len(header):
+            row = row + [""] * (len(header) - len(row))
+        for h, v in zip(header, row):
+            if h:
+                cols[h].append(v)
+    return _table_from_columns(cols, source)
+
+
+def _energy_json(text: str, source: str) -> EnergyTable:
+    try:
+        data = json.loads(text)
+    except json.JSONDecodeError as exc:
+        raise SeriesError(f"{source}: not valid JSON ({exc.msg} at line {exc.lineno}).") from None
+    if isinstance(data, dict):
+        data = {str(k).lower(): v for k, v in data.items()}
+        if "frames" in data and isinstance(data["frames"], list):
+            data = data["frames"]
+    if isinstance(data, list):
+        if all(isinstance(v, (int, float, str)) for v in data):
+            return _table_from_columns({"energy_ev": data}, source)
+        if all(isinstance(v, dict) for v in data):
+            keys = set().union(*(set(str(k).lower() for k in v) for v in data)) if data else set()
+            cols = {k: [] for k in keys}
+            for row in data:
+                low = {str(k).lower(): v for k, v in row.items()}
+                for k in keys:
+                    cols[k].append(low.get(k))
+            return _table_from_columns(cols, source)
+        raise SeriesError(f"{source}: a JSON list must hold numbers or row objects.")
+    if isinstance(data, dict):
+        cols = {k: v for k, v in data.items() if isinstance(v, list)}
+        lengths = {k: len(v) for k, v in cols.items() if k in ("energy_ev", "energy", "current", "frame")}
+        if len(set(lengths.values())) > 1:
+            raise SeriesError(f"{source}: the lists have different lengths {lengths}.")
+        return _table_from_columns(cols, source)
+    raise SeriesError(f"{source}: expected a JSON list or object, got {type(data).__name__}.")
+
+
+def energies_from_names(names: Sequence[str], *, pattern: str = DEFAULT_NAME_PATTERN) -> np.ndarray:
+    """Energies read from the frames' file names.
+
+    Parameters
+    ----------
+    names : sequence of str
+        File names (a ``#i`` page suffix is ignored; folders are stripped).
+    pattern : str, keyword-only
+        Regular expression whose first group (or whole match) is the energy in eV.
+        The default takes the last number in the name, optionally followed by ``eV``;
+        a decimal comma is accepted.
+
+    Returns
+    -------
+    (F,) ndarray of float64, checked by :func:`check_energies`.
+
+    Raises
+    ------
+    SeriesError
+        A name without a match, naming the frame.
+
+    Examples
+    --------
+    >>> energies_from_names(["run3_050.5eV.tif", "run3_051.0eV.tif"]).tolist()
+    [50.5, 51.0]
+    >>> energies_from_names(["E=60 eV, take 2.png"], pattern=r"E=(\\d+)").tolist()
+    [60.0]
+    """
+    try:
+        rx = re.compile(pattern)
+    except re.error as exc:
+        raise SeriesError(f"File-name pattern {pattern!r} is not a valid regular expression ({exc}).") from None
+    out = []
+    for i, n in enumerate(names):
+        stem = re.sub(r"#\d+$", "", Path(str(n)).name)
+        stem = re.sub(r"\.(tiff?|png|jpe?g|bmp)$", "", stem, flags=re.I)
+        m = None
+        for m in rx.finditer(stem):
+            pass  # the last match
+        if m is None:
+            raise SeriesError(f"No energy in the name of {_frame_text(i, names)} with pattern {pattern!r}; "
+                              "give an energy file or a start and step instead.")
+        out.append(_to_float(m.group(1) if rx.groups else m.group(0), f"name of {_frame_text(i, names)}"))
+    return check_energies(out, names)
+
+
+def energies_from_start_step(n_frames: int, *, start_eV: float, step_eV: float) -> np.ndarray:
+    """Energies ``start_eV + i · step_eV`` for ``i = 0 … n_frames − 1``.
+
+    Examples
+    --------
+    >>> energies_from_start_step(3, start_eV=40.0, step_eV=2.0).tolist()
+    [40.0, 42.0, 44.0]
+    """
+    if not (isinstance(n_frames, (int, np.integer)) and n_frames > 0):
+        raise SeriesError(f"`n_frames` must be a positive integer, got {n_frames!r}.")
+    for name, v in (("start_eV", start_eV), ("step_eV", step_eV)):
+        if not (isinstance(v, (int, float, np.floating, np.integer)) and math.isfinite(v)):
+            raise SeriesError(f"`{name}` must be a number of eV, got {v!r}.")
+    if step_eV == 0:
+        raise SeriesError("`step_eV` must not be 0: energies must not repeat.")
+    return check_energies(float(start_eV) + float(step_eV) * np.arange(int(n_frames)))
+
+
+# --------------------------------------------------------------------------- beams
+
+
+def beam_label(h: float, k: float, *, max_denominator: int = 12) -> str:
+    """Column heading of a beam in substrate units: ``(1,0)``, ``(-1,1)``, ``(1/2,0)``.
+
+    Fractions are reduced; indices that are not simple fractions are written as decimals.
+
+    Examples
+    --------
+    >>> beam_label(0.5, 0.0), beam_label(-1.0, 1.0), beam_label(2 / 3, -1 / 3)
+    ('(1/2,0)', '(-1,1)', '(2/3,-1/3)')
+    """
+
+    def one(x: float) -> str:
+        f = Fraction(float(x)).limit_denominator(max_denominator)
+        if abs(float(f) - x) > 1e-6:
+            return f"{x:.4g}"
+        return str(f.numerator) if f.denominator == 1 else f"{f.numerator}/{f.denominator}"
+
+    return f"({one(h)},{one(k)})"
+
+
+@dataclass(frozen=True, eq=False)
+class BeamSet:
+    """The beams to follow through a series.
+
+    Attributes
+    ----------
+    hk : (K, 2) ndarray of float64
+        Indices in the substrate reciprocal basis (fractional for overlayer beams).
+    g_par : (K, 2) ndarray of float64
+        Parallel momentum in the optics' surface axes, Å⁻¹ without 2π.
+    labels : tuple of str
+        ``(h,k)`` headings from :func:`beam_label`.
+    integer : (K,) ndarray of bool
+        Integer-order (substrate) beams.
+    group : (K,) ndarray of int64
+        Symmetry-equivalence class of each beam (0, 1, …); equal numbers are equivalent.
+    symmetry : str
+        Name of the point group used for the classes.
+    """
+
+    hk: np.ndarray
+    g_par: np.ndarray
+    labels: tuple
+    integer: np.ndarray
+    group: np.ndarray
+    symmetry: str = "1"
+
+    def __post_init__(self):
+        hk = np.array(self.hk, dtype=np.float64).reshape(-1, 2)
+        k = hk.shape[0]
+        for name, dtype, shape in (("hk", np.float64, (k, 2)), ("g_par", np.float64, (k, 2)),
+                                   ("integer", bool, (k,)), ("group", np.int64, (k,))):
+            a = np.array(getattr(self, name), dtype=dtype)
+            if a.shape != shape:
+                raise ParameterError(f"BeamSet `{name}` must have shape {shape}, got {a.shape}.")
+            a.flags.writeable = False
+            object.__setattr__(self, name, a)
+        if len(self.labels) != k:
+            raise ParameterError(f"BeamSet has {k} beams but {len(self.labels)} labels.")
+        object.__setattr__(self, "labels", tuple(self.labels))
+
+    def __len__(self) -> int:
+        return int(self.hk.shape[0])
+
+    def index(self, label_or_hk) -> int:
+        """Position of a beam given its label ``"(1,0)"`` or its (h, k)."""
+        if isinstance(label_or_hk, str):
+            key = label_or_hk.replace(" ", "")
+            if key in self.labels:
+                return self.labels.index(key)
+            raise ParameterError(f"No beam {label_or_hk!r}; known: {', '.join(self.labels[:12])}…")
+        hk = np.asarray(label_or_hk, dtype=np.float64).reshape(2)
+        d = np.max(np.abs(self.hk - hk), axis=1)
+        j = int(np.argmin(d)) if len(self) else -1
+        if j < 0 or d[j] > 1e-6:
+            raise ParameterError(f"No beam with indices {hk.tolist()}.")
+        return j
+
+    @classmethod
+    def from_hk(cls, substrate: Net2D, hk, *, azimuth_deg: float = 0.0, symmetry: str = "auto") -> "BeamSet":
+        """Beams given by their substrate indices (e.g. from an indexed pattern).
+
+        Parameters
+        ----------
+        substrate : Net2D
+            Real-space substrate net, Å.
+        hk : (K, 2) array_like of float
+        azimuth_deg : float, keyword-only
+            Counter-clockwise rotation of the sample axes in the optics' frame.
+        symmetry : str, keyword-only
+            As for :func:`symmetry_ops`.
+        """
+        hk = np.asarray(hk, dtype=np.float64).reshape(-1, 2)
+        c, s = math.cos(math.radians(azimuth_deg)), math.sin(math.radians(azimuth_deg))
+        g = hk @ reciprocal(substrate).vectors @ np.array([[c, s], [-s, c]])
+        integer = np.all(np.abs(hk - np.rint(hk)) < 1e-6, axis=1)
+        ops, name = symmetry_ops(substrate, symmetry)
+        group = _orbits(g, [q for q in ops if _maps_set(g, q)])
+        return cls(hk, g, tuple(beam_label(*x) for x in hk), integer, group, name)
+
+
+def _maps_set(g: np.ndarray, q: np.ndarray, tol: float = 1e-6) -> bool:
+    """True when the Cartesian operation `q` maps the set of momenta `g` onto itself."""
+    if len(g) == 0:
+        return True
+    scale = max(float(np.max(np.abs(g))), 1e-12)
+    img = g @ q.T
+    d = np.max(np.abs(img[:, None, :] - g[None, :, :]), axis=2)
+    return bool(np.all(np.min(d, axis=1) <= tol * scale))
+
+
+def _orbits(g: np.ndarray, ops: Sequence[np.ndarray], tol: float = 1e-6) -> np.ndarray:
+    """Equivalence class (0, 1, …, in order of first appearance) of each momentum."""
+    k = len(g)
+    parent = np.arange(k)
+
+    def find(i):
+        while parent[i] != i:
+            parent[i] = parent[parent[i]]
+            i = parent[i]
+        return i
+
+    scale = max(float(np.max(np.abs(g))) if k else 1.0, 1e-12)
+    for q in ops:
+        img = g @ q.T
+        d = np.max(np.abs(img[:, None, :] - g[None, :, :]), axis=2)
+        j = np.argmin(d, axis=1)
+        for i in np.flatnonzero(d[np.arange(k), j] <= tol * scale):
+            a, b = find(i), find(int(j[i]))
+            if a != b:
+                parent[max(a, b)] = min(a, b)
+    roots = np.array([find(i) for i in range(k)], dtype=np.int64)
+    _, first, inv = np.unique(roots, return_index=True, return_inverse=True)
+    rank = np.argsort(np.argsort(first))
+    return rank[inv].astype(np.int64)
+
+
+_THREEFOLD_FACES = re.compile(r"\((111|0001|001)\)", re.I)
+
+
+def symmetry_ops(substrate: Net2D, symmetry: str = "auto") -> tuple[list[np.ndarray], str]:
+    """Cartesian point-group operations used to decide which beams are equivalent.
+
+    Parameters
+    ----------
+    substrate : Net2D
+    symmetry : str
+        ``"full"`` — the holohedry of the net (p2 … p6mm); ``"p3m1"`` — hexagonal nets:
+        rotations by 120° and the mirror lines through the reciprocal basis vectors
+        (fcc(111), bcc(111), diamond(111), hcp(0001) surfaces: (1,0), (0,-1), (-1,1)
+        equivalent, (0,1) not); ``"p31m"`` — the other three mirrors; ``"p3"``, ``"p6"``,
+        ``"p4"``, ``"p2"``, ``"p1"``: rotations only; ``"auto"`` — ``"p3m1"`` for a substrate
+        labelled as a (111) or (0001) face, else ``"full"``.
+
+    Returns
+    -------
+    ops : list of (2, 2) ndarray of float64
+        Orthogonal matrices acting on column vectors, identity first.
+    name : str
+        The group used.
+
+    Examples
+    --------
+    >>> from analysis.nets import parse_substrate
+    >>> ops, name = symmetry_ops(parse_substrate("Pt(111)"))
+    >>> print(name, len(ops), len(symmetry_ops(parse_substrate("Cu(100)"))[0]))
+    p3m1 6 8
+    """
+    s = str(symmetry).strip().lower()
+    group = point_group(substrate)
+    if s == "auto":
+        s = "p3m1" if (_THREEFOLD_FACES.search(substrate.label or "") and len(group) == 12) else "full"
+    if s in ("none", "1"):
+        s = "p1"
+    rot = [op for op in group if op.kind == "rotation"]
+    mir = [op for op in group if op.kind == "mirror"]
+
+    def rotations(step: float) -> list:
+        return [op for op in rot if abs((op.angle_deg / step) - round(op.angle_deg / step)) < 1e-6]
+
+    if s == "full":
+        chosen = group
+        s = {2: "p2", 4: "p2mm", 8: "p4mm", 12: "p6mm"}.get(len(group), "full")
+    elif s in ("p1", "p2", "p3", "p4", "p6"):
+        n = int(s[1])
+        chosen = rotations(360.0 / n)
+        if len(chosen) != n:
+            raise ParameterError(f"Symmetry {symmetry!r} does not fit a {len(group)}-operation net.")
+    elif s in ("p3m1", "p31m"):
+        if len(group) != 12:
+            raise ParameterError(f"Symmetry {symmetry!r} needs a hexagonal substrate.")
+        a_star = reciprocal(substrate).vectors
+        phi = math.degrees(math.atan2(a_star[0, 1], a_star[0, 0])) % 180.0
+        if s == "p31m":
+            phi = (phi + 30.0) % 180.0
+        keep = [op for op in mir if min(abs(op.angle_deg - phi - t) for t in (-180, -120, -60, 0, 60, 120, 180)) < 1e-4]
+        chosen = rotations(120.0) + keep
+    else:
+        raise ParameterError(f"Unknown symmetry {symmetry!r}; use auto, full, p3m1, p31m, p1, p2, p3, p4 or p6.")
+    return [np.array(op.cartesian, dtype=np.float64) for op in chosen], s
+
+
+def beams_from_nets(substrate: Net2D, overlayers: Sequence = (), *, energy_max_eV: float,
+                    geometry: ScreenGeometry, azimuth_deg: float = 0.0, all_domains: bool = False,
+                    symmetry: str = "auto") -> BeamSet:
+    """Every beam of a substrate and its overlayer domains that reaches the screen in a series.
+
+    Beams move inwards as the energy rises, so the set visible at the highest energy is
+    the largest; beams outside the acceptance at lower energies are flagged per frame.
+
+    Parameters
+    ----------
+    substrate : Net2D
+        Real-space (1×1) net, Å.
+    overlayers : sequence of (2, 2) array_like of float
+        Superstructure matrices M, ``overlayer = M @ substrate``.
+    energy_max_eV : float, keyword-only
+        Highest energy of the series.
+    geometry : ScreenGeometry, keyword-only
+        Only its acceptance angle matters here.
+    azimuth_deg : float, keyword-only
+        Sample azimuth (as :func:`analysis.simulate.forward_pattern`).
+    all_domains : bool, keyword-only
+        Add every symmetry-equivalent domain of each matrix (``superstructure.domains``).
+    symmetry : str, keyword-only
+        Point group for the equivalence classes (:func:`symmetry_ops`); only the
+        operations that map the whole beam set onto itself are used.
+
+    Returns
+    -------
+    BeamSet
+        Sorted by |g| then azimuth.
+
+    Examples
+    --------
+    >>> from analysis.nets import parse_substrate
+    >>> b = beams_from_nets(parse_substrate("Cu(100)"), energy_max_eV=100.0,
+    ...                     geometry=ScreenGeometry(0.0, 0.0, 100.0))
+    >>> print(len(b), b.labels[:2], len(set(b.group.tolist())))
+    9 ('(0,0)', '(0,1)') 3
+    """
+    from .simulate import forward_pattern
+
+    mats = [np.asarray(m, dtype=np.float64) for m in overlayers]
+    if all_domains and mats:
+        from .superstructure import domains
+
+        mats = [d.matrix for m in mats for d in domains(substrate, m)]
+    pat = forward_pattern(substrate, mats, energy_eV=float(energy_max_eV), geometry=geometry,
+                          azimuth_deg=azimuth_deg)
+    ops, name = symmetry_ops(substrate, symmetry)
+    c, s = math.cos(math.radians(azimuth_deg)), math.sin(math.radians(azimuth_deg))
+    rot = np.array([[c, -s], [s, c]])
+    ops = [rot @ q @ rot.T for q in ops]  # the operations in the optics' (rotated) frame
+    used = [q for q in ops if _maps_set(pat.g_par, q)]
+    group = _orbits(pat.g_par, used)
+    if len(used) != len(ops):
+        name = f"{name} ({len(used)} of {len(ops)} operations keep the beam set)"
+    return BeamSet(pat.hk, pat.g_par, tuple(beam_label(*x) for x in pat.hk), pat.integer, group, name)
+
+
+# --------------------------------------------------------------------------- windows, refinement, integration
+
+
+@dataclass(eq=False)
+class _Windows:
+    """Small (K, w, w) cut-outs of one frame around K points."""
+
+    data: np.ndarray  # (K, w, w) float64 pixel values (0 outside the image)
+    inside: np.ndarray  # (K, w, w) bool, pixel inside the image
+    usable: np.ndarray  # (K, w, w) bool, inside the image and not masked
+    saturated: np.ndarray  # (K, w, w) bool, at or above the saturation level
+    row0: np.ndarray  # (K,) int64 image row of window pixel [0, 0]
+    col0: np.ndarray  # (K,) int64 image column of window pixel [0, 0]
+
+    @property
+    def half(self) -> int:
+        return (self.data.shape[1] - 1) // 2
+
+
+def _extract(frame: np.ndarray, rc: np.ndarray, half: int, mask: np.ndarray | None,
+             saturation_level: float | None) -> _Windows:
+    rows, cols = frame.shape
+    centre = np.rint(rc).astype(np.int64)
+    off = np.arange(-half, half + 1)
+    rr = centre[:, 0, None] + off[None, :]
+    cc = centre[:, 1, None] + off[None, :]
+    inside = ((rr >= 0) & (rr < rows))[:, :, None] & ((cc >= 0) & (cc < cols))[:, None, :]
+    ri = np.clip(rr, 0, rows - 1)[:, :, None]
+    ci = np.clip(cc, 0, cols - 1)[:, None, :]
+    raw = frame[ri, ci]
+    data = np.where(inside, raw, 0).astype(np.float64)
+    usable = inside if mask is None else inside & mask[ri, ci]
+    sat = (inside & (raw >= saturation_level)) if saturation_level is not None else np.zeros_like(inside)
+    return _Windows(data, inside, usable, sat, centre[:, 0] - half, centre[:, 1] - half)
+
+
+def _local(win: _Windows, rc: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Row and column offsets (K, w, 1) and (K, 1, w) of each window pixel from `rc`."""
+    off = np.arange(win.data.shape[1], dtype=np.float64)
+    dr = (win.row0[:, None] + off[None, :] - rc[:, 0, None])[:, :, None]
+    dc = (win.col0[:, None] + off[None, :] - rc[:, 1, None])[:, None, :]
+    return dr, dc
+
+
+def _robust(values: np.ndarray, select: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per-window median, robust σ (1.4826 MAD) and count of the selected pixels."""
+    k = values.shape[0]
+    v = np.where(select, values, np.nan).reshape(k, -1)
+    n = select.reshape(k, -1).sum(axis=1)
+    with np.errstate(all="ignore"):
+        import warnings
+
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            med = np.nanmedian(v, axis=1)
+            mad = np.nanmedian(np.abs(v - med[:, None]), axis=1)
+    med = np.where(n > 0, med, 0.0)
+    sig = np.where(n > 0, 1.4826 * mad, np.inf)
+    return med, sig, n
+
+
+def _refine(win: _Windows, rc_pred: np.ndarray, search_px: np.ndarray, radius_px: float,
+            min_snr: float) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Local peak search and background-subtracted centroid.
+
+    Returns refined (K, 2) (row, col), peak SNR (K,), ok (K,) and a moment estimate of
+    the spot σ in px (K,; NaN for spots too weak to tell).
+    """
+    k, w, _ = win.data.shape
+    h = win.half
+    dr0, dc0 = _local(win, rc_pred)
+    d2_pred = dr0 * dr0 + dc0 * dc0
+    ring = (d2_pred >= (h - 1.5) ** 2) & win.usable
+    bg, noise, _ = _robust(win.data, ring)
+    noise = np.maximum(noise, 1e-6)
+    v = np.where(win.usable, win.data - bg[:, None, None], 0.0)
+    p = np.pad(v, ((0, 0), (1, 1), (1, 1)))
+    box = sum(p[:, i:i + w, j:j + w] for i in range(3) for j in range(3))
+    cand = win.usable & (d2_pred <= (search_px[:, None, None]) ** 2)
+    score = np.where(cand, box, -np.inf).reshape(k, -1)
+    best = np.argmax(score, axis=1)
+    snr = score[np.arange(k), best] / (3.0 * noise)
+    snr = np.where(np.isfinite(snr), snr, 0.0)
+    off = np.arange(w, dtype=np.float64)
+    c = np.column_stack([win.row0 + best // w, win.col0 + best % w]).astype(np.float64)
+    rows = (win.row0[:, None] + off[None, :])[:, :, None]
+    cols = (win.col0[:, None] + off[None, :])[:, None, :]
+    pos = np.clip(v, 0.0, None)
+    sigma = np.full(k, np.nan)
+    for it in range(3):
+        dr, dc = rows - c[:, 0, None, None], cols - c[:, 1, None, None]
+        d2 = dr * dr + dc * dc
+        wgt = pos * (d2 <= radius_px * radius_px)
+        s = wgt.sum(axis=(1, 2))
+        good = s > 0
+        with np.errstate(invalid="ignore", divide="ignore"):
+            new = np.column_stack([(wgt * rows).sum(axis=(1, 2)) / s, (wgt * cols).sum(axis=(1, 2)) / s])
+            if it == 2:
+                m2 = (wgt * d2).sum(axis=(1, 2)) / s / 2.0
+                sigma = np.where(good & (snr > 20), np.sqrt(np.maximum(m2, 0.0)), np.nan)
+        c = np.where(good[:, None], new, c)
+    shift = np.hypot(c[:, 0] - rc_pred[:, 0], c[:, 1] - rc_pred[:, 1])
+    ok = (snr >= min_snr) & (shift <= search_px)
+    # Correct the second moment for the truncation at radius R: for a Gaussian,
+    # <d²>/2 = σ² (1 − x e^{−x} / (1 − e^{−x})), x = R² / (2σ²); two fixed-point steps.
+    s_est = sigma.copy()
+    for _ in range(4):
+        with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
+            x = radius_px * radius_px / (2.0 * s_est * s_est)
+            f = 1.0 - x * np.exp(-x) / (-np.expm1(-x))
+            s_est = sigma / np.sqrt(np.clip(f, 0.2, 1.0))
+    return c, snr, ok, s_est
+
+
+@dataclass(frozen=True, eq=False)
+class SpotIntegrals:
+    """Integrated intensities of K spots in one frame.
+
+    Attributes
+    ----------
+    intensity : (K,) ndarray of float64
+        Background-subtracted sum over the aperture (or profile amplitude), frame units;
+        NaN where the aperture leaves the image.
+    sigma : (K,) ndarray of float64
+        One-standard-deviation uncertainty from counting statistics (spot shot noise
+        with the given gain, plus the measured background noise and the uncertainty of
+        the background estimate).
+    background_per_px : (K,) ndarray of float64
+        Local background level under the spot centre, frame units per pixel.
+    flags : (K,) ndarray of uint8
+        Bit flags (:data:`FLAG_NAMES`): off screen, masked, saturated.
+    n_aperture : (K,) ndarray of int64
+        Pixels summed.
+    """
+
+    intensity: np.ndarray
+    sigma: np.ndarray
+    background_per_px: np.ndarray
+    flags: np.ndarray
+    n_aperture: np.ndarray
+
+
+def _integrate(win: _Windows, rc: np.ndarray, *, radius_px: float, annulus_px: tuple[float, float],
+               background: str, method: str, spot_sigma_px: float | None, gain: float) -> SpotIntegrals:
+    k = win.data.shape[0]
+    r_in, r_out = annulus_px
+    dr, dc = _local(win, rc)
+    d2 = dr * dr + dc * dc
+    ap = d2 <= radius_px * radius_px
+    ann = (d2 >= r_in * r_in) & (d2 <= r_out * r_out)
+    flags = np.zeros(k, dtype=np.uint8)
+    flags[np.any(ap & ~win.inside, axis=(1, 2))] |= FLAG_OFF_SCREEN
+    flags[np.any(ap & win.inside & ~win.usable, axis=(1, 2))] |= FLAG_MASKED
+    flags[np.any(ap & win.saturated, axis=(1, 2))] |= FLAG_SATURATED
+    sel = ann & win.usable
+    med, rs, n_ann = _robust(win.data, sel)
+    keep = sel & (np.abs(win.data - med[:, None, None]) <= 4.0 * rs[:, None, None] + 1e-9)
+    # background model: constant (annulus) or plane, least squares on the kept pixels
+    scale = max(r_out, 1.0)
+    x1, x2 = np.broadcast_to(dc / scale, d2.shape), np.broadcast_to(dr / scale, d2.shape)
+    one = np.ones_like(d2)
+    basis = [one] if background == "annulus" else [one, x1, x2]
+    X = np.stack(basis, axis=-1)  # (K, w, w, P)
+    wk = keep.astype(np.float64)
+    nmat = np.einsum("kijp,kijq,kij->kpq", X, X, wk)
+    rhs = np.einsum("kijp,kij,kij->kp", X, win.data, wk)
+    p_dim = len(basis)
+    n_keep = wk.sum(axis=(1, 2))
+    enough = n_keep >= max(6, 2 * p_dim)
+    nmat = np.where(enough[:, None, None], nmat, np.eye(p_dim)[None])
+    ninv = np.linalg.inv(nmat)
+    coef = np.einsum("kpq,kq->kp", ninv, rhs)
+    bg_model = np.einsum("kijp,kp->kij", X, coef)
+    resid = (win.data - bg_model) * wk
+    s2 = (resid * resid).sum(axis=(1, 2)) / np.maximum(n_keep - p_dim, 1)
+    apu = ap & win.inside
+    n_ap = apu.sum(axis=(1, 2))
+    if method == "aperture":
+        inten = ((win.data - bg_model) * apu).sum(axis=(1, 2))
+        u = np.einsum("kijp,kij->kp", X, apu.astype(np.float64))
+        var_bg = s2 * np.einsum("kp,kpq,kq->k", u, ninv, u)
+        var = gain * np.maximum(inten, 0.0) + n_ap * s2 + var_bg
+    else:
+        if not (spot_sigma_px and spot_sigma_px > 0):
+            raise ParameterError(f"The profile fit needs a spot width `spot_sigma_px` > 0, got {spot_sigma_px!r}.")
+        sg = float(spot_sigma_px)
+        gauss = np.exp(-d2 / (2.0 * sg * sg)) / (2.0 * math.pi * sg * sg)
+        fit_px = (d2 <= r_out * r_out) & win.usable & (ap | keep)
+        Xf = np.concatenate([gauss[..., None], X], axis=-1)
+        wts = fit_px / np.maximum(s2, 1e-12)[:, None, None]
+        for _ in range(2):
+            nf = np.einsum("kijp,kijq,kij->kpq", Xf, Xf, wts)
+            nf = np.where(enough[:, None, None], nf, np.eye(p_dim + 1)[None])
+            nfi = np.linalg.inv(nf)
+            cf = np.einsum("kpq,kq->kp", nfi, np.einsum("kijp,kij,kij->kp", Xf, win.data, wts))
+            sig_model = np.maximum(cf[:, 0, None, None] * gauss, 0.0)
+            wts = fit_px / (np.maximum(s2, 1e-12)[:, None, None] + gain * sig_model)
+        inten = cf[:, 0]
+        var = nfi[:, 0, 0]
+        coef = cf[:, 1:]
+    bad = ~enough | (n_ap == 0)
+    inten = np.where(bad, np.nan, inten)
+    flags[bad] |= FLAG_OFF_SCREEN
+    sigma = np.sqrt(np.maximum(var, 0.0))
+    return SpotIntegrals(inten, np.where(bad, np.nan, sigma), coef[:, 0], flags, n_ap.astype(np.int64))
+
+
+def _default_annulus(radius_px: float) -> tuple[float, float]:
+    """Annulus from r + 1.5 px out to an area about three times the aperture's."""
+    r_in = radius_px + 1.5
+    return r_in, math.sqrt(r_in * r_in + 3.0 * radius_px * radius_px)
+
+
+def _check_integration(radius_px, annulus_px, background, method):
+    if not (isinstance(radius_px, (int, float, np.floating)) and 0.5 <= radius_px <= 100):
+        raise ParameterError(f"`radius_px` must be between 0.5 and 100 px, got {radius_px!r}.")
+    ann = _default_annulus(float(radius_px)) if annulus_px is None else tuple(float(v) for v in annulus_px)
+    if len(ann) != 2 or not (radius_px <= ann[0] < ann[1] <= 200):
+        raise ParameterError(f"`annulus_px` must be (inner, outer) with radius ≤ inner < outer ≤ 200 px, "
+                             f"got {annulus_px!r}.")
+    if background not in ("annulus", "plane"):
+        raise ParameterError(f"`background` must be 'annulus' or 'plane', got {background!r}.")
+    if method not in ("aperture", "profile"):
+        raise ParameterError(f"`method` must be 'aperture' or 'profile', got {method!r}.")
+    return ann
+
+
+def integrate_spots(frame: np.ndarray, xy_px, *, radius_px: float = 5.0, annulus_px=None,
+                    background: str = "annulus", method: str = "aperture",
+                    spot_sigma_px: float | None = None, mask: np.ndarray | None = None,
+                    saturation_level: float | None = None, gain: float = 1.0) -> SpotIntegrals:
+    """Integrated intensity of spots at known positions, with a local background.
+
+    Parameters
+    ----------
+    frame : (M, N) ndarray
+        One camera frame, any real dtype (frame units, e.g. ADU).
+    xy_px : (K, 2) array_like of float
+        Spot centres as (x, y) pixels.
+    radius_px : float, keyword-only
+        Aperture radius; pixels whose centre is within it are summed.
+    annulus_px : (inner, outer), keyword-only
+        Background annulus; default from `radius_px` (about three times the aperture area).
+    background : {"annulus", "plane"}, keyword-only
+        Robust mean of the annulus (outliers beyond 4σ dropped), or a plane fitted to it.
+    method : {"aperture", "profile"}, keyword-only
+        Background-subtracted aperture sum, or the amplitude of a fixed-width Gaussian
+        (σ = `spot_sigma_px`) fitted together with the background model by weighted
+        least squares over the disk of radius ``annulus_px[1]``.
+    mask : (M, N) ndarray of bool, optional
+        True where pixels may be used (False under the gun shadow, off the screen).
+    saturation_level : float, optional
+        Pixel value of full scale; default: the dtype's maximum for integer frames.
+    gain : float, keyword-only
+        Frame units per detected count, for the shot noise of the spot (var = gain · I).
+
+    Returns
+    -------
+    SpotIntegrals
+
+    Examples
+    --------
+    >>> yy, xx = np.mgrid[0:64, 0:64]
+    >>> img = 10.0 + 500.0 / (2 * np.pi * 4.0) * np.exp(-((xx - 30.3) ** 2 + (yy - 20.6) ** 2) / 8.0)
+    >>> s = integrate_spots(img, [[30.3, 20.6]], radius_px=7.0)
+    >>> print(abs(float(s.intensity[0]) - 500.0) < 2.0, round(float(s.background_per_px[0]), 2))
+    True 10.0
+    """
+    frame = np.asarray(frame)
+    if frame.ndim != 2:
+        raise ImageError(f"`frame` must be a 2-D image, got shape {frame.shape}.")
+    xy = np.asarray(xy_px, dtype=np.float64).reshape(-1, 2)
+    if not np.all(np.isfinite(xy)):
+        raise ParameterError("`xy_px` must be finite pixel positions.")
+    ann = _check_integration(radius_px, annulus_px, background, method)
+    if mask is not None:
+        mask = np.asarray(mask, dtype=bool)
+        if mask.shape != frame.shape:
+            raise ParameterError(f"`mask` is {mask.shape} but the frame is {frame.shape}.")
+    if saturation_level is None and np.issubdtype(frame.dtype, np.integer):
+        saturation_level = float(np.iinfo(frame.dtype).max)
+    rc = xy[:, ::-1].copy()
+    win = _extract(frame, rc, int(math.ceil(ann[1])) + 1, mask, saturation_level)
+    return _integrate(win, rc, radius_px=float(radius_px), annulus_px=ann, background=background,
+                      method=method, spot_sigma_px=spot_sigma_px, gain=float(gain))
+
+
+# --------------------------------------------------------------------------- calibration from the series
+
+_GEOM_PARAMS = ("center_x_px", "center_y_px", "scale_px", "distortion", "rotation_deg")
+_FIT_GROUPS = {"center": ("center_x_px", "center_y_px"), "scale": ("scale_px",),
+               "distortion": ("distortion",), "rotation": ("rotation_deg",)}
+
+
+@dataclass(frozen=True, eq=False)
+class SeriesCalibration:
+    """Screen geometry fitted from the beam positions of a whole series.
+
+    Attributes
+    ----------
+    geometry : ScreenGeometry
+        The fitted geometry (parameters not fitted keep their starting values).
+    uncertainty : dict of str to float
+        One-standard-deviation uncertainty of each fitted parameter (same names and
+        units as the ScreenGeometry fields).
+    rms_px : float
+        Root-mean-square distance between measured and fitted positions, px.
+    n_points : int
+        Beam positions used.
+    n_frames : int
+        Frames that contributed.
+    """
+
+    geometry: ScreenGeometry
+    uncertainty: dict
+    rms_px: float
+    n_points: int
+    n_frames: int
+
+    @property
+    def scale_px_sqrt_eV_A(self) -> float:
+        """Camera scale per √eV: r·√E / |g| for a distant camera, in px·√eV·Å.
+
+        A beam with |g| (Å⁻¹, no 2π) lands at r = this / √E pixels from the centre.
+        """
+        return self.geometry.scale_px * math.sqrt(H2_OVER_2ME_EV_A2)
+
+    def to_dict(self) -> dict:
+        """JSON-safe summary; ``"geometry"`` can be read back by ScreenGeometry.from_dict."""
+        unc = dict(self.uncertainty)
+        if "scale_px" in unc:
+            unc["scale_px_sqrt_eV_A"] = unc["scale_px"] * math.sqrt(H2_OVER_2ME_EV_A2)
+        return {"geometry": self.geometry.to_dict(), "uncertainty": unc, "rms_px": self.rms_px,
+                "scale_px_sqrt_eV_A": self.scale_px_sqrt_eV_A, "n_points": self.n_points,
+                "n_frames": self.n_frames}
+
+
+def fit_series_geometry(energy_eV, g_par, xy_px, *, initial: ScreenGeometry,
+                        fit: Sequence[str] = ("center", "scale", "distortion", "rotation"),
+                        f_scale_px: float = 1.0) -> SeriesCalibration:
+    """Fit the screen geometry to beam positions measured at many energies at once.
+
+    Every point is one beam in one frame; the model is
+    :func:`analysis.optics.momentum_to_pixels`, so the radius of a beam falls as 1/√E
+    (distant camera) with the distortion d = R/L bending it at large angles.
+
+    Parameters
+    ----------
+    energy_eV : (P,) array_like of float
+        Energy of each point, eV.
+    g_par : (P, 2) array_like of float
+        Parallel momentum of the beam, Å⁻¹ without 2π.
+    xy_px : (P, 2) array_like of float
+        Measured (x, y) position, pixels.
+    initial : ScreenGeometry, keyword-only
+        Starting values (and the fixed values of what is not fitted).
+    fit : sequence of {"center", "scale", "distortion", "rotation"}, keyword-only
+    f_scale_px : float, keyword-only
+        Residual size beyond which points count less (robust soft-L1 loss), px.
+
+    Returns
+    -------
+    SeriesCalibration
+
+    Raises
+    ------
+    FitError
+        Fewer points than twice the number of parameters, or no convergence.
+
+    Examples
+    --------
+    >>> truth = ScreenGeometry(130.0, 120.0, 400.0, distortion=0.2, rotation_deg=3.0)
+    >>> e = np.repeat(np.linspace(60, 200, 8), 4)
+    >>> g = np.tile([[0.36, 0.0], [0.0, 0.36], [-0.36, 0.0], [0.25, -0.25]], (8, 1))
+    >>> xy = np.vstack([momentum_to_pixels(g[i:i + 1], e[i], truth)[0] for i in range(len(e))])
+    >>> cal = fit_series_geometry(e, g, xy, initial=ScreenGeometry(125.0, 125.0, 380.0))
+    >>> print(round(cal.geometry.center_x_px, 3), round(cal.geometry.scale_px, 2), round(cal.geometry.distortion, 4))
+    130.0 400.0 0.2
+    """
+    from scipy.optimize import least_squares
+
+    e = np.asarray(energy_eV, dtype=np.float64).reshape(-1)
+    g = np.asarray(g_par, dtype=np.float64).reshape(-1, 2)
+    xy = np.asarray(xy_px, dtype=np.float64).reshape(-1, 2)
+    if not (e.size == g.shape[0] == xy.shape[0]):
+        raise ParameterError(f"`energy_eV`, `g_par` and `xy_px` must have one row per point, got "
+                             f"{e.size}, {g.shape[0]} and {xy.shape[0]}.")
+    unknown = set(fit) - set(_FIT_GROUPS)
+    if unknown:
+        raise ParameterError(f"Unknown `fit` items {sorted(unknown)}; use {sorted(_FIT_GROUPS)}.")
+    names = [p for key in ("center", "scale", "distortion", "rotation") if key in fit for p in _FIT_GROUPS[key]]
+    ok = np.all(np.isfinite(xy), axis=1) & np.isfinite(e) & (e > 0)
+    e, g, xy = e[ok], g[ok], xy[ok]
+    if e.size * 2 < 2 * len(names) or e.size < 3:
+        raise FitError(f"Too few beam positions ({e.size}) to fit the screen geometry ({', '.join(names)}).")
+    base = initial.to_dict()
+    x0 = np.array([base[n] for n in names])
+    lo = np.array([0.0 if n == "distortion" else 1e-6 if n == "scale_px" else -np.inf for n in names])
+    hi = np.array([0.95 if n == "distortion" else np.inf for n in names])
+    x0 = np.clip(x0, lo + 1e-9 * (np.isfinite(lo)), hi - 1e-9 * (np.isfinite(hi)))
+
+    def geom_of(p):
+        d = dict(base)
+        d.update(zip(names, p))
+        return ScreenGeometry.from_dict(d)
+
+    def resid(p):
+        try:
+            model, _ = momentum_to_pixels(g, e, geom_of(p))
+        except ParameterError:
+            return np.full(2 * e.size, 1e6)
+        r = (model - xy).ravel()
+        return np.where(np.isfinite(r), r, 1e3)
+
+    x_scale = np.array([1.0 if n.endswith("_px") and n != "scale_px" else
+                        max(abs(base["scale_px"]) * 0.01, 1.0) if n == "scale_px" else
+                        0.01 if n == "distortion" else 0.1 for n in names])
+    try:
+        sol = least_squares(resid, x0, bounds=(lo, hi), loss="soft_l1", f_scale=f_scale_px,
+                            x_scale=x_scale, max_nfev=200 * len(names))
+    except (ValueError, np.linalg.LinAlgError) as exc:
+        raise FitError(f"Screen-geometry fit failed ({exc}).") from None
+    if not np.all(np.isfinite(sol.x)):
+        raise FitError("Screen-geometry fit did not converge (non-finite parameters).")
+    r = resid(sol.x).reshape(-1, 2)
+    dist = np.hypot(r[:, 0], r[:, 1])
+    inl = dist <= max(5.0 * f_scale_px, 3.0 * float(np.median(dist)) + 1e-9)
+    cols = []  # plain Jacobian of the residuals (the solver's is scaled by the robust loss)
+    for i, h in enumerate(1e-4 * x_scale):
+        xp, xm = sol.x.copy(), sol.x.copy()
+        xp[i] = min(xp[i] + h, hi[i])
+        xm[i] = max(xm[i] - h, lo[i])
+        cols.append((resid(xp) - resid(xm)) / (xp[i] - xm[i]))
+    j = np.column_stack(cols).reshape(-1, 2, len(names))[inl].reshape(-1, len(names))
+    dof = max(2 * int(inl.sum()) - len(names), 1)
+    s2 = float(np.sum(r[inl] ** 2)) / dof
+    try:
+        cov = np.linalg.pinv(j.T @ j) * s2
+        unc = {n: float(np.sqrt(max(cov[i, i], 0.0))) for i, n in enumerate(names)}
+    except np.linalg.LinAlgError:  # pragma: no cover
+        unc = {n: float("nan") for n in names}
+    n_frames = int(np.unique(np.round(e, 6)).size)
+    return SeriesCalibration(geom_of(sol.x), unc, float(np.sqrt(np.mean(dist[inl] ** 2))), int(e.size), n_frames)
+
+
+# --------------------------------------------------------------------------- tracking
+
+
+@dataclass(frozen=True, eq=False)
+class IVResult:
+    """Everything measured in an energy series.
+
+    Attributes
+    ----------
+    energy_eV : (F,) ndarray of float64
+        Energy of each frame, eV, in frame order.
+    frame_names : tuple of str
+    beams : BeamSet
+        The K beams followed.
+    intensity : (F, K) ndarray of float64
+        Integrated intensity (frame units, divided by the beam current when given); NaN
+        where the beam was not integrated (off the screen, masked, saturated, crowded).
+    sigma : (F, K) ndarray of float64
+        Counting-statistics uncertainty of `intensity`.
+    xy_px : (F, K, 2) ndarray of float64
+        (x, y) where each beam was integrated (refined, or predicted when too weak);
+        NaN off the screen.
+    flags : (F, K) ndarray of uint8
+        Bit flags, see :data:`FLAG_NAMES`; :data:`BLOCKING_FLAGS` leave a point out.
+    background_per_px : (F, K) ndarray of float64
+        Local background at each beam, frame units per pixel.
+    current : (F,) ndarray of float64 or None
+        Beam current used for the normalisation.
+    calibration : SeriesCalibration or None
+        Screen geometry fitted from all frames.
+    settings : dict
+        The options used (JSON-safe).
+    """
+
+    energy_eV: np.ndarray
+    frame_names: tuple
+    beams: BeamSet
+    intensity: np.ndarray
+    sigma: np.ndarray
+    xy_px: np.ndarray
+    flags: np.ndarray
+    background_per_px: np.ndarray
+    current: np.ndarray | None
+    calibration: SeriesCalibration | None
+    settings: dict = field(default_factory=dict)
+
+    @property
+    def valid(self) -> np.ndarray:
+        """(F, K) bool: points that enter the curves."""
+        return ((self.flags & BLOCKING_FLAGS) == 0) & np.isfinite(self.intensity)
+
+    def curve(self, beam) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """(energy_eV, intensity, sigma) of one beam (label, (h, k) or index); NaN where left out."""
+        j = beam if isinstance(beam, (int, np.integer)) else self.beams.index(beam)
+        ok = self.valid[:, j]
+        return (self.energy_eV.copy(), np.where(ok, self.intensity[:, j], np.nan),
+                np.where(ok, self.sigma[:, j], np.nan))
+
+    def overlap_eV(self) -> np.ndarray:
+        """(K,) energy range in eV covered by each beam's valid points (sum of the steps between them)."""
+        e = self.energy_eV
+        ok = self.valid
+        both = ok[1:] & ok[:-1]
+        return np.abs(np.diff(e))[:, None].repeat(ok.shape[1], axis=1).__mul__(both).sum(axis=0)
+
+
+def _as_frames(frames) -> Iterator[tuple[str, np.ndarray]]:
+    """(name, array) pairs from a path (through analysis.io) or from an iterable."""
+    if isinstance(frames, (str, os.PathLike, bytes, bytearray)):
+        from .io import iter_frames
+
+        yield from iter_frames(frames)
+        return
+    for i, item in enumerate(frames):
+        if isinstance(item, tuple) and len(item) == 2:
+            yield str(item[0]), item[1]
+        else:
+            yield f"frame {i}", item
+
+
+class _Energies:
+    """Energy (and current) of frame i, checked as the frames arrive."""
+
+    def __init__(self, energies, name_pattern: str):
+        self.table: EnergyTable | None = None
+        self.by_name: dict | None = None
+        self.pattern = name_pattern
+        self.seen_e: list[float] = []
+        self.seen_names: list[str] = []
+        if energies is None:
+            return
+        if isinstance(energies, (str, os.PathLike)):
+            energies = read_energy_file(energies)
+        if not isinstance(energies, EnergyTable):
+            energies = EnergyTable(check_energies(energies), None, None, "energies")
+        self.table = energies
+        if energies.frame is not None and not all(re.fullmatch(r"[+-]?\d+", f or "") for f in energies.frame):
+            self.by_name = {}
+            for i, f in enumerate(energies.frame):
+                key = _name_key(f)
+                if key in self.by_name:
+                    raise SeriesError(f"{energies.source}: frame {f!r} is listed twice.")
+                self.by_name[key] = i
+        else:
+            check_energies(energies.energy_eV, energies.frame)
+
+    @property
+    def n(self) -> int | None:
+        return None if self.table is None else len(self.table)
+
+    def at(self, i: int, name: str) -> tuple[float, float | None]:
+        t = self.table
+        cur = None
+        if t is None:
+            e = float(energies_from_names([name], pattern=self.pattern)[0])
+        elif self.by_name is not None:
+            key = _name_key(name)
+            if key not in self.by_name:
+                raise SeriesError(f"Frame {i} ({name}) is not listed in the `frame` column of {t.source}.")
+            row = self.by_name[key]
+            e = float(t.energy_eV[row])
+            cur = None if t.current is None else float(t.current[row])
+        else:
+            if i >= len(t):
+                raise SeriesError(f"Frame {i} ({name}) has no energy: {t.source} lists only {len(t)} "
+                                  f"energies.")
+            e = float(t.energy_eV[i])
+            cur = None if t.current is None else float(t.current[i])
+        if not (math.isfinite(e) and e > 0):
+            raise SeriesError(f"Energy of frame {i} ({name}) must be a positive number of eV, got {e!r}.")
+        if self.seen_e:
+            prev = self.seen_e[-1]
+            if e == prev:
+                raise SeriesError(f"Frame {i - 1} ({self.seen_names[-1]}) and frame {i} ({name}) both have "
+                                  f"{e:g} eV: energies must not repeat.")
+            if len(self.seen_e) >= 2 and np.sign(e - prev) != np.sign(prev - self.seen_e[-2]):
+                way = "increase" if prev > self.seen_e[-2] else "decrease"
+                raise SeriesError(f"Energy of frame {i} ({name}) is {e:g} eV after {prev:g} eV: the energies "
+                                  f"must {way} steadily (not monotonic).")
+        self.seen_e.append(e)
+        self.seen_names.append(name)
+        return e, cur
+
+    def finish(self, n_frames: int) -> None:
+        if self.table is not None and self.by_name is None and n_frames != len(self.table):
+            raise SeriesError(f"The series has {n_frames} frames but {self.table.source} lists "
+                              f"{len(self.table)} energies.")
+
+
+def _name_key(name: str) -> str:
+    return Path(str(name).strip()).name.lower()
+
+
+def _neighbour_distance(xy: np.ndarray) -> np.ndarray:
+    """Distance from each point to its nearest other point, px (inf when alone)."""
+    if len(xy) < 2:
+        return np.full(len(xy), np.inf)
+    d = np.hypot(xy[:, None, 0] - xy[None, :, 0], xy[:, None, 1] - xy[None, :, 1])
+    np.fill_diagonal(d, np.inf)
+    return d.min(axis=1)
+
+
+def track_series(frames, beams: BeamSet, geometry: ScreenGeometry, *, energies=None,
+                 name_pattern: str = DEFAULT_NAME_PATTERN, mask: np.ndarray | None = None,
+                 radius_px: float | None = None, annulus_px=None, background: str = "annulus",
+                 method: str = "aperture", spot_sigma_px: float | None = None, search_px: float = 6.0,
+                 min_snr: float = 6.0, gain: float = 1.0, saturation_level: float | None = None,
+                 fit: Sequence[str] = ("center", "scale", "distortion", "rotation"),
+                 normalise_current: bool = True,
+                 progress: Callable[[int, int | None, float], None] | None = None) -> IVResult:
+    """Follow every beam through an energy series and integrate it in every frame.
+
+    Frames are streamed: only the current frame is held. For each frame the beams are
+    predicted from the current screen geometry, refined locally (peak search within
+    `search_px`, then a background-subtracted centroid), and integrated at the refined
+    position (at the predicted one when the spot is too weak, flagged "not_refined").
+    The geometry is refitted from all frames so far after frames 1, 2, 4, 8, … and once
+    more at the end (:func:`fit_series_geometry`), so beams entering at the screen edge
+    are picked up where the geometry predicts them.
+
+    Parameters
+    ----------
+    frames : path, bytes, or iterable of (name, (M, N) ndarray) or of arrays
+        A multi-page TIFF, folder or zip (read with :func:`analysis.io.iter_frames`), or
+        frames already in memory.
+    beams : BeamSet
+        The beams to follow (:func:`beams_from_nets` or :meth:`BeamSet.from_hk`).
+    geometry : ScreenGeometry
+        Starting geometry, e.g. from indexing one frame; within a few pixels of the truth.
+    energies : EnergyTable, path of a sidecar, (F,) array_like, or None, keyword-only
+        None: read from each frame's name with `name_pattern`.
+    mask : (M, N) ndarray of bool, optional, keyword-only
+        True where pixels may be used; beams whose aperture touches a False pixel (gun
+        shadow, holder arm) are flagged "masked" in that frame and not integrated.
+    radius_px : float, optional, keyword-only
+        Aperture radius; default 3 × the spot σ measured in the first frame (2.5–20 px).
+    annulus_px, background, method, spot_sigma_px, gain, saturation_level
+        As for :func:`integrate_spots`; with `method="profile"` and no `spot_sigma_px`
+        the width is measured per frame from the strong spots.
+    search_px : float, keyword-only
+        Largest distance between prediction and refined position, px (also cut to 45 %
+        of the distance to the nearest other beam).
+    min_snr : float, keyword-only
+        Peak signal-to-noise needed to refine a position.
+    fit : sequence of str, keyword-only
+        Geometry parameters refitted (see :func:`fit_series_geometry`); empty: keep `geometry`.
+    normalise_current : bool, keyword-only
+        Divide by the beam current when the energy table has one.
+    progress : callable(i, n, energy_eV), optional
+        Called after each frame (n is None when the count is not known in advance).
+
+    Returns
+    -------
+    IVResult
+
+    Raises
+    ------
+    SeriesError
+        Missing or bad energies, frames of different sizes, an unreadable frame — naming it.
+    """
+    ann_given = annulus_px
+    if radius_px is not None:
+        _check_integration(radius_px, annulus_px, background, method)
+    else:
+        _check_integration(5.0, None, background, method)
+    if not isinstance(beams, BeamSet):
+        raise ParameterError(f"`beams` must be a BeamSet, got {type(beams).__name__}.")
+    if not isinstance(geometry, ScreenGeometry):
+        raise ParameterError(f"`geometry` must be a ScreenGeometry, got {type(geometry).__name__}.")
+    for name, v in (("search_px", search_px), ("min_snr", min_snr), ("gain", gain)):
+        if not (isinstance(v, (int, float, np.floating)) and v > 0 and math.isfinite(v)):
+            raise ParameterError(f"`{name}` must be a positive number, got {v!r}.")
+    en = _Energies(energies, name_pattern)
+    k = len(beams)
+    g = beams.g_par
+    geom = geometry
+    rec_e, rec_names, rec_cur = [], [], []
+    rec_I, rec_s, rec_xy, rec_f, rec_bg = [], [], [], [], []
+    pts_e, pts_g, pts_xy = [], [], []
+    shape = None
+    r_ap = None if radius_px is None else float(radius_px)
+    ann = None if r_ap is None else (_default_annulus(r_ap) if ann_given is None else tuple(ann_given))
+    last_sigma = spot_sigma_px
+    i = -1
+    it = _as_frames(frames)
+    n_total = en.n if en.by_name is None else None
+    while True:
+        try:
+            name, frame = next(it)
+        except StopIteration:
+            break
+        except ImageError as err:
+            where = f"frame {i + 1}" + (f" (after {rec_names[-1]})" if rec_names else "")
+            raise SeriesError(f"Cannot read {where}: {err}") from None
+        i += 1
+        frame = np.asarray(frame)
+        if frame.ndim != 2:
+            raise SeriesError(f"Frame {i} ({name}) is not a 2-D image (shape {frame.shape}).")
+        if shape is None:
+            shape = frame.shape
+            if mask is not None:
+                mask = np.asarray(mask, dtype=bool)
+                if mask.shape != shape:
+                    raise SeriesError(f"The mask is {mask.shape[1]}×{mask.shape[0]} px but frame 0 ({name}) "
+                                      f"is {shape[1]}×{shape[0]} px.")
+        elif frame.shape != shape:
+            raise SeriesError(f"Frame {i} ({name}) is {frame.shape[1]}×{frame.shape[0]} px but frame 0 "
+                              f"({rec_names[0]}) is {shape[1]}×{shape[0]} px: all frames must have one size.")
+        e, cur = en.at(i, name)
+        sat = saturation_level
+        if sat is None and np.issubdtype(frame.dtype, np.integer):
+            sat = float(np.iinfo(frame.dtype).max)
+        if i == 0:
+            geom, r_ap, ann, last_sigma = _bootstrap(frame, e, g, geom, mask, sat, r_ap, ann, ann_given,
+                                                     search_px, min_snr, fit, spot_sigma_px)
+        out = _one_frame(frame, e, g, geom, mask, sat, r_ap, ann, background, method, search_px, min_snr, gain,
+                         spot_sigma_px if spot_sigma_px else last_sigma)
+        inten, sig, xy, flags, bgpx, okpos, sig_est = out
+        if spot_sigma_px is None and np.isfinite(sig_est):
+            last_sigma = sig_est
+        if cur is not None and normalise_current:
+            inten, sig = inten / cur, sig / cur
+        rec_e.append(e)
+        rec_names.append(name)
+        rec_cur.append(cur)
+        rec_I.append(inten)
+        rec_s.append(sig)
+        rec_xy.append(xy)
+        rec_f.append(flags)
+        rec_bg.append(bgpx)
+        if okpos.any():
+            pts_e.append(np.full(int(okpos.sum()), e))
+            pts_g.append(g[okpos])
+            pts_xy.append(xy[okpos])
+        if fit and ((i + 1) & i) == 0 and i > 0 and pts_e:  # after frames 1, 2, 4, 8, … (0-based 1, 3, 7)
+            geom = _refit(pts_e, pts_g, pts_xy, geom, fit)
+        if progress is not None:
+            progress(i + 1, n_total, e)
+    if i < 0:
+        raise SeriesError("The series holds no frames.")
+    en.finish(i + 1)
+    calibration = None
+    if pts_e:
+        try:
+            calibration = fit_series_geometry(np.concatenate(pts_e), np.vstack(pts_g), np.vstack(pts_xy),
+                                              initial=geom, fit=fit or ("center",))
+        except FitError:
+            calibration = None
+    currents = None if any(c is None for c in rec_cur) else np.array(rec_cur, dtype=np.float64)
+    settings = {"radius_px": r_ap, "annulus_px": list(ann), "background": background, "method": method,
+                "spot_sigma_px": spot_sigma_px, "search_px": search_px, "min_snr": min_snr, "gain": gain,
+                "saturation_level": saturation_level, "fit": list(fit),
+                "normalised_by_current": bool(currents is not None and normalise_current),
+                "initial_geometry": geometry.to_dict(), "frame_shape": list(shape)}
+    return IVResult(np.array(rec_e), tuple(rec_names), beams, np.array(rec_I).reshape(-1, k),
+                    np.array(rec_s).reshape(-1, k), np.array(rec_xy).reshape(-1, k, 2),
+                    np.array(rec_f, dtype=np.uint8).reshape(-1, k), np.array(rec_bg).reshape(-1, k),
+                    currents, calibration, settings)
+
+
+def _refit(pts_e, pts_g, pts_xy, geom, fit) -> ScreenGeometry:
+    try:
+        return fit_series_geometry(np.concatenate(pts_e), np.vstack(pts_g), np.vstack(pts_xy),
+                                   initial=geom, fit=fit).geometry
+    except FitError:
+        return geom
+
+
+def _predict(g, e, geom, shape):
+    xy, vis = momentum_to_pixels(g, e, geom)
+    rows, cols = shape
+    inside = vis & np.all(np.isfinite(xy), axis=1)
+    inside &= (xy[:, 0] >= -0.5) & (xy[:, 0] <= cols - 0.5) & (xy[:, 1] >= -0.5) & (xy[:, 1] <= rows - 0.5)
+    return xy, inside
+
+
+def _bootstrap(frame, e, g, geom, mask, sat, r_ap, ann, ann_given, search_px, min_snr, fit, spot_sigma_px):
+    """First frame: widen the search, refit the geometry, measure the spot width."""
+    r_try = 5.0 if r_ap is None else r_ap
+    sigma = spot_sigma_px
+    for wide in (3.0, 1.5):
+        xy, ins = _predict(g, e, geom, frame.shape)
+        idx = np.flatnonzero(ins)
+        if idx.size == 0:
+            break
+        nn = _neighbour_distance(xy[idx])
+        search = np.minimum(wide * search_px, 0.45 * nn)
+        half = int(math.ceil(max(search.max(initial=0.0) + r_try, r_try + 3))) + 1
+        rc = xy[idx, ::-1]
+        win = _extract(frame, rc, half, mask, sat)
+        ref, snr, ok, sig_est = _refine(win, rc, search, r_try, min_snr)
+        ok &= ~np.any(win.inside & ~win.usable & ((_local(win, ref)[0] ** 2 + _local(win, ref)[1] ** 2)
+                                                   <= r_try * r_try), axis=(1, 2))
+        good = np.isfinite(sig_est) & ok
+        if good.any() and sigma is None:
+            sigma = float(np.median(sig_est[good]))
+        if fit and ok.sum() >= 3:
+            sub = [f for f in fit if f != "distortion"] if ok.sum() < 6 else list(fit)
+            try:
+                geom = fit_series_geometry(np.full(int(ok.sum()), e), g[idx[ok]], ref[ok, ::-1],
+                                           initial=geom, fit=sub).geometry
+            except FitError:
+                pass
+    if r_ap is None:
+        r_ap = float(np.clip(3.0 * (sigma if sigma else 2.0), 2.5, 20.0))
+        ann = _default_annulus(r_ap) if ann_given is None else tuple(float(v) for v in ann_given)
+        _check_integration(r_ap, ann, "annulus", "aperture")
+    return geom, r_ap, ann, sigma
+
+
+def _one_frame(frame, e, g, geom, mask, sat, r_ap, ann, background, method, search_px, min_snr, gain, sigma):
+    k = len(g)
+    inten = np.full(k, np.nan)
+    sig = np.full(k, np.nan)
+    bgpx = np.full(k, np.nan)
+    xy_out = np.full((k, 2), np.nan)
+    flags = np.full(k, FLAG_OFF_SCREEN, dtype=np.uint8)
+    okpos = np.zeros(k, dtype=bool)
+    xy, ins = _predict(g, e, geom, frame.shape)
+    idx = np.flatnonzero(ins)
+    sig_est = float("nan")
+    if idx.size == 0:
+        return inten, sig, xy_out, flags, bgpx, okpos, sig_est
+    nn = _neighbour_distance(xy[idx])
+    search = np.minimum(search_px, 0.45 * nn)
+    half = int(math.ceil(max(ann[1], search.max(initial=0.0) + r_ap))) + 2
+    rc_pred = xy[idx, ::-1]
+    win = _extract(frame, rc_pred, half, mask, sat)
+    ref, snr, ok, s_est = _refine(win, rc_pred, search, r_ap, min_snr)
+    good = np.isfinite(s_est) & ok
+    if good.any():
+        sig_est = float(np.median(s_est[good]))
+    rc = np.where(ok[:, None], ref, rc_pred)
+    if np.any(np.abs(rc - rc_pred) > 0.5):  # the window must stay centred on the spot
+        win = _extract(frame, rc, half, mask, sat)
+    s_use = sigma if sigma else (sig_est if np.isfinite(sig_est) else r_ap / 3.0)
+    res = _integrate(win, rc, radius_px=r_ap, annulus_px=ann, background=background, method=method,
+                     spot_sigma_px=s_use, gain=gain)
+    f = res.flags.copy()
+    f[nn < 2.0 * r_ap] |= FLAG_CROWDED
+    f[~ok] |= FLAG_NOT_REFINED
+    blocked = (f & BLOCKING_FLAGS) != 0
+    inten[idx] = np.where(blocked, np.nan, res.intensity)
+    sig[idx] = np.where(blocked, np.nan, res.sigma)
+    bgpx[idx] = res.background_per_px
+    xy_out[idx] = rc[:, ::-1]
+    flags[idx] = f
+    okpos[idx] = ok & ~blocked
+    return inten, sig, xy_out, flags, bgpx, okpos, sig_est
