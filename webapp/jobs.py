@@ -1,0 +1,52 @@
+"""Background-callback managers for long work (an analysis of a big image, later a series).
+
+diskcache in one fixed folder of the data dir by default (shared by every
+gunicorn worker); Celery with Redis when ``RECINET_CELERY_BROKER`` is set.
+"""
+
+from __future__ import annotations
+
+from .settings import Settings
+
+__all__ = ["make_manager", "progress_reporter"]
+
+
+def make_manager(settings: Settings):
+    """Return ``(manager, celery_app_or_None)`` for ``Dash(background_callback_manager=...)``."""
+    if settings.celery_broker:
+        from celery import Celery  # pip install "celery[redis]"
+        from dash import CeleryManager
+
+        celery_app = Celery("recinet", broker=settings.celery_broker, backend=settings.celery_broker)
+        return CeleryManager(celery_app), celery_app
+    import diskcache
+    from dash import DiskcacheManager
+
+    settings.cache_dir.mkdir(parents=True, exist_ok=True)
+    return DiskcacheManager(diskcache.Cache(str(settings.cache_dir))), None
+
+
+def progress_reporter(set_progress, *, start: float = 0.0, span: float = 100.0):
+    """Adapt the pipeline's progress calls to a Dash progress bar (value, max as text).
+
+    Accepts ``report(fraction)``, ``report(fraction, message)`` or ``report(done, total)``.
+
+    >>> seen = []
+    >>> r = progress_reporter(lambda v: seen.append(v), start=10, span=80)
+    >>> r(0.5); r(3, 4); seen
+    [('50', '100'), ('70', '100')]
+    """
+    def report(*args, **_kw):
+        try:
+            nums = [float(a) for a in args if isinstance(a, (int, float)) and not isinstance(a, bool)]
+        except (TypeError, ValueError):
+            return
+        if not nums:
+            return
+        if len(nums) >= 2 and nums[1] > 0:
+            frac = nums[0] / nums[1]
+        else:
+            frac = nums[0] if nums[0] <= 1.0 else nums[0] / 100.0
+        frac = min(max(frac, 0.0), 1.0)
+        set_progress((str(int(round(start + span * frac))), "100"))
+    return report

@@ -1,0 +1,40 @@
+"""Per-process singletons: the settings and the store (created on first use, re-created after a fork)."""
+
+from __future__ import annotations
+
+import threading
+
+from .settings import Settings, load_settings
+from .store import Store
+
+__all__ = ["get_settings", "get_store", "reset"]
+
+_lock = threading.Lock()
+_settings: Settings | None = None
+_store: Store | None = None
+
+
+def get_settings() -> Settings:
+    global _settings
+    with _lock:
+        if _settings is None:
+            _settings = load_settings()
+        return _settings
+
+
+def get_store() -> Store:
+    global _store
+    s = get_settings()
+    with _lock:
+        if _store is None or _store.url != s.database_url:
+            _store = Store(s.database_url)
+        return _store
+
+
+def reset(settings: Settings | None = None) -> None:
+    """Forget the singletons (tests point the app at a fresh data folder this way)."""
+    global _settings, _store
+    with _lock:
+        if _store is not None:
+            _store.close()
+        _settings, _store = settings, None

@@ -1,0 +1,375 @@
+"""The web app's only call sites into :mod:`analysis`, and the upload checks in front of them.
+
+Every function raises an :class:`analysis.errors.RecinetError` with a one-line
+message a page can show as it is; pages never call the core directly.
+"""
+
+from __future__ import annotations
+
+import base64
+import binascii
+import functools
+import json
+import math
+import re
+from datetime import datetime, timezone
+from pathlib import Path
+
+import numpy as np
+
+from analysis.errors import FitError, ImageError, NetError, ParameterError, RecinetError
+
+__all__ = [
+    "DEMO_DIR", "EXPORT_FORMAT", "demo_choices", "demo_bytes", "decode_upload", "read_image",
+    "image_array", "check_energy", "check_substrate", "analyze", "try_model", "summary_of",
+    "export_bundle", "read_bundle", "clean_edits", "pipeline_ready",
+]
+
+DEMO_DIR = Path(__file__).resolve().parent.parent / "demo_images"
+EXPORT_FORMAT = "recinet-analysis"
+_DEMO_SUFFIXES = (".png", ".tif", ".tiff")
+_DATA_URL = re.compile(r"data:([\w.+/-]*)(;[\w=.+-]+)*;base64,", re.ASCII)
+MAX_EDITS = 500
+
+
+# --------------------------------------------------------------------------- demo images
+
+def demo_choices() -> list[dict]:
+    """Demo images beside the package: ``[{"label", "value"}]``, value = file name (no folder)."""
+    if not DEMO_DIR.is_dir():
+        return []
+    names = sorted(p.name for p in DEMO_DIR.iterdir() if p.suffix.lower() in _DEMO_SUFFIXES and p.is_file())
+    return [{"label": n.rsplit(".", 1)[0].replace("_", " "), "value": n} for n in names]
+
+
+def demo_bytes(name: str) -> tuple[bytes, dict]:
+    """Bytes of a demo image chosen from :func:`demo_choices`, and its truth JSON (or {}).
+
+    The name is looked up in the listing, never joined to a path as given.
+    """
+    known = {c["value"] for c in demo_choices()}
+    if name not in known:
+        raise ParameterError(f"Unknown demo image {str(name)[:80]!r}.")
+    path = DEMO_DIR / name
+    truth = {}
+    side = path.with_suffix(".json")
+    if side.is_file():
+        try:
+            truth = json.loads(side.read_text())
+        except (OSError, ValueError):
+            truth = {}
+    return path.read_bytes(), truth if isinstance(truth, dict) else {}
+
+
+def demo_defaults(truth: dict) -> dict:
+    """Energy and substrate suggested by a demo's truth file, when it names them."""
+    out = {}
+    for key in ("energy_eV", "energy", "energy_ev"):
+        if isinstance(truth.get(key), (int, float)):
+            out["energy_eV"] = float(truth[key])
+            break
+    scen = truth.get("scenario") if isinstance(truth.get("scenario"), dict) else {}
+    if isinstance(scen.get("sample"), str):
+        out["sample_name"] = scen["sample"][:200]
+    for key in ("substrate_label", "substrate", "substrate_spec", "surface"):
+        v = truth.get(key)
+        if isinstance(v, str):
+            out["substrate"] = v
+            break
+        if isinstance(v, dict):
+            for kk in ("spec", "name", "label", "net"):
+                if isinstance(v.get(kk), str):
+                    out["substrate"] = v[kk]
+                    break
+            if "substrate" in out:
+                break
+    return out
+
+
+# --------------------------------------------------------------------------- uploads
+
+def decode_upload(contents: str | None, filename: str | None, *, max_bytes: int) -> bytes:
+    """Raw bytes of a ``dcc.Upload`` data URL, refusing empty and oversize files before decoding.
+
+    Examples
+    --------
+    >>> decode_upload("data:image/png;base64,aGVsbG8=", "x.png", max_bytes=100)
+    b'hello'
+    """
+    name = (filename or "upload")[:120]
+    if not contents or not isinstance(contents, str):
+        raise ImageError(f"{name}: the upload is empty.")
+    m = _DATA_URL.match(contents)
+    if not m:
+        raise ImageError(f"{name}: the upload did not arrive as a file (no base64 data).")
+    payload = contents[m.end():]
+    est = len(payload) * 3 // 4
+    if est > max_bytes:
+        raise ImageError(f"{name}: the file is {est / 1e6:.1f} MB; the limit is {max_bytes / 1e6:.1f} MB.")
+    try:
+        raw = base64.b64decode(payload, validate=True)
+    except (binascii.Error, ValueError):
+        raise ImageError(f"{name}: the upload is not valid base64 data.") from None
+    if not raw:
+        raise ImageError(f"{name}: the file is empty.")
+    if len(raw) > max_bytes:
+        raise ImageError(f"{name}: the file is {len(raw) / 1e6:.1f} MB; the limit is {max_bytes / 1e6:.1f} MB.")
+    return raw
+
+
+def read_image(raw: bytes, *, name: str = "upload"):
+    """Decode image bytes through :func:`analysis.io.load_image` (all format and bomb checks live there)."""
+    from analysis.io import load_image
+
+    try:
+        im = load_image(raw)
+    except RecinetError:
+        raise
+    except (MemoryError, OSError, ValueError) as err:  # a decoder failing in a way io did not foresee
+        raise ImageError(f"{name[:120]}: cannot be read as an image ({type(err).__name__}).") from None
+    return im
+
+
+@functools.lru_cache(maxsize=6)
+def _cached_array(sha: str, store_key: int) -> np.ndarray:
+    from .runtime import get_store
+
+    raw = get_store().image_bytes(sha)
+    if raw is None:
+        raise ParameterError("The image of this analysis is no longer stored; upload it again.")
+    return read_image(raw).data
+
+
+def image_array(sha: str) -> np.ndarray:
+    """The (M, N) float64 pixels of a stored image, decoded once per process."""
+    from .runtime import get_store
+
+    return _cached_array(sha, id(get_store()))
+
+
+# --------------------------------------------------------------------------- parameters
+
+def check_energy(value) -> float:
+    """Electron energy from a form field, in eV."""
+    try:
+        e = float(value)
+    except (TypeError, ValueError):
+        raise ParameterError(f"Energy must be a number of eV, got {str(value)[:40]!r}.") from None
+    if not math.isfinite(e) or e <= 0:
+        raise ParameterError(f"Energy must be a positive number of eV, got {value!r}.")
+    if e > 5000:
+        raise ParameterError(f"Energy {e:g} eV is beyond LEED (at most 5000 eV here).")
+    return e
+
+
+def check_substrate(text):
+    """Substrate net from a preset like ``Pt(111)`` or a net like ``hexagonal:2.775``."""
+    from analysis.nets import parse_substrate
+
+    if not isinstance(text, str) or len(text) > 120:
+        raise NetError("Substrate must be a short text like 'Pt(111)' or 'hexagonal:2.775'.")
+    return parse_substrate(text)
+
+
+def clean_edits(edits) -> dict:
+    """Manual edits from the browser, checked: ``added`` [[x, y]], ``removed`` [int], ``center`` [x, y] or None."""
+    edits = edits if isinstance(edits, dict) else {}
+
+    def point(p):
+        if isinstance(p, (list, tuple)) and len(p) == 2:
+            try:
+                x, y = float(p[0]), float(p[1])
+            except (TypeError, ValueError):
+                return None
+            if math.isfinite(x) and math.isfinite(y):
+                return [x, y]
+        return None
+
+    added = [q for q in (point(p) for p in (edits.get("added") or [])[:MAX_EDITS]) if q is not None]
+    removed = sorted({int(i) for i in (edits.get("removed") or [])[:MAX_EDITS]
+                      if isinstance(i, (int, float)) and not isinstance(i, bool) and 0 <= i < 10**7})
+    return {"added": added, "removed": removed, "center": point(edits.get("center"))}
+
+
+# --------------------------------------------------------------------------- the analysis
+
+def pipeline_ready() -> bool:
+    try:
+        import analysis.pipeline  # noqa: F401
+        import analysis.serialize  # noqa: F401
+    except ImportError:
+        return False
+    return True
+
+
+def analyze(image: np.ndarray, *, energy_eV: float, substrate: str, edits: dict | None = None,
+            progress=None) -> dict:
+    """Run the analysis and return the result as its JSON-safe dict."""
+    try:
+        from analysis import pipeline, serialize
+    except ImportError:
+        raise RecinetError("The analysis pipeline is not installed in this build; the image can be viewed only.") from None
+    e = check_energy(energy_eV)
+    check_substrate(substrate)
+    ed = clean_edits(edits)
+    pipe_edits = {"added": [tuple(p) for p in ed["added"]], "removed": ed["removed"],
+                  "center": tuple(ed["center"]) if ed["center"] else None}
+    result = pipeline.analyze_image(image, energy_eV=e, substrate=substrate, edits=pipe_edits, progress=progress)
+    return serialize.result_to_dict(result)
+
+
+def summary_of(result: dict | None) -> str:
+    """One line for lists: the Wood notation, else the matrix, else the kind."""
+    ov = (result or {}).get("overlayer") or {}
+    if ov.get("wood"):
+        return str(ov["wood"])
+    if ov.get("kind") == "none":
+        return "(1×1)"
+    if ov.get("matrix"):
+        from analysis.superstructure import format_matrix
+        try:
+            return format_matrix(ov["matrix"])
+        except (ValueError, TypeError):
+            return ""
+    return str(ov.get("kind") or "")
+
+
+def try_model(text: str, result: dict, substrate: str, *, width: int, height: int) -> dict:
+    """Predicted spots of a typed model (a matrix or a Wood notation) and how many spots it explains.
+
+    Returns ``{"label", "matrices": [...], "xy": [[x, y]...], "explained", "unexplained", "tolerance_px"}``.
+    A detected spot is explained when it lies within ``tolerance_px`` of a
+    substrate beam or of a beam any domain of the model predicts.
+    """
+    from analysis import superstructure as ss
+
+    from .figures import _lattice_hk, predicted_spots
+
+    if not isinstance(text, str) or not text.strip():
+        raise NetError("Type a matrix like '2 1 / -1 1' or a Wood notation like '(√3×√3)R30°'.")
+    if len(text) > 200:
+        raise NetError("The model text is too long (at most 200 characters).")
+    net = check_substrate(substrate)
+    t = text.strip()
+    if re.search(r"[×xX√R()]|sqrt", t) and not re.fullmatch(r"[\s\d.,;/\[\]()+-]+", t):
+        matrix = ss.parse_wood(t, net)
+    else:
+        matrix = ss.parse_matrix(t)
+    matrix = ss.as_matrix(matrix)  # refuses a singular matrix with its own message
+    doms = [d.matrix for d in ss.domains(net, matrix)]
+    sub = (result or {}).get("substrate") or {}
+    if sub.get("a_star_px") is None or (result or {}).get("center_px") is None:
+        raise FitError("Analyse the image first: the model is drawn on the fitted substrate net.")
+    preds = predicted_spots(result, doms, width=width, height=height)
+    xy = np.vstack([p["xy"] for p in preds] + [np.zeros((0, 2))])
+    _, sub_xy = _lattice_hk(sub["a_star_px"], result["center_px"], width, height)
+    a_star = np.asarray(sub["a_star_px"], dtype=float)
+    inv = np.linalg.inv(matrix)
+    b_star = inv.T @ a_star  # overlayer reciprocal basis in pixels
+    tol = float(max(2.0, 0.2 * min(np.linalg.norm(b_star, axis=1).min(), np.linalg.norm(a_star, axis=1).min())))
+    spots = np.array([[s["x"], s["y"]] for s in (result.get("spots") or [])], dtype=float).reshape(-1, 2)
+    allowed = np.vstack([xy, sub_xy])
+    if len(spots) and len(allowed):
+        d = np.sqrt(((spots[:, None, :] - allowed[None, :, :]) ** 2).sum(-1)).min(axis=1)
+        explained = int((d <= tol).sum())
+    else:
+        explained = 0
+    wood = ss.wood_notation(net, matrix)
+    return {"label": f"{ss.format_matrix(matrix)}  {wood}", "matrices": [np.asarray(m).tolist() for m in doms],
+            "xy": xy.tolist(), "explained": explained, "unexplained": int(len(spots) - explained),
+            "tolerance_px": tol, "n_domains": len(doms)}
+
+
+# --------------------------------------------------------------------------- export / import
+
+def export_bundle(*, image_bytes: bytes, filename: str, parameters: dict, edits: dict, result: dict | None,
+                  sample_name: str = "", notes: str = "", token: str | None = None) -> dict:
+    """A self-contained, re-importable JSON document of one analysis (the image included)."""
+    import hashlib
+
+    return {
+        "format": EXPORT_FORMAT, "version": 1,
+        "exported_at": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+        "token": token, "sample_name": sample_name or "", "notes": notes or "",
+        "parameters": parameters or {}, "edits": edits or {}, "result": result,
+        "image": {"filename": filename, "sha256": hashlib.sha256(image_bytes).hexdigest(),
+                  "data_base64": base64.b64encode(image_bytes).decode("ascii")},
+    }
+
+
+def read_bundle(raw: bytes | str, *, max_bytes: int) -> dict:
+    """Check an exported analysis and return it with the image bytes decoded under ``image["data"]``."""
+    import hashlib
+
+    if isinstance(raw, bytes):
+        if len(raw) > max_bytes * 4 // 3 + 1_000_000:
+            raise ParameterError("The analysis file is larger than the upload limit.")
+        try:
+            raw = raw.decode("utf-8")
+        except UnicodeDecodeError:
+            raise ParameterError("The analysis file is not UTF-8 JSON.") from None
+    try:
+        doc = json.loads(raw)
+    except ValueError as err:
+        raise ParameterError(f"The analysis file is not valid JSON ({err.msg} at line {err.lineno}).") from None
+    if not isinstance(doc, dict) or doc.get("format") != EXPORT_FORMAT:
+        raise ParameterError(f"This JSON is not a recinet analysis export (no \"format\": \"{EXPORT_FORMAT}\").")
+    if doc.get("version") != 1:
+        raise ParameterError(f"Unknown analysis export version {doc.get('version')!r}; this build reads version 1.")
+    img = doc.get("image")
+    if not isinstance(img, dict) or not isinstance(img.get("data_base64"), str):
+        raise ParameterError("The analysis file holds no image.")
+    try:
+        data = base64.b64decode(img["data_base64"], validate=True)
+    except (binascii.Error, ValueError):
+        raise ParameterError("The image inside the analysis file is not valid base64.") from None
+    if len(data) > max_bytes:
+        raise ParameterError(f"The image inside the analysis file is {len(data) / 1e6:.1f} MB; the limit is {max_bytes / 1e6:.1f} MB.")
+    if img.get("sha256") and hashlib.sha256(data).hexdigest() != img["sha256"]:
+        raise ParameterError("The image inside the analysis file does not match its recorded hash.")
+    for key in ("parameters", "edits"):
+        if not isinstance(doc.get(key, {}), dict):
+            raise ParameterError(f"`{key}` in the analysis file must be an object.")
+    if doc.get("result") is not None and not isinstance(doc["result"], dict):
+        raise ParameterError("`result` in the analysis file must be an object.")
+    out = dict(doc)
+    out["image"] = {"filename": str(img.get("filename") or "image")[:255], "data": data}
+    out["sample_name"] = str(doc.get("sample_name") or "")
+    out["notes"] = str(doc.get("notes") or "")
+    return out
+
+
+# --------------------------------------------------------------------------- small numeric helpers
+
+def reciprocal_parameters(a, b, gamma_deg):
+    """(a*, b*, γ*) in Å⁻¹ (no 2π) and degrees of the net (a, b, γ), or None when incomplete."""
+    from analysis.nets import Net2D, reciprocal
+
+    try:
+        rec = reciprocal(Net2D.from_parameters(float(a), float(b), float(gamma_deg)))
+    except (TypeError, ValueError):
+        return None
+    return rec.a, rec.b, rec.gamma_deg
+
+
+def substrate_vectors(sub: dict) -> np.ndarray:
+    """Real-space rows a1, a2 (Å) for drawing, from a result's substrate block (a along +x)."""
+    from analysis.nets import Net2D
+
+    try:
+        return Net2D.from_parameters(float(sub["a_angstrom"]), float(sub["b_angstrom"]), float(sub["gamma_deg"])).vectors
+    except (KeyError, TypeError, ValueError):
+        net = check_substrate(str(sub.get("net") or "square:1"))
+        return net.vectors
+
+
+def summary_matrix(overlayer: dict) -> str:
+    from analysis.superstructure import format_matrix
+
+    m = (overlayer or {}).get("matrix")
+    if m is None:
+        return ""
+    try:
+        return format_matrix(m)
+    except (TypeError, ValueError):
+        return ""
