@@ -123,6 +123,8 @@ def read_image(raw: bytes, *, name: str = "upload"):
 
     try:
         im = load_image(raw)
+    except ImageError as err:  # name the file the user chose, not "<bytes>"
+        raise ImageError(str(err).replace("<bytes>", name[:120], 1)) from None
     except RecinetError:
         raise
     except (MemoryError, OSError, ValueError) as err:  # a decoder failing in a way io did not foresee

@@ -17,7 +17,7 @@ def cards(analyses) -> list:
     for a in analyses:
         p = a.parameters or {}
         out.append(html.A(href=f"/analysis/{a.token}", className="card", children=[
-            html.Img(src=f"/thumb/{a.image_sha256}.png", alt="pattern thumbnail", loading="lazy"),
+            html.Img(src=f"/thumb/{a.image_sha256}.png", alt="pattern thumbnail"),
             html.Div(a.sample_name or "Untitled sample", className="card-title"),
             html.Div(a.summary or "not analysed", className="card-result"),
             html.Div(f"{p.get('substrate', '')} · {p.get('energy_eV', '')} eV", className="muted"),

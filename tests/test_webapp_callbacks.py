@@ -1,0 +1,467 @@
+"""Callbacks of the web app called as plain functions: uploads, edits, models, saving, export."""
+
+from __future__ import annotations
+
+import base64
+import csv
+import io
+import json
+from contextvars import copy_context
+
+import numpy as np
+import pytest
+from PIL import Image
+
+from analysis.errors import ImageError, NetError, ParameterError
+
+
+def _call(fn, prop_id, *args):
+    """Run a callback function with Dash's callback context saying `prop_id` fired (Dash's unit-test recipe)."""
+    from dash._callback_context import context_value
+    from dash._utils import AttributeDict
+
+    def run():
+        context_value.set(AttributeDict(triggered_inputs=[{"prop_id": prop_id, "value": None}]))
+        return fn(*args)
+
+    return copy_context().run(run)
+
+
+def _data_url(raw: bytes, mime="image/png") -> str:
+    return f"data:{mime};base64," + base64.b64encode(raw).decode()
+
+
+def _png(arr) -> bytes:
+    buf = io.BytesIO()
+    Image.fromarray(arr).save(buf, format="PNG")
+    return buf.getvalue()
+
+
+@pytest.fixture
+def ws(webapp_env):
+    from webapp import workspace
+
+    return workspace
+
+
+@pytest.fixture
+def noisy_png():
+    rng = np.random.default_rng(5)
+    return _png((rng.random((96, 128)) * 60000).astype(np.uint16))
+
+
+def _page_layout(name: str):
+    """The layout function of a registered page (Dash imports page files itself)."""
+    import dash
+
+    return next(p["layout"] for p in dash.page_registry.values() if p["module"].endswith("." + name))
+
+
+def _text(component) -> str:
+    """All text inside a Dash component tree."""
+    if component is None:
+        return ""
+    if isinstance(component, (str, int, float)):
+        return str(component)
+    if isinstance(component, (list, tuple)):
+        return " ".join(_text(c) for c in component)
+    return _text(getattr(component, "children", None))
+
+
+# --------------------------------------------------------------------------- uploads
+
+def test_upload_of_an_image_stores_it_once(ws, fresh_store, noisy_png):
+    out = _call(ws.on_upload, "upload.contents", _data_url(noisy_png), None, "frame.png", 80, "Pt(111)")
+    image, record, edits, note, contents = out[0], out[1], out[2], out[7], out[8]
+    assert image["width"] == 128 and image["height"] == 96
+    assert record is None and edits == {"sha": image["sha"], "rev": 0, "added": [], "removed": [], "center": None}
+    assert "is ready" in _text(note) and contents is None  # cleared so the same file can be dropped again
+    assert fresh_store.image_bytes(image["sha"]) == noisy_png
+    again = _call(ws.on_upload, "upload.contents", _data_url(noisy_png), None, "copy.png", 80, "Pt(111)")
+    assert again[0]["sha"] == image["sha"]
+
+
+@pytest.mark.parametrize("raw, name, message", [
+    (b"just some notes\n", "notes.txt", "notes.txt: not an image"),
+    (b"", "empty.png", "empty.png: the file is empty"),
+    (b"\x89PNG\r\n\x1a\n" + b"\0" * 40, "corrupt.png", "corrupt.png: "),
+])
+def test_bad_uploads_show_one_line_messages(ws, fresh_store, raw, name, message):
+    contents = _data_url(raw) if raw else None
+    if contents is None:  # an empty file arrives as a data URL with no payload
+        contents = "data:image/png;base64,"
+    out = _call(ws.on_upload, "upload.contents", contents, None, name, 80, "Pt(111)")
+    text = _text(out[7])
+    assert out[0] is ws.no_update and message in text
+    assert "Traceback" not in text and "\n" not in text.strip()
+    assert fresh_store.count_analyses() == 0
+
+
+def test_truncated_png_and_decompression_bomb_are_refused(ws, fresh_store):
+    good = _png((np.random.default_rng(1).random((64, 64)) * 255).astype(np.uint8))
+    out = _call(ws.on_upload, "upload.contents", _data_url(good[: len(good) // 2]), None, "cut.png", 80, "Pt(111)")
+    assert "cut.png: truncated or corrupt" in _text(out[7])
+    buf = io.BytesIO()
+    Image.new("1", (9000, 9000)).save(buf, format="PNG")  # 10 kB on disk, 81 megapixels decoded
+    out = _call(ws.on_upload, "upload.contents", _data_url(buf.getvalue()), None, "bomb.png", 80, "Pt(111)")
+    assert "bomb.png: 9000×9000 = 81.0 megapixels is more than the 64-megapixel limit" in _text(out[7])
+
+
+def test_oversize_upload_is_refused_before_decoding(webapp_env):
+    from webapp import service
+
+    payload = _data_url(b"x" * 3000)
+    with pytest.raises(ImageError, match=r"big.tif: the file is 0.0 MB; the limit is 0.0 MB"):
+        service.decode_upload(payload, "big.tif", max_bytes=1000)
+    with pytest.raises(ImageError, match="not valid base64"):
+        service.decode_upload("data:image/png;base64,@@@@", "x.png", max_bytes=1000)
+    with pytest.raises(ImageError, match="did not arrive as a file"):
+        service.decode_upload("hello", "x.png", max_bytes=1000)
+
+
+def test_flask_request_limit_is_set(webapp_env):
+    s = webapp_env.runtime.get_settings()
+    assert webapp_env.server.config["MAX_CONTENT_LENGTH"] == s.max_request_bytes
+    # base64 makes 3 bytes into 4 characters (RFC 4648 §4), so a file at the limit still fits
+    assert s.max_request_bytes >= s.max_upload_bytes * 4 // 3
+
+
+def test_demo_pick_fills_energy_substrate_and_sample(ws, fresh_store):
+    from webapp import service
+
+    choices = service.demo_choices()
+    if not choices:
+        pytest.skip("demo_images/ holds no demo images yet")
+    name = choices[0]["value"]
+    out = _call(ws.on_upload, "demo-pick.value", None, name, None, None, "")
+    truth = json.loads((service.DEMO_DIR / name).with_suffix(".json").read_text())
+    assert out[0]["filename"] == name
+    assert out[3] == truth["energy_eV"] and out[4] == truth["substrate_label"]
+    with pytest.raises(ParameterError, match="Unknown demo image '../../etc/passwd'"):
+        service.demo_bytes("../../etc/passwd")
+
+
+# --------------------------------------------------------------------------- parameters
+
+def test_bad_parameters_get_clear_messages(webapp_env):
+    from webapp import service
+
+    with pytest.raises(ParameterError, match="Energy must be a positive number of eV, got -5"):
+        service.check_energy(-5)
+    with pytest.raises(ParameterError, match="Energy must be a number of eV, got 'abc'"):
+        service.check_energy("abc")
+    with pytest.raises(NetError, match="Unknown element 'Xx'"):
+        service.check_substrate("Xx(111)")
+
+
+def test_analysis_job_reports_bad_parameters_in_the_page(ws, fresh_store, noisy_png):
+    image = _call(ws.on_upload, "upload.contents", _data_url(noisy_png), None, "f.png", 80, "Pt(111)")[0]
+    seen = []
+    record, note = _call(ws.run_job, "run.n_clicks", seen.append, 1, None, image, -20, "Pt(111)", {"readonly": False})
+    assert record is ws.no_update and "Energy must be a positive number of eV, got -20" in _text(note)
+    record, note = _call(ws.run_job, "run.n_clicks", seen.append, 1, None, image, 80, "Qq(100)", {"readonly": False})
+    assert "Unknown element 'Qq'" in _text(note)
+
+
+def test_analysis_job_does_not_start_on_a_fresh_image_or_read_only(ws, fresh_store, noisy_png):
+    from dash.exceptions import PreventUpdate
+
+    image = _call(ws.on_upload, "upload.contents", _data_url(noisy_png), None, "f.png", 80, "Pt(111)")[0]
+    fresh = ws._empty_edits(image["sha"])
+    with pytest.raises(PreventUpdate):
+        _call(ws.run_job, "edits.data", print, None, fresh, image, 80, "Pt(111)", {"readonly": False})
+    with pytest.raises(PreventUpdate):
+        _call(ws.run_job, "run.n_clicks", print, 1, fresh, image, 80, "Pt(111)", {"readonly": True})
+
+
+# --------------------------------------------------------------------------- edits by hand
+
+def _image_meta():
+    return {"sha": "a" * 64, "filename": "f.png", "width": 200, "height": 100}
+
+
+def test_click_adds_then_drops_spots_and_sets_centre(ws):
+    img = _image_meta()
+    ed = ws._empty_edits(img["sha"])
+    click = {"points": [{"x": 50.4, "y": 20.6, "curveNumber": 0}]}
+    ed = _call(ws.on_graph_event, "graph.clickData", click, None, None, "spots", ed, img, {})
+    assert ed["added"] == [[50.4, 20.6]] and ed["rev"] == 1
+    on_detected = {"points": [{"x": 10, "y": 10, "customdata": ["spot", 7]}]}
+    ed = _call(ws.on_graph_event, "graph.clickData", on_detected, None, None, "spots", ed, img, {})
+    assert ed["removed"] == [7] and ed["added"] == [[50.4, 20.6]]
+    on_added = {"points": [{"x": 50.4, "y": 20.6, "customdata": ["added", 0]}]}
+    ed = _call(ws.on_graph_event, "graph.clickData", on_added, None, None, "spots", ed, img, {})
+    assert ed["added"] == [] and ed["rev"] == 3
+    ed = _call(ws.on_graph_event, "graph.clickData", click, None, None, "center", ed, img, {})
+    assert ed["center"] == [50.4, 20.6]
+    drag = {"shapes[0].x0": 90.0, "shapes[0].x1": 110.0, "shapes[0].y0": 40.0, "shapes[0].y1": 60.0}
+    ed = _call(ws.on_graph_event, "graph.relayoutData", None, drag, None, "spots", ed, img, {})
+    assert ed["center"] == [100.0, 50.0]
+    ed = _call(ws.on_graph_event, "undo-edits.n_clicks", None, None, 1, "spots", ed, img, {})
+    assert ed["added"] == [] and ed["removed"] == [] and ed["center"] is None and ed["rev"] == 6
+
+
+def test_clicks_are_ignored_read_only_outside_or_in_zoom(ws):
+    from dash.exceptions import PreventUpdate
+
+    img = _image_meta()
+    ed = ws._empty_edits(img["sha"])
+    click = {"points": [{"x": 5, "y": 5}]}
+    for args in [("spots", ed, img, {"readonly": True}), ("none", ed, img, {})]:
+        with pytest.raises(PreventUpdate):
+            _call(ws.on_graph_event, "graph.clickData", click, None, None, *args)
+    with pytest.raises(PreventUpdate):  # beyond the image
+        _call(ws.on_graph_event, "graph.clickData", {"points": [{"x": 500, "y": 5}]}, None, None, "spots", ed, img, {})
+    with pytest.raises(PreventUpdate):  # a zoom, not a drag of the centre
+        _call(ws.on_graph_event, "graph.relayoutData", None, {"xaxis.range[0]": 3}, None, "spots", ed, img, {})
+
+
+def test_edits_from_the_browser_are_cleaned(webapp_env):
+    from webapp import service
+
+    got = service.clean_edits({"added": [[1, 2], ["x", 3], [float("nan"), 1], [4, 5, 6]], "removed": [3, -1, "2", 3, True],
+                               "center": ["1", "2"], "junk": 1})
+    assert got == {"added": [[1.0, 2.0]], "removed": [3], "center": [1.0, 2.0]}
+
+
+# --------------------------------------------------------------------------- figures
+
+def _square_result():
+    """A hand-made result on a square substrate: a* = 50 px along x, b* = 50 px along y, centre (256, 256).
+
+    Spots sit on every half-order position of p(2×2) inside ±1, worked by hand:
+    (h, k) with h, k ∈ {-1, -1/2, 0, 1/2, 1}, except (0, 0).
+    """
+    hk = [(h, k) for h in (-1, -0.5, 0, 0.5, 1) for k in (-1, -0.5, 0, 0.5, 1) if (h, k) != (0, 0)]
+    spots = [{"x": 256 + 50 * h, "y": 256 + 50 * k, "h": h, "k": k, "intensity": 100.0, "snr": 20.0} for h, k in hk]
+    return {"center_px": [256.0, 256.0], "spots": spots,
+            "substrate": {"net": "Cu(100)", "a_star_px": [[50.0, 0.0], [0.0, 50.0]],
+                          "a_angstrom": 2.556, "b_angstrom": 2.556, "gamma_deg": 90.0},
+            "overlayer": {"kind": "commensurate", "matrix": [[2, 0], [0, 2]], "domains": [[[2, 0], [0, 2]]],
+                          "wood": "p(2×2)", "coverage": 0.25},
+            "candidates": [{"matrix": [[1, 1], [-1, 1]], "wood": "c(2×2)", "score": 0.4}]}
+
+
+def test_try_model_counts_explained_and_unexplained(webapp_env):
+    from webapp import service
+
+    res = _square_result()
+    # p(2×2) on a square net predicts every half-order beam: all 24 spots explained (worked by hand)
+    m = service.try_model("p(2x2)", res, "Cu(100)", width=512, height=512)
+    assert (m["explained"], m["unexplained"], m["n_domains"]) == (24, 0, 1)
+    # c(2×2) predicts beams with h + k integer: the 8 integer ones and the 4 with both indices half;
+    # the 12 with exactly one half index stay unexplained (counted by hand)
+    m = service.try_model("1 1 / -1 1", res, "Cu(100)", width=512, height=512)
+    assert (m["explained"], m["unexplained"]) == (12, 12)
+    # p(2×1) has two domains on a square net, together explaining (1/2, k) and (h, 1/2) but not (1/2, 1/2)
+    m = service.try_model("p(2x1)", res, "Cu(100)", width=512, height=512)
+    assert (m["explained"], m["unexplained"], m["n_domains"]) == (20, 4, 2)
+
+
+def test_try_model_bad_text_and_singular_matrix(ws, webapp_env):
+    from webapp import service
+
+    res = _square_result()
+    with pytest.raises(NetError, match="singular|independent|zero"):
+        service.try_model("1 2 / 2 4", res, "Cu(100)", width=512, height=512)
+    with pytest.raises(NetError, match="Cannot read Wood notation"):
+        service.try_model("(3x)R", res, "Cu(100)", width=512, height=512)
+    record = {"sha": "a" * 64, "parameters": {"substrate": "Cu(100)"}, "result": res}
+    model, note = _call(ws.on_try_model, "model-try.n_clicks", 1, None, "2 2 / 1 1", record,
+                        {"sha": "a" * 64, "width": 512, "height": 512}, "Cu(100)")
+    assert model is None and "note-error" in note.className
+
+
+def test_pattern_figure_overlays_and_hover(webapp_env):
+    from webapp import figures
+
+    res = _square_result()
+    fig = figures.pattern_figure("data:image/png;base64,AAAA", width=512, height=512, result=res,
+                                 overlays=["spots", "substrate", "domains", "unexplained"])
+    names = [t.name for t in fig.data]
+    assert names[0] == "image" and "Detected spots" in names and "Substrate net" in names and "Domain 1" in names
+    spots = fig.data[names.index("Detected spots")]
+    assert list(spots.customdata[0]) == ["spot", 0]
+    assert "(-1, -1)" in spots.text[0] and "SNR 20.0" in spots.text[0]
+    # p(2×2) on a 50 px square net inside 512 px: fractional beams at 25 px steps, (21² − 11²) = 320 of them
+    dom = fig.data[names.index("Domain 1")]
+    assert len(dom.x) == 21 * 21 - 11 * 11
+    assert fig.layout.yaxis.range[0] > fig.layout.yaxis.range[1]  # y downwards
+    hidden = figures.pattern_figure(None, width=512, height=512, result=res, overlays=[])
+    assert [t.name for t in hidden.data] == []
+
+
+def test_display_levels_scales(webapp_env):
+    from webapp import figures
+
+    d = np.linspace(0.0, 1.0, 101).reshape(1, 101)
+    lin = figures.display_levels(d, clip_pct=(0, 100))
+    log = figures.display_levels(d, scale="log", clip_pct=(0, 100))
+    gam = figures.display_levels(d, scale="gamma", gamma=0.5, clip_pct=(0, 100))
+    assert lin[0, 50] == 128 and lin[0, 0] == 0 and lin[0, 100] == 255
+    # log1p(1000 · 0.5) / log1p(1000) = 0.8998 -> 229 (computed by hand)
+    assert log[0, 50] == 229
+    assert gam[0, 25] == 128  # sqrt(0.25) = 0.5
+    clipped = figures.display_levels(d, clip_pct=(10, 90))
+    assert clipped[0, 5] == 0 and clipped[0, 95] == 255
+
+
+# --------------------------------------------------------------------------- results, save, share
+
+def _saved(ws, fresh_store, png, sample="<b>PX-7</b> & co"):
+    image = _call(ws.on_upload, "upload.contents", _data_url(png), None, "f.png", 80, "Cu(100)")[0]
+    record = {"sha": image["sha"], "parameters": {"energy_eV": 80.0, "substrate": "Cu(100)"},
+              "edits": {"added": [[5.0, 6.0]], "removed": [], "center": None}, "result": _square_result()}
+    note, link = _call(ws.on_save, "save.n_clicks", 1, record, image, sample, "first line\n<script>x</script>",
+                       {"readonly": False, "token": None})
+    return image, record, note, link
+
+
+def test_result_panel_shows_wood_and_matrix(ws, webapp_env):
+    res = _square_result()
+    image = {"sha": "a" * 64, "width": 512, "height": 512}
+    panel, options, _note, real = _call(ws.show_result, "result.data", {"sha": "a" * 64, "result": res}, image, None)
+    text = _text(panel)
+    assert "p(2×2)" in text and "commensurate" in text and "24 spots" in text
+    assert "(2 0 / 0 2)" in str(panel)  # the matrix table keeps the plain form as its title
+    assert "a* 0.3912 Å⁻¹" in text  # 1 / 2.556 Å for a square net (no 2π), by hand
+    assert options[0]["label"].startswith("1.  c(2×2)  (1 1 / -1 1)")
+    assert [t.name for t in real.data][-1] == "Domain 1"
+
+
+def test_save_makes_a_share_link_and_read_only_page(ws, fresh_store, noisy_png):
+    image, record, note, link = _saved(ws, fresh_store, noisy_png)
+    assert "Saved" in _text(note)
+    token = link.children[1].children.rsplit("/", 1)[1]
+    saved = fresh_store.get_analysis(token)
+    assert saved.result == record["result"] and saved.edits["added"] == [[5.0, 6.0]]
+    assert saved.summary == "p(2×2)"
+    shared_layout = _page_layout("shared")
+    page = shared_layout(token=token)
+    # user text stays text: Dash renders children strings as text nodes, never as markup
+    assert "<b>PX-7</b> & co" in _text(page)
+    assert "Copy to edit" in _text(page)
+    assert "Not found" in _text(shared_layout(token="nope-" + "x" * 20))
+
+
+def test_save_refuses_without_a_result_and_in_read_only(ws, fresh_store, noisy_png):
+    from dash.exceptions import PreventUpdate
+
+    image = _call(ws.on_upload, "upload.contents", _data_url(noisy_png), None, "f.png", 80, "Cu(100)")[0]
+    note, link = _call(ws.on_save, "save.n_clicks", 1, None, image, "S", "", {"readonly": False})
+    assert "Analyse the image before saving it" in _text(note) and link is None
+    with pytest.raises(PreventUpdate):
+        _call(ws.on_save, "save.n_clicks", 1, None, image, "S", "", {"readonly": True})
+    long_name = {"sha": image["sha"], "parameters": {}, "edits": {}, "result": {"spots": []}}
+    note, _ = _call(ws.on_save, "save.n_clicks", 1, long_name, image, "x" * 300, "", {"readonly": False})
+    assert "Sample name is 300 characters" in _text(note)
+    assert fresh_store.count_analyses() == 0
+
+
+def test_copy_to_edit_opens_the_saved_analysis(ws, fresh_store, noisy_png):
+    _, record, _, link = _saved(ws, fresh_store, noisy_png)
+    token = link.children[1].children.rsplit("/", 1)[1]
+    page = _page_layout("editor")(copy=token)
+    stores = {c.id: c.data for c in page.children if getattr(c, "id", None) in ("result", "source-token", "edits")}
+    assert stores["result"]["result"] == record["result"]
+    assert stores["source-token"] == {"readonly": False, "token": token}
+    assert stores["edits"]["added"] == [[5.0, 6.0]]
+
+
+def test_recent_page_lists_saved_analyses(ws, fresh_store, noisy_png):
+    _saved(ws, fresh_store, noisy_png, sample="Sample one")
+    _saved(ws, fresh_store, noisy_png, sample="Sample two")
+    page = _page_layout("recent")()
+    text = _text(page)
+    assert text.index("Sample two") < text.index("Sample one") and "2 saved" in text
+    assert "p(2×2)" in text
+
+
+def test_export_json_round_trips_through_import(ws, fresh_store, noisy_png):
+    image, record, _, _ = _saved(ws, fresh_store, noisy_png)
+    out = _call(ws.on_export, "export-json.n_clicks", 1, None, None, None, record, image, "S-1", "n", "linear", 0.5,
+                [0.5, 99.95])
+    doc = json.loads(out["content"])
+    assert doc["format"] == "recinet-analysis" and doc["result"] == record["result"]
+    back = _call(ws.on_upload, "upload.contents", _data_url(out["content"].encode(), "application/json"), None,
+                 out["filename"], None, "")
+    img2, rec2, ed2 = back[0], back[1], back[2]
+    assert img2["sha"] == image["sha"] and rec2["result"] == record["result"]
+    assert ed2["added"] == [[5.0, 6.0]] and ed2["rev"] == 0  # restoring does not start a new analysis
+    assert back[5] == "S-1" and back[6] == "n"
+
+
+def test_export_csv_png_svg(ws, fresh_store, noisy_png):
+    image, record, _, _ = _saved(ws, fresh_store, noisy_png)
+    args = (record, image, "S", "", "linear", 0.5, [0.5, 99.95])
+    out = _call(ws.on_export, "export-csv.n_clicks", None, 1, None, None, *args)
+    rows = list(csv.DictReader(io.StringIO(out["content"])))
+    assert len(rows) == 24 and float(rows[0]["x_px"]) == 206.0 and rows[0]["h"] == "-1"
+    png = _call(ws.on_export, "export-png.n_clicks", None, None, 1, None, *args)
+    assert base64.b64decode(png["content"])[:8] == b"\x89PNG\r\n\x1a\n"
+    svg = _call(ws.on_export, "export-svg.n_clicks", None, None, None, 1, *args)
+    assert b"<svg" in base64.b64decode(svg["content"])[:400]
+
+
+def test_import_refuses_other_json(webapp_env):
+    from webapp import service
+
+    with pytest.raises(ParameterError, match="not a recinet analysis export"):
+        service.read_bundle(b'{"a": 1}', max_bytes=10**6)
+    with pytest.raises(ParameterError, match="not valid JSON"):
+        service.read_bundle(b"{nope", max_bytes=10**6)
+    doc = service.export_bundle(image_bytes=b"abc", filename="x.png", parameters={}, edits={}, result=None)
+    doc["image"]["sha256"] = "0" * 64
+    with pytest.raises(ParameterError, match="does not match its recorded hash"):
+        service.read_bundle(json.dumps(doc), max_bytes=10**6)
+
+
+# --------------------------------------------------------------------------- server: API, access key, errors
+
+def test_api_save_and_get(webapp_env, fresh_store, noisy_png):
+    from webapp import service
+
+    client = webapp_env.server.test_client()
+    doc = service.export_bundle(image_bytes=noisy_png, filename="f.png", parameters={"energy_eV": 70.0},
+                                edits={}, result=_square_result(), sample_name="API sample")
+    r = client.post("/api/analyses", data=json.dumps(doc), content_type="application/json")
+    assert r.status_code == 201
+    token = r.get_json()["token"]
+    got = client.get(f"/api/analyses/{token}").get_json()
+    assert got["result"] == _square_result() and got["sample_name"] == "API sample"
+    assert client.get("/api/analyses/" + "z" * 22).status_code == 404
+    bad = client.post("/api/analyses", data=b"not json", content_type="application/json")
+    assert bad.status_code == 400 and "not valid JSON" in bad.get_json()["error"]
+    thumb = client.get(f"/thumb/{fresh_store.get_analysis(token).image_sha256}.png")
+    assert thumb.status_code == 200 and thumb.data[:4] == b"\x89PNG"
+    assert client.get("/thumb/" + "0" * 64 + ".png").status_code == 404
+    assert b"root:" not in client.get("/thumb/..%2F..%2Fetc%2Fpasswd.png").data
+
+
+def test_request_over_the_limit_gets_413_with_a_message(webapp_env):
+    client = webapp_env.server.test_client()
+    limit = webapp_env.server.config["MAX_CONTENT_LENGTH"]
+    r = client.post("/api/analyses", data=b"0" * (limit + 10), content_type="application/json")
+    assert r.status_code == 413 and b"larger than the limit" in r.data
+
+
+def test_access_key_protects_every_page(webapp_env, fresh_store):
+    import dataclasses
+
+    from webapp import runtime
+
+    runtime.reset(dataclasses.replace(runtime.get_settings(), access_key="s3cret-group-key"))
+    try:
+        client = webapp_env.server.test_client()
+        r = client.get("/recent")
+        assert r.status_code == 302 and r.headers["Location"].startswith("/login?next=/recent")
+        assert client.get("/_dash-layout").status_code == 401
+        assert client.get("/api/analyses/" + "a" * 22).status_code == 401
+        assert client.post("/login", data={"key": "wrong", "next": "/recent"}).status_code == 403
+        r = client.post("/login", data={"key": "s3cret-group-key", "next": "//evil.example/x"})
+        assert r.status_code == 302 and r.headers["Location"] == "/"  # never an off-site redirect
+        assert client.get("/recent").status_code == 200  # the cookie now opens it
+        other = webapp_env.server.test_client()
+        assert other.get("/api/analyses/" + "a" * 22, headers={"X-Recinet-Key": "s3cret-group-key"}).status_code == 404
+    finally:
+        runtime.reset(dataclasses.replace(runtime.get_settings(), access_key=None))
