@@ -268,8 +268,8 @@ def test_equivalent_matrices_give_the_same_answers(m, u, sub):
 @given(m=_int_matrix(), sub=st.sampled_from([HEX, SQUARE, RECT, CRECT]))
 def test_wood_to_matrix_to_wood_round_trip(m, sub):
     w = wood_notation(sub, m)
-    if w.text is None:
-        return
+    if w.text is None or "." in w.text.split("R")[0]:
+        return  # no Wood form, or sides written as rounded decimals (approximate by nature)
     back = parse_wood(w.text, sub)
     # the text keeps |φ|, so the parsed lattice is the input or its mirror domain
     assert any(same_lattice(back, d.matrix, tol=1e-6) for d in domains(sub, m))
