@@ -45,6 +45,9 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--port", type=int, default=8050)
     s.add_argument("--debug", action="store_true")
     s.set_defaults(func=_cmd_serve)
+
+    from .series import add_iv_parser
+    add_iv_parser(sub)
     return p
 
 

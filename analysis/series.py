@@ -30,6 +30,7 @@ as in :mod:`analysis.optics` (x right, y down, the centre of the top-left pixel 
 
 from __future__ import annotations
 
+import argparse
 import csv
 import io as _stdio
 import json
@@ -72,6 +73,7 @@ __all__ = [
     "average_equivalent",
     "smooth_curve",
     "iv_table",
+    "csv_text",
     "write_csv",
     "result_to_dict",
     "write_json",
@@ -1215,7 +1217,13 @@ class _Energies:
         self.pattern = name_pattern
         self.seen_e: list[float] = []
         self.seen_names: list[str] = []
+        self.start_step: _StartStep | None = None
         if energies is None:
+            return
+        if isinstance(energies, dict) and set(energies) == {"start_eV", "step_eV"}:
+            energies = _StartStep(energies["start_eV"], energies["step_eV"])
+        if isinstance(energies, _StartStep):
+            self.start_step = energies
             return
         if isinstance(energies, (str, os.PathLike)):
             energies = read_energy_file(energies)
@@ -1239,7 +1247,9 @@ class _Energies:
     def at(self, i: int, name: str) -> tuple[float, float | None]:
         t = self.table
         cur = None
-        if t is None:
+        if self.start_step is not None:
+            e = self.start_step.start + i * self.start_step.step
+        elif t is None:
             e = float(energies_from_names([name], pattern=self.pattern)[0])
         elif self.by_name is not None:
             key = _name_key(name)
@@ -1315,8 +1325,9 @@ def track_series(frames, beams: BeamSet, geometry: ScreenGeometry, *, energies=N
         The beams to follow (:func:`beams_from_nets` or :meth:`BeamSet.from_hk`).
     geometry : ScreenGeometry
         Starting geometry, e.g. from indexing one frame; within a few pixels of the truth.
-    energies : EnergyTable, path of a sidecar, (F,) array_like, or None, keyword-only
-        None: read from each frame's name with `name_pattern`.
+    energies : EnergyTable, path of a sidecar, (F,) array_like, dict or None, keyword-only
+        ``{"start_eV": …, "step_eV": …}`` for evenly stepped energies; None: read from
+        each frame's name with `name_pattern`.
     mask : (M, N) ndarray of bool, optional, keyword-only
         True where pixels may be used; beams whose aperture touches a False pixel (gun
         shadow, holder arm) are flagged "masked" in that frame and not integrated.
@@ -1535,3 +1546,506 @@ def _one_frame(frame, e, g, geom, mask, sat, r_ap, ann, background, method, sear
     flags[idx] = f
     okpos[idx] = ok & ~blocked
     return inten, sig, xy_out, flags, bgpx, okpos, sig_est
+
+
+# --------------------------------------------------------------------------- curves, equivalent beams
+
+
+def smooth_curve(energy_eV, intensity, *, fwhm_eV: float) -> np.ndarray:
+    """Gaussian smoothing of one I(V) curve that never bridges a gap.
+
+    Parameters
+    ----------
+    energy_eV : (F,) array_like of float
+        Monotonic energies, eV.
+    intensity : (F,) array_like of float
+        NaN marks missing points; they stay NaN and neighbours on either side of a gap
+        are smoothed separately.
+    fwhm_eV : float, keyword-only
+        Full width at half maximum of the Gaussian kernel, eV (0 returns a copy).
+
+    Returns
+    -------
+    (F,) ndarray of float64
+
+    Examples
+    --------
+    >>> e = np.arange(0.0, 10.0)
+    >>> out = smooth_curve(e, [0, 0, 0, 0, 9, 0, 0, np.nan, 5, 5], fwhm_eV=2.0)
+    >>> print(round(float(out[4]), 3), np.isnan(out[7]), out[8:].tolist())
+    4.231 True [5.0, 5.0]
+    """
+    e = np.asarray(energy_eV, dtype=np.float64).reshape(-1)
+    y = np.asarray(intensity, dtype=np.float64).reshape(-1)
+    if e.shape != y.shape:
+        raise ParameterError(f"`energy_eV` has {e.size} points but `intensity` has {y.size}.")
+    if not (fwhm_eV >= 0 and math.isfinite(fwhm_eV)):
+        raise ParameterError(f"`fwhm_eV` must be ≥ 0 eV, got {fwhm_eV!r}.")
+    out = y.copy()
+    if fwhm_eV == 0 or y.size == 0:
+        return out
+    s = fwhm_eV / (2.0 * math.sqrt(2.0 * math.log(2.0)))
+    ok = np.isfinite(y)
+    run_id = np.cumsum(np.concatenate([[0], (ok[1:] != ok[:-1]).astype(int)]))
+    for r in np.unique(run_id[ok]):
+        sel = np.flatnonzero(run_id == r)
+        d = e[sel, None] - e[None, sel]
+        w = np.exp(-0.5 * (d / s) ** 2)
+        out[sel] = (w @ y[sel]) / w.sum(axis=1)
+    return out
+
+
+@dataclass(frozen=True, eq=False)
+class BeamGroup:
+    """Symmetry-equivalent beams averaged into one curve.
+
+    Attributes
+    ----------
+    label : str
+        Heading of the group (its first member).
+    members : tuple of str
+        Labels of the beams averaged.
+    energy_eV : (F,) ndarray of float64
+    intensity : (F,) ndarray of float64
+        Mean of the members valid at each energy, each member scaled to the group's
+        mean over their common energies; NaN where no member is valid.
+    sigma : (F,) ndarray of float64
+    n_used : (F,) ndarray of int64
+        Members averaged at each energy.
+    r_pendry : float
+        Pendry R-factor pooled over all member pairs (NaN for a single beam).
+    r_zj : float
+        Mean reduced Zanazzi–Jona R-factor over ordered member pairs (NaN for one beam).
+    overlap_eV : float
+        Energy range in eV where every member is valid.
+    range_eV : float
+        Energy range in eV where at least one member is valid.
+    """
+
+    label: str
+    members: tuple
+    energy_eV: np.ndarray
+    intensity: np.ndarray
+    sigma: np.ndarray
+    n_used: np.ndarray
+    r_pendry: float
+    r_zj: float
+    overlap_eV: float
+    range_eV: float
+
+
+def _covered_eV(e: np.ndarray, ok: np.ndarray) -> float:
+    both = ok[1:] & ok[:-1]
+    return float(np.sum(np.abs(np.diff(e)) * both))
+
+
+def average_equivalent(result: IVResult, *, v0i_eV: float = 4.0, smooth_eV: float = 0.0,
+                       include_empty: bool = False) -> list[BeamGroup]:
+    """Average the symmetry-equivalent beams of a series and rate their agreement.
+
+    Parameters
+    ----------
+    result : IVResult
+    v0i_eV : float, keyword-only
+        V0i for the Pendry R-factor among members, eV.
+    smooth_eV : float, keyword-only
+        Gaussian FWHM applied to each member first (0: none).
+    include_empty : bool, keyword-only
+        Keep groups with no valid point.
+
+    Returns
+    -------
+    list of BeamGroup
+        In the order of the beams' equivalence classes.
+    """
+    e = result.energy_eV
+    order = np.argsort(e)
+    es = e[order]
+    groups: list[BeamGroup] = []
+    for gid in np.unique(result.beams.group):
+        idx = np.flatnonzero(result.beams.group == gid)
+        curves, sigmas = [], []
+        for j in idx:
+            _, i, s = result.curve(int(j))
+            i, s = i[order], s[order]
+            if smooth_eV:
+                i = smooth_curve(es, i, fwhm_eV=smooth_eV)
+            curves.append(i)
+            sigmas.append(s)
+        cur = np.array(curves)
+        sig = np.array(sigmas)
+        ok = np.isfinite(cur)
+        if not ok.any() and not include_empty:
+            continue
+        keep = ok.any(axis=1)  # members never seen do not count
+        idx, cur, sig, ok = idx[keep] if keep.any() else idx, cur[keep] if keep.any() else cur, \
+            sig[keep] if keep.any() else sig, ok[keep] if keep.any() else ok
+        common = ok.all(axis=0)
+        factors = np.ones(len(idx))
+        if len(idx) > 1 and common.sum() >= 3:
+            sums = np.nansum(np.where(common, cur, 0.0), axis=1)
+            if np.all(sums > 0):
+                factors = sums.mean() / sums
+        scaled = cur * factors[:, None]
+        n_used = ok.sum(axis=0)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            mean = np.where(n_used > 0, np.nansum(np.where(ok, scaled, 0.0), axis=0) / np.maximum(n_used, 1), np.nan)
+            sg = np.sqrt(np.nansum(np.where(ok, (sig * factors[:, None]) ** 2, 0.0), axis=0)) / np.maximum(n_used, 1)
+        sg = np.where(n_used > 0, sg, np.nan)
+        r_p = r_zj = float("nan")
+        if len(idx) > 1:
+            pairs = [(es, scaled[m]) for m in range(len(idx))]
+            r = pairwise_pendry_r(pairs, v0i_eV=v0i_eV)
+            r_p = r.value
+            zj = [zanazzi_jona_r(es, scaled[a], scaled[b]) for a in range(len(idx)) for b in range(len(idx)) if a != b]
+            zj = [z for z in zj if np.isfinite(z)]
+            r_zj = float(np.mean(zj)) if zj else float("nan")
+        inv = np.argsort(order)  # back to frame order
+        labels = tuple(result.beams.labels[j] for j in idx)
+        groups.append(BeamGroup(labels[0], labels, e.copy(), mean[inv], sg[inv], n_used[inv].astype(np.int64),
+                                r_p, r_zj, _covered_eV(es, common), _covered_eV(es, n_used > 0)))
+    return groups
+
+
+# --------------------------------------------------------------------------- export
+
+
+def _cell(v: float) -> str:
+    return "" if not np.isfinite(v) else f"{v:.7g}"
+
+
+def iv_table(result: IVResult, *, averaged: bool = False, smooth_eV: float = 0.0, v0i_eV: float = 4.0,
+             include_empty: bool = False) -> tuple[list[str], list[list[str]]]:
+    """The I(V) table: energy in eV first, then one column per beam (or group).
+
+    Parameters
+    ----------
+    result : IVResult
+    averaged : bool, keyword-only
+        One column per group of equivalent beams (headed by its first member) instead of
+        one per beam.
+    smooth_eV : float, keyword-only
+        Gaussian FWHM applied to every curve (0: none).
+    include_empty : bool, keyword-only
+        Keep beams that are never valid (an all-empty column).
+
+    Returns
+    -------
+    header : list of str
+        ``["energy_eV", "(1,0)", "(1/2,0)", …]``.
+    rows : list of list of str
+        One row per frame in frame order; empty cells where a beam is off the screen or
+        flagged.
+    """
+    e = result.energy_eV
+    cols: list[tuple[str, np.ndarray]] = []
+    if averaged:
+        for grp in average_equivalent(result, v0i_eV=v0i_eV, smooth_eV=smooth_eV, include_empty=include_empty):
+            cols.append((grp.label, grp.intensity))
+    else:
+        for j, lab in enumerate(result.beams.labels):
+            _, i, _ = result.curve(j)
+            if not include_empty and not np.isfinite(i).any():
+                continue
+            if smooth_eV:
+                o = np.argsort(e)
+                sm = np.empty_like(i)
+                sm[o] = smooth_curve(e[o], i[o], fwhm_eV=smooth_eV)
+                i = sm
+            cols.append((lab, i))
+    header = ["energy_eV"] + [c[0] for c in cols]
+    rows = [[f"{e[f]:.6g}"] + [_cell(c[1][f]) for c in cols] for f in range(e.size)]
+    return header, rows
+
+
+def _atomic_write(path, text: str) -> None:
+    """Write `text` to `path` through a temporary file, so no partial file is ever left."""
+    p = Path(path)
+    if p.is_dir():
+        raise SeriesError(f"Output {p} is a folder, not a file name.")
+    parent = p.parent if str(p.parent) else Path(".")
+    if not parent.is_dir():
+        raise SeriesError(f"Output folder {parent} does not exist.")
+    fd, tmp = tempfile.mkstemp(prefix=f".{p.name}.", suffix=".part", dir=parent)
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
+            fh.write(text)
+        os.replace(tmp, p)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+        raise
+
+
+def csv_text(result: IVResult, **kw) -> str:
+    """The table of :func:`iv_table` as CSV text (keywords as there)."""
+    header, rows = iv_table(result, **kw)
+    buf = _stdio.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow(header)
+    w.writerows(rows)
+    return buf.getvalue()
+
+
+def write_csv(result: IVResult, path, **kw) -> None:
+    """Write the I(V) table of :func:`iv_table` to `path` (keywords as there); atomic."""
+    _atomic_write(path, csv_text(result, **kw))
+
+
+def _json_safe(x):
+    if isinstance(x, (bool, np.bool_)):
+        return bool(x)
+    if isinstance(x, (int, np.integer)):
+        return int(x)
+    if isinstance(x, (float, np.floating)):
+        return float(x) if math.isfinite(x) else None
+    if isinstance(x, np.ndarray):
+        return _json_safe(x.tolist())
+    if isinstance(x, (list, tuple)):
+        return [_json_safe(v) for v in x]
+    if isinstance(x, dict):
+        return {str(k): _json_safe(v) for k, v in x.items()}
+    return x
+
+
+def result_to_dict(result: IVResult, *, v0i_eV: float = 4.0, smooth_eV: float = 0.0) -> dict:
+    """JSON-safe record of a series: metadata, calibration, curves, flags and equivalent groups.
+
+    NaN becomes null. ``flags`` are per frame and beam, with ``flag_names`` giving the bits.
+    """
+    b = result.beams
+    groups = average_equivalent(result, v0i_eV=v0i_eV, smooth_eV=smooth_eV)
+    per_beam_flags = {}
+    for j, lab in enumerate(b.labels):
+        counts = {name: int(np.sum((result.flags[:, j] & bit) != 0)) for bit, name in FLAG_NAMES.items()}
+        per_beam_flags[lab] = {k: v for k, v in counts.items() if v}
+    d = {
+        "kind": "recinet I(V) series",
+        "schema_version": 1,
+        "energy_unit": "eV",
+        "intensity_unit": "frame units summed over the aperture" + (
+            ", divided by the beam current" if result.settings.get("normalised_by_current") else ""),
+        "pixel_convention": "x right, y down, centre of the top-left pixel at (0, 0)",
+        "reciprocal_convention": "crystallographic, no 2π",
+        "n_frames": int(result.energy_eV.size),
+        "energy_eV": result.energy_eV,
+        "frame_names": list(result.frame_names),
+        "current": result.current,
+        "settings": result.settings,
+        "calibration": None if result.calibration is None else result.calibration.to_dict(),
+        "symmetry": b.symmetry,
+        "flag_names": {str(bit): name for bit, name in FLAG_NAMES.items()},
+        "blocking_flags": [FLAG_NAMES[bit] for bit in FLAG_NAMES if bit & BLOCKING_FLAGS],
+        "beams": [{"label": lab, "h": b.hk[j, 0], "k": b.hk[j, 1], "integer": bool(b.integer[j]),
+                   "group": int(b.group[j]), "g_par_invA": b.g_par[j],
+                   "overlap_eV": float(result.overlap_eV()[j]), "flag_counts": per_beam_flags[lab],
+                   "intensity": np.where(result.valid[:, j], result.intensity[:, j], np.nan),
+                   "sigma": np.where(result.valid[:, j], result.sigma[:, j], np.nan),
+                   "x_px": result.xy_px[:, j, 0], "y_px": result.xy_px[:, j, 1],
+                   "flags": result.flags[:, j].astype(int)} for j, lab in enumerate(b.labels)],
+        "groups": [{"label": g.label, "members": list(g.members), "intensity": g.intensity, "sigma": g.sigma,
+                    "n_used": g.n_used, "r_pendry": g.r_pendry, "r_zanazzi_jona": g.r_zj,
+                    "v0i_eV": v0i_eV, "overlap_eV": g.overlap_eV, "range_eV": g.range_eV} for g in groups],
+    }
+    return _json_safe(d)
+
+
+def write_json(result: IVResult, path, **kw) -> None:
+    """Write :func:`result_to_dict` to `path` as JSON; atomic."""
+    _atomic_write(path, json.dumps(result_to_dict(result, **kw), indent=1, allow_nan=False))
+
+
+# --------------------------------------------------------------------------- command line
+
+
+class _StartStep:
+    """Energies start + i·step for a series whose length is known only at the end."""
+
+    def __init__(self, start_eV: float, step_eV: float):
+        energies_from_start_step(1, start_eV=start_eV, step_eV=step_eV)  # validates
+        if step_eV == 0:
+            raise SeriesError("`step_eV` must not be 0: energies must not repeat.")
+        self.start, self.step = float(start_eV), float(step_eV)
+
+
+def _progress_bar(stream) -> Callable[[int, int | None, float], None]:
+    t0 = time.perf_counter()
+
+    def show(i: int, n: int | None, e: float) -> None:
+        width = 30
+        if n:
+            done = int(width * i / n)
+            bar = "#" * done + "." * (width - done)
+            text = f"\r[{bar}] {i}/{n} frames  {e:7.1f} eV  {time.perf_counter() - t0:5.1f} s"
+        else:
+            text = f"\r{i} frames  {e:7.1f} eV  {time.perf_counter() - t0:5.1f} s"
+        stream.write(text)
+        stream.flush()
+
+    return show
+
+
+def _read_geometry(path) -> ScreenGeometry:
+    p = Path(path)
+    try:
+        d = json.loads(p.read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise SeriesError(f"Geometry file {p.name} not found ({p}).") from None
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise SeriesError(f"Geometry file {p.name} is not readable JSON ({type(exc).__name__}).") from None
+    if isinstance(d, dict) and isinstance(d.get("geometry"), dict):
+        d = d["geometry"]
+    if not isinstance(d, dict):
+        raise SeriesError(f"Geometry file {p.name} must hold a JSON object of screen-geometry fields.")
+    try:
+        return ScreenGeometry.from_dict(d)
+    except (TypeError, ValueError) as exc:
+        raise SeriesError(f"Geometry file {p.name}: {exc}") from None
+
+
+def _auto_index(first: np.ndarray, energy_eV: float, substrate: Net2D, saturation):
+    """Screen, gun shadow and substrate net from the first frame (spots + indexing)."""
+    from .indexing import fit_substrate
+    from .spots import find_gun_shadow, find_screen, find_spots
+
+    screen = find_screen(first)
+    gun = find_gun_shadow(first, screen)
+    mask = screen.mask & ~gun.mask
+    spots = find_spots(first, mask=mask, saturation_level=saturation)
+    fits = fit_substrate(spots.xy, energy_eV, substrate, screen_radius_px=screen.radius_px, valid_mask=mask)
+    fit = fits[0]
+    return fit.geometry, Net2D(fit.net.vectors, label=substrate.label), mask
+
+
+def add_iv_parser(subparsers) -> argparse.ArgumentParser:
+    """Add the ``iv`` command to an argparse sub-parser collection; returns its parser."""
+    _ap = argparse
+    p = subparsers.add_parser(
+        "iv", help="I(V) curves from an energy series (multi-page TIFF, folder or zip)",
+        description="Track every beam through an energy series and write its I(V) curve.",
+        formatter_class=_ap.ArgumentDefaultsHelpFormatter)
+    p.add_argument("series", help="multi-page TIFF, folder of images, or zip of images")
+    p.add_argument("--substrate", required=True, help="substrate, e.g. 'Cu(100)' or 'hexagonal:2.775'")
+    p.add_argument("--energies", help="CSV or JSON file with the energy of every frame "
+                                      "(columns energy_eV or energy; optional frame, current)")
+    p.add_argument("--start-eV", type=float, dest="start_eV", help="energy of the first frame (with --step-eV)")
+    p.add_argument("--step-eV", type=float, dest="step_eV", help="energy step between frames")
+    p.add_argument("--name-pattern", default=DEFAULT_NAME_PATTERN,
+                   help="regular expression reading the energy from each file name (first group)")
+    p.add_argument("--csv", required=True, help="output CSV: energy_eV, then one column per beam")
+    p.add_argument("--json", help="output JSON with curves, flags, calibration and equivalent groups")
+    p.add_argument("--geometry", help="JSON screen geometry (a saved calibration); default: index frame 0")
+    p.add_argument("--overlayer", action="append", default=[], metavar="MATRIX",
+                   help="superstructure matrix, e.g. '2 0 / 0 2' (repeat for several)")
+    p.add_argument("--all-domains", action="store_true", help="add the symmetry-equivalent domains")
+    p.add_argument("--azimuth-deg", type=float, default=0.0, dest="azimuth_deg",
+                   help="sample azimuth when --geometry is given")
+    p.add_argument("--symmetry", default="auto", help="equivalence group: auto, full, p3m1, p31m, p1…p6")
+    p.add_argument("--average", action="store_true", help="one CSV column per group of equivalent beams")
+    p.add_argument("--smooth-eV", type=float, default=0.0, dest="smooth_eV", help="Gaussian smoothing FWHM")
+    p.add_argument("--v0i-eV", type=float, default=4.0, dest="v0i_eV", help="V0i for the Pendry R-factor")
+    p.add_argument("--radius-px", type=float, dest="radius_px", help="aperture radius (default from spot size)")
+    p.add_argument("--background", choices=("annulus", "plane"), default="annulus")
+    p.add_argument("--method", choices=("aperture", "profile"), default="aperture")
+    p.add_argument("--gain", type=float, default=1.0, help="frame units per detected count (uncertainties)")
+    p.add_argument("--mask", help="image file: non-zero pixels may be used (default: screen minus gun shadow "
+                                  "found in frame 0)")
+    p.add_argument("--save-calibration", dest="save_calibration", help="write the fitted screen geometry (JSON)")
+    p.add_argument("--no-current", action="store_true", help="do not divide by the beam current")
+    p.set_defaults(func=_cmd_iv)
+    return p
+
+
+def _cmd_iv(args) -> int:
+    from .io import iter_frames, load_image
+
+    substrate = parse_substrate(args.substrate)
+    if args.energies and args.start_eV is not None:
+        raise SeriesError("Give either --energies or --start-eV/--step-eV, not both.")
+    if (args.start_eV is None) != (args.step_eV is None):
+        raise SeriesError("--start-eV and --step-eV go together.")
+    energies = None
+    if args.energies:
+        energies = read_energy_file(args.energies)
+    elif args.start_eV is not None:
+        energies = _StartStep(args.start_eV, args.step_eV)
+    mats = []
+    if args.overlayer:
+        from .superstructure import parse_matrix
+
+        mats = [parse_matrix(t) for t in args.overlayer]
+    for out in (args.csv, args.json, args.save_calibration):
+        if out and not Path(out).resolve().parent.is_dir():
+            raise SeriesError(f"Output folder of {out} does not exist.")
+    try:
+        first = load_image(args.series) if not Path(args.series).is_dir() else None
+    except ImageError as err:
+        raise SeriesError(f"Cannot read frame 0: {err}") from None
+    frames = iter_frames(args.series)
+    try:
+        name0, frame0 = next(frames)
+    except StopIteration:
+        raise SeriesError(f"{args.series}: the series holds no frames.") from None
+    except ImageError as err:
+        raise SeriesError(f"Cannot read frame 0: {err}") from None
+    saturation = first.saturation_level if first is not None else None
+    e0 = _Energies(energies, args.name_pattern).at(0, name0)[0]
+    if isinstance(energies, EnergyTable):
+        e_max = float(np.max(energies.energy_eV))
+    elif isinstance(energies, _StartStep) and energies.step < 0:
+        e_max = energies.start
+    else:
+        e_max = 1000.0  # the count is not known yet: follow every beam that could enter
+    mask = None
+    if args.mask:
+        mask = load_image(args.mask, _allow_constant=True).data > 0
+    if args.geometry:
+        geom = _read_geometry(args.geometry)
+        net = substrate
+        azimuth = args.azimuth_deg
+    else:
+        try:
+            geom, net, auto_mask = _auto_index(frame0, e0, substrate, saturation)
+        except (FitError, ParameterError) as err:
+            raise SeriesError(f"Could not index frame 0 ({name0}) at {e0:g} eV: {err} "
+                              "Give --geometry with a saved calibration.") from None
+        mask = auto_mask if mask is None else mask
+        azimuth = 0.0
+    beams = beams_from_nets(net, mats, energy_max_eV=max(e_max, e0), geometry=geom, azimuth_deg=azimuth,
+                            all_domains=args.all_domains, symmetry=args.symmetry)
+
+    def all_frames():
+        yield name0, frame0
+        yield from frames
+
+    bar = _progress_bar(sys.stderr) if sys.stderr.isatty() else None
+    n_known = len(energies) if isinstance(energies, EnergyTable) else None
+    try:
+        res = track_series(all_frames(), beams, geom, energies=energies, name_pattern=args.name_pattern,
+                           mask=mask, radius_px=args.radius_px, background=args.background, method=args.method,
+                           gain=args.gain, saturation_level=saturation, normalise_current=not args.no_current,
+                           progress=None if bar is None else (lambda i, n, e: bar(i, n or n_known, e)))
+    finally:
+        if bar is not None:
+            sys.stderr.write("\n")
+    texts = [(args.csv, csv_text(res, averaged=args.average, smooth_eV=args.smooth_eV, v0i_eV=args.v0i_eV))]
+    if args.json:
+        texts.append((args.json, json.dumps(result_to_dict(res, v0i_eV=args.v0i_eV, smooth_eV=args.smooth_eV),
+                                            indent=1, allow_nan=False)))
+    if args.save_calibration:
+        if res.calibration is None:
+            raise SeriesError("No calibration could be fitted from the series (too few refined beams).")
+        texts.append((args.save_calibration, json.dumps(_json_safe(res.calibration.to_dict()), indent=1)))
+    for path, text in texts:
+        _atomic_write(path, text)
+    n_beams = int(np.sum(res.valid.any(axis=0)))
+    cal = res.calibration
+    msg = f"{res.energy_eV.size} frames, {n_beams} beams -> {args.csv}"
+    if cal is not None:
+        g = cal.geometry
+        msg += (f"; centre ({g.center_x_px:.2f}, {g.center_y_px:.2f}) px, scale {cal.scale_px_sqrt_eV_A:.1f} "
+                f"px·√eV·Å, distortion {g.distortion:.3f}, rms {cal.rms_px:.2f} px")
+    print(msg)
+    return 0
