@@ -260,7 +260,7 @@ def pattern_figure(source: str | None, *, width: int, height: int, factor: int =
         hk, xy = _lattice_hk(sub["a_star_px"], center, width, height)
         fig.add_trace(go.Scatter(
             x=xy[:, 0], y=xy[:, 1], mode="markers", name="Substrate net",
-            marker=dict(symbol="cross-thin-open", size=11, line=dict(width=1.5, color=PALETTE["vermillion"])),
+            marker=dict(symbol="cross-thin-open", size=11, color=PALETTE["vermillion"], line=dict(width=1.5, color=PALETTE["vermillion"])),
             text=[hk_text(*p) for p in hk], hovertemplate="substrate %{text}<extra></extra>"))
         for i, vec in enumerate(np.asarray(sub["a_star_px"], dtype=float)):
             fig.add_annotation(x=center[0] + vec[0], y=center[1] + vec[1], ax=center[0], ay=center[1],
@@ -275,13 +275,13 @@ def pattern_figure(source: str | None, *, width: int, height: int, factor: int =
             sym, col = DOMAIN_STYLES[i % len(DOMAIN_STYLES)]
             fig.add_trace(go.Scatter(
                 x=p["xy"][:, 0], y=p["xy"][:, 1], mode="markers", name=f"Domain {i + 1}",
-                marker=dict(symbol=sym, size=16, line=dict(width=2, color=col)),
+                marker=dict(symbol=sym, size=16, color=col, line=dict(width=2, color=col)),
                 text=[hk_text(*q) for q in p["hk"]], hovertemplate=f"domain {i + 1} %{{text}}<extra></extra>"))
 
     if "model" in show and model and model.get("xy"):
         xy = np.asarray(model["xy"], dtype=float).reshape(-1, 2)
         fig.add_trace(go.Scatter(x=xy[:, 0], y=xy[:, 1], mode="markers", name="Model",
-                                 marker=dict(symbol="circle-open-dot", size=20,
+                                 marker=dict(symbol="circle-open-dot", size=20, color=PALETTE["green"],
                                              line=dict(width=1.5, color=PALETTE["green"])),
                                  hovertemplate="model<extra></extra>"))
 
@@ -293,21 +293,21 @@ def pattern_figure(source: str | None, *, width: int, height: int, factor: int =
                 for s in spots]
         fig.add_trace(go.Scatter(x=sxy[:, 0], y=sxy[:, 1], mode="markers", name="Detected spots",
                                  customdata=custom, text=text,
-                                 marker=dict(symbol="circle-open", size=11, line=dict(width=1.5, color=PALETTE["sky"])),
+                                 marker=dict(symbol="circle-open", size=11, color=PALETTE["sky"], line=dict(width=1.5, color=PALETTE["sky"])),
                                  hovertemplate="%{text}<br>x %{x:.1f}, y %{y:.1f}<extra>spot</extra>"))
     if "unexplained" in show and len(spots):
         un = [i for i, s in enumerate(spots) if s.get("explained") is False]
         if un:
             fig.add_trace(go.Scatter(x=sxy[un, 0], y=sxy[un, 1], mode="markers", name="Unexplained",
                                      customdata=[["spot", int(spots[i].get("index", i))] for i in un],
-                                     marker=dict(symbol="x-thin-open", size=14, line=dict(width=2, color=PALETTE["purple"])),
+                                     marker=dict(symbol="x-thin-open", size=14, color=PALETTE["purple"], line=dict(width=2, color=PALETTE["purple"])),
                                      hovertemplate="unexplained spot<br>x %{x:.1f}, y %{y:.1f}<extra></extra>"))
     added = edits.get("added") or []
     if added:
         a = np.asarray(added, dtype=float).reshape(-1, 2)
         fig.add_trace(go.Scatter(x=a[:, 0], y=a[:, 1], mode="markers", name="Added by hand",
                                  customdata=[["added", i] for i in range(len(a))],
-                                 marker=dict(symbol="star-open", size=13, line=dict(width=1.5, color=PALETTE["green"])),
+                                 marker=dict(symbol="star-open", size=13, color=PALETTE["green"], line=dict(width=1.5, color=PALETTE["green"])),
                                  hovertemplate="added by hand (click to drop)<extra></extra>"))
 
     shapes = []

@@ -5,7 +5,7 @@ Environment variables
 RECINET_DATA_DIR       data folder (default ``./recinet-data``): SQLite file, job cache
 RECINET_DATABASE_URL   SQLAlchemy URL, e.g. ``postgresql+psycopg://user@host/db``
 RECINET_ACCESS_KEY     when set, every page and API asks for this group key
-RECINET_MAX_UPLOAD_MB  largest accepted upload in MB (default 64)
+RECINET_MAX_UPLOAD_MB  largest accepted upload in MB of 10⁶ bytes (default 64)
 RECINET_CELERY_BROKER  Redis URL; when set, long work runs on Celery workers
 """
 
@@ -32,7 +32,7 @@ class Settings:
     @property
     def max_request_bytes(self) -> int:
         """Flask's MAX_CONTENT_LENGTH: a base64 upload is 4/3 of the file, plus the JSON around it."""
-        return self.max_upload_bytes * 4 // 3 + 1024 * 1024
+        return self.max_upload_bytes * 4 // 3 + 1_000_000
 
 
 def load_settings(env: dict | None = None) -> Settings:
@@ -55,6 +55,6 @@ def load_settings(env: dict | None = None) -> Settings:
         database_url=url,
         cache_dir=data_dir / "job-cache",
         access_key=env.get("RECINET_ACCESS_KEY") or None,
-        max_upload_bytes=int(mb * 1024 * 1024),
+        max_upload_bytes=int(mb * 1_000_000),
         celery_broker=env.get("RECINET_CELERY_BROKER") or None,
     )

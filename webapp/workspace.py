@@ -460,7 +460,7 @@ def _result_children(result, record):
     rows.append(("Energy", f"{float(params['energy_eV']):g} eV" if params.get("energy_eV") else "–"))
     explained = [s for s in spots if s.get("explained") is True]
     unexplained = [s for s in spots if s.get("explained") is False]
-    spot_line = f"{len(spots)} spots"
+    spot_line = f"{len(spots)} spot" + ("" if len(spots) == 1 else "s")
     if explained or unexplained:
         spot_line += f" ({len(explained)} explained, {len(unexplained)} unexplained)"
     kind = ov.get("kind") or "–"
