@@ -465,3 +465,12 @@ def test_access_key_protects_every_page(webapp_env, fresh_store):
         assert other.get("/api/analyses/" + "a" * 22, headers={"X-Recinet-Key": "s3cret-group-key"}).status_code == 404
     finally:
         runtime.reset(dataclasses.replace(runtime.get_settings(), access_key=None))
+
+
+def test_reference_image_upload_and_demo(ws, fresh_store, noisy_png):
+    meta, note, energy, contents = _call(ws.on_reference, "ref-upload.contents", _data_url(noisy_png), None, "ref.png", 70)
+    assert fresh_store.image_bytes(meta["sha"]) == noisy_png and "Reference: ref.png" in _text(note)
+    meta, note, energy, contents = _call(ws.on_reference, "ref-upload.contents", _data_url(b"nope"), None, "r.txt", 70)
+    assert meta is None and "r.txt: not an image" in _text(note)
+    meta, note, energy, contents = _call(ws.on_reference, "ref-demo.value", None, None, None, 70)
+    assert meta is None and note is None  # cleared

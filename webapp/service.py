@@ -204,8 +204,19 @@ def pipeline_ready() -> bool:
     return True
 
 
+def calibration_of(result: dict | None):
+    """The screen calibration a saved result carries (a dict), or None."""
+    if not isinstance(result, dict):
+        return None
+    for key in ("calibration", "geometry", "screen_geometry"):
+        if isinstance(result.get(key), dict) and result[key]:
+            return result[key]
+    return None
+
+
 def analyze(image: np.ndarray, *, energy_eV: float, substrate: str, edits: dict | None = None,
-            progress=None) -> dict:
+            reference: np.ndarray | None = None, reference_energy_eV: float | None = None,
+            calibration: dict | None = None, progress=None) -> dict:
     """Run the analysis and return the result as its JSON-safe dict."""
     try:
         from analysis import pipeline, serialize
@@ -216,7 +227,9 @@ def analyze(image: np.ndarray, *, energy_eV: float, substrate: str, edits: dict 
     ed = clean_edits(edits)
     pipe_edits = {"added": [tuple(p) for p in ed["added"]], "removed": ed["removed"],
                   "center": tuple(ed["center"]) if ed["center"] else None}
-    result = pipeline.analyze_image(image, energy_eV=e, substrate=substrate, edits=pipe_edits, progress=progress)
+    result = pipeline.analyze_image(image, energy_eV=e, substrate=substrate, edits=pipe_edits, reference=reference,
+                                    reference_energy_eV=reference_energy_eV, calibration=calibration,
+                                    progress=progress)
     return serialize.result_to_dict(result)
 
 

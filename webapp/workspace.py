@@ -22,14 +22,14 @@ import numpy as np
 from dash import Input, Output, State, callback, ctx, dcc, html, no_update
 from dash.exceptions import PreventUpdate
 
-from analysis.errors import RecinetError
+from analysis.errors import ParameterError, RecinetError
 
 from . import figures, ids, runtime, service
 from .jobs import progress_reporter
 
 __all__ = [
     "workspace", "on_upload", "render_pattern", "run_job", "on_graph_event", "show_result",
-    "on_try_model", "on_save", "on_export", "display_image",
+    "on_try_model", "on_save", "on_export", "display_image", "on_reference",
 ]
 
 _log = logging.getLogger("recinet.webapp")
@@ -133,6 +133,27 @@ def workspace(*, readonly: bool = False, image: dict | None = None, record: dict
             dcc.Input(id=ids.SUBSTRATE, type="text", value=substrate, placeholder="Pt(111) or hexagonal:2.775",
                       debounce=True, maxLength=120),
         ]),
+        html.Details(className="more", children=[
+            html.Summary("Reference image and calibration (optional)"),
+            html.Div(className="row", children=[
+                dcc.Upload(id=ids.REF_UPLOAD, className="upload small", max_size=-1, multiple=False,
+                           children=html.Div(["Drop a reference image (e.g. the clean substrate) or ",
+                                              html.A("choose one")])),
+            ]),
+            html.Div(className="row", children=[
+                html.Label("or a demo", htmlFor=ids.REF_DEMO),
+                dcc.Dropdown(id=ids.REF_DEMO, options=service.demo_choices(), placeholder="no reference",
+                             className="grow"),
+                html.Label("at (eV)", htmlFor=ids.REF_ENERGY),
+                dcc.Input(id=ids.REF_ENERGY, type="number", placeholder="eV", debounce=True),
+            ]),
+            html.Div(id=ids.REF_NOTE),
+            html.Div(className="row", children=[
+                html.Label("Screen calibration from", htmlFor=ids.CALIBRATION),
+                dcc.Dropdown(id=ids.CALIBRATION, options=_calibration_choices(), placeholder="fit it on this image",
+                             className="grow"),
+            ]),
+        ]),
         html.Div(className="row", children=[
             html.Button("Analyse", id=ids.RUN, className="primary"),
             html.Button("Stop", id=ids.CANCEL, disabled=True),
@@ -190,9 +211,24 @@ def workspace(*, readonly: bool = False, image: dict | None = None, record: dict
         dcc.Store(id=ids.RESULT, data=record),
         dcc.Store(id=ids.EDITS, data=edits),
         dcc.Store(id=ids.MODEL, data=None),
+        dcc.Store(id=ids.REFERENCE, data=None),
         dcc.Store(id=ids.SOURCE, data={"readonly": bool(readonly), "token": token}),
         left, right,
     ])
+
+
+def _calibration_choices() -> list[dict]:
+    """Saved analyses whose result carries a screen calibration, newest first."""
+    try:
+        saved = runtime.get_store().recent(40)
+    except Exception:  # noqa: BLE001 - a list of choices must never break the page
+        return []
+    out = []
+    for a in saved:
+        if service.calibration_of(a.result) is not None:
+            label = f"{a.sample_name or a.image_filename} · {a.created_at:%Y-%m-%d}"
+            out.append({"label": label[:80], "value": a.token})
+    return out
 
 
 # --------------------------------------------------------------------------- upload
@@ -241,6 +277,29 @@ def on_upload(contents, demo, filename, energy, substrate):
         raise
     except Exception as err:  # noqa: BLE001 - every failure becomes a message in the page
         return (*keep, no_update, no_update, no_update, _note(_fail(err)), None)
+
+
+def on_reference(contents, demo, filename, energy):
+    """A reference image (dropped or a demo) -> (reference meta, note, reference energy, contents)."""
+    trig, _ = _triggered()
+    try:
+        if trig == ids.REF_DEMO:
+            if not demo:
+                return None, None, no_update, None
+            raw, truth = service.demo_bytes(demo)
+            meta = _store_image(raw, demo)
+            e = service.demo_defaults(truth).get("energy_eV", energy)
+            return {"sha": meta["sha"], "filename": demo}, _note(f"Reference: {demo}.", "ok"), e, None
+        if contents is None:
+            raise PreventUpdate
+        name = str(filename or "reference")[:200]
+        raw = service.decode_upload(contents, name, max_bytes=runtime.get_settings().max_upload_bytes)
+        meta = _store_image(raw, name)
+        return {"sha": meta["sha"], "filename": name}, _note(f"Reference: {name}.", "ok"), no_update, None
+    except PreventUpdate:
+        raise
+    except Exception as err:  # noqa: BLE001
+        return None, _note(_fail(err)), no_update, None
 
 
 # --------------------------------------------------------------------------- the pattern
@@ -355,7 +414,8 @@ def edit_summary(edits, image):
 
 # --------------------------------------------------------------------------- analysis job
 
-def run_job(set_progress, n_clicks, edits, image, energy, substrate, source):
+def run_job(set_progress, n_clicks, edits, image, energy, substrate, source, reference=None, ref_energy=None,
+            calibration_token=None):
     """Background job: analyse the stored image with the parameters and edits -> (record, message)."""
     trig, _ = _triggered()
     if (source or {}).get("readonly") or not image:
@@ -370,13 +430,28 @@ def run_job(set_progress, n_clicks, edits, image, energy, substrate, source):
         e = service.check_energy(energy)
         service.check_substrate(substrate)
         data = service.image_array(image["sha"])
+        ref = ref_e = cal = None
+        if reference and reference.get("sha"):
+            ref = service.image_array(reference["sha"])
+            ref_e = service.check_energy(ref_energy if ref_energy not in (None, "") else e)
+        if calibration_token:
+            saved = runtime.get_store().get_analysis(calibration_token)
+            cal = service.calibration_of(saved.result if saved else None)
+            if cal is None:
+                raise ParameterError("The chosen calibration is no longer available; pick another or none.")
         set_progress(("5", "100"))
-        result = service.analyze(data, energy_eV=e, substrate=substrate.strip(), edits=ed,
+        result = service.analyze(data, energy_eV=e, substrate=substrate.strip(), edits=ed, reference=ref,
+                                 reference_energy_eV=ref_e, calibration=cal,
                                  progress=progress_reporter(set_progress, start=5, span=93))
         set_progress(("100", "100"))
     except Exception as err:  # noqa: BLE001
         return no_update, _note(_fail(err))
     params = {"energy_eV": e, "substrate": substrate.strip()}
+    if ref is not None:
+        params.update(reference_sha256=reference["sha"], reference_filename=reference.get("filename"),
+                      reference_energy_eV=ref_e)
+    if cal is not None:
+        params["calibration_from"] = calibration_token
     record = {"sha": image["sha"], "parameters": params, "edits": service.clean_edits(ed), "result": result}
     n = len(result.get("spots") or [])
     return record, _note(f"Analysed: {n} spots.", "ok")
@@ -629,6 +704,14 @@ callback(
 )(on_upload)
 
 callback(
+    Output(ids.REFERENCE, "data"), Output(ids.REF_NOTE, "children"), Output(ids.REF_ENERGY, "value"),
+    Output(ids.REF_UPLOAD, "contents"),
+    Input(ids.REF_UPLOAD, "contents"), Input(ids.REF_DEMO, "value"), State(ids.REF_UPLOAD, "filename"),
+    State(ids.REF_ENERGY, "value"),
+    prevent_initial_call=True,
+)(on_reference)
+
+callback(
     Output(ids.GRAPH, "figure"),
     Input(ids.IMAGE, "data"), Input(ids.RESULT, "data"), Input(ids.EDITS, "data"), Input(ids.MODEL, "data"),
     Input(ids.SCALE, "value"), Input(ids.GAMMA, "value"), Input(ids.CLIP, "value"), Input(ids.OVERLAYS, "value"),
@@ -648,6 +731,7 @@ callback(
     Output(ids.RESULT, "data"), Output(ids.MESSAGE, "children"),
     Input(ids.RUN, "n_clicks"), Input(ids.EDITS, "data"),
     State(ids.IMAGE, "data"), State(ids.ENERGY, "value"), State(ids.SUBSTRATE, "value"), State(ids.SOURCE, "data"),
+    State(ids.REFERENCE, "data"), State(ids.REF_ENERGY, "value"), State(ids.CALIBRATION, "value"),
     background=True,
     progress=[Output(ids.PROGRESS, "value"), Output(ids.PROGRESS, "max")],
     running=[
