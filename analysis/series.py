@@ -705,18 +705,32 @@ class _Windows:
 def _extract(frame: np.ndarray, rc: np.ndarray, half: int, mask: np.ndarray | None,
              saturation_level: float | None) -> _Windows:
     rows, cols = frame.shape
+    k = rc.shape[0]
+    w = 2 * half + 1
     centre = np.rint(rc).astype(np.int64)
-    off = np.arange(-half, half + 1)
-    rr = centre[:, 0, None] + off[None, :]
-    cc = centre[:, 1, None] + off[None, :]
-    inside = ((rr >= 0) & (rr < rows))[:, :, None] & ((cc >= 0) & (cc < cols))[:, None, :]
-    ri = np.clip(rr, 0, rows - 1)[:, :, None]
-    ci = np.clip(cc, 0, cols - 1)[:, None, :]
-    raw = frame[ri, ci]
-    data = np.where(inside, raw, 0).astype(np.float64)
-    usable = inside if mask is None else inside & mask[ri, ci]
+    r0, c0 = centre[:, 0] - half, centre[:, 1] - half
+    full = (r0 >= 0) & (c0 >= 0) & (r0 + w <= rows) & (c0 + w <= cols)
+    raw = np.zeros((k, w, w), dtype=frame.dtype)
+    inside = np.ones((k, w, w), dtype=bool)
+    usable = np.ones((k, w, w), dtype=bool)
+    for i in np.flatnonzero(full):  # plain slices: much cheaper than a fancy-index gather
+        raw[i] = frame[r0[i]:r0[i] + w, c0[i]:c0[i] + w]
+        if mask is not None:
+            usable[i] = mask[r0[i]:r0[i] + w, c0[i]:c0[i] + w]
+    part = np.flatnonzero(~full)
+    if part.size:
+        off = np.arange(w)
+        rr = r0[part, None] + off[None, :]
+        cc = c0[part, None] + off[None, :]
+        ins = ((rr >= 0) & (rr < rows))[:, :, None] & ((cc >= 0) & (cc < cols))[:, None, :]
+        ri = np.clip(rr, 0, rows - 1)[:, :, None]
+        ci = np.clip(cc, 0, cols - 1)[:, None, :]
+        raw[part] = np.where(ins, frame[ri, ci], 0)
+        inside[part] = ins
+        usable[part] = ins if mask is None else ins & mask[ri, ci]
+    data = raw.astype(np.float64)
     sat = (inside & (raw >= saturation_level)) if saturation_level is not None else np.zeros_like(inside)
-    return _Windows(data, inside, usable, sat, centre[:, 0] - half, centre[:, 1] - half)
+    return _Windows(data, inside, usable, sat, r0, c0)
 
 
 def _local(win: _Windows, rc: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -728,20 +742,25 @@ def _local(win: _Windows, rc: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _robust(values: np.ndarray, select: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Per-window median, robust σ (1.4826 MAD) and count of the selected pixels."""
-    k = values.shape[0]
-    v = np.where(select, values, np.nan).reshape(k, -1)
-    n = select.reshape(k, -1).sum(axis=1)
-    with np.errstate(all="ignore"):
-        import warnings
+    """Per-window clipped mean, clipped standard deviation and count of the selected pixels.
 
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", RuntimeWarning)
-            med = np.nanmedian(v, axis=1)
-            mad = np.nanmedian(np.abs(v - med[:, None]), axis=1)
-    med = np.where(n > 0, med, 0.0)
-    sig = np.where(n > 0, 1.4826 * mad, np.inf)
-    return med, sig, n
+    Three passes of a 3σ clip (pixels of neighbouring spots and hot pixels drop out).
+    """
+    k = values.shape[0]
+    v = values.reshape(k, -1)
+    sel = select.reshape(k, -1)
+    keep = sel
+    mean = np.zeros(k)
+    sd = np.full(k, np.inf)
+    for _ in range(3):
+        n = keep.sum(axis=1)
+        nn = np.maximum(n, 1)
+        mean = np.where(keep, v, 0.0).sum(axis=1) / nn
+        dev = np.where(keep, v - mean[:, None], 0.0)
+        sd = np.sqrt((dev * dev).sum(axis=1) / np.maximum(n - 1, 1))
+        keep = sel & (np.abs(v - mean[:, None]) <= 3.0 * sd[:, None] + 1e-12)
+    n = sel.sum(axis=1)
+    return np.where(n > 0, mean, 0.0), np.where(n > 1, sd, np.inf), n
 
 
 def _refine(win: _Windows, rc_pred: np.ndarray, search_px: np.ndarray, radius_px: float,
@@ -753,35 +772,50 @@ def _refine(win: _Windows, rc_pred: np.ndarray, search_px: np.ndarray, radius_px
     """
     k, w, _ = win.data.shape
     h = win.half
-    dr0, dc0 = _local(win, rc_pred)
-    d2_pred = dr0 * dr0 + dc0 * dc0
-    ring = (d2_pred >= (h - 1.5) ** 2) & win.usable
-    bg, noise, _ = _robust(win.data, ring)
+    yy, xx = np.divmod(np.arange(w * w), w)
+    ring = np.flatnonzero((yy - h) ** 2 + (xx - h) ** 2 >= (h - 1.5) ** 2)  # border of the window
+    bg, noise, _ = _robust(win.data.reshape(k, -1)[:, ring], win.usable.reshape(k, -1)[:, ring])
     noise = np.maximum(noise, 1e-6)
-    v = np.where(win.usable, win.data - bg[:, None, None], 0.0)
-    p = np.pad(v, ((0, 0), (1, 1), (1, 1)))
-    box = sum(p[:, i:i + w, j:j + w] for i in range(3) for j in range(3))
-    cand = win.usable & (d2_pred <= (search_px[:, None, None]) ** 2)
+    # peak search: 3×3 box sums in the central (2s+1)² part of the window only
+    s = min(int(math.ceil(float(np.max(search_px, initial=0.0)))) + 1, h - 1)
+    lo, hi = h - s - 1, h + s + 2
+    v = np.where(win.usable[:, lo:hi, lo:hi], win.data[:, lo:hi, lo:hi] - bg[:, None, None], 0.0)
+    n = 2 * s + 1
+    box = sum(v[:, i:i + n, j:j + n] for i in range(3) for j in range(3))
+    off_s = np.arange(h - s, h + s + 1, dtype=np.float64)
+    br = (win.row0[:, None] + off_s[None, :] - rc_pred[:, 0, None])[:, :, None]
+    bc = (win.col0[:, None] + off_s[None, :] - rc_pred[:, 1, None])[:, None, :]
+    cand = win.usable[:, h - s:h + s + 1, h - s:h + s + 1] & (br * br + bc * bc <= (search_px[:, None, None]) ** 2)
     score = np.where(cand, box, -np.inf).reshape(k, -1)
     best = np.argmax(score, axis=1)
     snr = score[np.arange(k), best] / (3.0 * noise)
     snr = np.where(np.isfinite(snr), snr, 0.0)
-    off = np.arange(w, dtype=np.float64)
-    c = np.column_stack([win.row0 + best // w, win.col0 + best % w]).astype(np.float64)
-    rows = (win.row0[:, None] + off[None, :])[:, :, None]
-    cols = (win.col0[:, None] + off[None, :])[:, None, :]
-    pos = np.clip(v, 0.0, None)
+    pr, pc = h - s + best // n, h - s + best % n  # peak pixel, window indices
+    # centroid in a small box around the peak (indices clipped to the window)
+    b = int(math.ceil(radius_px)) + 1
+    ob = np.arange(-b, b + 1)
+    ri = pr[:, None] + ob[None, :]
+    ci = pc[:, None] + ob[None, :]
+    okr, okc = (ri >= 0) & (ri < w), (ci >= 0) & (ci < w)
+    ri, ci = np.clip(ri, 0, w - 1), np.clip(ci, 0, w - 1)
+    kk = np.arange(k)[:, None, None]
+    sub = win.data[kk, ri[:, :, None], ci[:, None, :]] - bg[:, None, None]
+    good_px = win.usable[kk, ri[:, :, None], ci[:, None, :]] & okr[:, :, None] & okc[:, None, :]
+    pos = np.where(good_px, np.clip(sub, 0.0, None), 0.0)
+    rows = (win.row0[:, None] + ri).astype(np.float64)[:, :, None]
+    cols = (win.col0[:, None] + ci).astype(np.float64)[:, None, :]
+    c = np.column_stack([win.row0 + pr, win.col0 + pc]).astype(np.float64)
     sigma = np.full(k, np.nan)
     for it in range(3):
         dr, dc = rows - c[:, 0, None, None], cols - c[:, 1, None, None]
         d2 = dr * dr + dc * dc
         wgt = pos * (d2 <= radius_px * radius_px)
-        s = wgt.sum(axis=(1, 2))
-        good = s > 0
+        tot = wgt.sum(axis=(1, 2))
+        good = tot > 0
         with np.errstate(invalid="ignore", divide="ignore"):
-            new = np.column_stack([(wgt * rows).sum(axis=(1, 2)) / s, (wgt * cols).sum(axis=(1, 2)) / s])
+            new = np.column_stack([(wgt * rows).sum(axis=(1, 2)) / tot, (wgt * cols).sum(axis=(1, 2)) / tot])
             if it == 2:
-                m2 = (wgt * d2).sum(axis=(1, 2)) / s / 2.0
+                m2 = (wgt * d2).sum(axis=(1, 2)) / tot / 2.0
                 sigma = np.where(good & (snr > 20), np.sqrt(np.maximum(m2, 0.0)), np.nan)
         c = np.where(good[:, None], new, c)
     shift = np.hypot(c[:, 0] - rc_pred[:, 0], c[:, 1] - rc_pred[:, 1])
@@ -827,42 +861,55 @@ class SpotIntegrals:
 
 def _integrate(win: _Windows, rc: np.ndarray, *, radius_px: float, annulus_px: tuple[float, float],
                background: str, method: str, spot_sigma_px: float | None, gain: float) -> SpotIntegrals:
-    k = win.data.shape[0]
+    k, w, _ = win.data.shape
+    h = win.half
     r_in, r_out = annulus_px
-    dr, dc = _local(win, rc)
+    # Work on the disk of window pixels that can matter (the window centre is within
+    # 1.5 px of `rc`), flattened to (K, n).
+    yy, xx = np.divmod(np.arange(w * w), w)
+    sup = np.flatnonzero((yy - h) ** 2 + (xx - h) ** 2 <= (r_out + 1.5) ** 2)
+    data = win.data.reshape(k, -1)[:, sup]
+    inside = win.inside.reshape(k, -1)[:, sup]
+    usable = win.usable.reshape(k, -1)[:, sup]
+    saturated = win.saturated.reshape(k, -1)[:, sup]
+    dr = (win.row0[:, None] + yy[sup][None, :]) - rc[:, 0, None]
+    dc = (win.col0[:, None] + xx[sup][None, :]) - rc[:, 1, None]
     d2 = dr * dr + dc * dc
     ap = d2 <= radius_px * radius_px
     ann = (d2 >= r_in * r_in) & (d2 <= r_out * r_out)
     flags = np.zeros(k, dtype=np.uint8)
-    flags[np.any(ap & ~win.inside, axis=(1, 2))] |= FLAG_OFF_SCREEN
-    flags[np.any(ap & win.inside & ~win.usable, axis=(1, 2))] |= FLAG_MASKED
-    flags[np.any(ap & win.saturated, axis=(1, 2))] |= FLAG_SATURATED
-    sel = ann & win.usable
-    med, rs, n_ann = _robust(win.data, sel)
-    keep = sel & (np.abs(win.data - med[:, None, None]) <= 4.0 * rs[:, None, None] + 1e-9)
+    flags[np.any(ap & ~inside, axis=1)] |= FLAG_OFF_SCREEN
+    flags[np.any(ap & inside & ~usable, axis=1)] |= FLAG_MASKED
+    flags[np.any(ap & saturated, axis=1)] |= FLAG_SATURATED
+    sel = ann & usable
+    med, rs, _ = _robust(data, sel)
+    keep = sel & (np.abs(data - med[:, None]) <= 3.0 * rs[:, None] + 1e-9)
     # background model: constant (annulus) or plane, least squares on the kept pixels
     scale = max(r_out, 1.0)
-    x1, x2 = np.broadcast_to(dc / scale, d2.shape), np.broadcast_to(dr / scale, d2.shape)
     one = np.ones_like(d2)
-    basis = [one] if background == "annulus" else [one, x1, x2]
-    X = np.stack(basis, axis=-1)  # (K, w, w, P)
+    basis = [one] if background == "annulus" else [one, dc / scale, dr / scale]
+    X = np.stack(basis, axis=-1)  # (K, n, P)
     wk = keep.astype(np.float64)
-    nmat = np.einsum("kijp,kijq,kij->kpq", X, X, wk)
-    rhs = np.einsum("kijp,kij,kij->kp", X, win.data, wk)
     p_dim = len(basis)
-    n_keep = wk.sum(axis=(1, 2))
+    n_keep = wk.sum(axis=1)
     enough = n_keep >= max(6, 2 * p_dim)
+    if p_dim == 1:
+        nmat = n_keep[:, None, None].copy()
+        rhs = (data * wk).sum(axis=1)[:, None]
+    else:
+        nmat = np.einsum("knp,knq,kn->kpq", X, X, wk)
+        rhs = np.einsum("knp,kn->kp", X, data * wk)
     nmat = np.where(enough[:, None, None], nmat, np.eye(p_dim)[None])
     ninv = np.linalg.inv(nmat)
     coef = np.einsum("kpq,kq->kp", ninv, rhs)
-    bg_model = np.einsum("kijp,kp->kij", X, coef)
-    resid = (win.data - bg_model) * wk
-    s2 = (resid * resid).sum(axis=(1, 2)) / np.maximum(n_keep - p_dim, 1)
-    apu = ap & win.inside
-    n_ap = apu.sum(axis=(1, 2))
+    bg_model = coef[:, :1] if p_dim == 1 else np.einsum("knp,kp->kn", X, coef)
+    resid = (data - bg_model) * wk
+    s2 = (resid * resid).sum(axis=1) / np.maximum(n_keep - p_dim, 1)
+    apu = ap & inside
+    n_ap = apu.sum(axis=1)
     if method == "aperture":
-        inten = ((win.data - bg_model) * apu).sum(axis=(1, 2))
-        u = np.einsum("kijp,kij->kp", X, apu.astype(np.float64))
+        inten = ((data - bg_model) * apu).sum(axis=1)
+        u = np.einsum("knp,kn->kp", X, apu.astype(np.float64))
         var_bg = s2 * np.einsum("kp,kpq,kq->k", u, ninv, u)
         var = gain * np.maximum(inten, 0.0) + n_ap * s2 + var_bg
     else:
@@ -870,16 +917,16 @@ def _integrate(win: _Windows, rc: np.ndarray, *, radius_px: float, annulus_px: t
             raise ParameterError(f"The profile fit needs a spot width `spot_sigma_px` > 0, got {spot_sigma_px!r}.")
         sg = float(spot_sigma_px)
         gauss = np.exp(-d2 / (2.0 * sg * sg)) / (2.0 * math.pi * sg * sg)
-        fit_px = (d2 <= r_out * r_out) & win.usable & (ap | keep)
+        fit_px = (d2 <= r_out * r_out) & usable & (ap | keep)
         Xf = np.concatenate([gauss[..., None], X], axis=-1)
-        wts = fit_px / np.maximum(s2, 1e-12)[:, None, None]
+        wts = fit_px / np.maximum(s2, 1e-12)[:, None]
         for _ in range(2):
-            nf = np.einsum("kijp,kijq,kij->kpq", Xf, Xf, wts)
+            nf = np.einsum("knp,knq,kn->kpq", Xf, Xf, wts)
             nf = np.where(enough[:, None, None], nf, np.eye(p_dim + 1)[None])
             nfi = np.linalg.inv(nf)
-            cf = np.einsum("kpq,kq->kp", nfi, np.einsum("kijp,kij,kij->kp", Xf, win.data, wts))
-            sig_model = np.maximum(cf[:, 0, None, None] * gauss, 0.0)
-            wts = fit_px / (np.maximum(s2, 1e-12)[:, None, None] + gain * sig_model)
+            cf = np.einsum("kpq,kq->kp", nfi, np.einsum("knp,kn->kp", Xf, data * wts))
+            sig_model = np.maximum(cf[:, 0, None] * gauss, 0.0)
+            wts = fit_px / (np.maximum(s2, 1e-12)[:, None] + gain * sig_model)
         inten = cf[:, 0]
         var = nfi[:, 0, 0]
         coef = cf[:, 1:]
@@ -927,7 +974,7 @@ def integrate_spots(frame: np.ndarray, xy_px, *, radius_px: float = 5.0, annulus
     annulus_px : (inner, outer), keyword-only
         Background annulus; default from `radius_px` (about three times the aperture area).
     background : {"annulus", "plane"}, keyword-only
-        Robust mean of the annulus (outliers beyond 4σ dropped), or a plane fitted to it.
+        Robust mean of the annulus (outliers beyond 3σ dropped), or a plane fitted to it.
     method : {"aperture", "profile"}, keyword-only
         Background-subtracted aperture sum, or the amplitude of a fixed-width Gaussian
         (σ = `spot_sigma_px`) fitted together with the background model by weighted
