@@ -1,0 +1,1100 @@
+"""From measured spots to surface nets: pattern centre, substrate reciprocal net
+through the camera model, fractional indices, overlayer matrices and domains.
+
+Conventions: reciprocal nets crystallographic (Å⁻¹, no 2π); spot positions at
+this module's edges are (x, y) pixels, x right, y down; a real-space
+superstructure matrix M has ``overlayer = M @ substrate`` and the beams of a
+domain with matrix M are ``hk = n @ inv(M).T`` (n integer) in substrate units;
+a substrate point-group operation W acts on beam indices as ``hk @ inv(W).T``.
+
+The overlayer score (stated, used for ranking)::
+
+    score = E − U − 0.5·A − 1.0·(D − 1) − 0.5·|log2 det M|  (+ intensity term)
+
+E: fractional spots explained, U: fractional spots unexplained, A: predicted
+fractional spots absent inside the region where spots could be seen, D: domains
+used. When two models predict the same spots (e.g. p(2×2) and three (2×1)
+domains on a hexagonal net), only intensities can tell them apart: a multi-
+domain model gains when letting each domain have its own population makes
+the intensities of symmetry-equivalent beams agree clearly better (variance
+ratio test); otherwise the simpler model wins and both are listed.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+from dataclasses import dataclass, field
+from fractions import Fraction
+
+import numpy as np
+from scipy.optimize import least_squares
+from scipy.spatial import cKDTree
+
+from .errors import FitError, NetError, ParameterError
+from .nets import Net2D, classify_net, point_group, reciprocal
+from .optics import ScreenGeometry, local_jacobian, momentum_to_pixels, pixels_to_momentum, wavelength_A
+from .superstructure import (
+    classify_superstructure,
+    coverage,
+    hermite_normal_form,
+    nice_matrix,
+    overlayer_net,
+    same_lattice,
+    wood_notation,
+)
+
+__all__ = [
+    "center_from_pairs",
+    "SubstrateFit",
+    "fit_substrate",
+    "fractional_indices",
+    "OverlayerModel",
+    "find_overlayers",
+    "evaluate_model",
+    "model_from_matrix",
+]
+
+_ACCEPTANCE_PRIOR_DEG = 52.0  # screen half-angle, common practice (≈ 50–55°)
+_DISTORTION_PRIOR = 0.2  # R/L used only to turn the screen radius into a scale prior
+_SCALE_PRIOR_SIGMA = 0.25  # relative (log) width of that prior
+
+
+# --------------------------------------------------------------------------- centre
+
+def center_from_pairs(xy_px: np.ndarray, *, weights: np.ndarray | None = None, tol_px: float = 2.0,
+                      guess: tuple[float, float] | None = None, max_spots: int = 250
+                      ) -> tuple[np.ndarray, np.ndarray, int]:
+    """Pattern centre from pairs of spots symmetric about it (g and −g).
+
+    Every pair's midpoint votes; the densest cluster of midpoints (within
+    `tol_px`) is the centre, then refined as the weighted mean of its
+    members.
+
+    Parameters
+    ----------
+    xy_px : (K, 2) ndarray of float
+        Spot centres (x, y), pixels.
+    weights : (K,) ndarray, optional
+        Spot weights (e.g. √intensity); brighter pairs count more.
+    tol_px : float
+        Cluster radius, pixels.
+    guess : (x, y), optional
+        Prefer the cluster nearest this point when two are equally dense.
+
+    Returns
+    -------
+    center : (2,) ndarray of float64
+        (x, y) pixels.
+    sigma : (2,) ndarray of float64
+        Standard error of the centre, pixels.
+    n_pairs : int
+        Pairs that agree with it.
+
+    Raises
+    ------
+    FitError
+        Fewer than two symmetric pairs.
+
+    Examples
+    --------
+    >>> pts = np.array([[110.0, 100], [90, 100], [100, 120], [100, 80], [130, 130]])
+    >>> c, s, n = center_from_pairs(pts)
+    >>> print(np.round(c, 3).tolist(), n)
+    [100.0, 100.0] 2
+    """
+    p = np.asarray(xy_px, dtype=np.float64).reshape(-1, 2)
+    w = np.ones(len(p)) if weights is None else np.asarray(weights, dtype=np.float64).reshape(-1)
+    if len(p) > max_spots:
+        keep = np.argsort(-w)[:max_spots]
+        p, w = p[keep], w[keep]
+    if len(p) < 4:
+        raise FitError(f"Need at least 4 spots to find the pattern centre from symmetric pairs, got {len(p)}.")
+    i, j = np.triu_indices(len(p), 1)
+    mid = 0.5 * (p[i] + p[j])
+    mw = np.sqrt(w[i] * w[j])
+    tree = cKDTree(mid)
+    counts = np.array([mw[nb].sum() for nb in tree.query_ball_point(mid, tol_px)])
+    if guess is not None:
+        dist = np.hypot(*(mid - np.asarray(guess, dtype=np.float64)).T)
+        counts = counts - 1e-6 * dist
+    best = int(np.argmax(counts))
+    members = tree.query_ball_point(mid[best], tol_px)
+    if len(members) < 2:
+        raise FitError("No two pairs of spots are symmetric about one point: cannot find the pattern centre.")
+    for _ in range(3):  # re-centre the cluster
+        c = np.average(mid[members], axis=0, weights=mw[members])
+        members = tree.query_ball_point(c, tol_px)
+    c = np.average(mid[members], axis=0, weights=mw[members])
+    spread = np.std(mid[members], axis=0, ddof=1) if len(members) > 1 else np.full(2, tol_px)
+    return c, spread / math.sqrt(len(members)), len(members)
+
+
+# --------------------------------------------------------------------------- substrate
+
+@dataclass(frozen=True, eq=False)
+class SubstrateFit:
+    """The substrate reciprocal net found in an image, with the camera model.
+
+    Attributes
+    ----------
+    geometry : ScreenGeometry
+        Fitted camera model (centre, scale, distortion, rotation).
+    reciprocal_net : Net2D
+        Substrate reciprocal basis (a1*, a2*) in the surface frame of
+        `geometry`, Å⁻¹, no 2π.
+    net : Net2D
+        Real-space substrate net (Å), the inverse of `reciprocal_net`.
+    net_type : str
+        One of the five plane nets.
+    a_star_px : (2, 2) ndarray
+        Rows a1*, a2* as (x, y) pixel displacements at the pattern centre
+        (the local derivative of the camera model).
+    hk : (K, 2) ndarray
+        Fractional indices of every input spot in this basis.
+    integer : (K,) ndarray of bool
+        Spots indexed as integer-order substrate beams.
+    residual_px : float
+        RMS distance between integer spots and the model, pixels.
+    sigma : dict
+        One-σ uncertainties from the fit covariance (keys ``a_A``, ``b_A``,
+        ``gamma_deg``, ``center_x_px``, ``center_y_px``, ``scale_px``), NaN
+        for what was held fixed.
+    scale_source : str
+        ``"hint"`` (lattice constants assumed from the substrate given),
+        ``"calibration"`` (camera scale known; lattice constants measured).
+    score, confidence : float
+        Ranking score and its share among the candidates (0..1).
+    completeness : float
+        Fraction of the predicted integer beams inside the seen region that were found.
+    """
+
+    geometry: ScreenGeometry
+    reciprocal_net: Net2D
+    net: Net2D
+    net_type: str
+    a_star_px: np.ndarray
+    hk: np.ndarray
+    integer: np.ndarray
+    residual_px: float
+    sigma: dict
+    scale_source: str
+    score: float = 0.0
+    confidence: float = 1.0
+    completeness: float = 0.0
+    notes: tuple = ()
+
+
+def _screen_xy(g: np.ndarray, energy_eV: float, geom: ScreenGeometry) -> np.ndarray:
+    xy, _ = momentum_to_pixels(g, energy_eV, geom)
+    return xy
+
+
+def _int_points(a_star: np.ndarray, g_max: float) -> np.ndarray:
+    """Integer (h, k) with |h a1* + k a2*| ≤ g_max, (K, 2) float."""
+    area = abs(np.linalg.det(a_star))
+    hmax = int(math.ceil(g_max * np.linalg.norm(a_star[1]) / area)) + 1
+    kmax = int(math.ceil(g_max * np.linalg.norm(a_star[0]) / area)) + 1
+    h, k = np.meshgrid(np.arange(-hmax, hmax + 1), np.arange(-kmax, kmax + 1), indexing="ij")
+    hk = np.column_stack([h.ravel(), k.ravel()]).astype(np.float64)
+    g = hk @ a_star
+    return hk[np.hypot(g[:, 0], g[:, 1]) <= g_max]
+
+
+def _match(pred: np.ndarray, obs_tree: cKDTree, tol: float) -> tuple[np.ndarray, np.ndarray]:
+    """Nearest observed spot to each prediction within tol: (pred index, obs index), one-to-one."""
+    ok = np.all(np.isfinite(pred), axis=1)
+    if not ok.any():
+        return np.zeros(0, int), np.zeros(0, int)
+    d, j = obs_tree.query(pred[ok], distance_upper_bound=tol)
+    idx = np.flatnonzero(ok)
+    hit = np.isfinite(d)
+    pi, oj, dd = idx[hit], j[hit], d[hit]
+    order = np.argsort(dd)  # one-to-one: closest pairs first
+    used_o, used_p, keep = set(), set(), []
+    for t in order:
+        if oj[t] in used_o or pi[t] in used_p:
+            continue
+        used_o.add(oj[t])
+        used_p.add(pi[t])
+        keep.append(t)
+    keep = np.array(keep, dtype=int)
+    return pi[keep], oj[keep]
+
+
+def _seen(xy: np.ndarray, valid: np.ndarray | None, center: np.ndarray, r_max: float, r_min: float) -> np.ndarray:
+    """Which predicted pixel positions lie where a spot could have been seen."""
+    ok = np.all(np.isfinite(xy), axis=1)
+    r = np.hypot(xy[:, 0] - center[0], xy[:, 1] - center[1])
+    ok &= (r <= r_max) & (r >= r_min)
+    if valid is not None:
+        rows, cols = valid.shape
+        safe = np.where(np.isfinite(xy), xy, -1.0)
+        ok &= (safe[:, 0] >= 0) & (safe[:, 0] <= cols - 1) & (safe[:, 1] >= 0) & (safe[:, 1] <= rows - 1)
+        ci = np.rint(safe[ok, 0]).astype(int)
+        ri = np.rint(safe[ok, 1]).astype(int)
+        ok[ok] &= valid[ri, ci]
+    return ok
+
+
+def _scale_prior(screen_radius_px: float | None) -> float | None:
+    if screen_radius_px is None or not (screen_radius_px > 0):
+        return None
+    st = math.sin(math.radians(_ACCEPTANCE_PRIOR_DEG))
+    ct = math.cos(math.radians(_ACCEPTANCE_PRIOR_DEG))
+    d = _DISTORTION_PRIOR
+    return float(screen_radius_px / (st * (1 - d) / (1 - d * ct)))
+
+
+def _hint_variants(hint: Net2D) -> list[np.ndarray]:
+    """Reciprocal bases to try: the hint, plus its mirror image when the net has no mirror."""
+    a_star = reciprocal(hint).vectors
+    out = [a_star]
+    if classify_net(hint) == "oblique":
+        out.append(a_star @ np.diag([1.0, -1.0]))
+    return out
+
+
+def fit_substrate(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity: np.ndarray | None = None,
+                  geometry: ScreenGeometry | None = None, center_px=None, screen_radius_px: float | None = None,
+                  valid_mask: np.ndarray | None = None, fit_lattice: bool | None = None,
+                  tol_px: float = 2.5, n_candidates: int = 12, max_results: int = 3) -> list[SubstrateFit]:
+    """Find the substrate reciprocal net among the spots, ranked.
+
+    Parameters
+    ----------
+    xy_px : (K, 2) ndarray
+        Spot centres (x, y), pixels.
+    energy_eV : float
+    hint : Net2D
+        The substrate's (1×1) real-space net (from :func:`analysis.nets.parse_substrate`).
+    intensity : (K,) ndarray, optional
+        Integrated intensities; integer-order beams are usually the brightest.
+    geometry : ScreenGeometry, optional
+        A known camera model (from a calibration or a reference image). Its
+        scale and distortion are then kept and the lattice constants are
+        measured; without it they are taken from `hint` and the camera scale
+        is fitted.
+    center_px : (x, y), optional
+        The pattern centre if known; otherwise from symmetric pairs.
+    screen_radius_px : float, optional
+        Radius of the visible screen; gives a scale prior when no geometry is known.
+    valid_mask : (M, N) ndarray of bool, optional
+        Pixels where a spot could be seen (screen minus gun shadow).
+    fit_lattice : bool, optional
+        Fit a*, b*, γ* freely (default: True when `geometry` is given).
+    tol_px : float
+        Final matching tolerance, pixels.
+
+    Returns
+    -------
+    list of SubstrateFit
+        Best first; several when readings compete (each with its confidence).
+
+    Raises
+    ------
+    FitError
+        Too few spots, or no reading of the hint's net fits.
+    """
+    xy = np.asarray(xy_px, dtype=np.float64).reshape(-1, 2)
+    if len(xy) < 3:
+        raise FitError(f"Need at least 3 spots to fit the substrate net, got {len(xy)}.")
+    inten = np.ones(len(xy)) if intensity is None else np.clip(np.asarray(intensity, dtype=np.float64), 1e-9, None)
+    if center_px is not None:
+        center = np.asarray(center_px, dtype=np.float64)
+    elif geometry is not None:
+        center = np.array(geometry.center_px)
+    else:
+        center, _, _ = center_from_pairs(xy, weights=np.sqrt(inten), tol_px=max(tol_px, 2.0))
+    fit_lattice = (geometry is not None) if fit_lattice is None else fit_lattice
+    lam = wavelength_A(energy_eV)
+    r = np.hypot(xy[:, 0] - center[0], xy[:, 1] - center[1])
+    r_max = float(r.max()) * 1.03 + tol_px
+    r_min = 0.0
+    tree = cKDTree(xy)
+    prior = geometry.scale_px if geometry is not None else _scale_prior(screen_radius_px)
+    prior_sigma = 0.03 if geometry is not None else _SCALE_PRIOR_SIGMA
+
+    order = [i for i in np.argsort(r) if r[i] > 3 * tol_px]
+    near = order[:n_candidates]
+    bright = sorted(order, key=lambda i: -inten[i])[:n_candidates]
+    cands = list(dict.fromkeys(near + bright))
+    fits: list[SubstrateFit] = []
+    tried: list[np.ndarray] = []
+    for a_star in _hint_variants(hint):
+        short = _distinct_short_vectors(a_star)
+        for i in cands:
+            v = np.array([xy[i, 0] - center[0], center[1] - xy[i, 1]])  # y up
+            for e in short:
+                start = _similarity_basis(a_star, e, v)
+                if any(same_lattice(start, t, tol=0.08) for t in tried):
+                    continue  # a symmetry-equivalent start was tried already
+                tried.append(start)
+                f = _try_substrate(xy, tree, inten, energy_eV, a_star, e, v, center, geometry, lam, tol_px,
+                                   r_max, r_min, valid_mask, prior, prior_sigma, fit_lattice, hint)
+                if f is not None and not any(_same_reading(f, g) for g in fits):
+                    fits.append(f)
+    if not fits:
+        raise FitError(f"No reading of the {classify_net(hint)} substrate net "
+                       f"({hint.label or 'given'}) fits the {len(xy)} spots.")
+    fits.sort(key=lambda f: -f.score)
+    if geometry is None:
+        fits[0] = _distortion_from_fractions(xy, energy_eV, fits[0], tol_px)
+    scores = np.array([f.score for f in fits])
+    conf = np.exp(scores - scores.max())
+    conf /= conf.sum()
+    return [dataclasses.replace(f, confidence=float(c)) for f, c in zip(fits, conf)][:max_results]
+
+
+def _distinct_short_vectors(a_star: np.ndarray) -> list[np.ndarray]:
+    """a1*, a2*, a1* ± a2*, dropping ones as long as an earlier one (equivalent by symmetry)."""
+    out, lengths = [], []
+    for e in (a_star[0], a_star[1], a_star[0] + a_star[1], a_star[0] - a_star[1]):
+        ln = float(np.hypot(*e))
+        if all(abs(ln - l0) > 1e-6 * ln for l0 in lengths):
+            out.append(e)
+            lengths.append(ln)
+    return out
+
+
+def _similarity_basis(a_star: np.ndarray, e: np.ndarray, v: np.ndarray) -> np.ndarray:
+    """The reciprocal basis turned and scaled so that beam e lands on the spot vector v (px, y up)."""
+    ang = math.atan2(v[1], v[0]) - math.atan2(e[1], e[0])
+    k = float(np.hypot(*v)) / float(np.hypot(*e))
+    c, s = math.cos(ang), math.sin(ang)
+    return k * a_star @ np.array([[c, s], [-s, c]])
+
+
+def _same_reading(f: SubstrateFit, g: SubstrateFit) -> bool:
+    return bool(same_lattice(f.a_star_px, g.a_star_px, tol=0.05)
+                and abs(f.geometry.center_x_px - g.geometry.center_x_px) < 3
+                and abs(f.geometry.center_y_px - g.geometry.center_y_px) < 3)
+
+
+def _try_substrate(xy, tree, inten, energy_eV, a_star, e, v, center, geometry, lam, tol_px, r_max, r_min,
+                   valid_mask, prior, prior_sigma, fit_lattice, hint):
+    """One reading: spot vector v (px, y up) is the beam e of the hint net."""
+    rot = math.degrees(math.atan2(v[1], v[0]) - math.atan2(e[1], e[0]))
+    k_px = float(np.hypot(*v)) / float(np.hypot(*e))  # px per Å⁻¹ at small angles
+    if geometry is None:
+        geom = ScreenGeometry(center[0], center[1], k_px / lam, distortion=0.0, rotation_deg=rot,
+                              acceptance_deg=89.0)
+        free_geo = ("center_x_px", "center_y_px", "scale_px", "rotation_deg", "distortion")
+    else:
+        geom = dataclasses.replace(geometry, center_x_px=float(center[0]), center_y_px=float(center[1]),
+                                   rotation_deg=rot, acceptance_deg=89.0)
+        # keep the calibration's scale unless the spot says it is off by a lot (then no match)
+        free_geo = ("center_x_px", "center_y_px", "rotation_deg")
+    g_max = math.sin(math.radians(85.0)) / lam
+    hk_all = _int_points(a_star, g_max)
+    g_all = hk_all @ a_star
+    vlen = float(np.hypot(*v))
+    nn = _nn_spacing(tree)  # dense patterns need tight matching from the start
+    wide = max(tol_px, min(0.12 * vlen, 0.35 * nn))
+    first = free_geo[:4] if geometry is None else free_geo
+    g_len = np.hypot(g_all[:, 0], g_all[:, 1]) * k_px / lam * lam  # predicted radii at small angles, px
+    by_r = np.argsort(g_len)
+    r_two = next((g_len[by_r[n]] for n in range(2, len(by_r))
+                  if np.linalg.matrix_rank(hk_all[by_r[: n + 1]]) == 2), 2 * vlen)
+    stages = [(max(tol_px, min(0.15 * vlen, 0.35 * nn)), max(1.25 * vlen, 1.1 * r_two), first),  # grow ring by ring
+              (wide, 1.8 * vlen, free_geo), (wide, 2.6 * vlen, free_geo),
+              (max(tol_px, min(0.06 * vlen, 0.3 * nn)), np.inf, free_geo), (tol_px, np.inf, free_geo)]
+    pi = oj = np.zeros(0, int)
+    lattice = a_star.copy()
+    for tol, rad, free in stages:
+        pred = _screen_xy(hk_all @ lattice, energy_eV, geom)
+        rr = np.hypot(pred[:, 0] - geom.center_x_px, pred[:, 1] - geom.center_y_px)
+        pred = np.where((rr <= min(rad, r_max))[:, None], pred, np.nan)
+        pi, oj = _match(pred, tree, tol)
+        if len(pi) < 2 or np.linalg.matrix_rank(hk_all[pi]) < 2:
+            return None
+        geom, lattice, _, _ = _refine(xy[oj], hk_all[pi], energy_eV, geom, lattice, free,
+                                      fit_lattice and rad == np.inf)
+    pred = _screen_xy(hk_all @ lattice, energy_eV, geom)
+    pi, oj = _match(pred, tree, tol_px)
+    if len(pi) < 3:
+        return None
+    geom, lattice, res, sig = _refine(xy[oj], hk_all[pi], energy_eV, geom, lattice, free_geo, fit_lattice)
+    seen = _seen(pred, valid_mask, np.array(geom.center_px), r_max, r_min)
+    n_pred = int(seen.sum())
+    completeness = len(pi) / max(n_pred, len(pi))
+    # scores
+    g_obs = pixels_to_momentum(xy, energy_eV, geom)
+    hk = g_obs @ np.linalg.inv(lattice)
+    integer = np.zeros(len(xy), bool)
+    integer[oj] = True
+    frac_hk = hk[~integer]
+    if len(frac_hk):
+        tol_hk = 3 * tol_px / (geom.scale_px * lam * float(np.min(np.linalg.norm(lattice, axis=1)) ** -1)) / 1.0
+        rational = np.array([_is_rational(h, 8, max(tol_hk, 0.02)) for h in frac_hk])
+        indexable = (len(pi) + rational.sum()) / len(xy)
+        d_logi = float(np.median(np.log(inten[integer])) - np.median(np.log(inten[~integer])))
+    else:
+        indexable, d_logi = 1.0, 0.0
+    score = 4.0 * completeness + 2.0 * indexable + math.tanh(d_logi)
+    if prior is not None:
+        z = math.log(geom.scale_px / prior) / prior_sigma
+        score -= 0.5 * z * z
+    score -= float(np.sqrt(np.mean(res**2))) / tol_px  # prefer the tighter fit
+    rec = Net2D(lattice)
+    net = Net2D(np.linalg.inv(lattice).T, label=hint.label)
+    jac = local_jacobian(energy_eV, geom)
+    a_star_px = lattice @ jac.T
+    notes = []
+    if geometry is None:
+        notes.append("lattice constants taken from the substrate given (camera scale fitted)")
+    return SubstrateFit(geometry=dataclasses.replace(geom, acceptance_deg=(geometry.acceptance_deg if geometry
+                                                                           else _ACCEPTANCE_PRIOR_DEG)),
+                        reciprocal_net=rec, net=net, net_type=classify_net(net, tol=2e-3), a_star_px=a_star_px,
+                        hk=hk, integer=integer, residual_px=float(np.sqrt(np.mean(np.sum(res**2, axis=1)))),
+                        sigma=sig, scale_source="calibration" if geometry is not None else "hint",
+                        score=float(score), completeness=float(completeness), notes=tuple(notes))
+
+
+def _rational_residual(hk: np.ndarray, a_star: np.ndarray, max_den: int = 8) -> np.ndarray:
+    """Distance (Å⁻¹) of each hk to the nearest fraction with denominator ≤ max_den."""
+    best = np.full(len(hk), np.inf)
+    for q in range(1, max_den + 1):
+        d = (hk - np.rint(hk * q) / q) @ a_star
+        best = np.minimum(best, np.hypot(d[:, 0], d[:, 1]))
+    return best
+
+
+def _distortion_from_fractions(xy: np.ndarray, energy_eV: float, fit: SubstrateFit, tol_px: float,
+                               grid=np.arange(0.0, 0.62, 0.02)) -> SubstrateFit:
+    """Fix R/L with the fractional spots when the integer spots sit at too few radii.
+
+    For each trial distortion the camera is refitted to the integer spots; the
+    one that puts the other spots closest to simple fractions (denominators
+    ≤ 8) wins. Kept only if it clearly improves on the integer-spot fit.
+    """
+    ii = np.flatnonzero(fit.integer)
+    frac = np.flatnonzero(~fit.integer)
+    if len(frac) < 4 or len(ii) < 3:
+        return fit
+    lat = fit.reciprocal_net.vectors
+    hk_int = np.rint(fit.hk[ii])
+    r_int = np.linalg.norm(hk_int @ lat, axis=1)
+    if r_int.max() / max(r_int.min(), 1e-12) > 1.6:
+        return fit  # several rings of integer spots fix the distortion themselves
+
+    def trial(d):
+        g0 = dataclasses.replace(fit.geometry, distortion=float(d))
+        g1, _, res, _ = _refine(xy[ii], hk_int, energy_eV, g0, lat, ("center_x_px", "center_y_px", "scale_px",
+                                                                     "rotation_deg"), False)
+        hk = pixels_to_momentum(xy, energy_eV, g1) @ np.linalg.inv(lat)
+        return float(np.median(_rational_residual(hk[frac], lat))), g1, hk
+
+    results = [trial(d) for d in grid]
+    k = int(np.argmin([r[0] for r in results]))
+    here = trial(fit.geometry.distortion)
+    if results[k][0] >= 0.7 * here[0]:
+        return fit
+    _, g1, hk = results[k]
+    integer = np.zeros(len(xy), bool)
+    integer[ii] = True
+    return dataclasses.replace(fit, geometry=g1, hk=hk, a_star_px=lat @ local_jacobian(energy_eV, g1).T,
+                               notes=fit.notes + (f"distortion R/L = {g1.distortion:.2f} set from the "
+                                                  "fractional-order spots",))
+
+
+def _nn_spacing(tree: cKDTree) -> float:
+    """Median nearest-neighbour distance between spots, pixels."""
+    if tree.n < 2:
+        return np.inf
+    d, _ = tree.query(tree.data, k=2)
+    return float(np.median(d[:, 1]))
+
+
+def _is_rational(hk: np.ndarray, max_den: int, tol: float) -> bool:
+    for q in range(1, max_den + 1):
+        if np.all(np.abs(hk * q - np.rint(hk * q)) <= tol * q):
+            return True
+    return False
+
+
+def _refine(xy, hk, energy_eV, geom, lattice, free, fit_lattice):
+    """Fit geometry (and optionally the reciprocal basis) to matched integer spots."""
+    base = geom.to_dict()
+    # with a free lattice its own orientation replaces the camera rotation
+    names = [n for n in free if not (fit_lattice and n == "rotation_deg")]
+    n_geo = len(names)
+    lat0 = lattice.ravel().copy()
+
+    def unpack(p):
+        d = dict(base)
+        for n, v in zip(names, p[:n_geo]):
+            d[n] = float(np.exp(v)) if n == "scale_px" else float(v)
+        lat = p[n_geo:].reshape(2, 2) if fit_lattice else lattice
+        return ScreenGeometry(**d), lat
+
+    p0 = [math.log(base[n]) if n == "scale_px" else base[n] for n in names]
+    lo = [0.0 if n == "distortion" else -np.inf for n in names]
+    hi = [0.9 if n == "distortion" else np.inf for n in names]
+    if fit_lattice:
+        p0 += list(lat0)
+        lo += [-np.inf] * 4
+        hi += [np.inf] * 4
+    p0 = np.clip(np.array(p0, dtype=float), np.array(lo) + 1e-12, np.array(hi) - 1e-12)
+
+    def resid(p):
+        g_, lat = unpack(p)
+        r = (_screen_xy(hk @ lat, energy_eV, g_) - xy).ravel()
+        return np.nan_to_num(r, nan=1e3)
+
+    if len(xy) * 2 <= len(p0):
+        return geom, lattice, np.zeros((len(xy), 2)), {}
+    sol = least_squares(resid, p0, bounds=(lo, hi), x_scale="jac", method="trf")
+    g_fit, lat = unpack(sol.x)
+    res = resid(sol.x).reshape(-1, 2)
+    dof = max(res.size - len(p0), 1)
+    s2 = float(np.sum(res**2)) / dof
+    sig = {}
+    try:
+        cov = np.linalg.pinv(sol.jac.T @ sol.jac) * s2
+        sd = np.sqrt(np.clip(np.diag(cov), 0, None))
+        for n, s in zip(names, sd[:n_geo]):
+            sig[n] = float(s * (g_fit.scale_px if n == "scale_px" else 1.0))
+        if fit_lattice:
+            sig.update(_lattice_sigma(lat, cov[n_geo:, n_geo:]))
+    except np.linalg.LinAlgError:  # pragma: no cover
+        pass
+    return g_fit, lat, res, sig
+
+
+def _lattice_sigma(lat: np.ndarray, cov: np.ndarray, n_mc: int = 400) -> dict:
+    """σ of a, b (Å), γ (deg) of the real net from the reciprocal basis covariance (Monte Carlo)."""
+    rng = np.random.default_rng(0)
+    try:
+        draws = rng.multivariate_normal(lat.ravel(), cov, size=n_mc, method="eigh")
+    except (ValueError, np.linalg.LinAlgError):  # pragma: no cover
+        return {}
+    vals = []
+    for d in draws:
+        real = np.linalg.inv(d.reshape(2, 2)).T
+        a, b = np.linalg.norm(real, axis=1)
+        g = math.degrees(math.acos(np.clip(real[0] @ real[1] / (a * b), -1, 1)))
+        vals.append((a, b, g))
+    s = np.std(np.array(vals), axis=0, ddof=1)
+    return {"a_A": float(s[0]), "b_A": float(s[1]), "gamma_deg": float(s[2])}
+
+
+def fractional_indices(xy_px: np.ndarray, energy_eV: float, fit: SubstrateFit) -> np.ndarray:
+    """(h, k) in the fitted substrate reciprocal basis for (x, y) pixel positions, (K, 2)."""
+    g = pixels_to_momentum(np.asarray(xy_px, dtype=np.float64).reshape(-1, 2), energy_eV, fit.geometry)
+    return g @ np.linalg.inv(fit.reciprocal_net.vectors)
+
+
+# --------------------------------------------------------------------------- overlayer
+
+@dataclass(frozen=True, eq=False)
+class OverlayerModel:
+    """One superstructure model for the fractional-order spots.
+
+    Attributes
+    ----------
+    matrix : (2, 2) ndarray
+        Real-space matrix of the first domain, substrate basis.
+    domains : list of (2, 2) ndarray
+        Every domain used (the first is `matrix`).
+    domain_ops : list of str
+        The substrate operation that makes each domain.
+    kind : str
+        none / commensurate / coincidence / incommensurate.
+    wood : str or None
+    wood_note : str
+    coverage : float
+        Adsorbates per substrate cell for one per overlayer cell.
+    explained, unexplained, absent : int
+        Fractional spots explained; fractional spots left unexplained;
+        predicted fractional spots absent where they could have been seen.
+    explained_by : (K,) ndarray of int
+        For every input spot, the domain that explains it (−1 none, −2 substrate).
+    score : float
+    """
+
+    matrix: np.ndarray
+    domains: list
+    domain_ops: list
+    kind: str
+    wood: str | None
+    wood_note: str
+    coverage: float
+    explained: int
+    unexplained: int
+    absent: int
+    explained_by: np.ndarray
+    score: float
+    total_domains: int = 1
+    notes: tuple = ()
+    details: dict = field(default_factory=dict)
+
+    @property
+    def n_domains(self) -> int:
+        return len(self.domains)
+
+
+def _snap_matrix(m: np.ndarray, tol: float, max_den: int) -> np.ndarray | None:
+    if np.all(np.abs(m - np.rint(m)) <= tol):
+        return np.rint(m) + 0.0
+    out = np.empty_like(m)
+    for idx, x in np.ndenumerate(m):
+        f = Fraction(float(x)).limit_denominator(max_den)
+        if abs(float(f) - x) > tol:
+            return None
+        out[idx] = float(f)
+    return out
+
+
+def _lattice_points(b_star_hk: np.ndarray, a_star: np.ndarray, g_max: float) -> np.ndarray:
+    """Points n @ B (hk units) of the lattice with basis rows B (hk), |g| ≤ g_max. (K, 2) hk."""
+    cart = b_star_hk @ a_star
+    area = abs(np.linalg.det(cart))
+    n1 = int(math.ceil(g_max * np.linalg.norm(cart[1]) / area)) + 1
+    n2 = int(math.ceil(g_max * np.linalg.norm(cart[0]) / area)) + 1
+    if (2 * n1 + 1) * (2 * n2 + 1) > 400_000:
+        raise FitError("The overlayer net is too fine to enumerate on this screen.")
+    a, b = np.meshgrid(np.arange(-n1, n1 + 1), np.arange(-n2, n2 + 1), indexing="ij")
+    n = np.column_stack([a.ravel(), b.ravel()]).astype(np.float64)
+    hk = n @ b_star_hk
+    g = hk @ a_star
+    return hk[np.hypot(g[:, 0], g[:, 1]) <= g_max]
+
+
+def _explained(hk: np.ndarray, m: np.ndarray, a_star: np.ndarray, tol_g: float) -> np.ndarray:
+    """Which spots lie on the reciprocal net of matrix m (within tol_g, Å⁻¹)."""
+    n = hk @ m.T  # hk = n @ inv(M).T  →  n = hk @ M.T
+    d = (hk - np.rint(n) @ np.linalg.inv(m).T) @ a_star
+    return np.hypot(d[:, 0], d[:, 1]) <= tol_g
+
+
+def _refine_matrix(hk: np.ndarray, m: np.ndarray, a_star: np.ndarray, tol_g: float) -> np.ndarray:
+    """Least-squares reciprocal basis of matrix m from the spots it explains."""
+    for _ in range(3):
+        ok = _explained(hk, m, a_star, tol_g)
+        n = np.rint(hk[ok] @ m.T)
+        if len(n) < 3 or np.linalg.matrix_rank(n) < 2:
+            return m
+        b_star, *_ = np.linalg.lstsq(n, hk[ok], rcond=None)  # hk ≈ n @ B*
+        if abs(np.linalg.det(b_star)) < 1e-9:
+            return m
+        m = np.linalg.inv(b_star).T
+    return m
+
+
+def _candidate_vectors(hk: np.ndarray, integer: np.ndarray, a_star: np.ndarray, tol_g: float,
+                       n_keep: int = 14) -> np.ndarray:
+    g = hk @ a_star
+    rad = np.hypot(g[:, 0], g[:, 1])
+    near = np.argsort(rad)[:30]
+    vecs = [hk[i] for i in near if not integer[i] and rad[i] > tol_g]
+    for a in range(len(near)):
+        for b in range(a + 1, len(near)):
+            d = hk[near[a]] - hk[near[b]]
+            vecs.append(d)
+    vecs += [np.array(v, float) for v in ((1, 0), (0, 1), (1, 1), (1, -1))]
+    vecs = np.array(vecs)
+    cart = vecs @ a_star
+    ln = np.hypot(cart[:, 0], cart[:, 1])
+    keep = ln > 2 * tol_g
+    vecs, cart, ln = vecs[keep], cart[keep], ln[keep]
+    order = np.argsort(ln, kind="stable")
+    out: list[np.ndarray] = []
+    out_c: list[np.ndarray] = []
+    for i in order:
+        c = cart[i]
+        if any(min(np.hypot(*(c - o)), np.hypot(*(c + o))) <= 1.5 * tol_g for o in out_c):
+            continue
+        # a vector that is a multiple of a kept one adds nothing
+        if any(abs(c[0] * o[1] - c[1] * o[0]) <= 1.5 * tol_g * np.hypot(*o) and
+               abs(round(float(c @ o / (o @ o))) - c @ o / (o @ o)) < 0.1 for o in out_c):
+            continue
+        out.append(vecs[i])
+        out_c.append(c)
+        if len(out) >= n_keep:
+            break
+    return np.array(out)
+
+
+def _domain_matrices(m: np.ndarray, ops) -> tuple[list[np.ndarray], list[str]]:
+    """Distinct domains M W (W in the substrate group), right-handed like M, with the op names."""
+    mats, names = [], []
+    for op in ops:
+        mw = m @ op.matrix
+        if np.linalg.det(mw) * np.linalg.det(m) < 0:
+            mw = mw[::-1].copy()
+        if any(same_lattice(mw, x, tol=1e-6) for x in mats):
+            continue
+        mats.append(mw)
+        names.append(op.name)
+    return mats, names
+
+
+@dataclass(frozen=True, eq=False)
+class _Context:
+    """What every model is scored against (computed once per pattern)."""
+
+    hk: np.ndarray
+    integer: np.ndarray
+    a_star: np.ndarray
+    geom: ScreenGeometry
+    energy_eV: float
+    tol_g: float
+    ops: list
+    tree: cKDTree
+    r_max: float
+    g_max: float
+    valid_mask: np.ndarray | None
+    intensity: np.ndarray | None
+    substrate: Net2D
+
+
+def _context(hk, integer, substrate_fit: SubstrateFit, energy_eV, intensity, valid_mask, tol_px) -> _Context:
+    hk = np.asarray(hk, dtype=np.float64).reshape(-1, 2)
+    geom = substrate_fit.geometry
+    a_star = substrate_fit.reciprocal_net.vectors
+    lam = wavelength_A(energy_eV)
+    center = np.array(geom.center_px)
+    obs_xy = _screen_xy(hk @ a_star, energy_eV, geom)
+    r_obs = np.hypot(obs_xy[:, 0] - center[0], obs_xy[:, 1] - center[1])
+    r_max = float(np.nanmax(r_obs)) * 1.02 if len(r_obs) else 0.0
+    sub = Net2D(substrate_fit.net.vectors)
+    return _Context(hk=hk, integer=np.asarray(integer, dtype=bool), a_star=a_star, geom=geom,
+                    energy_eV=float(energy_eV), tol_g=tol_px / (geom.scale_px * lam),
+                    ops=point_group(sub, tol=2e-3), tree=cKDTree(hk @ a_star), r_max=r_max,
+                    g_max=math.sin(math.radians(min(geom.acceptance_deg, 80.0))) / lam,
+                    valid_mask=valid_mask, intensity=None if intensity is None else np.asarray(intensity, float),
+                    substrate=sub)
+
+
+def _score(ctx: _Context, matrix, *, all_domains: bool, satellites: bool) -> dict:
+    """Explained / unexplained / absent counts and the score of one matrix with its domains."""
+    m = np.asarray(matrix, dtype=np.float64)
+    hk, a_star, tol_g = ctx.hk, ctx.a_star, ctx.tol_g
+    frac = ~ctx.integer
+    mats, names = _domain_matrices(m, ctx.ops)
+    expl = np.array([_explained(hk, d, a_star, tol_g) for d in mats]) & frac[None, :]
+    primary = expl.copy()
+    if satellites:
+        for i, d in enumerate(mats):
+            b = np.linalg.inv(d).T
+            for vec in (b[0], b[1], b[0] + b[1], b[0] - b[1]):
+                for sign in (1, -1):
+                    sh = hk - sign * vec
+                    dd = (sh - np.rint(sh)) @ a_star
+                    expl[i] |= (np.hypot(dd[:, 0], dd[:, 1]) <= tol_g) & frac
+    if all_domains:
+        chosen = list(range(len(mats)))
+    else:  # greedy: the smallest set of domains that explains the spots
+        chosen, covered = [], np.zeros(len(hk), bool)
+        while True:
+            gains = [int((expl[i] & ~covered).sum()) if i not in chosen else -1 for i in range(len(mats))]
+            best = int(np.argmax(gains))
+            if gains[best] < (1 if not chosen else 2):
+                break
+            chosen.append(best)
+            covered |= expl[best]
+        chosen = chosen or [0]
+    by = np.full(len(hk), -1)
+    by[ctx.integer] = -2
+    for rank in range(len(chosen) - 1, -1, -1):
+        by[expl[chosen[rank]]] = rank
+    absent = 0
+    center = np.array(ctx.geom.center_px)
+    for i in chosen:
+        pts = _lattice_points(np.linalg.inv(mats[i]).T, a_star, ctx.g_max)
+        pts = pts[np.any(np.abs(pts - np.rint(pts)) > 1e-6, axis=1)]
+        if not len(pts):
+            continue
+        seen = _seen(_screen_xy(pts @ a_star, ctx.energy_eV, ctx.geom), ctx.valid_mask, center, ctx.r_max, 0.0)
+        if seen.any():
+            d, _ = ctx.tree.query(pts[seen] @ a_star, distance_upper_bound=tol_g)
+            absent += int(np.sum(~np.isfinite(d)))
+    covered = expl[chosen].any(axis=0) & frac
+    e = int(covered.sum())
+    e_sat = e - int((primary[chosen].any(axis=0) & frac).sum())
+    u = int(frac.sum()) - e
+    det = abs(float(np.linalg.det(mats[chosen[0]])))
+    score = (e - 0.5 * e_sat) - u - 0.5 * absent - 1.0 * (len(chosen) - 1) - 0.5 * abs(math.log2(det))
+    return {"mats": [mats[i] for i in chosen], "names": [names[i] for i in chosen], "e": e, "u": u,
+            "absent": absent, "by": by, "score": float(score), "total": len(mats), "satellites": e_sat}
+
+
+def _describe(ctx: _Context, sc: dict, *, kind_tol: float) -> OverlayerModel:
+    """Turn a scored matrix into a model with kind, Wood notation and coverage."""
+    m = sc["mats"][0]
+    kind = classify_superstructure(ctx.substrate, m, tol=kind_tol)
+    if kind.kind in ("commensurate", "coincidence", "none"):
+        m = _snap_matrix(m, kind_tol, 12)
+        mats = [_snap_matrix(d, kind_tol, 12) for d in sc["mats"]]
+    else:
+        mats = sc["mats"]
+    w = wood_notation(ctx.substrate, m, tol=1e-6 if kind.kind != "incommensurate" else 2e-3)
+    ratio = None
+    if ctx.intensity is not None and len(mats) > 1:
+        ratio = _population_test(ctx.hk, sc["by"], ctx.intensity, ctx.ops)
+    notes = []
+    if sc["satellites"]:
+        notes.append(f"{sc['satellites']} spots explained as multiple-scattering satellites")
+    return OverlayerModel(matrix=m, domains=mats, domain_ops=sc["names"], kind=kind.kind, wood=w.text,
+                          wood_note=w.note, coverage=coverage(m), explained=sc["e"], unexplained=sc["u"],
+                          absent=sc["absent"], explained_by=sc["by"], score=sc["score"], total_domains=sc["total"],
+                          notes=tuple(notes),
+                          details={"intensity_ratio": ratio, "kind": kind, "wood_notation": w, "tol_g": ctx.tol_g})
+
+
+def evaluate_model(hk: np.ndarray, integer: np.ndarray, substrate_fit: SubstrateFit, matrix, *,
+                   energy_eV: float, intensity: np.ndarray | None = None, valid_mask: np.ndarray | None = None,
+                   tol_px: float = 2.5, all_domains: bool = False, satellites: bool = False,
+                   kind_tol: float = 1e-6) -> OverlayerModel:
+    """Score one superstructure matrix (with its symmetry domains) against the spots.
+
+    Parameters
+    ----------
+    hk : (K, 2) ndarray
+        Fractional indices of all spots (substrate basis).
+    integer : (K,) ndarray of bool
+        Spots taken as substrate beams.
+    substrate_fit : SubstrateFit
+    matrix : (2, 2) array_like
+        Real-space matrix of one domain.
+    all_domains : bool
+        Use every symmetry domain (a model typed by hand); otherwise the
+        smallest set of domains that explains the spots (greedy).
+    satellites : bool
+        Also accept first-order multiple-scattering spots (substrate beam ±
+        an overlayer beam), for incommensurate overlayers.
+    kind_tol : float
+        Absolute tolerance on the matrix entries for integer / rational.
+    """
+    ctx = _context(hk, integer, substrate_fit, energy_eV, intensity, valid_mask, tol_px)
+    sc = _score(ctx, matrix, all_domains=all_domains, satellites=satellites)
+    return _describe(ctx, sc, kind_tol=kind_tol)
+
+
+def _population_test(hk: np.ndarray, by: np.ndarray, intensity: np.ndarray, ops) -> float | None:
+    """Variance ratio of log intensities within symmetry classes, without / with per-domain populations.
+
+    Classes are orbits of beam indices under the full substrate group. A ratio
+    well above 1 says the domains are unequally populated, which a
+    single-domain model cannot produce.
+    """
+    sel = by >= 0
+    if sel.sum() < 6:
+        return None
+    li = np.log(np.clip(intensity[sel], 1e-9, None))
+    inv_t = [np.linalg.inv(op.matrix).T for op in ops]
+    keys = [max(tuple(np.round(h @ t, 3) + 0.0) for t in inv_t) for h in hk[sel]]
+    _, cls = np.unique(np.array(keys), axis=0, return_inverse=True)
+    cls = cls.ravel()
+    dom = by[sel]
+
+    def resid_var(cols):
+        x = np.column_stack(cols)
+        beta, *_ = np.linalg.lstsq(x, li, rcond=None)
+        r = li - x @ beta
+        return float(r @ r) / max(len(li) - np.linalg.matrix_rank(x), 1)
+
+    c_cols = [(cls == c).astype(float) for c in np.unique(cls)]
+    d_cols = [(dom == d).astype(float) for d in np.unique(dom)[1:]]
+    if len(li) - np.linalg.matrix_rank(np.column_stack(c_cols + d_cols)) < 4:
+        return None  # too few spots per class to tell
+    v0 = resid_var(c_cols)
+    v1 = resid_var(c_cols + d_cols) if d_cols else v0
+    return float(v0 / max(v1, 1e-12))
+
+
+def model_from_matrix(hk, integer, substrate_fit, matrix, *, energy_eV, **kw) -> OverlayerModel:
+    """A model typed by hand: every symmetry domain of `matrix` (see :func:`evaluate_model`)."""
+    return evaluate_model(hk, integer, substrate_fit, matrix, energy_eV=energy_eV, all_domains=True, **kw)
+
+
+def find_overlayers(hk: np.ndarray, integer: np.ndarray, substrate_fit: SubstrateFit, *, energy_eV: float,
+                    intensity: np.ndarray | None = None, valid_mask: np.ndarray | None = None,
+                    tol_px: float = 2.5, max_det: float = 64.0, max_denominator: int = 6,
+                    n_results: int = 5) -> list[OverlayerModel]:
+    """Search superstructure matrices that explain the fractional-order spots.
+
+    Candidates come from pairs of short observed beam vectors (and their
+    differences, to recover beams hidden by the gun); each pair is a
+    reciprocal basis B*, refined by least squares on the spots it explains,
+    turned into M = (B*⁻¹)ᵀ and snapped to an integer matrix
+    (commensurate) or one with denominators ≤ `max_denominator` (coincidence)
+    when the spots allow; the unsnapped fit competes as an incommensurate
+    model (with multiple-scattering satellites allowed). Each is scored with
+    its domains (see the module docstring); the best few are described.
+
+    Returns
+    -------
+    list of OverlayerModel
+        Best first. A clean surface gives one model, the identity, kind ``none``.
+    """
+    ctx = _context(hk, integer, substrate_fit, energy_eV, intensity, valid_mask, tol_px)
+    if int((~ctx.integer).sum()) == 0:
+        return [_describe(ctx, _score(ctx, np.eye(2), all_domains=False, satellites=False), kind_tol=1e-6)]
+    n_frac = int((~ctx.integer).sum())
+    a_star, tol_g = ctx.a_star, ctx.tol_g
+    vecs = _candidate_vectors(ctx.hk, ctx.integer, a_star, tol_g)
+    g_ref = float(np.min(np.linalg.norm(a_star, axis=1)))
+    seen: list[np.ndarray] = []
+    scored: list[tuple[dict, float]] = []
+    for i in range(len(vecs)):
+        for j in range(i + 1, len(vecs)):
+            b = np.array([vecs[i], vecs[j]])
+            det_b = abs(np.linalg.det(b))
+            if det_b < 1.0 / max_det - 1e-9:
+                continue
+            cart = b @ a_star
+            if det_b * abs(np.linalg.det(a_star)) / (np.linalg.norm(cart[0]) * np.linalg.norm(cart[1])) < 0.15:
+                continue  # nearly parallel
+            m = _refine_matrix(ctx.hk, np.linalg.inv(b).T, a_star, tol_g)
+            if abs(np.linalg.det(m)) > max_det + 1e-6:
+                continue
+            # the tolerance on M follows from the spot tolerance through |M|²
+            m_tol = max(0.02, 0.5 * tol_g / g_ref * float(np.max(np.abs(m))) ** 2 / math.sqrt(n_frac))
+            snapped = _snap_matrix(m, min(m_tol, 0.12), 1)
+            if snapped is None:
+                snapped = _snap_matrix(m, min(m_tol, 0.05), max_denominator)
+            options = [(snapped, 1e-6, False)] if snapped is not None and abs(np.linalg.det(snapped)) > 1e-9 else []
+            if _snap_matrix(m, 2e-3, 12) is None:
+                options.append((m, 2e-3, True))  # the continuous fit competes too (incommensurate)
+            for c, ktol, sat in options:
+                if any(same_lattice(c, k, tol=1e-3) for k in seen):
+                    continue
+                seen.append(c)
+                if int((_explained(ctx.hk, c, a_star, tol_g) & ~ctx.integer).sum()) < 2 and not sat:
+                    continue
+                scored.append((_score(ctx, c, all_domains=False, satellites=sat), ktol))
+    if not scored:
+        scored.append((_score(ctx, np.eye(2), all_domains=False, satellites=False), 1e-6))
+    scored.sort(key=lambda t: -t[0]["score"])
+    models = _prefer_simple([_describe(ctx, sc, kind_tol=kt) for sc, kt in scored[: 3 * n_results]])
+    models.sort(key=lambda mm: -mm.score)
+    out, keys = [], []
+    for mm in models:
+        key = (mm.wood, mm.n_domains, mm.kind) if mm.wood else (mm.n_domains, mm.kind, _lattice_key(mm.matrix))
+        if key not in keys:
+            keys.append(key)
+            out.append(mm)
+    return out[:n_results]
+
+
+def _lattice_key(m: np.ndarray) -> tuple:
+    """Hashable name of the lattice of m: its HNF when exactly rational, else rounded entries."""
+    try:
+        return tuple(np.round(hermite_normal_form(m, max_denominator=12).ravel(), 6))
+    except NetError:
+        return tuple(np.round(m.ravel(), 2))
+
+
+def _prefer_simple(models: list[OverlayerModel]) -> list[OverlayerModel]:
+    """Adjust scores: an irrational matrix must explain clearly more than a rational one;
+    a multi-domain model gains when the intensities say the domains are unequally
+    populated (which a single-domain model cannot produce)."""
+    out = []
+    for mm in models:
+        s = mm.score
+        if mm.kind == "incommensurate":
+            s -= 1.5
+        ratio = mm.details.get("intensity_ratio")
+        if mm.n_domains > 1 and ratio is not None:  # can repay the domain penalty, no more
+            s += mm.n_domains * math.tanh(max(math.log(ratio) - math.log(2.0), 0.0))
+        out.append(dataclasses.replace(mm, score=float(s)))
+    return out
+
+
+# --------------------------------------------------------------------------- whole pattern
+
+def model_indices(hk: np.ndarray, model: OverlayerModel) -> np.ndarray:
+    """The exact (model) indices of the spots a model explains; NaN elsewhere. (K, 2)."""
+    out = np.full_like(np.asarray(hk, dtype=np.float64), np.nan)
+    by = model.explained_by
+    out[by == -2] = np.rint(hk[by == -2])
+    for d, m in enumerate(model.domains):
+        sel = by == d
+        if sel.any():
+            n = np.rint(hk[sel] @ np.asarray(m).T)
+            pred = n @ np.linalg.inv(m).T
+            ok = np.hypot(*((pred - hk[sel]) @ np.eye(2)).T) < 0.5  # satellites keep NaN below
+            out[np.flatnonzero(sel)[ok]] = pred[ok]
+    return out
+
+
+def refine_with_model(xy_px: np.ndarray, energy_eV: float, fit: SubstrateFit, model: OverlayerModel, *,
+                      fit_lattice: bool = False) -> SubstrateFit:
+    """Refit the camera model with every spot the model explains (integer and fractional).
+
+    Fractional spots at other radii than the integer ones pin the distortion
+    and the centre; the reciprocal basis is kept unless `fit_lattice`.
+    """
+    xy = np.asarray(xy_px, dtype=np.float64).reshape(-1, 2)
+    hk_model = model_indices(fit.hk, model)
+    use = np.all(np.isfinite(hk_model), axis=1)
+    # drop satellites and loose matches: keep spots within 3× the integer-spot residual of the model
+    if use.sum() < 4:
+        return fit
+    lat = fit.reciprocal_net.vectors
+    free = ("center_x_px", "center_y_px", "rotation_deg") if fit.scale_source == "calibration" else \
+        ("center_x_px", "center_y_px", "scale_px", "rotation_deg", "distortion")
+    geom, lat2, res, sig = _refine(xy[use], hk_model[use], energy_eV, fit.geometry, lat, free, fit_lattice)
+    hk = pixels_to_momentum(xy, energy_eV, geom) @ np.linalg.inv(lat2)
+    d_int = (hk - np.rint(hk)) @ lat2
+    tol_g = 2.5 / (geom.scale_px * wavelength_A(energy_eV))
+    integer = np.hypot(d_int[:, 0], d_int[:, 1]) <= max(tol_g, 3 * fit.residual_px / (geom.scale_px * wavelength_A(energy_eV)))
+    net = Net2D(np.linalg.inv(lat2).T, label=fit.net.label)
+    return dataclasses.replace(fit, geometry=geom, reciprocal_net=Net2D(lat2), net=net, hk=hk, integer=integer,
+                               a_star_px=lat2 @ local_jacobian(energy_eV, geom).T,
+                               residual_px=float(np.sqrt(np.mean(np.sum(res**2, axis=1)))),
+                               sigma={**fit.sigma, **sig},
+                               notes=fit.notes + ("camera refitted with the fractional-order spots",))
+
+
+@dataclass(frozen=True, eq=False)
+class IndexResult:
+    """Substrate readings and overlayer models for one pattern.
+
+    Attributes
+    ----------
+    substrate : SubstrateFit
+        The reading used (best).
+    substrate_candidates : list of SubstrateFit
+        All readings, best first, with confidences.
+    models : list of OverlayerModel
+        Overlayer models on the best reading, best first.
+    """
+
+    substrate: SubstrateFit
+    substrate_candidates: list
+    models: list
+
+    @property
+    def best(self) -> OverlayerModel:
+        return self.models[0]
+
+
+def index_pattern(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity: np.ndarray | None = None,
+                  geometry: ScreenGeometry | None = None, center_px=None, screen_radius_px: float | None = None,
+                  valid_mask: np.ndarray | None = None, tol_px: float = 2.5, n_results: int = 5) -> IndexResult:
+    """Index a whole pattern: substrate net, then overlayer models, then a joint refit.
+
+    The camera model is refitted with the spots the best rational model
+    explains and the overlayer search repeated on the refined indices, as long
+    as that raises the best score (at most twice).
+    """
+    xy = np.asarray(xy_px, dtype=np.float64).reshape(-1, 2)
+    fits = fit_substrate(xy, energy_eV, hint, intensity=intensity, geometry=geometry, center_px=center_px,
+                         screen_radius_px=screen_radius_px, valid_mask=valid_mask, tol_px=tol_px)
+    kw = dict(energy_eV=energy_eV, intensity=intensity, valid_mask=valid_mask, tol_px=tol_px, n_results=n_results)
+    fit = fits[0]
+    models = find_overlayers(fit.hk, fit.integer, fit, **kw)
+    for _ in range(2):
+        if int((~fit.integer).sum()) == 0:
+            break
+        seed = next((m for m in models if m.kind != "incommensurate"), models[0])
+        fit2 = refine_with_model(xy, energy_eV, fit, seed, fit_lattice=geometry is not None)
+        models2 = find_overlayers(fit2.hk, fit2.integer, fit2, **kw)
+        if models2[0].score <= models[0].score + 1e-9:
+            break
+        fit, models = fit2, models2
+    cands = [fit] + list(fits[1:])
+    return IndexResult(substrate=fit, substrate_candidates=cands, models=models)
