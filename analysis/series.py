@@ -742,7 +742,7 @@ def _local(win: _Windows, rc: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _robust(values: np.ndarray, select: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Per-window clipped mean, clipped standard deviation and count of the selected pixels.
+    """Per-window clipped mean, clipped standard deviation and the pixels kept, (K, n) in.
 
     Three passes of a 3σ clip (pixels of neighbouring spots and hot pixels drop out).
     """
@@ -759,8 +759,8 @@ def _robust(values: np.ndarray, select: np.ndarray) -> tuple[np.ndarray, np.ndar
         dev = np.where(keep, v - mean[:, None], 0.0)
         sd = np.sqrt((dev * dev).sum(axis=1) / np.maximum(n - 1, 1))
         keep = sel & (np.abs(v - mean[:, None]) <= 3.0 * sd[:, None] + 1e-12)
-    n = sel.sum(axis=1)
-    return np.where(n > 0, mean, 0.0), np.where(n > 1, sd, np.inf), n
+    n = keep.sum(axis=1)
+    return np.where(n > 0, mean, 0.0), np.where(n > 1, sd, np.inf), keep
 
 
 def _refine(win: _Windows, rc_pred: np.ndarray, search_px: np.ndarray, radius_px: float,
@@ -859,66 +859,76 @@ class SpotIntegrals:
     n_aperture: np.ndarray
 
 
-def _integrate(win: _Windows, rc: np.ndarray, *, radius_px: float, annulus_px: tuple[float, float],
-               background: str, method: str, spot_sigma_px: float | None, gain: float) -> SpotIntegrals:
+def _gather(win: _Windows, rc: np.ndarray, lo_px: float, hi_px: float):
+    """Window pixels whose distance from the window centre is in [lo, hi], flattened to (K, n):
+    (data, inside, usable, saturated, row offset from rc, column offset from rc)."""
     k, w, _ = win.data.shape
     h = win.half
-    r_in, r_out = annulus_px
-    # Work on the disk of window pixels that can matter (the window centre is within
-    # 1.5 px of `rc`), flattened to (K, n).
     yy, xx = np.divmod(np.arange(w * w), w)
-    sup = np.flatnonzero((yy - h) ** 2 + (xx - h) ** 2 <= (r_out + 1.5) ** 2)
-    data = win.data.reshape(k, -1)[:, sup]
-    inside = win.inside.reshape(k, -1)[:, sup]
-    usable = win.usable.reshape(k, -1)[:, sup]
-    saturated = win.saturated.reshape(k, -1)[:, sup]
+    dd = (yy - h) ** 2 + (xx - h) ** 2
+    sup = np.flatnonzero((dd >= max(lo_px, 0.0) ** 2) & (dd <= hi_px * hi_px))
+    flat = [a.reshape(k, -1)[:, sup] for a in (win.data, win.inside, win.usable, win.saturated)]
     dr = (win.row0[:, None] + yy[sup][None, :]) - rc[:, 0, None]
     dc = (win.col0[:, None] + xx[sup][None, :]) - rc[:, 1, None]
-    d2 = dr * dr + dc * dc
-    ap = d2 <= radius_px * radius_px
-    ann = (d2 >= r_in * r_in) & (d2 <= r_out * r_out)
-    flags = np.zeros(k, dtype=np.uint8)
-    flags[np.any(ap & ~inside, axis=1)] |= FLAG_OFF_SCREEN
-    flags[np.any(ap & inside & ~usable, axis=1)] |= FLAG_MASKED
-    flags[np.any(ap & saturated, axis=1)] |= FLAG_SATURATED
-    sel = ann & usable
-    med, rs, _ = _robust(data, sel)
-    keep = sel & (np.abs(data - med[:, None]) <= 3.0 * rs[:, None] + 1e-9)
-    # background model: constant (annulus) or plane, least squares on the kept pixels
+    return (*flat, dr, dc)
+
+
+def _integrate(win: _Windows, rc: np.ndarray, *, radius_px: float, annulus_px: tuple[float, float],
+               background: str, method: str, spot_sigma_px: float | None, gain: float) -> SpotIntegrals:
+    k = win.data.shape[0]
+    r_in, r_out = annulus_px
     scale = max(r_out, 1.0)
-    one = np.ones_like(d2)
-    basis = [one] if background == "annulus" else [one, dc / scale, dr / scale]
-    X = np.stack(basis, axis=-1)  # (K, n, P)
-    wk = keep.astype(np.float64)
-    p_dim = len(basis)
-    n_keep = wk.sum(axis=1)
-    enough = n_keep >= max(6, 2 * p_dim)
-    if p_dim == 1:
-        nmat = n_keep[:, None, None].copy()
-        rhs = (data * wk).sum(axis=1)[:, None]
-    else:
-        nmat = np.einsum("knp,knq,kn->kpq", X, X, wk)
-        rhs = np.einsum("knp,kn->kp", X, data * wk)
-    nmat = np.where(enough[:, None, None], nmat, np.eye(p_dim)[None])
-    ninv = np.linalg.inv(nmat)
-    coef = np.einsum("kpq,kq->kp", ninv, rhs)
-    bg_model = coef[:, :1] if p_dim == 1 else np.einsum("knp,kp->kn", X, coef)
-    resid = (data - bg_model) * wk
-    s2 = (resid * resid).sum(axis=1) / np.maximum(n_keep - p_dim, 1)
-    apu = ap & inside
+    # The window centre is within 1.5 px of `rc`: gather supersets of the annulus and aperture.
+    a_data, _, a_use, _, a_dr, a_dc = _gather(win, rc, r_in - 1.5, r_out + 1.5)
+    a_d2 = a_dr * a_dr + a_dc * a_dc
+    sel = (a_d2 >= r_in * r_in) & (a_d2 <= r_out * r_out) & a_use
+    mean, sd, keep = _robust(a_data, sel)
+    p_data, p_in, p_use, p_sat, p_dr, p_dc = _gather(win, rc, 0.0, radius_px + 1.5)
+    ap = p_dr * p_dr + p_dc * p_dc <= radius_px * radius_px
+    flags = np.zeros(k, dtype=np.uint8)
+    flags[np.any(ap & ~p_in, axis=1)] |= FLAG_OFF_SCREEN
+    flags[np.any(ap & p_in & ~p_use, axis=1)] |= FLAG_MASKED
+    flags[np.any(ap & p_sat, axis=1)] |= FLAG_SATURATED
+    apu = ap & p_in
     n_ap = apu.sum(axis=1)
+    n_keep = keep.sum(axis=1).astype(np.float64)
+    p_dim = 1 if background == "annulus" else 3
+    enough = n_keep >= max(6, 2 * p_dim)
+    if p_dim == 1:  # the clipped mean is the least-squares constant on the kept pixels
+        coef = mean[:, None]
+        ninv = (1.0 / np.maximum(n_keep, 1.0))[:, None, None]
+        s2 = sd * sd
+        s2 = np.where(np.isfinite(s2), s2, 0.0)
+        bg_ap = coef
+        u = n_ap[:, None].astype(np.float64)
+    else:
+        X = np.stack([np.ones_like(a_d2), a_dc / scale, a_dr / scale], axis=-1)  # (K, n, 3)
+        wk = keep.astype(np.float64)
+        nmat = np.einsum("knp,knq,kn->kpq", X, X, wk)
+        nmat = np.where(enough[:, None, None], nmat, np.eye(3)[None])
+        ninv = np.linalg.inv(nmat)
+        coef = np.einsum("kpq,kq->kp", ninv, np.einsum("knp,kn->kp", X, a_data * wk))
+        resid = (a_data - np.einsum("knp,kp->kn", X, coef)) * wk
+        s2 = (resid * resid).sum(axis=1) / np.maximum(n_keep - 3, 1)
+        Xp = np.stack([np.ones_like(p_dr), p_dc / scale, p_dr / scale], axis=-1)
+        bg_ap = np.einsum("knp,kp->kn", Xp, coef)
+        u = np.einsum("knp,kn->kp", Xp, apu.astype(np.float64))
     if method == "aperture":
-        inten = ((data - bg_model) * apu).sum(axis=1)
-        u = np.einsum("knp,kn->kp", X, apu.astype(np.float64))
+        inten = ((p_data - bg_ap) * apu).sum(axis=1)
         var_bg = s2 * np.einsum("kp,kpq,kq->k", u, ninv, u)
         var = gain * np.maximum(inten, 0.0) + n_ap * s2 + var_bg
     else:
         if not (spot_sigma_px and spot_sigma_px > 0):
             raise ParameterError(f"The profile fit needs a spot width `spot_sigma_px` > 0, got {spot_sigma_px!r}.")
         sg = float(spot_sigma_px)
+        data, _, usable, _, dr, dc = _gather(win, rc, 0.0, r_out + 1.5)
+        d2 = dr * dr + dc * dc
+        in_ann = (d2 >= r_in * r_in) & (d2 <= r_out * r_out)
+        good_bg = in_ann & (np.abs(data - mean[:, None]) <= 3.0 * sd[:, None] + 1e-9)
+        fit_px = (d2 <= r_out * r_out) & usable & ((d2 <= radius_px * radius_px) | good_bg)
         gauss = np.exp(-d2 / (2.0 * sg * sg)) / (2.0 * math.pi * sg * sg)
-        fit_px = (d2 <= r_out * r_out) & usable & (ap | keep)
-        Xf = np.concatenate([gauss[..., None], X], axis=-1)
+        cols = [gauss, np.ones_like(d2)] + ([] if p_dim == 1 else [dc / scale, dr / scale])
+        Xf = np.stack(cols, axis=-1)
         wts = fit_px / np.maximum(s2, 1e-12)[:, None]
         for _ in range(2):
             nf = np.einsum("knp,knq,kn->kpq", Xf, Xf, wts)
@@ -1241,12 +1251,18 @@ class IVResult:
         return np.abs(np.diff(e))[:, None].repeat(ok.shape[1], axis=1).__mul__(both).sum(axis=0)
 
 
+_STACK_MAX_BYTES = 16_000_000_000  # a multi-page file streamed from disk
+
+
 def _as_frames(frames) -> Iterator[tuple[str, np.ndarray]]:
     """(name, array) pairs from a path (through analysis.io) or from an iterable."""
     if isinstance(frames, (str, os.PathLike, bytes, bytearray)):
         from .io import iter_frames
 
-        yield from iter_frames(frames)
+        # A stack on disk is decoded page by page, so its file size is not held in memory:
+        # only the per-frame pixel limit of analysis.io applies to it.
+        kw = {"max_bytes": _STACK_MAX_BYTES} if isinstance(frames, (str, os.PathLike)) else {}
+        yield from iter_frames(frames, **kw)
         return
     for i, item in enumerate(frames):
         if isinstance(item, tuple) and len(item) == 2:
