@@ -2043,10 +2043,10 @@ def _cmd_iv(args) -> int:
         if out and not Path(out).resolve().parent.is_dir():
             raise SeriesError(f"Output folder of {out} does not exist.")
     try:
-        first = load_image(args.series) if not Path(args.series).is_dir() else None
+        first = load_image(args.series, max_bytes=_STACK_MAX_BYTES) if not Path(args.series).is_dir() else None
     except ImageError as err:
         raise SeriesError(f"Cannot read frame 0: {err}") from None
-    frames = iter_frames(args.series)
+    frames = iter_frames(args.series, max_bytes=_STACK_MAX_BYTES)
     try:
         name0, frame0 = next(frames)
     except StopIteration:
