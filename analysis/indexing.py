@@ -31,21 +31,19 @@ import numpy as np
 from scipy.optimize import least_squares
 from scipy.spatial import cKDTree
 
-from .errors import FitError, NetError, ParameterError
+from .calibration import estimate_center_from_pairs
+from .errors import FitError, NetError
 from .nets import Net2D, classify_net, point_group, reciprocal
 from .optics import ScreenGeometry, local_jacobian, momentum_to_pixels, pixels_to_momentum, wavelength_A
 from .superstructure import (
     classify_superstructure,
     coverage,
     hermite_normal_form,
-    nice_matrix,
-    overlayer_net,
     same_lattice,
     wood_notation,
 )
 
 __all__ = [
-    "center_from_pairs",
     "SubstrateFit",
     "fit_substrate",
     "fractional_indices",
@@ -53,81 +51,15 @@ __all__ = [
     "find_overlayers",
     "evaluate_model",
     "model_from_matrix",
+    "model_indices",
+    "refine_with_model",
+    "IndexResult",
+    "index_pattern",
 ]
 
 _ACCEPTANCE_PRIOR_DEG = 52.0  # screen half-angle, common practice (≈ 50–55°)
 _DISTORTION_PRIOR = 0.2  # R/L used only to turn the screen radius into a scale prior
 _SCALE_PRIOR_SIGMA = 0.25  # relative (log) width of that prior
-
-
-# --------------------------------------------------------------------------- centre
-
-def center_from_pairs(xy_px: np.ndarray, *, weights: np.ndarray | None = None, tol_px: float = 2.0,
-                      guess: tuple[float, float] | None = None, max_spots: int = 250
-                      ) -> tuple[np.ndarray, np.ndarray, int]:
-    """Pattern centre from pairs of spots symmetric about it (g and −g).
-
-    Every pair's midpoint votes; the densest cluster of midpoints (within
-    `tol_px`) is the centre, then refined as the weighted mean of its
-    members.
-
-    Parameters
-    ----------
-    xy_px : (K, 2) ndarray of float
-        Spot centres (x, y), pixels.
-    weights : (K,) ndarray, optional
-        Spot weights (e.g. √intensity); brighter pairs count more.
-    tol_px : float
-        Cluster radius, pixels.
-    guess : (x, y), optional
-        Prefer the cluster nearest this point when two are equally dense.
-
-    Returns
-    -------
-    center : (2,) ndarray of float64
-        (x, y) pixels.
-    sigma : (2,) ndarray of float64
-        Standard error of the centre, pixels.
-    n_pairs : int
-        Pairs that agree with it.
-
-    Raises
-    ------
-    FitError
-        Fewer than two symmetric pairs.
-
-    Examples
-    --------
-    >>> pts = np.array([[110.0, 100], [90, 100], [100, 120], [100, 80], [130, 130]])
-    >>> c, s, n = center_from_pairs(pts)
-    >>> print(np.round(c, 3).tolist(), n)
-    [100.0, 100.0] 2
-    """
-    p = np.asarray(xy_px, dtype=np.float64).reshape(-1, 2)
-    w = np.ones(len(p)) if weights is None else np.asarray(weights, dtype=np.float64).reshape(-1)
-    if len(p) > max_spots:
-        keep = np.argsort(-w)[:max_spots]
-        p, w = p[keep], w[keep]
-    if len(p) < 4:
-        raise FitError(f"Need at least 4 spots to find the pattern centre from symmetric pairs, got {len(p)}.")
-    i, j = np.triu_indices(len(p), 1)
-    mid = 0.5 * (p[i] + p[j])
-    mw = np.sqrt(w[i] * w[j])
-    tree = cKDTree(mid)
-    counts = np.array([mw[nb].sum() for nb in tree.query_ball_point(mid, tol_px)])
-    if guess is not None:
-        dist = np.hypot(*(mid - np.asarray(guess, dtype=np.float64)).T)
-        counts = counts - 1e-6 * dist
-    best = int(np.argmax(counts))
-    members = tree.query_ball_point(mid[best], tol_px)
-    if len(members) < 2:
-        raise FitError("No two pairs of spots are symmetric about one point: cannot find the pattern centre.")
-    for _ in range(3):  # re-centre the cluster
-        c = np.average(mid[members], axis=0, weights=mw[members])
-        members = tree.query_ball_point(c, tol_px)
-    c = np.average(mid[members], axis=0, weights=mw[members])
-    spread = np.std(mid[members], axis=0, ddof=1) if len(members) > 1 else np.full(2, tol_px)
-    return c, spread / math.sqrt(len(members)), len(members)
 
 
 # --------------------------------------------------------------------------- substrate
@@ -256,8 +188,9 @@ def _hint_variants(hint: Net2D) -> list[np.ndarray]:
 
 
 def fit_substrate(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity: np.ndarray | None = None,
-                  geometry: ScreenGeometry | None = None, center_px=None, screen_radius_px: float | None = None,
-                  valid_mask: np.ndarray | None = None, fit_lattice: bool | None = None,
+                  geometry: ScreenGeometry | None = None, center_px=None, center_guess=None,
+                  screen_radius_px: float | None = None, valid_mask: np.ndarray | None = None,
+                  fit_lattice: bool | None = None,
                   tol_px: float = 2.5, n_candidates: int = 12, max_results: int = 3) -> list[SubstrateFit]:
     """Find the substrate reciprocal net among the spots, ranked.
 
@@ -277,6 +210,8 @@ def fit_substrate(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity
         is fitted.
     center_px : (x, y), optional
         The pattern centre if known; otherwise from symmetric pairs.
+    center_guess : (x, y), optional
+        Where to start pairing spots (e.g. the gun-disk centre).
     screen_radius_px : float, optional
         Radius of the visible screen; gives a scale prior when no geometry is known.
     valid_mask : (M, N) ndarray of bool, optional
@@ -305,7 +240,10 @@ def fit_substrate(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity
     elif geometry is not None:
         center = np.array(geometry.center_px)
     else:
-        center, _, _ = center_from_pairs(xy, weights=np.sqrt(inten), tol_px=max(tol_px, 2.0))
+        try:  # ±g pairs agree to about a pixel; a tight tolerance keeps dense patterns apart
+            center = estimate_center_from_pairs(xy, tol_px=max(3.0, 1.2 * tol_px), initial_xy=center_guess).center_xy
+        except FitError:
+            center = estimate_center_from_pairs(xy, initial_xy=center_guess).center_xy
     fit_lattice = (geometry is not None) if fit_lattice is None else fit_lattice
     lam = wavelength_A(energy_eV)
     r = np.hypot(xy[:, 0] - center[0], xy[:, 1] - center[1])
@@ -1073,8 +1011,9 @@ class IndexResult:
 
 
 def index_pattern(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity: np.ndarray | None = None,
-                  geometry: ScreenGeometry | None = None, center_px=None, screen_radius_px: float | None = None,
-                  valid_mask: np.ndarray | None = None, tol_px: float = 2.5, n_results: int = 5) -> IndexResult:
+                  geometry: ScreenGeometry | None = None, center_px=None, center_guess=None,
+                  screen_radius_px: float | None = None, valid_mask: np.ndarray | None = None,
+                  tol_px: float = 2.5, n_results: int = 5) -> IndexResult:
     """Index a whole pattern: substrate net, then overlayer models, then a joint refit.
 
     The camera model is refitted with the spots the best rational model
@@ -1083,7 +1022,8 @@ def index_pattern(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity
     """
     xy = np.asarray(xy_px, dtype=np.float64).reshape(-1, 2)
     fits = fit_substrate(xy, energy_eV, hint, intensity=intensity, geometry=geometry, center_px=center_px,
-                         screen_radius_px=screen_radius_px, valid_mask=valid_mask, tol_px=tol_px)
+                         center_guess=center_guess, screen_radius_px=screen_radius_px, valid_mask=valid_mask,
+                         tol_px=tol_px)
     kw = dict(energy_eV=energy_eV, intensity=intensity, valid_mask=valid_mask, tol_px=tol_px, n_results=n_results)
     fit = fits[0]
     models = find_overlayers(fit.hk, fit.integer, fit, **kw)
