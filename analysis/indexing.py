@@ -39,6 +39,7 @@ from .superstructure import (
     classify_superstructure,
     coverage,
     hermite_normal_form,
+    nice_matrix,
     same_lattice,
     wood_notation,
 )
@@ -59,7 +60,7 @@ __all__ = [
 
 _ACCEPTANCE_PRIOR_DEG = 52.0  # screen half-angle, common practice (≈ 50–55°)
 _DISTORTION_PRIOR = 0.2  # R/L used only to turn the screen radius into a scale prior
-_SCALE_PRIOR_SIGMA = 0.25  # relative (log) width of that prior
+_SCALE_PRIOR_SIGMA = 0.15  # relative (log) width: acceptance 48–56° and R/L 0–0.4 span ±15 % (common practice)
 
 
 # --------------------------------------------------------------------------- substrate
@@ -352,7 +353,12 @@ def _try_substrate(xy, tree, inten, energy_eV, a_star, e, v, center, geometry, l
     pi, oj = _match(pred, tree, tol_px)
     if len(pi) < 3:
         return None
-    geom, lattice, res, sig = _refine(xy[oj], hk_all[pi], energy_eV, geom, lattice, free_geo, fit_lattice)
+    last = free_geo + (("ellipticity",) if geometry is None else ())
+    geom, lattice, res, sig = _refine(xy[oj], hk_all[pi], energy_eV, geom, lattice, last, fit_lattice)
+    pred = _screen_xy(hk_all @ lattice, energy_eV, geom)
+    pi, oj = _match(pred, tree, tol_px)
+    if len(pi) < 3:
+        return None
     seen = _seen(pred, valid_mask, np.array(geom.center_px), r_max, r_min)
     n_pred = int(seen.sum())
     completeness = len(pi) / max(n_pred, len(pi))
@@ -452,23 +458,42 @@ def _is_rational(hk: np.ndarray, max_den: int, tol: float) -> bool:
 
 
 def _refine(xy, hk, energy_eV, geom, lattice, free, fit_lattice):
-    """Fit geometry (and optionally the reciprocal basis) to matched integer spots."""
+    """Fit geometry (and optionally the reciprocal basis) to spots of known indices.
+
+    `free` names ScreenGeometry fields; ``"ellipticity"`` fits the axis ratio
+    and its direction through (e1, e2) = (ε − 1)(cos 2β, sin 2β), which stays
+    smooth at ε = 1. Fields are dropped when the spots cannot carry them.
+    """
     base = geom.to_dict()
     # with a free lattice its own orientation replaces the camera rotation
     names = [n for n in free if not (fit_lattice and n == "rotation_deg")]
-    n_geo = len(names)
+    if "ellipticity" in names and len(xy) < 6:
+        names.remove("ellipticity")
+    ell = "ellipticity" in names
+    if ell:
+        names.remove("ellipticity")
+    n_geo = len(names) + (2 if ell else 0)
     lat0 = lattice.ravel().copy()
 
     def unpack(p):
         d = dict(base)
-        for n, v in zip(names, p[:n_geo]):
+        for n, v in zip(names, p[: len(names)]):
             d[n] = float(np.exp(v)) if n == "scale_px" else float(v)
+        if ell:
+            e1, e2 = p[len(names)], p[len(names) + 1]
+            d["ellipticity"] = 1.0 + math.hypot(e1, e2)
+            d["ellipse_deg"] = math.degrees(0.5 * math.atan2(e2, e1)) % 180.0
         lat = p[n_geo:].reshape(2, 2) if fit_lattice else lattice
         return ScreenGeometry(**d), lat
 
     p0 = [math.log(base[n]) if n == "scale_px" else base[n] for n in names]
     lo = [0.0 if n == "distortion" else -np.inf for n in names]
     hi = [0.9 if n == "distortion" else np.inf for n in names]
+    if ell:
+        e, b = base["ellipticity"] - 1.0, math.radians(2 * base["ellipse_deg"])
+        p0 += [e * math.cos(b), e * math.sin(b)]
+        lo += [-0.3, -0.3]
+        hi += [0.3, 0.3]
     if fit_lattice:
         p0 += list(lat0)
         lo += [-np.inf] * 4
@@ -491,8 +516,10 @@ def _refine(xy, hk, energy_eV, geom, lattice, free, fit_lattice):
     try:
         cov = np.linalg.pinv(sol.jac.T @ sol.jac) * s2
         sd = np.sqrt(np.clip(np.diag(cov), 0, None))
-        for n, s in zip(names, sd[:n_geo]):
-            sig[n] = float(s * (g_fit.scale_px if n == "scale_px" else 1.0))
+        for n, sd_n in zip(names, sd[: len(names)]):
+            sig[n] = float(sd_n * (g_fit.scale_px if n == "scale_px" else 1.0))
+        if ell:
+            sig["ellipticity"] = float(math.hypot(sd[len(names)], sd[len(names) + 1]))
         if fit_lattice:
             sig.update(_lattice_sigma(lat, cov[n_geo:, n_geo:]))
     except np.linalg.LinAlgError:  # pragma: no cover
@@ -762,9 +789,9 @@ def _describe(ctx: _Context, sc: dict, *, kind_tol: float) -> OverlayerModel:
     """Turn a scored matrix into a model with kind, Wood notation and coverage."""
     m = sc["mats"][0]
     kind = classify_superstructure(ctx.substrate, m, tol=kind_tol)
-    if kind.kind in ("commensurate", "coincidence", "none"):
-        m = _snap_matrix(m, kind_tol, 12)
-        mats = [_snap_matrix(d, kind_tol, 12) for d in sc["mats"]]
+    if kind.kind in ("commensurate", "coincidence", "none"):  # exact, and in a readable basis
+        mats = [nice_matrix(ctx.substrate, _snap_matrix(d, kind_tol, 12)) for d in sc["mats"]]
+        m = mats[0]
     else:
         mats = sc["mats"]
     w = wood_notation(ctx.substrate, m, tol=1e-6 if kind.kind != "incommensurate" else 2e-3)
@@ -973,7 +1000,7 @@ def refine_with_model(xy_px: np.ndarray, energy_eV: float, fit: SubstrateFit, mo
         return fit
     lat = fit.reciprocal_net.vectors
     free = ("center_x_px", "center_y_px", "rotation_deg") if fit.scale_source == "calibration" else \
-        ("center_x_px", "center_y_px", "scale_px", "rotation_deg", "distortion")
+        ("center_x_px", "center_y_px", "scale_px", "rotation_deg", "distortion", "ellipticity")
     geom, lat2, res, sig = _refine(xy[use], hk_model[use], energy_eV, fit.geometry, lat, free, fit_lattice)
     hk = pixels_to_momentum(xy, energy_eV, geom) @ np.linalg.inv(lat2)
     d_int = (hk - np.rint(hk)) @ lat2

@@ -541,7 +541,8 @@ def _wood_cells(substrate: Net2D, lattice_xy: np.ndarray, *, index: int, tol: fl
             out.append((round(abs(math.degrees(phi_w)), 6), math.degrees(phi_w), lp / substrate.a,
                         lq / substrate.b, p, q, math.degrees(phi)))
             break  # the shortest parallel q makes the cell for this p
-    out.sort(key=lambda t: (t[0], -round(t[1], 6), -round(t[2], 9)))  # least rotation, then R+ before R−, then m ≥ n
+    # least Wood rotation, R+ before R−, m ≥ n, then the cell nearest the substrate axes themselves
+    out.sort(key=lambda t: (t[0], -round(t[1], 6), -round(t[2], 9), round(abs(t[6]), 6), -round(t[6], 6)))
     return out
 
 

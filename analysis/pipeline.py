@@ -1,0 +1,278 @@
+"""One call from a camera image to the superstructure: measure the spots, apply
+the user's edits, calibrate (reference image or saved calibration), index.
+
+Pixel positions at this module's edges are (x, y), x right, y down, the
+centre of the top-left pixel at (0, 0). Reciprocal quantities are
+crystallographic (Å⁻¹, no 2π).
+"""
+
+from __future__ import annotations
+
+import math
+import time
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .calibration import Calibration, calibrate_from_reference
+from .errors import FitError, ImageError, ParameterError
+from .indexing import IndexResult, index_pattern, model_from_matrix
+from .io import LoadedImage, load_image
+from .nets import Net2D, parse_substrate
+from .optics import ScreenGeometry
+from .spots import Measurement, measure_image
+from .superstructure import parse_matrix, parse_wood
+
+__all__ = ["Edits", "AnalysisResult", "analyze_image", "try_model", "check_energy"]
+
+_MIN_EV, _MAX_EV = 5.0, 5000.0
+
+
+def check_energy(energy_eV, name: str = "energy") -> float:
+    """Validate a LEED beam energy in eV (5 to 5000 eV); returns it as float."""
+    try:
+        e = float(energy_eV)
+    except (TypeError, ValueError):
+        raise ParameterError(f"The {name} must be a number of eV, got {energy_eV!r}.") from None
+    if not math.isfinite(e) or e <= 0:
+        raise ParameterError(f"The {name} must be a positive number of eV, got {energy_eV!r}.")
+    if not (_MIN_EV <= e <= _MAX_EV):
+        raise ParameterError(f"The {name} {e:g} eV is outside the LEED range {_MIN_EV:g}–{_MAX_EV:g} eV.")
+    return e
+
+
+@dataclass(frozen=True)
+class Edits:
+    """What a user changed by hand.
+
+    Attributes
+    ----------
+    added_xy : tuple of (x, y)
+        Spots the detector missed, pixels.
+    removed_xy : tuple of (x, y)
+        Spots to drop: the detected spot nearest each point (within `pick_px`).
+    center_xy : (x, y) or None
+        The pattern centre set by hand.
+    pick_px : float
+        How near a removal point must be to a spot.
+    """
+
+    added_xy: tuple = ()
+    removed_xy: tuple = ()
+    center_xy: tuple | None = None
+    pick_px: float = 6.0
+
+    @classmethod
+    def from_dict(cls, d: dict | None) -> "Edits":
+        if not d:
+            return cls()
+        if not isinstance(d, dict):
+            raise ParameterError(f"Edits must be an object, got {type(d).__name__}.")
+
+        def pts(key):
+            out = []
+            for p in d.get(key) or ():
+                try:
+                    x, y = float(p[0]), float(p[1])
+                except (TypeError, ValueError, IndexError):
+                    raise ParameterError(f"Edit '{key}' needs (x, y) pairs, got {p!r}.") from None
+                if not (math.isfinite(x) and math.isfinite(y)):
+                    raise ParameterError(f"Edit '{key}' has a non-finite point {p!r}.")
+                out.append((x, y))
+            return tuple(out)
+
+        c = d.get("center_xy")
+        if c is not None:
+            try:
+                c = (float(c[0]), float(c[1]))
+            except (TypeError, ValueError, IndexError):
+                raise ParameterError(f"Edit 'center_xy' needs an (x, y) pair, got {c!r}.") from None
+        return cls(added_xy=pts("added_xy"), removed_xy=pts("removed_xy"), center_xy=c,
+                   pick_px=float(d.get("pick_px", 6.0)))
+
+    def to_dict(self) -> dict:
+        return {"added_xy": [list(p) for p in self.added_xy], "removed_xy": [list(p) for p in self.removed_xy],
+                "center_xy": None if self.center_xy is None else list(self.center_xy), "pick_px": self.pick_px}
+
+
+@dataclass(frozen=True, eq=False)
+class AnalysisResult:
+    """Everything one analysis found.
+
+    Attributes
+    ----------
+    xy_px : (K, 2) ndarray
+        Spots used (detected, minus removed, plus added), (x, y) pixels.
+    intensity, snr : (K,) ndarray
+        Integrated intensity (ADU) and detection significance (NaN for added spots).
+    manual : (K,) ndarray of bool
+        Spots added by hand.
+    index : IndexResult
+    measurement : Measurement
+    energy_eV : float
+    substrate_spec : str
+    substrate_hint : Net2D
+    image_shape : (rows, cols)
+    edits : Edits
+    calibration_source : str
+        ``"none"``, ``"reference"`` or ``"calibration"``.
+    timings_s : dict
+    """
+
+    xy_px: np.ndarray
+    intensity: np.ndarray
+    snr: np.ndarray
+    manual: np.ndarray
+    index: IndexResult
+    measurement: Measurement
+    energy_eV: float
+    substrate_spec: str
+    substrate_hint: Net2D
+    image_shape: tuple
+    edits: Edits
+    calibration_source: str = "none"
+    reference_geometry: ScreenGeometry | None = None
+    warnings: tuple = ()
+    timings_s: dict = field(default_factory=dict)
+
+
+def _as_image(image) -> LoadedImage:
+    if isinstance(image, LoadedImage):
+        return image
+    return load_image(image)
+
+
+def _local_intensity(img: np.ndarray, bg: np.ndarray, x: float, y: float, half: int = 4) -> float:
+    r, c = int(round(y)), int(round(x))
+    r0, r1 = max(0, r - half), min(img.shape[0], r + half + 1)
+    c0, c1 = max(0, c - half), min(img.shape[1], c + half + 1)
+    if r0 >= r1 or c0 >= c1:
+        raise ParameterError(f"The added spot ({x:.1f}, {y:.1f}) lies outside the image.")
+    return float(np.sum(img[r0:r1, c0:c1] - bg[r0:r1, c0:c1]))
+
+
+def _apply_edits(meas: Measurement, img: np.ndarray, edits: Edits):
+    st = meas.spots
+    xy = st.xy
+    keep = np.ones(len(xy), bool)
+    for px, py in edits.removed_xy:
+        if len(xy):
+            d = np.hypot(xy[:, 0] - px, xy[:, 1] - py)
+            d[~keep] = np.inf
+            j = int(np.argmin(d))
+            if d[j] <= edits.pick_px:
+                keep[j] = False
+    xy_k, inten, snr = xy[keep], st.intensity[keep], st.snr[keep]
+    add = np.array(edits.added_xy, dtype=np.float64).reshape(-1, 2)
+    bg = meas.background.background
+    add_i = np.array([_local_intensity(img, bg, x, y) for x, y in add])
+    xy_all = np.vstack([xy_k, add]) if len(add) else xy_k
+    inten_all = np.concatenate([inten, np.clip(add_i, 1e-6, None)]) if len(add) else inten
+    snr_all = np.concatenate([snr, np.full(len(add), np.nan)]) if len(add) else snr
+    manual = np.concatenate([np.zeros(len(xy_k), bool), np.ones(len(add), bool)])
+    return xy_all, inten_all, snr_all, manual
+
+
+def analyze_image(image, *, energy_eV: float, substrate: str | Net2D, reference=None,
+                  reference_energy_eV: float | None = None, calibration: Calibration | ScreenGeometry | None = None,
+                  edits: Edits | dict | None = None, progress=None, sigma_px: float | None = None,
+                  min_snr: float = 5.0, tol_px: float = 2.5) -> AnalysisResult:
+    """Analyse one LEED image.
+
+    Parameters
+    ----------
+    image : path, bytes, ndarray or LoadedImage
+    energy_eV : float, keyword-only
+        Beam energy (5–5000 eV).
+    substrate : str or Net2D, keyword-only
+        E.g. ``"Pt(111)"`` or ``"hexagonal:2.775"`` (see :func:`analysis.nets.parse_substrate`).
+    reference : image, optional
+        A clean-substrate image from the same optics; with `reference_energy_eV`
+        it fixes the camera scale and distortion, so lattice constants are measured.
+    calibration : Calibration or ScreenGeometry, optional
+        A saved camera calibration (the same purpose as `reference`).
+    edits : Edits or dict, optional
+        Manual spot additions / removals and a centre set by hand.
+    progress : callable(fraction: float, message: str), optional
+    sigma_px : float, optional
+        Spot σ; None measures it.
+
+    Raises
+    ------
+    ImageError, ParameterError, NetError, FitError
+        With a one-line message for the user.
+    """
+    t0 = time.perf_counter()
+    say = progress or (lambda f, m: None)
+    e = check_energy(energy_eV)
+    hint = parse_substrate(substrate) if isinstance(substrate, str) else substrate
+    if not isinstance(hint, Net2D):
+        raise ParameterError(f"`substrate` must be text like 'Pt(111)' or a Net2D, got {type(substrate).__name__}.")
+    ed = edits if isinstance(edits, Edits) else Edits.from_dict(edits)
+    img = _as_image(image)
+    timings = {}
+    say(0.05, "finding the screen, the gun shadow and the spots")
+    meas = measure_image(img, sigma_px=sigma_px, min_snr=min_snr)
+    timings["spots"] = time.perf_counter() - t0
+    xy, inten, snr, manual = _apply_edits(meas, img.data, ed)
+    if len(xy) < 3:
+        raise FitError(f"Only {len(xy)} spots found (signal-to-noise ≥ {min_snr:g}); an ordered surface shows "
+                       f"at least the first-order substrate spots. Check the energy, exposure and screen.")
+    geometry, source, ref_geom, warnings = None, "none", None, []
+    if calibration is not None:
+        geometry = calibration.geometry if isinstance(calibration, Calibration) else calibration
+        if not isinstance(geometry, ScreenGeometry):
+            raise ParameterError(f"`calibration` must be a Calibration or ScreenGeometry, got {type(calibration).__name__}.")
+        source = "calibration"
+    if reference is not None:
+        if reference_energy_eV is None:
+            raise ParameterError("A reference image needs its energy (reference energy in eV).")
+        re_ = check_energy(reference_energy_eV, "reference energy")
+        say(0.3, "calibrating the camera on the reference image")
+        ref_img = _as_image(reference)
+        if ref_img.shape != img.shape:
+            raise ImageError(f"The reference image is {ref_img.shape[1]}×{ref_img.shape[0]} px but the image is "
+                             f"{img.shape[1]}×{img.shape[0]} px; use one from the same camera.")
+        ref_meas = measure_image(ref_img, sigma_px=sigma_px, min_snr=min_snr)
+        gfit, _ = calibrate_from_reference(ref_meas.spots.xy, hint, re_)
+        geometry = ref_geom = gfit.geometry
+        source = "reference"
+        timings["reference"] = time.perf_counter() - t0
+    say(0.5, "fitting the substrate net and searching overlayers")
+    screen = meas.screen
+    center_guess = None
+    if meas.gun.center_rc is not None:
+        center_guess = (float(meas.gun.center_rc[1]), float(meas.gun.center_rc[0]))
+    idx = index_pattern(xy, e, hint, intensity=inten, geometry=geometry, center_px=ed.center_xy,
+                        center_guess=center_guess,
+                        screen_radius_px=screen.radius_px if screen.source != "frame" else None,
+                        valid_mask=meas.valid, tol_px=tol_px)
+    timings["total"] = time.perf_counter() - t0
+    if idx.substrate.confidence < 0.8:
+        warnings.append(f"The substrate reading is uncertain ({idx.substrate.confidence:.0%}); "
+                        f"other readings are listed. A reference image or calibration settles it.")
+    say(1.0, "done")
+    return AnalysisResult(xy_px=xy, intensity=inten, snr=snr, manual=manual, index=idx, measurement=meas,
+                          energy_eV=e, substrate_spec=hint.label or str(substrate), substrate_hint=hint,
+                          image_shape=tuple(img.shape), edits=ed, calibration_source=source,
+                          reference_geometry=ref_geom, warnings=tuple(warnings), timings_s=timings)
+
+
+def try_model(result: AnalysisResult, text: str):
+    """Score a model typed by hand (a matrix like ``"2 1 / -1 1"`` or a Wood notation).
+
+    Returns
+    -------
+    OverlayerModel
+        With every symmetry domain of the model.
+
+    Raises
+    ------
+    NetError
+        When the text is neither a matrix nor a Wood notation.
+    """
+    sub = result.index.substrate
+    t = (text or "").strip()
+    m = parse_wood(t, sub.net) if ("(" in t and ("x" in t.lower() or "×" in t)) else parse_matrix(t)
+    return model_from_matrix(sub.hk, sub.integer, sub, m, energy_eV=result.energy_eV,
+                             intensity=result.intensity, valid_mask=result.measurement.valid)

@@ -1,0 +1,246 @@
+"""Analysis results as JSON-safe dicts (the `recinet analyze --json` contract).
+
+Schema (``"schema": "recinet.analysis"``, ``"version": 1``), keys kept stable:
+
+* ``center_px``: [x, y] pattern centre; pixels are x right, y down, the centre
+  of the top-left pixel at (0, 0).
+* ``spots``: one object per spot used: ``x``, ``y``, ``h``, ``k`` (fractional
+  indices in the substrate basis, null when the spot is not explained),
+  ``h_measured``, ``k_measured``, ``intensity``, ``snr``, ``kind``
+  (``integer``/``fractional``/``unexplained``), ``domain`` (index into the
+  domains or null), ``manual``.
+* ``substrate``: ``net`` (plane-net type), ``a_star_px`` (rows a1*, a2* as
+  pixel displacements at the centre: the local derivative of the camera
+  model; always a primitive basis), ``a_angstrom``, ``b_angstrom``,
+  ``gamma_deg`` (+ ``sigma``), ``reciprocal_invA`` (rows, Å⁻¹, no 2π),
+  ``lattice_source``, ``confidence``.
+* ``overlayer``: ``kind`` (none/commensurate/coincidence/incommensurate),
+  ``matrix`` (real space, substrate basis), ``domains`` (every domain found,
+  the first is ``matrix``), ``wood`` (text or null), ``coverage`` (one
+  adsorbate per overlayer cell), ``net`` (real-space a, b, γ, type),
+  ``angle_to_substrate_deg``, counts, ``unexplained`` (spot indices).
+* ``candidates``: the ranked models (same fields and their ``score``).
+* ``geometry``: the fitted camera model; ``predicted``: pixel positions of
+  the substrate beams and of each domain's beams, for overlays.
+"""
+
+from __future__ import annotations
+
+import math
+from fractions import Fraction
+
+import numpy as np
+
+from .errors import ParameterError
+from .indexing import OverlayerModel, model_indices
+from .nets import Net2D, classify_net, reciprocal
+from .optics import momentum_to_pixels, wavelength_A
+from .superstructure import format_matrix, overlayer_net
+
+__all__ = ["SCHEMA", "VERSION", "result_to_dict", "model_to_dict", "check_result_dict", "predicted_spots"]
+
+SCHEMA = "recinet.analysis"
+VERSION = 1
+
+
+def _f(x) -> float | None:
+    if x is None:
+        return None
+    x = float(x)
+    return x if math.isfinite(x) else None
+
+
+def _frac_text(x: float) -> str:
+    f = Fraction(float(x)).limit_denominator(12)
+    return str(f) if abs(float(f) - x) < 1e-6 else f"{x:.3f}"
+
+
+def predicted_spots(fit, model: OverlayerModel | None, energy_eV: float) -> dict:
+    """Pixel positions of the substrate beams and of each domain's fractional beams on the screen.
+
+    Returns
+    -------
+    dict
+        ``{"substrate": [{"x", "y", "h", "k"}...], "domains": [[...], ...]}``.
+    """
+    lat = fit.reciprocal_net.vectors
+    geom = fit.geometry
+    g_max = math.sin(math.radians(geom.acceptance_deg)) / wavelength_A(energy_eV)
+
+    def points(b_star_hk):
+        cart = b_star_hk @ lat
+        area = abs(np.linalg.det(cart))
+        n1 = int(math.ceil(g_max * np.linalg.norm(cart[1]) / area)) + 1
+        n2 = int(math.ceil(g_max * np.linalg.norm(cart[0]) / area)) + 1
+        if (2 * n1 + 1) * (2 * n2 + 1) > 200_000:
+            return np.zeros((0, 2))
+        a, b = np.meshgrid(np.arange(-n1, n1 + 1), np.arange(-n2, n2 + 1), indexing="ij")
+        hk = np.column_stack([a.ravel(), b.ravel()]).astype(float) @ b_star_hk
+        return hk
+
+    def rows(hk, fractional_only):
+        if fractional_only:
+            hk = hk[np.any(np.abs(hk - np.rint(hk)) > 1e-6, axis=1)]
+        xy, vis = momentum_to_pixels(hk @ lat, energy_eV, geom)
+        ok = vis & np.all(np.isfinite(xy), axis=1)
+        return [{"x": float(p[0]), "y": float(p[1]), "h": float(q[0]), "k": float(q[1])}
+                for p, q in zip(xy[ok], hk[ok])]
+
+    out = {"substrate": rows(points(np.eye(2)), False), "domains": []}
+    if model is not None and model.kind != "none":
+        for m in model.domains:
+            out["domains"].append(rows(points(np.linalg.inv(np.asarray(m, float)).T), True))
+    return out
+
+
+def model_to_dict(model: OverlayerModel, substrate: Net2D) -> dict:
+    """One overlayer model as a JSON-safe dict (see the module docstring)."""
+    m = np.asarray(model.matrix, dtype=np.float64)
+    over = overlayer_net(substrate, m)
+    a1 = substrate.vectors[0]
+    b1 = over.vectors[0]
+    ang = math.degrees(math.atan2(b1[1], b1[0]) - math.atan2(a1[1], a1[0]))
+    ang = (ang + 180.0) % 360.0 - 180.0
+    wn = model.details.get("wood_notation")
+    kind = model.details.get("kind")
+    d = {
+        "kind": model.kind,
+        "matrix": m.tolist(),
+        "matrix_text": format_matrix(m),
+        "domains": [np.asarray(x, float).tolist() for x in model.domains],
+        "domain_operations": list(model.domain_ops),
+        "n_domains": model.n_domains,
+        "symmetry_domains": model.total_domains,
+        "wood": model.wood,
+        "wood_note": model.wood_note or ("" if model.wood else "No Wood notation exists; use the matrix."),
+        "wood_primitive": getattr(wn, "primitive", None),
+        "coverage": _f(model.coverage),
+        "net": {"a_angstrom": over.a, "b_angstrom": over.b, "gamma_deg": over.gamma_deg,
+                "type": classify_net(over, tol=2e-3)},
+        "angle_to_substrate_deg": ang,
+        "explained": model.explained,
+        "unexplained_count": model.unexplained,
+        "absent": model.absent,
+        "score": _f(model.score),
+        "unexplained": [int(i) for i in np.flatnonzero(model.explained_by == -1)],
+        "notes": list(model.notes),
+    }
+    if kind is not None and getattr(kind, "coincidence_cell", None) is not None:
+        d["coincidence_cell"] = np.asarray(kind.coincidence_cell).tolist()
+    if kind is not None and getattr(kind, "approximants", None):
+        d["approximants"] = [{"matrix": a.matrix.tolist(), "substrate_cells": a.substrate_cells,
+                              "overlayer_cells": a.overlayer_cells, "strain": a.strain}
+                             for a in kind.approximants]
+    if kind is not None:
+        d["point_on_line"] = bool(getattr(kind, "point_on_line", False))
+    return d
+
+
+def result_to_dict(result) -> dict:
+    """An :class:`analysis.pipeline.AnalysisResult` as the JSON contract dict."""
+    idx = result.index
+    fit = idx.substrate
+    best = idx.best
+    hk_model = model_indices(fit.hk, best)
+    by = best.explained_by
+    spots = []
+    for i, (p, hkm) in enumerate(zip(result.xy_px, fit.hk)):
+        explained = bool(np.all(np.isfinite(hk_model[i])))
+        kind = "integer" if by[i] == -2 else ("fractional" if by[i] >= 0 else "unexplained")
+        h, k = (hk_model[i] if explained else (None, None))
+        spots.append({
+            "x": float(p[0]), "y": float(p[1]),
+            "h": _f(h) if explained else None, "k": _f(k) if explained else None,
+            "label": f"({_frac_text(h)},{_frac_text(k)})" if explained else None,
+            "h_measured": float(hkm[0]), "k_measured": float(hkm[1]),
+            "intensity": _f(result.intensity[i]), "snr": _f(result.snr[i]),
+            "kind": kind, "domain": int(by[i]) if by[i] >= 0 else None, "manual": bool(result.manual[i]),
+        })
+    net = fit.net
+    rec = reciprocal(net)
+    sig = fit.sigma or {}
+    sub = {
+        "net": fit.net_type,
+        "a_star_px": np.asarray(fit.a_star_px).tolist(),
+        "a_angstrom": net.a, "b_angstrom": net.b, "gamma_deg": net.gamma_deg,
+        "sigma": {"a_angstrom": _f(sig.get("a_A")), "b_angstrom": _f(sig.get("b_A")),
+                  "gamma_deg": _f(sig.get("gamma_deg")), "center_x_px": _f(sig.get("center_x_px")),
+                  "center_y_px": _f(sig.get("center_y_px")), "scale_px": _f(sig.get("scale_px"))},
+        "a_star_invA": rec.a, "b_star_invA": rec.b, "gamma_star_deg": rec.gamma_deg,
+        "reciprocal_invA": fit.reciprocal_net.vectors.tolist(),
+        "reciprocal_convention": "crystallographic, a_i·a*_j = δ_ij, no 2π",
+        "lattice_source": "measured" if fit.scale_source == "calibration" else "substrate given",
+        "spec": result.substrate_spec,
+        "confidence": _f(fit.confidence),
+        "completeness": _f(fit.completeness),
+        "residual_px": _f(fit.residual_px),
+        "notes": list(fit.notes),
+    }
+    alt_sub = [{"a_star_px": np.asarray(f.a_star_px).tolist(), "confidence": _f(f.confidence),
+                "score": _f(f.score), "scale_px": f.geometry.scale_px}
+               for f in idx.substrate_candidates[1:]]
+    meas = result.measurement
+    out = {
+        "schema": SCHEMA, "version": VERSION,
+        "energy_eV": result.energy_eV,
+        "image_shape": [int(v) for v in result.image_shape],
+        "center_px": [fit.geometry.center_x_px, fit.geometry.center_y_px],
+        "spots": spots,
+        "substrate": sub,
+        "substrate_alternatives": alt_sub,
+        "overlayer": model_to_dict(best, net),
+        "candidates": [model_to_dict(m, net) for m in idx.models],
+        "geometry": fit.geometry.to_dict(),
+        "calibration_source": result.calibration_source,
+        "screen": meas.screen.to_dict(),
+        "gun": meas.gun.to_dict(),
+        "spot_sigma_px": float(meas.sigma_px),
+        "predicted": predicted_spots(fit, best, result.energy_eV),
+        "edits": result.edits.to_dict(),
+        "warnings": list(result.warnings),
+        "timings_s": {k: float(v) for k, v in result.timings_s.items()},
+        "pixel_convention": "x right, y down, centre of the top-left pixel at (0, 0)",
+        "matrix_convention": "real space, (b1, b2) = M (a1, a2) in the substrate basis",
+    }
+    return _clean(out)
+
+
+def _clean(x):
+    """Replace NaN/inf with None and numpy scalars with Python ones, recursively."""
+    if isinstance(x, dict):
+        return {str(k): _clean(v) for k, v in x.items()}
+    if isinstance(x, (list, tuple)):
+        return [_clean(v) for v in x]
+    if isinstance(x, np.ndarray):
+        return _clean(x.tolist())
+    if isinstance(x, (np.bool_, bool)):
+        return bool(x)
+    if isinstance(x, (np.integer,)):
+        return int(x)
+    if isinstance(x, (float, np.floating)):
+        return _f(x)
+    return x
+
+
+_REQUIRED = {"center_px": list, "spots": list, "substrate": dict, "overlayer": dict, "candidates": list}
+
+
+def check_result_dict(d) -> dict:
+    """Validate an analysis dict read back from JSON (e.g. an import); returns it.
+
+    Raises
+    ------
+    ParameterError
+        When it is not a recinet analysis, is from a newer version, or lacks a key.
+    """
+    if not isinstance(d, dict):
+        raise ParameterError(f"An analysis must be a JSON object, got {type(d).__name__}.")
+    if d.get("schema") != SCHEMA:
+        raise ParameterError(f"Not a recinet analysis (schema {d.get('schema')!r}, expected {SCHEMA!r}).")
+    if not isinstance(d.get("version"), int) or d["version"] > VERSION:
+        raise ParameterError(f"Analysis version {d.get('version')!r} is not readable by this program "
+                             f"(reads up to {VERSION}).")
+    for k, t in _REQUIRED.items():
+        if not isinstance(d.get(k), t):
+            raise ParameterError(f"The analysis lacks '{k}' ({t.__name__}).")
+    return d
