@@ -53,6 +53,8 @@ FLAG_SPLIT = 8  # one of a close pair separated by a two-spot fit
 FLAG_NAMES = {FLAG_SATURATED: "saturated", FLAG_NEAR_EDGE: "near_mask_edge",
               FLAG_FIT_FAILED: "fit_failed", FLAG_SPLIT: "split_pair"}
 _FWHM = 2.0 * math.sqrt(2.0 * math.log(2.0))
+_DEBUG = False
+_FLAG_BLEND = 128  # internal: residual peak beside the spot (cleared before the table)
 
 
 # --------------------------------------------------------------------------- helpers
@@ -302,20 +304,20 @@ def _auto_screen(img: np.ndarray, margin_px: float) -> ScreenMask:
     m, n = img.shape
     f = max(1, int(round(max(m, n) / 256)))
     small = ndi.gaussian_filter(_block_reduce_mean(img, f), 1.0)
-    t = float(threshold_otsu(small))
-    bright = small > t
-    lo, hi = float(np.median(small[~bright])), float(np.median(small[bright]))
-    noise_lo = 1.4826 * float(np.median(np.abs(small[~bright] - lo))) + 1e-12
-    if bright.mean() > 0.9 or bright.mean() < 0.02 or (hi - lo) < 6.0 * noise_lo:
+    # Otsu on a copy clipped at the 99th percentile, so bright spots do not pull the split up
+    t = float(threshold_otsu(np.minimum(small, np.percentile(small, 99.0))))
+    dark_px = small < t
+    if dark_px.mean() < 0.02 or dark_px.mean() > 0.98:
+        return _frame_screen(img, margin_px)
+    lo, hi = float(np.median(small[dark_px])), float(np.median(small[~dark_px]))
+    noise_lo = 1.4826 * float(np.median(np.abs(small[dark_px] - lo))) + 1e-12
+    if (hi - lo) < 6.0 * noise_lo:
         return _frame_screen(img, margin_px)
     # Otsu may split the screen's own radial falloff; the screen is everything clearly
     # above the dark level, so lower the threshold towards it
-    dark_px = small < t
-    lo = float(np.median(small[dark_px]))
-    noise_lo = 1.4826 * float(np.median(np.abs(small[dark_px] - lo))) + 1e-12
     t = lo + max(6.0 * noise_lo, 0.1 * (hi - lo))
     bright = small > t
-    if bright.mean() > 0.95:
+    if bright.mean() > 0.95 or bright.mean() < 0.02:
         return _frame_screen(img, margin_px)
     lab, nlab = ndi.label(ndi.binary_opening(bright, iterations=2))
     if nlab == 0:
@@ -513,7 +515,10 @@ def _auto_gun(img: np.ndarray, screen: ScreenMask, margin_px: float) -> ShadowMa
     pad[: small.shape[0], : small.shape[1]] = np.where(scr, small, np.nan)
     blocks = pad.reshape(gm, b, gn, b).transpose(0, 2, 1, 3).reshape(gm, gn, b * b)
     cnt = np.sum(np.isfinite(blocks), axis=2)
-    with np.errstate(all="ignore"):
+    import warnings
+
+    with np.errstate(all="ignore"), warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN blocks outside the screen
         lev = np.nanpercentile(np.where(cnt[..., None] > 0.1 * b * b, blocks, np.nan), 75, axis=2) \
             if np.any(cnt > 0.1 * b * b) else np.full((gm, gn), np.nan)
     lev = _fill_nan_grid(lev)
@@ -698,6 +703,12 @@ def estimate_background(image, mask=None, *, block_px: int = 32, exclude=None,
         vals = np.where(keep, blocks, 0.0).astype(np.float64)
         mean = vals.sum(axis=1) / np.maximum(kn, 1)
         var = (np.where(keep, (blocks - mean[:, None]) ** 2, 0.0)).sum(axis=1) / np.maximum(kn - 1, 1)
+        # noise from differences of horizontal neighbours: a smooth gradient across the block
+        # does not count as noise (independent pixels: Var(a − b) = 2 Var)
+        pair = keep[:, :-1] & keep[:, 1:] & ((np.arange(b * b - 1) % b) != b - 1)[None, :]
+        nd = pair.sum(axis=1)
+        dv = 0.5 * np.where(pair, (blocks[:, 1:] - blocks[:, :-1]).astype(np.float64) ** 2, 0.0).sum(axis=1)
+        var = np.where(nd >= 16, dv / np.maximum(nd, 1), var)
     # a one-sided 3σ clip of a normal sample lowers its variance by ≈ 1.5 % and its mean by 0.015 σ
     var = var * 1.015
     sd = np.sqrt(var)
@@ -1088,7 +1099,7 @@ def find_spots(image, *, sigma_px: float = 2.0, min_snr: float = 5.0, mask=None,
     f1 = _matched(res, sigma_px)
     s1 = f1 / noise_f
     cand = _maxima(s1, min_snr, valid)
-    spots = _fit_candidates(fitter, res, noise, ok_fit, valid, cand, s1, centre, gain, sigma_px, None)
+    spots = _fit_pass1(fitter, res, noise, ok_fit, valid, cand, s1, f1, centre, gain, sigma_px, shape, half)
     if second_pass and len(spots["rc"]):
         # pass 2: the matched-filter residual after removing every fitted spot. A Gaussian
         # filtered by a Gaussian is a Gaussian, so the filtered models are drawn directly.
@@ -1109,18 +1120,31 @@ def find_spots(image, *, sigma_px: float = 2.0, min_snr: float = 5.0, mask=None,
         if len(cand2):
             from scipy.spatial import cKDTree
 
-            d, _ = cKDTree(spots["rc"]).query(cand2, k=1)
-            cand2 = cand2[d > 1.5 * sigma_px]
+            d, near = cKDTree(spots["rc"]).query(cand2, k=1)
+            # residual peaks right beside a spot mean that spot may be a blend: test it as a pair
+            blend = d <= 3.0 * sigma_px
+            spots["flags"][near[blend]] |= _FLAG_BLEND
+            cand2 = cand2[~blend]
         if len(cand2):
             mdl = _render(shape, sub["rc"], sub["amp"], sub["sr"], sub["st"], sub["u"], half)
             new = _fit_candidates(fitter, res - mdl, noise, ok_fit, valid, cand2, s2, centre, gain, sigma_px,
-                                  None)
+                                  mdl)
             spots = _concat(spots, new)
-        spots = _refit_neighbours(fitter, res, noise, ok_fit, valid, spots, centre, gain, sigma_px, shape, half)
+        spots = _refit_neighbours(fitter, res, noise, ok_fit, valid, spots, centre, gain, sigma_px, shape, half,
+                                  sweeps=60)
     if split_pairs and len(spots["rc"]):
         spots = _split_pairs(fitter, res, noise, ok_fit, valid, spots, centre, gain, sigma_px, shape, half,
                              min_snr, knorm)
     spots = _dedupe(spots, 0.75 * sigma_px)
+    if gain is None and len(spots["rc"]):
+        # no variance law from the background: measure it on the fitted spots and measure again
+        g = _gain_from_spots(fitter, res, noise, ok_fit, _take(spots, (spots["flags"] & FLAG_SPLIT) == 0), half)
+        if g is not None:
+            import dataclasses
+
+            return find_spots(img, sigma_px=sigma_px, min_snr=min_snr, mask=valid,
+                              background=dataclasses.replace(bg, gain_adu=g), center_rc=centre,
+                              saturation_level=sat, split_pairs=split_pairs, second_pass=second_pass)
     return _table(spots, img, bg, sat, valid, centre, sigma_px)
 
 
@@ -1131,22 +1155,88 @@ def _unit_radial(rc, centre):
     return u
 
 
-def _fit_candidates(fitter, res, noise, ok_fit, valid, cand, snr_map, centre, gain, sigma_px, others):
+def _fit_candidates(fitter, res, noise, ok_fit, valid, cand, snr_map, centre, gain, sigma_px, others=None):
     cand = np.asarray(cand, dtype=np.float64).reshape(-1, 2)
     k = len(cand)
     if k == 0:
         return _spots_dict(np.zeros((0, 2)), *(np.zeros(0) for _ in range(6)), np.zeros((0, 2)),
                            np.zeros((0, 2)), np.zeros(0, np.uint8))
     res64 = res.astype(np.float64) if res.dtype != np.float64 else res
-    r0, c0, inside, (data, nz, okp, vp), _ = fitter.patches([res64, noise, ok_fit, valid], cand)
+    arrays = [res64, noise, ok_fit, valid] + ([others] if others is not None else [])
+    r0, c0, inside, (data, nz, okp, vp, *om), _ = fitter.patches(arrays, cand)
     okp = okp & inside
+    nz2 = nz**2 + (gain * np.clip(om[0], 0.0, None) if (gain and om) else 0.0)
     u = _unit_radial(cand, centre)
     h = fitter.half
     amp0 = np.maximum(data[:, h, h], 1e-3)
     p = np.column_stack([amp0, np.zeros(k), np.zeros(k), np.full(k, math.log(sigma_px)),
                          np.full(k, math.log(sigma_px)), np.zeros(k)])
-    p, cov, rchi2, _ = fitter.fit(data, nz**2, okp, p, u, gain)
+    p, cov, rchi2, _ = fitter.fit(data, nz2, okp, p, u, gain)
     return _from_fit(p, cov, r0, c0, u, snr_map[r0, c0], vp & inside, okp, sigma_px, h, cand)
+
+
+def _fit_pass1(fitter, res, noise, ok_fit, valid, cand, s1, f1, centre, gain, sigma_px, shape, half):
+    """Fit isolated candidates alone; candidates sharing a window start from the filter
+    peaks and are fitted with each other's models removed."""
+    from scipy.spatial import cKDTree
+
+    cand = np.asarray(cand).reshape(-1, 2)
+    crowded = np.zeros(len(cand), bool)
+    if len(cand) > 1:
+        amp = 2.0 * np.maximum(f1[cand[:, 0], cand[:, 1]], 0.0)
+        idx = _crowded(cand.astype(float), amp, noise[cand[:, 0], cand[:, 1]], sigma_px, half)
+        crowded[idx] = True
+    spots = _fit_candidates(fitter, res, noise, ok_fit, valid, cand[~crowded], s1, centre, gain, sigma_px, None)
+    if crowded.any():
+        cc = cand[crowded].astype(np.float64)
+        k = len(cc)
+        ri, ci = cand[crowded, 0], cand[crowded, 1]
+        init = _spots_dict(cc, 2.0 * np.maximum(f1[ri, ci], 1e-3), np.full(k, sigma_px), np.full(k, sigma_px),
+                           np.zeros(k), s1[ri, ci].astype(float), np.zeros(k), _unit_radial(cc, centre),
+                           np.full((k, 2), np.nan), np.zeros(k, np.uint8))
+        spots = _concat(spots, init)
+        spots = _refit_neighbours(fitter, res, noise, ok_fit, valid, spots, centre, gain, sigma_px, shape, half,
+                                  sweeps=60)
+    return spots
+
+
+def _crowded(rc, amp, nz, sigma_px, half) -> np.ndarray:
+    """Indices of spots whose fit window reaches a neighbour's light (down to 0.1 noise)."""
+    from scipy.spatial import cKDTree
+
+    if len(rc) < 2:
+        return np.zeros(0, int)
+    reach = sigma_px * np.sqrt(2.0 * np.log(np.maximum(np.asarray(amp) / (0.1 * np.maximum(nz, 1e-12)), 1.0)))
+    reach = np.minimum(reach, 12.0 * sigma_px)
+    pairs = cKDTree(rc).query_pairs(float(half * 1.5 + reach.max()) + 1.0, output_type="ndarray")
+    if len(pairs) == 0:
+        return np.zeros(0, int)
+    d = np.hypot(*(rc[pairs[:, 0]] - rc[pairs[:, 1]]).T)
+    near = (d <= 2.0 * half + 1) | (d <= half * 1.5 + np.maximum(reach[pairs[:, 0]], reach[pairs[:, 1]]))
+    return np.unique(pairs[near].ravel())
+
+
+def _gain_from_spots(fitter, res, noise, ok_fit, spots, half):
+    """Variance per unit signal from the fit residuals of bright spots: r² − noise² ≈ g · model."""
+    good = ((spots["flags"] & FLAG_FIT_FAILED) == 0)
+    if good.sum() == 0:
+        return None
+    sub = _take(spots, good)
+    mdl = _render(noise.shape, sub["rc"], sub["amp"], sub["sr"], sub["st"], sub["u"], half)
+    _, _, inside, (data, own, nz, okp), _ = fitter.patches([res - mdl, mdl, noise, ok_fit], sub["rc"])
+    r2 = (data - sub["off"][:, None, None]) ** 2 - nz**2
+    use = okp & inside & (own > 5.0 * nz)
+    if use.sum() < 30:
+        return None
+    # one estimate per spot, then the median: a badly fitted blend cannot dominate
+    num = np.sum(np.where(use, own * r2, 0.0), axis=(1, 2))
+    den = np.sum(np.where(use, own * own, 0.0), axis=(1, 2))
+    ok = use.sum(axis=(1, 2)) >= 5
+    if not ok.any():
+        return None
+    per = num[ok] / den[ok]
+    g = float(np.median(per) if len(per) >= 3 else np.min(per))
+    return g if g > 0 else None
 
 
 def _spots_dict(rc, amp, sr, st, off, snr, rchi2, u, sig, flags):
@@ -1194,28 +1284,32 @@ def _take(a, idx):
     return {k: v[idx] for k, v in a.items()}
 
 
-def _refit_neighbours(fitter, res, noise, ok_fit, valid, spots, centre, gain, sigma_px, shape, half):
-    """Refit spots that share a window, each with the others' models removed (two sweeps)."""
+def _refit_neighbours(fitter, res, noise, ok_fit, valid, spots, centre, gain, sigma_px, shape, half, sweeps=2):
+    """Refit spots that share a window, each with the others' models removed."""
     from scipy.spatial import cKDTree
 
     if len(spots["rc"]) < 2:
         return spots
-    tree = cKDTree(spots["rc"])
-    pairs = tree.query_pairs(2.0 * half + 1)
-    if not pairs:
+    shp = noise.shape
+    ri = np.clip(np.rint(spots["rc"][:, 0]).astype(int), 0, shp[0] - 1)
+    ci = np.clip(np.rint(spots["rc"][:, 1]).astype(int), 0, shp[1] - 1)
+    crowded = _crowded(spots["rc"], spots["amp"], noise[ri, ci], sigma_px, half)
+    if len(crowded) == 0:
         return spots
-    crowded = np.unique(np.array(list(pairs)).ravel())
-    for _ in range(2):
+    for _ in range(sweeps):
         mdl = _render(shape, spots["rc"], spots["amp"], spots["sr"], spots["st"], spots["u"], half)
         sub = _take(spots, crowded)
+        before = sub["rc"].copy()
         own = _render_patches(fitter, sub, half)
-        r0, c0, inside, (data, nz, okp, vp), _ = fitter.patches([res - mdl, noise, ok_fit, valid], sub["rc"])
+        r0, c0, inside, (data, nz, okp, vp, mp), _ = fitter.patches([res - mdl, noise, ok_fit, valid, mdl],
+                                                                    sub["rc"])
         data = data + own
         okp = okp & inside
+        nz2 = nz**2 + (gain * np.clip(mp - own, 0.0, None) if gain else 0.0)  # the neighbours' shot noise
         p = np.column_stack([sub["amp"], sub["rc"][:, 0] - r0, sub["rc"][:, 1] - c0, np.log(sub["sr"]),
                              np.log(sub["st"]), sub["off"]])
         keep_failed = (sub["flags"] & FLAG_FIT_FAILED) > 0
-        p, cov, _, _ = fitter.fit(data, nz**2, okp, p, sub["u"], gain, n_iter=10)
+        p, cov, _, _ = fitter.fit(data, nz2, okp, p, sub["u"], gain, n_iter=10)
         new = _from_fit(p, cov, r0, c0, sub["u"], sub["snr"], vp & inside, okp, sigma_px, half, sub["rc"],
                         flags0=(sub["flags"] & ~np.uint8(FLAG_FIT_FAILED | FLAG_NEAR_EDGE)).astype(np.uint8))
         for key in spots:
@@ -1226,6 +1320,9 @@ def _refit_neighbours(fitter, res, noise, ok_fit, valid, spots, centre, gain, si
                                sub["rc"], upd)
             v[crowded] = upd
             spots[key] = v
+        moved = np.hypot(*(spots["rc"][crowded] - before).T)
+        if moved.max(initial=0.0) < 2e-3:
+            break
     return spots
 
 
@@ -1246,26 +1343,27 @@ def _split_pairs(fitter, res, noise, ok_fit, valid, spots, centre, gain, sigma_p
     good = (spots["flags"] & FLAG_FIT_FAILED) == 0
     if good.sum() == 0:
         return spots
-    s_ref = float(np.median(np.sqrt(spots["sr"][good] * spots["st"][good])))
+    s_ref = float(np.median(np.sqrt(spots["sr"][good] * spots["st"][good]))) if good.sum() >= 5 else sigma_px
     s_ref = min(max(s_ref, 0.5 * sigma_px), 2.0 * sigma_px)
     smaj = np.maximum(spots["sr"], spots["st"])
     smin = np.minimum(spots["sr"], spots["st"])
     nz_c = noise[np.clip(np.rint(spots["rc"][:, 0]).astype(int), 0, shape[0] - 1),
                  np.clip(np.rint(spots["rc"][:, 1]).astype(int), 0, shape[1] - 1)]
     pk = spots["amp"] / nz_c
-    cand = np.flatnonzero(good & (smaj > 1.3 * s_ref) & (smaj > 1.2 * smin) & (pk > 3 * min_snr / (
-        math.sqrt(math.pi) * sigma_px * 2 * math.sqrt(knorm) * 0 + 1.0)))
+    wide = (smaj > 1.3 * s_ref) & (smaj > 1.2 * smin)
+    cand = np.flatnonzero(good & (wide | ((spots["flags"] & _FLAG_BLEND) > 0)) & (pk > 2.0 * min_snr))
     if len(cand) == 0:
         return spots
     sub = _take(spots, cand)
     mdl = _render(shape, spots["rc"], spots["amp"], spots["sr"], spots["st"], spots["u"], half)
     own = _render_patches(fitter, sub, half)
-    r0, c0, inside, (data, nz, okp, vp), _ = fitter.patches([res - mdl, noise, ok_fit, valid], sub["rc"])
+    r0, c0, inside, (data, nz, okp, vp, mp), _ = fitter.patches([res - mdl, noise, ok_fit, valid, mdl], sub["rc"])
     data = data + own
     okp = okp & inside
+    nz2 = nz**2 + (gain * np.clip(mp - own, 0.0, None) if gain else 0.0)
     k = len(cand)
     # one-spot chi² with the current parameters
-    w1 = np.where(okp, 1.0 / (nz**2 + (gain * np.clip(own, 0, None) if gain else 0.0)), 0.0)
+    w1 = np.where(okp, 1.0 / (nz2 + (gain * np.clip(own, 0, None) if gain else 0.0)), 0.0)
     chi1 = np.sum(w1 * (data - own - sub["off"][:, None, None]) ** 2, axis=(1, 2))
     # two spots of common width s along the major axis
     along_r = sub["sr"] >= sub["st"]
@@ -1275,13 +1373,15 @@ def _split_pairs(fitter, res, noise, ok_fit, valid, spots, centre, gain, sigma_p
     q = np.column_stack([sub["amp"] * 0.6, dr0 + axis[:, 0] * sep, dc0 + axis[:, 1] * sep,
                          sub["amp"] * 0.6, dr0 - axis[:, 0] * sep, dc0 - axis[:, 1] * sep,
                          np.full(k, math.log(s_ref)), sub["off"]])
-    q, chi2 = _fit_pair(fitter, data, nz**2, okp, q, gain)
+    q, chi2 = _fit_pair(fitter, data, nz2, okp, q, gain)
     s2 = np.exp(q[:, 6])
     a1, a2 = q[:, 0], q[:, 3]
     d = np.hypot(q[:, 1] - q[:, 4], q[:, 2] - q[:, 5])
     sig_pair = np.minimum(a1, a2) / nz[:, half, half] * math.sqrt(math.pi) * s2  # matched-filter significance
     accept = (chi1 - chi2 > np.maximum(30.0, 0.15 * chi1)) & (sig_pair >= min_snr) & (d > 0.8 * s2) & \
         (d < 2 * half) & np.isfinite(chi2) & (s2 < 1.5 * s_ref)
+    if _DEBUG:
+        print("split", chi1, chi2, sig_pair, d, s2, s_ref, accept)
     if not accept.any():
         return spots
     keep = np.ones(len(spots["rc"]), bool)
@@ -1299,8 +1399,7 @@ def _split_pairs(fitter, res, noise, ok_fit, valid, spots, centre, gain, sigma_p
     new["sig"] = np.full((2 * m, 2), np.nan)
     new["flags"] = (base["flags"] | FLAG_SPLIT).astype(np.uint8)
     spots = _concat(_take(spots, keep), new)
-    # polish the split spots (and their neighbours) with the usual fit, models of others removed
-    return _refit_neighbours(fitter, res, noise, ok_fit, valid, spots, centre, gain, sigma_px, shape, half)
+    return spots
 
 
 def _fit_pair(fitter, data, noise2, okp, q, gain, n_iter=30):
@@ -1377,7 +1476,7 @@ def _table(spots, img, bg, sat, valid, centre, sigma_px) -> SpotTable:
     keep = inside & valid[ri, ci] & (spots["amp"] > 0)
     spots = _take(spots, keep)
     rc, ri, ci = spots["rc"], ri[keep], ci[keep]
-    flags = spots["flags"].copy()
+    flags = spots["flags"] & np.uint8(0x7F)
     if sat is not None and len(rc):
         h = max(1, int(round(1.5 * sigma_px)))
         o = np.arange(-h, h + 1)

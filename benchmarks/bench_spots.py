@@ -66,12 +66,14 @@ def make_frames(n: int, seed: int, shape=(1024, 1024)):
                               ellipse_deg=rng.uniform(0, 180))
         energy = rng.uniform(60, 250)
         pat = forward_pattern(sub, over, energy_eV=energy, geometry=geom)
-        level = [1500.0, 5000.0, 20000.0, 80000.0][i % 4]  # photons of the brightest beams
-        inten = level * np.exp(rng.uniform(np.log(0.03), 0, len(pat)))  # 1.5 decades of spread
         sigma = rng.uniform(1.4, 2.8)
+        bg, read = rng.uniform(15, 150), rng.uniform(1, 5)
+        # target peak SNR per beam, log-uniform: 1–20 on every fourth (faint) frame, else 2–300
+        lo, hi = (1.0, 20.0) if i % 4 == 0 else (2.0, 300.0)
+        snr = np.exp(rng.uniform(np.log(lo), np.log(hi), len(pat)))
+        inten = snr * 2 * np.pi * (sigma**2 + 1 / 12) * np.sqrt(0.6 * bg + read**2)  # photons
         im = render_image(pat, shape=shape, rng=rng, spot_sigma_px=sigma, intensities=inten,
-                          background_photons=rng.uniform(15, 150), bit_depth=16 if i % 3 else 8,
-                          read_noise_e=rng.uniform(1, 5))
+                          background_photons=bg, bit_depth=16 if i % 3 else 8, read_noise_e=read)
         out.append(im)
     return out
 
