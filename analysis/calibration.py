@@ -90,7 +90,7 @@ class CenterEstimate:
 
 
 def estimate_center_from_pairs(xy_px, *, sigma_px=None, tol_px: float | None = None, initial_xy=None,
-                               min_pairs: int = 2) -> CenterEstimate:
+                               min_pairs: int = 3) -> CenterEstimate:
     """Centre of point symmetry of a spot pattern (pairs g, −g).
 
     Every pair of spots votes for its midpoint; the most-voted place is refined
@@ -144,9 +144,12 @@ def estimate_center_from_pairs(xy_px, *, sigma_px=None, tol_px: float | None = N
         sel = p if k <= 700 else p[np.random.default_rng(0).choice(k, 700, replace=False)]
         i, j = np.triu_indices(len(sel), 1)
         mids = 0.5 * (sel[i] + sel[j])
+        # fine bins: the true centre collects the votes of every pair within the position noise,
+        # while points of the half-net collect fewer
+        bw = max(1.0, tol / 4.0)
         lo = p.min(axis=0) - tol
-        nb = np.maximum(1, np.ceil((p.max(axis=0) + tol - lo) / tol).astype(int))
-        idx = np.clip(((mids - lo) / tol).astype(int), 0, nb - 1)
+        nb = np.maximum(1, np.ceil((p.max(axis=0) + tol - lo) / bw).astype(int))
+        idx = np.clip(((mids - lo) / bw).astype(int), 0, nb - 1)
         hist = np.zeros(nb[::-1])
         np.add.at(hist, (idx[:, 1], idx[:, 0]), 1.0)
         from scipy.ndimage import uniform_filter
@@ -178,7 +181,8 @@ def estimate_center_from_pairs(xy_px, *, sigma_px=None, tol_px: float | None = N
         c_new = (w[:, None] * mids).sum(axis=0) / w.sum()
         resid = mids - c_new
         rms = math.sqrt(float(np.mean(resid**2)))
-        tol_new = max(4.0 * rms, 1.0, 0.25 * tol)
+        # a pair's mismatch |x_i + x_j − 2c| is ≈ 2.8 × the per-coordinate midpoint scatter
+        tol_new = max(10.0 * rms, 1.0, 0.25 * tol)
         moved = float(np.hypot(*(c_new - c)))
         c = c_new
         if moved < 1e-6 and tol_new >= tol:
@@ -504,7 +508,8 @@ def calibrate_from_reference(xy_px, substrate: Net2D, energy_eV: float, *, cente
     Raises
     ------
     FitError
-        When fewer than 3 spots can be indexed.
+        When fewer than 3 spots, or fewer than half of them, can be indexed, or
+        the fit leaves residuals above 1 % of the first-order radius (≥ 1 px).
     """
     p = _xy(xy_px)
     if not isinstance(substrate, Net2D):
@@ -574,6 +579,11 @@ def calibrate_from_reference(xy_px, substrate: Net2D, energy_eV: float, *, cente
         tol_px = max(5.0 * fit.rms_px, 1.0, 0.02 * geom.scale_px * lam * g1)
     if fit is None:
         raise FitError("Could not index enough spots of the reference image to fit the geometry.")
+    n_ok = int(np.isfinite(assign[:, 0]).sum())
+    r1 = fit.geometry.scale_px * lam * g1
+    if n_ok < 0.5 * len(p) or fit.rms_px > max(1.0, 0.01 * r1):
+        raise FitError(f"The reference spots do not index as {substrate!r} at {energy_eV} eV: {n_ok} of {len(p)} "
+                       f"indexed, RMS {fit.rms_px:.2g} px; check the substrate and energy.")
     return fit, assign
 
 

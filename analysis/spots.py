@@ -1250,8 +1250,13 @@ def _from_fit(p, cov, r0, c0, u, snr, vpatch, okp, sigma_px, h, cand, flags0=Non
     sr, st = np.exp(p[:, 3]), np.exp(p[:, 4])
     with np.errstate(invalid="ignore"):
         sig = np.sqrt(np.abs(np.column_stack([cov[:, 1, 1], cov[:, 2, 2]])))
-    failed = ~np.all(np.isfinite(p), axis=1) | (p[:, 0] <= 0) | (np.hypot(p[:, 1], p[:, 2]) > 0.5 * h) | \
-        (np.maximum(sr, st) > 4.0 * sigma_px) | ~np.all(np.isfinite(sig), axis=1)
+    # near a masked pixel: any invalid pixel within 3 σ of the centre
+    d2 = (fitter_grid(h)[0][None] - p[:, 1, None, None]) ** 2 + (fitter_grid(h)[1][None] - p[:, 2, None, None]) ** 2
+    near = np.any(~vpatch & (d2 <= (3 * sigma_px) ** 2), axis=(1, 2))
+    # a spot cut by a mask edge may have its centre beyond the edge (it is then not reported)
+    far = np.hypot(p[:, 1], p[:, 2]) > 0.5 * h
+    failed = ~np.all(np.isfinite(p), axis=1) | (p[:, 0] <= 0) | (far & ~near) | \
+        (np.hypot(p[:, 1], p[:, 2]) > h) | (np.maximum(sr, st) > 4.0 * sigma_px) | ~np.all(np.isfinite(sig), axis=1)
     flags = np.zeros(k, np.uint8) if flags0 is None else flags0.copy()
     flags[failed] |= FLAG_FIT_FAILED
     rc = np.where(failed[:, None], cand, rc)
@@ -1259,9 +1264,6 @@ def _from_fit(p, cov, r0, c0, u, snr, vpatch, okp, sigma_px, h, cand, flags0=Non
     st = np.where(failed, sigma_px, st)
     sig = np.where(failed[:, None], 0.5, sig)
     amp = np.where(failed, np.maximum(p[:, 0], 0.0), p[:, 0])
-    # near a masked pixel: any invalid pixel within 3 σ of the centre
-    d2 = (fitter_grid(h)[0][None] - p[:, 1, None, None]) ** 2 + (fitter_grid(h)[1][None] - p[:, 2, None, None]) ** 2
-    near = np.any(~vpatch & (d2 <= (3 * sigma_px) ** 2), axis=(1, 2))
     flags[near] |= FLAG_NEAR_EDGE
     return _spots_dict(rc, amp, sr, st, p[:, 5], np.asarray(snr, float), np.zeros(k), u, sig, flags)
 
