@@ -647,30 +647,20 @@ def _refine_matrix(hk: np.ndarray, m: np.ndarray, a_star: np.ndarray, tol_g: flo
     return m
 
 
-def _candidate_vectors(hk: np.ndarray, integer: np.ndarray, a_star: np.ndarray, tol_g: float,
-                       n_keep: int = 14) -> np.ndarray:
-    g = hk @ a_star
-    rad = np.hypot(g[:, 0], g[:, 1])
-    near = np.argsort(rad)[:30]
-    vecs = [hk[i] for i in near if not integer[i] and rad[i] > tol_g]
-    for a in range(len(near)):
-        for b in range(a + 1, len(near)):
-            d = hk[near[a]] - hk[near[b]]
-            vecs.append(d)
-    vecs += [np.array(v, float) for v in ((1, 0), (0, 1), (1, 1), (1, -1))]
-    vecs = np.array(vecs)
+def _dedupe_vectors(vecs: np.ndarray, a_star: np.ndarray, tol_g: float, n_keep: int,
+                    kept_c: list | None = None) -> list[np.ndarray]:
+    """Shortest vectors first, dropping ±duplicates and integer multiples of kept ones."""
+    if not len(vecs):
+        return []
     cart = vecs @ a_star
     ln = np.hypot(cart[:, 0], cart[:, 1])
-    keep = ln > 2 * tol_g
-    vecs, cart, ln = vecs[keep], cart[keep], ln[keep]
-    order = np.argsort(ln, kind="stable")
-    out: list[np.ndarray] = []
-    out_c: list[np.ndarray] = []
-    for i in order:
+    out, out_c = [], list(kept_c or [])
+    for i in np.argsort(ln, kind="stable"):
         c = cart[i]
+        if ln[i] <= 2 * tol_g:
+            continue
         if any(min(np.hypot(*(c - o)), np.hypot(*(c + o))) <= 1.5 * tol_g for o in out_c):
             continue
-        # a vector that is a multiple of a kept one adds nothing
         if any(abs(c[0] * o[1] - c[1] * o[0]) <= 1.5 * tol_g * np.hypot(*o) and
                abs(round(float(c @ o / (o @ o))) - c @ o / (o @ o)) < 0.1 for o in out_c):
             continue
@@ -678,7 +668,28 @@ def _candidate_vectors(hk: np.ndarray, integer: np.ndarray, a_star: np.ndarray, 
         out_c.append(c)
         if len(out) >= n_keep:
             break
-    return np.array(out)
+    return out
+
+
+def _candidate_vectors(hk: np.ndarray, integer: np.ndarray, a_star: np.ndarray, tol_g: float,
+                       n_spots: int = 12, n_diff: int = 6) -> np.ndarray:
+    """Reciprocal vectors to pair into overlayer bases.
+
+    The shortest observed fractional beams (each is a lattice vector of some
+    domain), the substrate's short vectors, and a few short differences
+    between nearby beams (to recover beams hidden by the gun).
+    """
+    g = hk @ a_star
+    rad = np.hypot(g[:, 0], g[:, 1])
+    frac_idx = [i for i in np.argsort(rad) if not integer[i]]
+    primary = _dedupe_vectors(hk[frac_idx], a_star, tol_g, n_spots)
+    ints = _dedupe_vectors(np.array([(1, 0), (0, 1), (1, 1), (1, -1)], float), a_star, tol_g, 4,
+                           [v @ a_star for v in primary])
+    near = np.argsort(rad)[:24]
+    diffs = np.array([hk[a] - hk[b] for ia, a in enumerate(near) for b in near[ia + 1:]]).reshape(-1, 2)
+    kept = [v @ a_star for v in primary + ints]
+    extra = _dedupe_vectors(diffs, a_star, tol_g, n_diff, kept)
+    return np.array(primary + ints + extra).reshape(-1, 2)
 
 
 def _domain_matrices(m: np.ndarray, ops) -> tuple[list[np.ndarray], list[str]]:
@@ -941,7 +952,35 @@ def find_overlayers(hk: np.ndarray, integer: np.ndarray, substrate_fit: Substrat
         if key not in keys:
             keys.append(key)
             out.append(mm)
-    return out[:n_results]
+    return [_lead_with_plainest_domain(ctx, mm) for mm in out[:n_results]]
+
+
+def _lead_with_plainest_domain(ctx: _Context, mm: OverlayerModel) -> OverlayerModel:
+    """Put first the domain whose Wood cell reads most plainly (m ≥ n, least rotation).
+
+    Domains related by a substrate mirror name the same structure, e.g. (2×1)
+    and (1×2) on a centred rectangular net; the report names it by the plainer one.
+    """
+    if mm.n_domains < 2 or mm.kind == "incommensurate":
+        return mm
+    woods = [wood_notation(ctx.substrate, d) for d in mm.domains]
+
+    def key(w):
+        if w.text is None:
+            return (1, 0.0, 0.0)
+        return (0, float(w.n > w.m + 1e-9), abs(w.angle_deg), -w.angle_deg)
+
+    k = min(range(len(woods)), key=lambda i: key(woods[i]))
+    if k == 0:
+        return mm
+    order = [k] + [i for i in range(mm.n_domains) if i != k]
+    by = mm.explained_by.copy()
+    remap = {old: new for new, old in enumerate(order)}
+    by = np.array([remap.get(int(b), int(b)) if b >= 0 else int(b) for b in by])
+    w = woods[k]
+    return dataclasses.replace(mm, matrix=mm.domains[k], domains=[mm.domains[i] for i in order],
+                               domain_ops=[mm.domain_ops[i] for i in order], wood=w.text, wood_note=w.note,
+                               explained_by=by, details={**mm.details, "wood_notation": w})
 
 
 def _lattice_key(m: np.ndarray) -> tuple:

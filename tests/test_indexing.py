@@ -1,0 +1,206 @@
+"""From a camera image to the superstructure, end to end, on our own synthetic images.
+
+Truth comes from the renderer (analysis.simulate), which knows every beam's indices;
+the structures and their Wood notation, domain counts and kinds are textbook cases
+(E. A. Wood, J. Appl. Phys. 35, 1306 (1964); Van Hove, Weinberg & Chan, Low-Energy
+Electron Diffraction (Springer 1986) — both from memory). The images vary net type,
+energy, noise, camera distance (R/L), centre offset, gun direction, size and bit depth.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+
+import numpy as np
+import pytest
+
+from analysis.errors import FitError
+from analysis.nets import Net2D, parse_substrate, reciprocal
+from analysis.optics import ScreenGeometry
+from analysis.pipeline import analyze_image, try_model
+from analysis.serialize import predicted_spots, result_to_dict
+from analysis.simulate import GunShadow, forward_pattern, render_image
+from analysis.superstructure import domains, parse_wood, same_lattice
+
+
+def symmetric_intensities(pattern, populations=None, *, photons=30000.0, fractional=0.35):
+    """Photons per beam depending only on |g| (so symmetry-equivalent beams agree, as at
+    normal incidence), times the population of the domain that makes a fractional beam."""
+    s = np.sin(np.radians(pattern.theta_deg))
+    base = photons * (0.3 + 0.7 * np.exp(-(s / 0.5) ** 2)) * (0.75 + 0.25 * np.cos(9.0 * s) ** 2)
+    out = np.where(pattern.integer, base, fractional * base)
+    if populations is not None and pattern.n_domains:
+        pop = np.asarray(populations, float)
+        frac = ~pattern.integer
+        w = (pattern.domains * pop[None, :]).sum(axis=1) / np.maximum(pattern.domains.sum(axis=1), 1)
+        out = np.where(frac, out * w, out)
+    return out
+
+
+def render(sub, mats, *, energy, seed=0, shape=(1024, 1024), bit_depth=16, distortion=0.22, rotation=7.0,
+           offset=(6.0, -9.0), gun_angle=235.0, photons=30000.0, populations=None, background=40.0):
+    rows, cols = shape
+    scale = 0.62 * min(shape)
+    geom = ScreenGeometry(cols / 2 - 0.5 + offset[0], rows / 2 - 0.5 + offset[1], scale, distortion=distortion,
+                          rotation_deg=rotation)
+    pat = forward_pattern(sub, mats, energy_eV=energy, geometry=geom)
+    rng = np.random.default_rng(seed)
+    gun = dataclasses.replace(GunShadow.scaled(0.45 * min(shape)), arm_angle_deg=gun_angle)
+    im = render_image(pat, shape=shape, rng=rng, gun=gun, bit_depth=bit_depth, background_photons=background,
+                      intensities=symmetric_intensities(pat, populations, photons=photons))
+    return im, pat
+
+
+def all_domain_matrices(sub, text_or_matrix):
+    m = parse_wood(text_or_matrix, sub) if isinstance(text_or_matrix, str) else np.asarray(text_or_matrix, float)
+    return [d.matrix for d in domains(sub, m)]
+
+
+def assert_domains_match(found, truth, *, tol=1e-6):
+    assert len(found) == len(truth), f"found {len(found)} domains, truth {len(truth)}"
+    for t in truth:
+        assert any(same_lattice(np.asarray(f, float), t, tol=tol) for f in found), f"domain {t.tolist()} not found"
+
+
+# (substrate, structure, domains rendered (None = all), energy eV, expected Wood, expected kind, extra render kw)
+CASES = {
+    "p2x2-hex": ("Pt(111)", "p(2x2)", None, 96.0, "p(2×2)", "commensurate", {}),
+    "sqrt3-hex": ("Ru(0001)", "(√3×√3)R30°", None, 112.0, "(√3×√3)R30°", "commensurate",
+                  {"bit_depth": 8, "photons": 9000.0, "background": 12.0}),
+    "c2x2-square": ("Cu(100)", "c(2x2)", None, 130.0, "c(2×2)", "commensurate", {"gun_angle": 300.0}),
+    "p2x1-square-two-domains": ("Cu(100)", "p(2x1)", None, 140.0, "p(2×1)", "commensurate",
+                                {"distortion": 0.35, "seed": 3}),
+    "2x1-hex-three-domains": ("Pt(111)", "p(2x1)", None, 100.0, "p(2×1)", "commensurate",
+                              {"populations": (1.0, 0.55, 0.3)}),
+    "sqrt7-hex-mirror-pair": ("Pt(111)", "(√7×√7)R19.1°", None, 140.0, "(√7×√7)R19.1°", "commensurate",
+                              {"shape": (768, 768), "offset": (-12.0, 4.0)}),
+    "2sqrt2-square": ("Cu(100)", "(2√2×√2)R45°", None, 120.0, "(2√2×√2)R45°", "commensurate", {}),
+    "c4x2-hex": ("Pt(111)", "c(4x2)", None, 110.0, "c(4×2)", "commensurate", {"rotation": -21.0}),
+    "7x7-hex": ("Si(111)", "(7x7)", None, 45.0, "p(7×7)", "commensurate", {"distortion": 0.1}),
+    "rect-2x1": ("Cu(110)", "p(2x1)", None, 120.0, "p(2×1)", "commensurate", {}),
+    "crect-p2x1": ("W(110)", "p(2x1)", None, 110.0, "p(2×1)", "commensurate", {"gun_angle": 90.0}),
+    "oblique-substrate": ("oblique:3.1,4.3,104", [[2, 0], [0, 1]], None, 110.0, "p(2×1)", "commensurate", {}),
+    "clean-1x1": ("Pt(111)", None, None, 150.0, "(1×1)", "none", {}),
+}
+
+
+@pytest.mark.parametrize("name", list(CASES))
+def test_superstructure_found_from_the_image(name):
+    spec, structure, ndom, energy, wood, kind, kw = CASES[name]
+    sub = parse_substrate(spec)
+    truth = all_domain_matrices(sub, structure) if structure is not None else []
+    mats = truth if ndom is None else truth[:ndom]
+    im, _ = render(sub, mats, energy=energy, **kw)
+    res = analyze_image(im.image, energy_eV=energy, substrate=spec)
+    best = res.index.best
+    assert best.kind == kind
+    assert best.wood == wood
+    if structure is None:
+        assert best.n_domains == 1 and same_lattice(best.matrix, np.eye(2))
+    else:
+        assert_domains_match(best.domains, mats)
+    # the centre is found within a pixel of the truth
+    assert np.hypot(*(np.array(res.index.substrate.geometry.center_px) - im.truth["center_px"])) < 1.0
+
+
+def assert_same_fractional_spots(res, im, tol_px=2.0):
+    """The model's predicted fractional beams sit where the renderer put them, and vice versa
+    (compared in the image, so the choice of substrate basis does not matter)."""
+    pred = predicted_spots(res.index.substrate, res.index.best, res.energy_eV)
+    p = np.array([[q["x"], q["y"]] for dom in pred["domains"] for q in dom]).reshape(-1, 2)
+    t = np.array([[s["x"], s["y"]] for s in im.truth["spots"] if not s["integer"] and not s["hidden"]])
+    valid = res.measurement.valid
+    inside = np.array([valid[int(round(y)), int(round(x))] if 0 <= x < valid.shape[1] and 0 <= y < valid.shape[0]
+                       else False for x, y in p])
+    for q in t:
+        assert np.min(np.hypot(*(p - q).T)) < tol_px
+    for q in p[inside]:
+        assert np.min(np.hypot(*(t - q).T)) < tol_px
+
+
+def test_single_domain_on_a_stepped_surface_is_reported_as_such():
+    # one (2×1) domain on a square net (the other suppressed, as on a vicinal surface)
+    sub = parse_substrate("Cu(100)")
+    truth = all_domain_matrices(sub, "p(2x1)")
+    im, _ = render(sub, truth[:1], energy=130.0)
+    res = analyze_image(im.image, energy_eV=130.0, substrate="Cu(100)")
+    best = res.index.best
+    assert best.n_domains == 1 and best.total_domains == 2
+    assert best.wood in ("p(2×1)", "p(1×2)")
+    assert_same_fractional_spots(res, im)
+
+
+def test_incommensurate_hexagonal_overlayer_on_a_square_net():
+    # a hexagonal layer of 3.05 Å rotated 10° on Cu(100): no integer or small-fraction matrix
+    sub = parse_substrate("Cu(100)")
+    over = Net2D.from_parameters(3.05, 3.05, 120.0)
+    c, s = math.cos(math.radians(10.0)), math.sin(math.radians(10.0))
+    over_rot = over.vectors @ np.array([[c, s], [-s, c]])
+    m = over_rot @ np.linalg.inv(sub.vectors)
+    truth = all_domain_matrices(sub, m)
+    im, _ = render(sub, truth, energy=90.0)
+    best = analyze_image(im.image, energy_eV=90.0, substrate="Cu(100)").index.best
+    assert best.kind == "incommensurate"
+    assert best.wood is None
+    assert len(best.domains) == len(truth)
+    found_net = Net2D(np.asarray(best.matrix) @ sub.vectors)
+    assert found_net.area == pytest.approx(Net2D(over_rot).area, rel=0.01)
+
+
+def test_reference_image_measures_lattice_constants():
+    # Clean Cu(100) reference at 175 eV fixes the camera; the overlayer image at 120 eV then
+    # measures the substrate net. Truth: the rendered net (a = 3.615/√2 Å, handbook value in nets.py).
+    sub = parse_substrate("Cu(100)")
+    ref, _ = render(sub, [], energy=175.0, seed=4)
+    im, _ = render(sub, all_domain_matrices(sub, "c(2x2)"), energy=120.0, seed=5)
+    res = analyze_image(im.image, energy_eV=120.0, substrate="Cu(100)", reference=ref.image,
+                        reference_energy_eV=175.0)
+    net = res.index.substrate.net
+    assert res.index.substrate.scale_source == "calibration"
+    assert net.a == pytest.approx(sub.a, rel=0.005)
+    assert net.b == pytest.approx(sub.b, rel=0.005)
+    assert net.gamma_deg == pytest.approx(90.0, abs=0.5)
+    sig = res.index.substrate.sigma
+    assert 0 < sig["a_A"] < 0.01
+
+
+def test_json_contract_keys_and_conventions():
+    sub = parse_substrate("Pt(111)")
+    im, _ = render(sub, all_domain_matrices(sub, "p(2x2)"), energy=96.0)
+    d = result_to_dict(analyze_image(im.image, energy_eV=96.0, substrate="Pt(111)"))
+    assert set(d) >= {"center_px", "spots", "substrate", "overlayer", "candidates"}
+    assert set(d["spots"][0]) >= {"x", "y", "h", "k", "intensity", "snr"}
+    assert set(d["substrate"]) >= {"net", "a_star_px", "a_angstrom", "b_angstrom", "gamma_deg"}
+    assert set(d["overlayer"]) >= {"kind", "matrix", "domains", "wood", "coverage"}
+    assert d["overlayer"]["wood"] == "p(2×2)" and d["overlayer"]["coverage"] == pytest.approx(0.25)
+    assert d["overlayer"]["domains"][0] == d["overlayer"]["matrix"]
+    # a_star_px: the camera model's derivative at the centre applied to the reciprocal basis;
+    # |a*| in px = scale · λ · |a*| (distant-camera limit of r = s sin θ)
+    lam = 12.2643 / math.sqrt(96.0)  # Å, √(150.41/E) (CODATA via scipy, see test_optics)
+    g = im.truth["geometry"]
+    expect = g["scale_px"] * lam * reciprocal(sub).a
+    assert np.linalg.norm(d["substrate"]["a_star_px"][0]) == pytest.approx(expect, rel=0.02)
+    # spot indices: integer spots carry integers; every h, k is null or a number
+    ints = [s for s in d["spots"] if s["kind"] == "integer"]
+    assert ints and all(float(s["h"]).is_integer() and float(s["k"]).is_integer() for s in ints)
+    # the centre is in pixel (x, y): compare with the renderer's truth
+    assert np.allclose(d["center_px"], im.truth["center_px"], atol=1.0)
+
+
+def test_typed_model_counts_explained_spots():
+    sub = parse_substrate("Pt(111)")
+    im, _ = render(sub, all_domain_matrices(sub, "(√3×√3)R30°"), energy=112.0)
+    res = analyze_image(im.image, energy_eV=112.0, substrate="Pt(111)")
+    good = try_model(res, "(sqrt3xsqrt3)R30")
+    bad = try_model(res, "2 0 / 0 2")
+    assert good.unexplained == 0 and good.explained > 10
+    assert bad.unexplained == good.explained  # p(2×2) shares no fractional spot with √3
+    assert bad.absent > 0
+
+
+def test_image_without_spots_gives_a_clear_error():
+    sub = parse_substrate("Pt(111)")
+    im, _ = render(sub, [], energy=150.0, photons=0.0)
+    with pytest.raises(FitError, match="spots found"):
+        analyze_image(im.image, energy_eV=150.0, substrate="Pt(111)")
