@@ -687,9 +687,12 @@ def estimate_background(image, mask=None, *, block_px: int = 32, exclude=None,
     pad = np.full((gm * b, gn * b), np.nan, dtype=np.float32)
     pad[:m, :n] = np.where(valid, img, np.nan)
     blocks = pad.reshape(gm, b, gn, b).transpose(0, 2, 1, 3).reshape(gm * gn, b * b)
-    srt = np.sort(blocks, axis=1)  # NaN last
+    # quartiles (only used to set the clip limits) from every fourth pixel of a block
+    sub = blocks.reshape(-1, b // 2, 2, b)[:, :, 0, ::2].reshape(len(blocks), -1) if b % 2 == 0 and b >= 16 \
+        else blocks
+    srt = np.sort(sub, axis=1)  # NaN last
     cnt = np.sum(np.isfinite(srt), axis=1)
-    good = cnt >= max(16, b * b // 8)
+    good = np.sum(np.isfinite(blocks), axis=1) >= max(16, b * b // 8)
     ci = np.clip(cnt - 1, 0, None)
     q = lambda p: np.take_along_axis(srt, np.rint(p * ci).astype(np.int64)[:, None], 1)[:, 0]  # noqa: E731
     med, q25, q75 = q(0.5), q(0.25), q(0.75)
@@ -929,82 +932,92 @@ class _Fitter:
         return r0, c0, inside, out, (rr, cc)
 
     def fit(self, data, noise2, w_ok, p, u, gain, *, n_iter=20, sigma_bounds=(0.4, 12.0)):
-        """data, noise2, w_ok: (K, W, W); p: (K, 6) [A, dr0, dc0, log sr, log st, b] (offsets in window)."""
+        """data, noise2, w_ok: (K, W, W); p: (K, 6) [A, dr0, dc0, log sr, log st, b] (offsets in window).
+
+        Returns (p, covariance (K, 6, 6), reduced χ², model (K, W, W)). Spots leave the
+        iteration as soon as their centre moves by less than 10⁻³ px.
+        """
         k = len(p)
-        lam = np.full(k, 1e-2)
-        dr, dc = self.dr[None], self.dc[None]
-        ur, uc = u[:, 0, None, None], u[:, 1, None, None]
-
-        def model(p):
-            a, r0, c0, lsr, lst, b = (p[:, i, None, None] for i in range(6))
-            x, y = dr - r0, dc - c0
-            rho, tau = x * ur + y * uc, -x * uc + y * ur
-            isr2, ist2 = np.exp(-2 * lsr), np.exp(-2 * lst)
-            e = np.exp(-0.5 * (rho * rho * isr2 + tau * tau * ist2))
-            return a * e + b, (a, e, rho, tau, isr2, ist2)
-
-        def chi2_of(p, w):
-            mdl, _ = model(p)
-            return np.sum(w * (data - mdl) ** 2, axis=(1, 2)), mdl
-
-        def weights(mdl, p):
-            v = noise2 + (gain * np.clip(mdl - p[:, 5, None, None], 0, None) if gain else 0.0)
-            return np.where(w_ok, 1.0 / v, 0.0)
-
-        mdl, _ = model(p)
-        w = weights(mdl, p)
-        chi2, mdl = chi2_of(p, w)
+        p = np.array(p, dtype=np.float64)
         lo, hi = math.log(sigma_bounds[0]), math.log(sigma_bounds[1])
+        lam = np.full(k, 1e-2)
+        act = np.arange(k)
+        if isinstance(noise2, float) or np.ndim(noise2) == 0:
+            noise2 = np.broadcast_to(noise2, data.shape)
         for it in range(n_iter):
-            mdl, (a, e, rho, tau, isr2, ist2) = model(p)
-            ae = a * e
-            jac = np.stack([e,
-                            ae * (rho * isr2 * ur - tau * ist2 * uc),
-                            ae * (rho * isr2 * uc + tau * ist2 * ur),
-                            ae * rho * rho * isr2,
-                            ae * tau * tau * ist2,
-                            np.ones_like(e)], axis=-1).reshape(k, -1, 6)
-            ww = w.reshape(k, -1)
-            res = (data - mdl).reshape(k, -1)
-            jtw = jac * ww[:, :, None]
-            hmat = np.einsum("kpi,kpj->kij", jtw, jac)
-            grad = np.einsum("kpi,kp->ki", jtw, res)
+            if len(act) == 0:
+                break
+            d, n2, ok, uu = data[act], noise2[act], w_ok[act], u[act]
+            pa = p[act]
+            mdl, aux = self._model(pa, uu)
+            w = self._weights(mdl, pa, n2, ok, gain)
+            chi2 = np.sum(w * (d - mdl) ** 2, axis=(1, 2))
+            jac = self._jac(aux, uu)
+            ka = len(act)
+            jf = jac.reshape(ka, -1, 6)
+            jtw = jf * w.reshape(ka, -1, 1)
+            hmat = np.matmul(jtw.transpose(0, 2, 1), jf)
+            grad = np.matmul(jtw.transpose(0, 2, 1), (d - mdl).reshape(ka, -1, 1))[:, :, 0]
             diag = np.einsum("kii->ki", hmat)
-            hd = hmat + (lam[:, None] * np.maximum(diag, 1e-12))[:, :, None] * np.eye(6)[None]
+            hd = hmat + (lam[act, None] * np.maximum(diag, 1e-12))[:, :, None] * np.eye(6)[None]
+            hd = hd + 1e-12 * np.eye(6)[None]
             try:
                 step = np.linalg.solve(hd, grad[:, :, None])[:, :, 0]
             except np.linalg.LinAlgError:
-                step = np.zeros_like(p)
-                for i in range(k):
-                    try:
-                        step[i] = np.linalg.lstsq(hd[i], grad[i], rcond=None)[0]
-                    except np.linalg.LinAlgError:
-                        pass
+                step = np.stack([np.linalg.lstsq(h, g, rcond=None)[0] for h, g in zip(hd, grad)])
             step[:, 1:3] = np.clip(step[:, 1:3], -1.5, 1.5)
             step[:, 3:5] = np.clip(step[:, 3:5], -0.5, 0.5)
-            pn = p + step
+            pn = pa + step
             pn[:, 3:5] = np.clip(pn[:, 3:5], lo, hi)
-            chi2_new, _ = chi2_of(pn, w)
-            better = np.isfinite(chi2_new) & (chi2_new <= chi2)
-            p = np.where(better[:, None], pn, p)
-            lam = np.where(better, np.maximum(lam / 5, 1e-7), lam * 10)
-            mdl, _ = model(p)
-            w = weights(mdl, p)
-            chi2, _ = chi2_of(p, w)
-            if it > 4 and np.all(np.abs(step[:, 1:3]) < 1e-3):
-                break
-        # covariance
-        mdl, (a, e, rho, tau, isr2, ist2) = model(p)
-        ae = a * e
-        jac = np.stack([e, ae * (rho * isr2 * ur - tau * ist2 * uc), ae * (rho * isr2 * uc + tau * ist2 * ur),
-                        ae * rho * rho * isr2, ae * tau * tau * ist2, np.ones_like(e)], axis=-1).reshape(k, -1, 6)
-        hmat = np.einsum("kpi,kpj->kij", jac * w.reshape(k, -1)[:, :, None], jac)
+            mdl_n, _ = self._model(pn, uu)
+            chi2_n = np.sum(w * (d - mdl_n) ** 2, axis=(1, 2))
+            better = np.isfinite(chi2_n) & (chi2_n <= chi2)
+            p[act] = np.where(better[:, None], pn, pa)
+            lam[act] = np.where(better, np.maximum(lam[act] / 5, 1e-7), lam[act] * 10)
+            done = better & (np.abs(step[:, 1:3]).max(axis=1) < 1e-3) | (lam[act] > 1e6)
+            if it >= 2:
+                act = act[~done]
+        # covariance at the solution
+        mdl, aux = self._model(p, u)
+        w = self._weights(mdl, p, noise2, w_ok, gain)
+        jf = self._jac(aux, u).reshape(k, -1, 6)
+        hmat = np.matmul((jf * w.reshape(k, -1, 1)).transpose(0, 2, 1), jf)
         try:
             cov = np.linalg.inv(hmat + 1e-12 * np.eye(6)[None])
         except np.linalg.LinAlgError:
             cov = np.full((k, 6, 6), np.nan)
+        chi2 = np.sum(w * (data - mdl) ** 2, axis=(1, 2))
         npix = np.maximum(w_ok.reshape(k, -1).sum(axis=1) - 6, 1)
         return p, cov, chi2 / npix, mdl
+
+    def _model(self, p, u):
+        a, r0, c0, lsr, lst, b = (p[:, i, None, None] for i in range(6))
+        ur, uc = u[:, 0, None, None], u[:, 1, None, None]
+        x, y = self.dr[None] - r0, self.dc[None] - c0
+        rho, tau = x * ur + y * uc, -x * uc + y * ur
+        isr2, ist2 = np.exp(-2 * lsr), np.exp(-2 * lst)
+        e = np.exp(-0.5 * (rho * rho * isr2 + tau * tau * ist2))
+        return a * e + b, (a, e, rho, tau, isr2, ist2)
+
+    @staticmethod
+    def _weights(mdl, p, noise2, ok, gain):
+        v = noise2 + gain * np.clip(mdl - p[:, 5, None, None], 0, None) if gain else noise2
+        return np.where(ok, 1.0 / v, 0.0)
+
+    @staticmethod
+    def _jac(aux, u):
+        a, e, rho, tau, isr2, ist2 = aux
+        ur, uc = u[:, 0, None, None], u[:, 1, None, None]
+        ae = a * e
+        gr, gt = ae * rho * isr2, ae * tau * ist2
+        jac = np.empty(e.shape + (6,))
+        jac[..., 0] = e
+        jac[..., 1] = gr * ur - gt * uc
+        jac[..., 2] = gr * uc + gt * ur
+        jac[..., 3] = gr * rho
+        jac[..., 4] = gt * tau
+        jac[..., 5] = 1.0
+        return jac
 
 
 def _render(shape, rc, amp, sr, st, u, half) -> np.ndarray:

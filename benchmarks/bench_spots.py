@@ -136,40 +136,57 @@ def ours_full(im, sigma):
     return measure_image(im.image, sigma_px=sigma).spots.rc
 
 
-def blob_log_rc(im, sigma):
-    from skimage.feature import blob_log
-
+def _residual(im):
+    """Background-subtracted image on the known valid pixels, with the same background
+    estimate as ours, and one global noise level (a baseline has no local noise map)."""
     img = im.image.astype(np.float64)
     valid = ndi.binary_erosion(im.masks["screen"] & ~im.masks["gun"], iterations=3)
-    bg = ndi.median_filter(img[::4, ::4], size=9)
-    bg = np.repeat(np.repeat(bg, 4, 0), 4, 1)[: img.shape[0], : img.shape[1]]
-    res = np.where(valid, img - bg, 0.0)
-    scale = np.percentile(res[valid], 99.99)
-    b = blob_log(res / max(scale, 1e-9), min_sigma=1.0, max_sigma=4.0, num_sigma=7, threshold=0.02,
-                 overlap=0.5)
+    bg = estimate_background(img, valid)
+    res = np.where(valid, img - bg.background, 0.0)
+    return res, valid, float(np.median(bg.noise[valid]))
+
+
+_LOG_NOISE: dict = {}
+
+
+def _log_noise(s: float) -> float:
+    """Standard deviation of the scale-normalised LoG response (−s² ∇²G_s) to unit white noise."""
+    key = round(s, 3)
+    if key not in _LOG_NOISE:
+        w = np.random.default_rng(0).normal(size=(256, 256))
+        _LOG_NOISE[key] = float(np.std((-ndi.gaussian_laplace(w, s) * s * s)[32:-32, 32:-32]))
+    return _LOG_NOISE[key]
+
+
+def blob_log_rc(im, sigma):
+    """skimage blob_log over σ/√2 … 1.5 σ, threshold 5 × the noise response at the finest scale."""
+    from skimage.feature import blob_log
+
+    res, valid, noise = _residual(im)
+    lo = max(0.7, sigma / math.sqrt(2))
+    b = blob_log(res / noise, min_sigma=lo, max_sigma=1.5 * sigma, num_sigma=5, threshold=5.0 * _log_noise(lo),
+                 overlap=0.5, exclude_border=False)
     rc = b[:, :2].astype(float)
     return rc[valid[rc[:, 0].astype(int), rc[:, 1].astype(int)]] if len(rc) else rc
 
 
 def peak_local_max_rc(im, sigma):
+    """peak_local_max on the Gaussian-smoothed residual, 5 × its global noise, parabolic sub-pixel."""
     from skimage.feature import peak_local_max
 
-    img = im.image.astype(np.float64)
-    valid = ndi.binary_erosion(im.masks["screen"] & ~im.masks["gun"], iterations=3)
-    sm = ndi.gaussian_filter(img, sigma)
-    bg = ndi.median_filter(sm[::4, ::4], size=9)
-    bg = np.repeat(np.repeat(bg, 4, 0), 4, 1)[: img.shape[0], : img.shape[1]]
-    res = np.where(valid, sm - bg, 0.0)
-    noise = 1.4826 * np.median(np.abs(res[valid] - np.median(res[valid])))
-    pk = peak_local_max(res, min_distance=max(1, int(round(1.5 * sigma))), threshold_abs=5 * noise,
+    res, valid, noise = _residual(im)
+    sm = ndi.gaussian_filter(res, sigma)
+    x = np.arange(-int(3 * sigma + 0.5), int(3 * sigma + 0.5) + 1)
+    g = np.exp(-0.5 * (x / sigma) ** 2)
+    g /= g.sum()
+    noise_sm = noise * float(np.sum(g * g))  # white noise through the separable filter
+    pk = peak_local_max(sm, min_distance=max(1, int(round(1.5 * sigma))), threshold_abs=5 * noise_sm,
                         exclude_border=False)
-    # sub-pixel: 3-point parabola on the smoothed image
     rc = pk.astype(float)
     if len(pk):
-        r, c = pk[:, 0], pk[:, 1]
-        r1, c1 = np.clip(r, 1, img.shape[0] - 2), np.clip(c, 1, img.shape[1] - 2)
-        for ax, (lo, hi) in enumerate([((r1 - 1, c1), (r1 + 1, c1)), ((r1, c1 - 1), (r1, c1 + 1))]):
-            fm, f0, fp = res[lo], res[r1, c1], res[hi]
+        r1, c1 = np.clip(pk[:, 0], 1, sm.shape[0] - 2), np.clip(pk[:, 1], 1, sm.shape[1] - 2)
+        for ax, (lo_, hi_) in enumerate([((r1 - 1, c1), (r1 + 1, c1)), ((r1, c1 - 1), (r1, c1 + 1))]):
+            fm, f0, fp = sm[lo_], sm[r1, c1], sm[hi_]
             den = fm - 2 * f0 + fp
             rc[:, ax] += np.where(den < 0, 0.5 * (fm - fp) / np.where(den < 0, den, -1), 0.0)
     return rc
