@@ -299,7 +299,6 @@ def _frame_screen(img: np.ndarray, margin_px: float) -> ScreenMask:
 
 def _auto_screen(img: np.ndarray, margin_px: float) -> ScreenMask:
     from skimage.filters import threshold_otsu
-    from skimage.morphology import convex_hull_image
 
     m, n = img.shape
     f = max(1, int(round(max(m, n) / 256)))
@@ -324,7 +323,7 @@ def _auto_screen(img: np.ndarray, margin_px: float) -> ScreenMask:
         return _frame_screen(img, margin_px)
     sizes = ndi.sum_labels(np.ones_like(lab), lab, index=np.arange(1, nlab + 1))
     comp = lab == (1 + int(np.argmax(sizes)))
-    hull = convex_hull_image(comp)
+    hull = ndi.binary_fill_holes(comp)  # rough: the ray search below finds the true edge
     rr, cc = np.nonzero(hull)
     if rr.size < 50:
         return _frame_screen(img, margin_px)
@@ -503,7 +502,7 @@ def _none_shadow(shape, margin_px) -> ShadowMask:
 
 def _auto_gun(img: np.ndarray, screen: ScreenMask, margin_px: float) -> ShadowMask:
     m, n = img.shape
-    f = max(1, int(round(max(m, n) / 512)))
+    f = max(1, int(round(max(m, n) / 256)))
     small = ndi.gaussian_filter(_block_reduce_mean(img, f), 1.0)
     scr = screen.mask[: small.shape[0] * f: f, : small.shape[1] * f: f][: small.shape[0], : small.shape[1]]
     if scr.sum() < 100:
