@@ -57,8 +57,8 @@ class LoadedImage:
     source_name : str
         File name (or ``"<bytes>"``, ``"<array>"``, ``"stack.tif#3"``...).
     saturation_level : float or None
-        Full-scale value of the stored integers (2**bit_depth − 1), in the units of
-        `data` before the dark/flat correction; None for floating-point data.
+        Full-scale value of the stored integers (2**bit_depth − 1); None for
+        floating-point data and after a dark/flat correction.
     n_frames : int
         Number of frames in the source (the first one is `data`).
     """
@@ -380,6 +380,7 @@ def load_image(source, *, dark=None, flat=None, max_pixels: int = MAX_PIXELS,
     f = _correction(flat, "flat", data.shape, max_pixels, max_bytes)
     if d is not None or f is not None:
         data = _apply(data, d, f, name)
+        sat = None  # full scale is no longer one number after a per-pixel correction
     data = np.array(data, dtype=np.float64)
     data.flags.writeable = False
     return LoadedImage(data=data, dtype_name=np.dtype(dtype).name, bit_depth=bits, source_name=name,

@@ -53,7 +53,6 @@ FLAG_SPLIT = 8  # one of a close pair separated by a two-spot fit
 FLAG_NAMES = {FLAG_SATURATED: "saturated", FLAG_NEAR_EDGE: "near_mask_edge",
               FLAG_FIT_FAILED: "fit_failed", FLAG_SPLIT: "split_pair"}
 _FWHM = 2.0 * math.sqrt(2.0 * math.log(2.0))
-_DEBUG = False
 _FLAG_BLEND = 128  # internal: residual peak beside the spot (cleared before the table)
 
 
@@ -625,7 +624,7 @@ class BackgroundEstimate:
     def __iter__(self):
         return iter((self.background, self.noise))
 
-    def variance(self, signal_adu: np.ndarray, rc_slices=None) -> np.ndarray:
+    def variance(self, signal_adu: np.ndarray) -> np.ndarray:
         """Variance of pixels holding extra `signal_adu` over the background."""
         v = self.noise**2
         if self.gain_adu:
@@ -920,7 +919,7 @@ class _Fitter:
         self.dr, self.dc = np.meshgrid(o, o, indexing="ij")
 
     def patches(self, arrays, centres):
-        h = self.half
+        """Gather (K, W, W) windows of each array around rounded `centres` (clamped at the edges)."""
         r0 = np.rint(centres[:, 0]).astype(np.int64)
         c0 = np.rint(centres[:, 1]).astype(np.int64)
         rr = r0[:, None, None] + self.dr.astype(np.int64)[None]
@@ -1146,7 +1145,7 @@ def find_spots(image, *, sigma_px: float = 2.0, min_snr: float = 5.0, mask=None,
                                   sweeps=60)
     if split_pairs and len(spots["rc"]):
         spots = _split_pairs(fitter, res, noise, ok_fit, valid, spots, centre, gain, sigma_px, shape, half,
-                             min_snr, knorm)
+                             min_snr)
     spots = _dedupe(spots, 0.75 * sigma_px)
     if gain is None and len(spots["rc"]):
         # no variance law from the background: measure it on the fitted spots and measure again
@@ -1190,8 +1189,6 @@ def _fit_candidates(fitter, res, noise, ok_fit, valid, cand, snr_map, centre, ga
 def _fit_pass1(fitter, res, noise, ok_fit, valid, cand, s1, f1, centre, gain, sigma_px, shape, half):
     """Fit isolated candidates alone; candidates sharing a window start from the filter
     peaks and are fitted with each other's models removed."""
-    from scipy.spatial import cKDTree
-
     cand = np.asarray(cand).reshape(-1, 2)
     crowded = np.zeros(len(cand), bool)
     if len(cand) > 1:
@@ -1300,8 +1297,6 @@ def _take(a, idx):
 
 def _refit_neighbours(fitter, res, noise, ok_fit, valid, spots, centre, gain, sigma_px, shape, half, sweeps=2):
     """Refit spots that share a window, each with the others' models removed."""
-    from scipy.spatial import cKDTree
-
     if len(spots["rc"]) < 2:
         return spots
     shp = noise.shape
@@ -1352,7 +1347,7 @@ def _render_patches(fitter, sub, half):
                                                       + tau**2 / sub["st"][:, None, None] ** 2))
 
 
-def _split_pairs(fitter, res, noise, ok_fit, valid, spots, centre, gain, sigma_px, shape, half, min_snr, knorm):
+def _split_pairs(fitter, res, noise, ok_fit, valid, spots, centre, gain, sigma_px, shape, half, min_snr):
     """Replace wide, bright spots by two spots when a two-Gaussian fit is much better."""
     good = (spots["flags"] & FLAG_FIT_FAILED) == 0
     if good.sum() == 0:
@@ -1394,8 +1389,6 @@ def _split_pairs(fitter, res, noise, ok_fit, valid, spots, centre, gain, sigma_p
     sig_pair = np.minimum(a1, a2) / nz[:, half, half] * math.sqrt(math.pi) * s2  # matched-filter significance
     accept = (chi1 - chi2 > np.maximum(30.0, 0.15 * chi1)) & (sig_pair >= min_snr) & (d > 0.8 * s2) & \
         (d < 2 * half) & np.isfinite(chi2) & (s2 < 1.5 * s_ref)
-    if _DEBUG:
-        print("split", chi1, chi2, sig_pair, d, s2, s_ref, accept)
     if not accept.any():
         return spots
     keep = np.ones(len(spots["rc"]), bool)

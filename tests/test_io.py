@@ -90,6 +90,13 @@ def test_dark_and_flat_correction():
     assert_allclose(im.data, truth * np.median(1000 * gain) / 1000.0, rtol=1e-12)
 
 
+def test_saturation_level_dropped_after_dark_subtraction():
+    raw = _ramp(np.uint16, top=60000)
+    assert load_image(raw).saturation_level == 65535.0
+    # after a per-pixel dark subtraction full scale is no longer one number
+    assert load_image(raw, dark=np.full(raw.shape, 100.0)).saturation_level is None
+
+
 def test_multipage_tiff_stack_streams_frames(tmp_path):
     stack = np.stack([_ramp(np.uint16, top=1000 * (i + 1)) for i in range(4)])
     p = tmp_path / "series.tif"
