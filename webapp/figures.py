@@ -257,7 +257,7 @@ def pattern_figure(source: str | None, *, width: int, height: int, factor: int =
 
     sub = result.get("substrate") or {}
     if "substrate" in show and sub.get("a_star_px") is not None and center is not None:
-        hk, xy = _lattice_hk(sub["a_star_px"], center, width, height)
+        hk, xy = _substrate_points(result, center, width, height)
         fig.add_trace(go.Scatter(
             x=xy[:, 0], y=xy[:, 1], mode="markers", name="Substrate net",
             marker=dict(symbol="cross-thin-open", size=11, color=PALETTE["vermillion"], line=dict(width=1.5, color=PALETTE["vermillion"])),
@@ -287,7 +287,7 @@ def pattern_figure(source: str | None, *, width: int, height: int, factor: int =
 
     spots, sxy = _spot_arrays(result)
     if "spots" in show and len(spots):
-        custom = [["spot", int(s.get("index", i))] for i, s in enumerate(spots)]
+        custom = [["spot", i, bool(s.get("manual"))] for i, s in enumerate(spots)]
         text = [f"{hk_text(s.get('h'), s.get('k')) if s.get('h') is not None else '(not indexed)'}"
                 f"<br>intensity {_num(s.get('intensity'))}<br>SNR {_num(s.get('snr'), '{:.1f}')}"
                 for s in spots]
@@ -296,10 +296,10 @@ def pattern_figure(source: str | None, *, width: int, height: int, factor: int =
                                  marker=dict(symbol="circle-open", size=11, color=PALETTE["sky"], line=dict(width=1.5, color=PALETTE["sky"])),
                                  hovertemplate="%{text}<br>x %{x:.1f}, y %{y:.1f}<extra>spot</extra>"))
     if "unexplained" in show and len(spots):
-        un = [i for i, s in enumerate(spots) if s.get("explained") is False]
+        un = [i for i, s in enumerate(spots) if s.get("kind") == "unexplained" or s.get("explained") is False]
         if un:
             fig.add_trace(go.Scatter(x=sxy[un, 0], y=sxy[un, 1], mode="markers", name="Unexplained",
-                                     customdata=[["spot", int(spots[i].get("index", i))] for i in un],
+                                     customdata=[["spot", i, bool(spots[i].get("manual"))] for i in un],
                                      marker=dict(symbol="x-thin-open", size=14, color=PALETTE["purple"], line=dict(width=2, color=PALETTE["purple"])),
                                      hovertemplate="unexplained spot<br>x %{x:.1f}, y %{y:.1f}<extra></extra>"))
     added = edits.get("added") or []
@@ -328,18 +328,34 @@ def pattern_figure(source: str | None, *, width: int, height: int, factor: int =
     return fig
 
 
+def _substrate_points(result, center, width, height):
+    """(hk, xy) of the substrate beams: the camera model's positions when the result has them."""
+    pred = result.get("predicted")
+    if isinstance(pred, dict) and pred.get("substrate"):
+        pts = pred["substrate"]
+        return (np.array([[p["h"], p["k"]] for p in pts], dtype=float).reshape(-1, 2),
+                np.array([[p["x"], p["y"]] for p in pts], dtype=float).reshape(-1, 2))
+    return _lattice_hk(result["substrate"]["a_star_px"], center, width, height)
+
+
+def _rows_to_arrays(rows) -> dict:
+    if isinstance(rows, dict):  # {"xy": [...], "hk": [...]}
+        xy = np.asarray(rows.get("xy", []), dtype=float).reshape(-1, 2)
+        hk = np.asarray(rows.get("hk", np.full((len(xy), 2), np.nan)), dtype=float).reshape(-1, 2)
+        return {"xy": xy, "hk": hk}
+    return {"xy": np.array([[p["x"], p["y"]] for p in rows], dtype=float).reshape(-1, 2),
+            "hk": np.array([[p.get("h", np.nan), p.get("k", np.nan)] for p in rows], dtype=float).reshape(-1, 2)}
+
+
 def _domain_predictions(result, overlayer, width, height) -> list[dict]:
     """Predicted spots per domain: from the result when it lists them, else from the domain matrices."""
     pred = overlayer.get("predicted") if isinstance(overlayer, dict) else None
     if pred is None and overlayer is result.get("overlayer"):
         pred = result.get("predicted")
-    if pred:
-        out = []
-        for p in pred:
-            xy = np.asarray(p.get("xy", []), dtype=float).reshape(-1, 2)
-            hk = np.asarray(p.get("hk", np.full((len(xy), 2), np.nan)), dtype=float).reshape(-1, 2)
-            out.append({"xy": xy, "hk": hk})
-        return out
+        if isinstance(pred, dict):
+            pred = pred.get("domains")
+    if pred is not None:
+        return [_rows_to_arrays(p) for p in pred]
     mats = overlayer.get("domains") or ([overlayer["matrix"]] if overlayer.get("matrix") else [])
     return predicted_spots(result, mats, width=width, height=height)
 
@@ -347,18 +363,29 @@ def _domain_predictions(result, overlayer, width, height) -> list[dict]:
 def _mask_outlines(result) -> list[dict]:
     """Outlines of the screen and gun-shadow masks, when the result describes them."""
     out = []
-    masks = result.get("masks") or {}
-    scr = masks.get("screen") if isinstance(masks, dict) else None
-    if isinstance(scr, dict) and {"center_px", "radius_px"} <= set(scr):
-        t = np.linspace(0, 2 * np.pi, 181)
-        (cx, cy), r = scr["center_px"], float(scr["radius_px"])
-        out.append({"name": "Screen edge", "x": cx + r * np.cos(t), "y": cy + r * np.sin(t)})
-    gun = masks.get("gun") if isinstance(masks, dict) else None
-    poly = gun.get("polygon_px") if isinstance(gun, dict) else None
-    if poly:
-        p = np.asarray(poly, dtype=float).reshape(-1, 2)
-        p = np.vstack([p, p[:1]])
-        out.append({"name": "Gun shadow", "x": p[:, 0], "y": p[:, 1]})
+    t = np.linspace(0, 2 * np.pi, 181)
+    scr = result.get("screen")
+    if isinstance(scr, dict) and scr.get("center_px") and scr.get("source") != "frame":
+        cx, cy = scr["center_px"]
+        ax = scr.get("semi_axes_px") or [scr.get("radius_px", 0.0)] * 2
+        ang = np.deg2rad(float(scr.get("angle_deg") or 0.0))
+        u, v = ax[0] * np.cos(t), ax[1] * np.sin(t)
+        # image angles are counter-clockwise on the screen, so y_px grows as the angle falls
+        out.append({"name": "Screen edge", "x": cx + u * np.cos(ang) - v * np.sin(ang),
+                    "y": cy - (u * np.sin(ang) + v * np.cos(ang))})
+    gun = result.get("gun")
+    if isinstance(gun, dict) and gun.get("center_px") and float(gun.get("radius_px") or 0) > 0:
+        (gx, gy), r = gun["center_px"], float(gun["radius_px"])
+        xs, ys = list(gx + r * np.cos(t)), list(gy + r * np.sin(t))
+        if gun.get("arm_angle_deg") is not None and float(gun.get("arm_width_px") or 0) > 0:
+            a = np.deg2rad(float(gun["arm_angle_deg"]))
+            d = np.array([np.cos(a), -np.sin(a)])  # along the arm, y downwards
+            n = np.array([-d[1], d[0]]) * float(gun["arm_width_px"]) / 2.0
+            far = np.array([gx, gy]) + d * 4.0 * max(scr.get("radius_px", 500.0) if isinstance(scr, dict) else 500.0, r)
+            poly = [np.array([gx, gy]) + n, far + n, far - n, np.array([gx, gy]) - n]
+            xs += [None] + [p[0] for p in poly]
+            ys += [None] + [p[1] for p in poly]
+        out.append({"name": "Gun shadow", "x": xs, "y": ys})
     return out
 
 
@@ -454,7 +481,7 @@ def export_figure(levels: np.ndarray, *, factor: int = 1, result: dict | None = 
     center = (edits or {}).get("center") or result.get("center_px")
     sub = result.get("substrate") or {}
     if sub.get("a_star_px") is not None and center is not None:
-        _, xy = _lattice_hk(sub["a_star_px"], center, w, h)
+        _, xy = _substrate_points(result, center, w, h)
         ax.scatter(xy[:, 0], xy[:, 1], marker="+", s=60, c=PALETTE["vermillion"], linewidths=1.2, label="substrate net")
         for i, v in enumerate(np.asarray(sub["a_star_px"], dtype=float)):
             ax.annotate(f"a{i + 1}*", xy=(center[0] + v[0], center[1] + v[1]), xytext=(center[0], center[1]),

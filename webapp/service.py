@@ -17,9 +17,10 @@ from pathlib import Path
 
 import numpy as np
 
-from analysis.errors import FitError, ImageError, NetError, ParameterError, RecinetError
+from analysis.errors import ImageError, NetError, ParameterError, RecinetError
 
 __all__ = [
+    "result_object", "candidate_predictions", "record_key", "calibration_of",
     "DEMO_DIR", "EXPORT_FORMAT", "demo_choices", "demo_bytes", "decode_upload", "read_image",
     "image_array", "check_energy", "check_substrate", "analyze", "try_model", "summary_of",
     "export_bundle", "read_bundle", "clean_edits", "pipeline_ready",
@@ -152,7 +153,13 @@ def image_array(sha: str) -> np.ndarray:
 # --------------------------------------------------------------------------- parameters
 
 def check_energy(value) -> float:
-    """Electron energy from a form field, in eV."""
+    """Electron energy from a form field, in eV (the pipeline's range when it is installed)."""
+    try:
+        from analysis.pipeline import check_energy as _pipeline_check
+    except ImportError:
+        _pipeline_check = None
+    if _pipeline_check is not None:
+        return _pipeline_check(value)
     try:
         e = float(value)
     except (TypeError, ValueError):
@@ -174,7 +181,8 @@ def check_substrate(text):
 
 
 def clean_edits(edits) -> dict:
-    """Manual edits from the browser, checked: ``added`` [[x, y]], ``removed`` [int], ``center`` [x, y] or None."""
+    """Manual edits from the browser, checked: ``added`` [[x, y]], ``removed`` [[x, y]] (spots dropped,
+    found again by position), ``center`` [x, y] or None."""
     edits = edits if isinstance(edits, dict) else {}
 
     def point(p):
@@ -188,8 +196,7 @@ def clean_edits(edits) -> dict:
         return None
 
     added = [q for q in (point(p) for p in (edits.get("added") or [])[:MAX_EDITS]) if q is not None]
-    removed = sorted({int(i) for i in (edits.get("removed") or [])[:MAX_EDITS]
-                      if isinstance(i, (int, float)) and not isinstance(i, bool) and 0 <= i < 10**7})
+    removed = [q for q in (point(p) for p in (edits.get("removed") or [])[:MAX_EDITS]) if q is not None]
     return {"added": added, "removed": removed, "center": point(edits.get("center"))}
 
 
@@ -205,32 +212,103 @@ def pipeline_ready() -> bool:
 
 
 def calibration_of(result: dict | None):
-    """The screen calibration a saved result carries (a dict), or None."""
+    """The fitted camera model (a ScreenGeometry dict) a saved result carries, or None."""
     if not isinstance(result, dict):
         return None
-    for key in ("calibration", "geometry", "screen_geometry"):
+    for key in ("geometry", "calibration"):
         if isinstance(result.get(key), dict) and result[key]:
             return result[key]
     return None
 
 
+def record_key(sha: str, parameters: dict, edits: dict | None) -> str:
+    """A stable key for one (image, parameters, edits): the cache name of its analysis object."""
+    import hashlib
+
+    blob = json.dumps([sha, parameters or {}, clean_edits(edits)], sort_keys=True, default=str)
+    return hashlib.sha256(blob.encode()).hexdigest()
+
+
+_RESULTS = {"cache": None, "pid": None}
+
+
+def _results_cache():
+    """diskcache of analysis objects in the data folder (shared by workers; the oldest are evicted)."""
+    import os
+
+    import diskcache
+
+    from .runtime import get_settings
+
+    if _RESULTS["cache"] is None or _RESULTS["pid"] != os.getpid():
+        path = get_settings().cache_dir / "results"
+        _RESULTS["cache"] = diskcache.Cache(str(path), size_limit=2 * 1024**3, eviction_policy="least-recently-used")
+        _RESULTS["pid"] = os.getpid()
+    return _RESULTS["cache"]
+
+
+def _pipeline_edits(ed: dict) -> dict:
+    return {"added_xy": ed["added"], "removed_xy": ed["removed"], "center_xy": ed["center"]}
+
+
 def analyze(image: np.ndarray, *, energy_eV: float, substrate: str, edits: dict | None = None,
             reference: np.ndarray | None = None, reference_energy_eV: float | None = None,
-            calibration: dict | None = None, progress=None) -> dict:
-    """Run the analysis and return the result as its JSON-safe dict."""
+            calibration: dict | None = None, progress=None, cache_key: str | None = None) -> dict:
+    """Run the analysis and return the result as its JSON-safe dict.
+
+    With `cache_key`, the analysis object is kept (without its background maps)
+    so that trying a model or drawing a candidate later needs no new analysis.
+    """
+    import dataclasses
+
     try:
         from analysis import pipeline, serialize
+        from analysis.optics import ScreenGeometry
     except ImportError:
         raise RecinetError("The analysis pipeline is not installed in this build; the image can be viewed only.") from None
     e = check_energy(energy_eV)
     check_substrate(substrate)
     ed = clean_edits(edits)
-    pipe_edits = {"added": [tuple(p) for p in ed["added"]], "removed": ed["removed"],
-                  "center": tuple(ed["center"]) if ed["center"] else None}
-    result = pipeline.analyze_image(image, energy_eV=e, substrate=substrate, edits=pipe_edits, reference=reference,
-                                    reference_energy_eV=reference_energy_eV, calibration=calibration,
-                                    progress=progress)
+    geom = ScreenGeometry.from_dict(calibration) if isinstance(calibration, dict) else calibration
+    result = pipeline.analyze_image(image, energy_eV=e, substrate=substrate, edits=_pipeline_edits(ed),
+                                    reference=reference, reference_energy_eV=reference_energy_eV,
+                                    calibration=geom, progress=progress)
+    if cache_key:
+        slim = dataclasses.replace(result, measurement=dataclasses.replace(result.measurement, background=None))
+        try:
+            _results_cache().set(cache_key, slim, expire=7 * 86400)
+        except Exception:  # noqa: BLE001 - a full or unwritable cache only costs a re-analysis later
+            pass
     return serialize.result_to_dict(result)
+
+
+def result_object(record: dict):
+    """The analysis object behind a stored record: from the cache, else analysed again (same inputs)."""
+    from .runtime import get_store
+
+    params = (record or {}).get("parameters") or {}
+    sha = (record or {}).get("sha")
+    key = record_key(sha, params, record.get("edits"))
+    try:
+        obj = _results_cache().get(key)
+    except Exception:  # noqa: BLE001
+        obj = None
+    if obj is not None:
+        return obj
+    ref = None
+    if params.get("reference_sha256"):
+        ref = image_array(params["reference_sha256"])
+    cal = None
+    if params.get("calibration_from"):
+        saved = get_store().get_analysis(params["calibration_from"])
+        cal = calibration_of(saved.result if saved else None)
+    analyze(image_array(sha), energy_eV=params.get("energy_eV"), substrate=params.get("substrate", ""),
+            edits=record.get("edits"), reference=ref, reference_energy_eV=params.get("reference_energy_eV"),
+            calibration=cal, cache_key=key)
+    obj = _results_cache().get(key)
+    if obj is None:
+        raise RecinetError("The analysis could not be kept in the job cache; check the data folder's free space.")
+    return obj
 
 
 def summary_of(result: dict | None) -> str:
@@ -249,50 +327,42 @@ def summary_of(result: dict | None) -> str:
     return str(ov.get("kind") or "")
 
 
-def try_model(text: str, result: dict, substrate: str, *, width: int, height: int) -> dict:
-    """Predicted spots of a typed model (a matrix or a Wood notation) and how many spots it explains.
+def _xy_of(points) -> list:
+    return [[float(p["x"]), float(p["y"])] for p in points]
 
-    Returns ``{"label", "matrices": [...], "xy": [[x, y]...], "explained", "unexplained", "tolerance_px"}``.
-    A detected spot is explained when it lies within ``tolerance_px`` of a
-    substrate beam or of a beam any domain of the model predicts.
+
+def try_model(text: str, record: dict) -> dict:
+    """Score a typed model (a matrix or a Wood notation) on the analysed spots.
+
+    Returns ``{"label", "matrices", "xy", "explained", "unexplained", "n_domains", "wood", "kind"}``;
+    ``xy`` are the beams every domain of the model predicts, on the camera model.
     """
-    from analysis import superstructure as ss
-
-    from .figures import _lattice_hk, predicted_spots
+    from analysis import pipeline, serialize
 
     if not isinstance(text, str) or not text.strip():
         raise NetError("Type a matrix like '2 1 / -1 1' or a Wood notation like '(√3×√3)R30°'.")
     if len(text) > 200:
         raise NetError("The model text is too long (at most 200 characters).")
-    net = check_substrate(substrate)
-    t = text.strip()
-    if re.search(r"[×xX√R()]|sqrt", t) and not re.fullmatch(r"[\s\d.,;/\[\]()+-]+", t):
-        matrix = ss.parse_wood(t, net)
-    else:
-        matrix = ss.parse_matrix(t)
-    matrix = ss.as_matrix(matrix)  # refuses a singular matrix with its own message
-    doms = [d.matrix for d in ss.domains(net, matrix)]
-    sub = (result or {}).get("substrate") or {}
-    if sub.get("a_star_px") is None or (result or {}).get("center_px") is None:
-        raise FitError("Analyse the image first: the model is drawn on the fitted substrate net.")
-    preds = predicted_spots(result, doms, width=width, height=height)
-    xy = np.vstack([p["xy"] for p in preds] + [np.zeros((0, 2))])
-    _, sub_xy = _lattice_hk(sub["a_star_px"], result["center_px"], width, height)
-    a_star = np.asarray(sub["a_star_px"], dtype=float)
-    inv = np.linalg.inv(matrix)
-    b_star = inv.T @ a_star  # overlayer reciprocal basis in pixels
-    tol = float(max(2.0, 0.2 * min(np.linalg.norm(b_star, axis=1).min(), np.linalg.norm(a_star, axis=1).min())))
-    spots = np.array([[s["x"], s["y"]] for s in (result.get("spots") or [])], dtype=float).reshape(-1, 2)
-    allowed = np.vstack([xy, sub_xy])
-    if len(spots) and len(allowed):
-        d = np.sqrt(((spots[:, None, :] - allowed[None, :, :]) ** 2).sum(-1)).min(axis=1)
-        explained = int((d <= tol).sum())
-    else:
-        explained = 0
-    wood = ss.wood_notation(net, matrix)
-    return {"label": f"{ss.format_matrix(matrix)}  {wood}", "matrices": [np.asarray(m).tolist() for m in doms],
-            "xy": xy.tolist(), "explained": explained, "unexplained": int(len(spots) - explained),
-            "tolerance_px": tol, "n_domains": len(doms)}
+    obj = result_object(record)
+    model = pipeline.try_model(obj, text.strip())
+    fit = obj.index.substrate
+    d = serialize.model_to_dict(model, fit.net)
+    pred = serialize.predicted_spots(fit, model, obj.energy_eV)
+    xy = [q for dom in pred["domains"] for q in _xy_of(dom)]
+    return {"label": f"{d['matrix_text']}  {d['wood'] or 'no Wood notation'}", "matrices": d["domains"],
+            "xy": xy, "explained": int(d["explained"]), "unexplained": int(d["unexplained_count"]),
+            "n_domains": int(d["n_domains"]), "wood": d["wood"], "kind": d["kind"]}
+
+
+def candidate_predictions(record: dict, pick: int) -> list[list]:
+    """Predicted beams (x, y, h, k dicts) of each domain of ranked candidate `pick`."""
+    from analysis import serialize
+
+    obj = result_object(record)
+    models = obj.index.models
+    if not (0 <= int(pick) < len(models)):
+        raise ParameterError(f"There is no candidate {int(pick) + 1}.")
+    return serialize.predicted_spots(obj.index.substrate, models[int(pick)], obj.energy_eV)["domains"]
 
 
 # --------------------------------------------------------------------------- export / import

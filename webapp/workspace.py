@@ -339,9 +339,15 @@ def render_pattern(image, record, edits, model, scale, gamma, clip, overlays, pi
         return figures.empty_figure(_fail(err))
     result = _result_of(record, image)
     ed = edits if edits and edits.get("sha") == image["sha"] else None
+    cand = _candidate(result, pick)
+    if cand is not None and service.pipeline_ready():
+        try:
+            cand = {**cand, "predicted": service.candidate_predictions(record, pick)}
+        except Exception as err:  # noqa: BLE001 - fall back to the local linear prediction
+            _fail(err)
     return figures.pattern_figure(url, width=image["width"], height=image["height"], factor=f, result=result,
                                   overlays=overlays or [], edits=ed, model=model,
-                                  candidate=_candidate(result, pick),
+                                  candidate=cand,
                                   editable=not (source or {}).get("readonly"), revision=image["sha"])
 
 
@@ -374,9 +380,13 @@ def on_graph_event(click, relayout, undo, mode, edits, image, source):
         cd = p.get("customdata")
         if mode == "center":
             ed["center"] = [x, y]
-        elif isinstance(cd, (list, tuple)) and len(cd) == 2 and cd[0] == "spot":
-            if cd[1] not in ed["removed"]:
-                ed["removed"] = sorted(ed["removed"] + [int(cd[1])])
+        elif isinstance(cd, (list, tuple)) and len(cd) >= 2 and cd[0] == "spot":
+            if len(cd) >= 3 and cd[2] and ed["added"]:  # a spot added by hand: forget it
+                d = [math.hypot(q[0] - x, q[1] - y) for q in ed["added"]]
+                j = int(np.argmin(d))
+                ed["added"] = [q for i, q in enumerate(ed["added"]) if i != j]
+            else:  # a detected spot: drop it (the analysis finds it again by position)
+                ed["removed"] = ed["removed"] + [[round(x, 2), round(y, 2)]]
         elif isinstance(cd, (list, tuple)) and len(cd) == 2 and cd[0] == "added":
             i = int(cd[1])
             ed["added"] = [q for j, q in enumerate(ed["added"]) if j != i]
@@ -425,6 +435,7 @@ def run_job(set_progress, n_clicks, edits, image, energy, substrate, source, ref
     if trig == ids.RUN and not n_clicks:
         raise PreventUpdate
     ed = edits if edits and edits.get("sha") == image["sha"] else _empty_edits(image["sha"])
+    ed = service.clean_edits(ed)
     try:
         set_progress(("2", "100"))
         e = service.check_energy(energy)
@@ -439,20 +450,21 @@ def run_job(set_progress, n_clicks, edits, image, energy, substrate, source, ref
             cal = service.calibration_of(saved.result if saved else None)
             if cal is None:
                 raise ParameterError("The chosen calibration is no longer available; pick another or none.")
+        params = {"energy_eV": e, "substrate": substrate.strip()}
+        if ref is not None:
+            params.update(reference_sha256=reference["sha"], reference_filename=reference.get("filename"),
+                          reference_energy_eV=ref_e)
+        if cal is not None:
+            params["calibration_from"] = calibration_token
         set_progress(("5", "100"))
         result = service.analyze(data, energy_eV=e, substrate=substrate.strip(), edits=ed, reference=ref,
                                  reference_energy_eV=ref_e, calibration=cal,
-                                 progress=progress_reporter(set_progress, start=5, span=93))
+                                 progress=progress_reporter(set_progress, start=5, span=93),
+                                 cache_key=service.record_key(image["sha"], params, ed))
         set_progress(("100", "100"))
     except Exception as err:  # noqa: BLE001
         return no_update, _note(_fail(err))
-    params = {"energy_eV": e, "substrate": substrate.strip()}
-    if ref is not None:
-        params.update(reference_sha256=reference["sha"], reference_filename=reference.get("filename"),
-                      reference_energy_eV=ref_e)
-    if cal is not None:
-        params["calibration_from"] = calibration_token
-    record = {"sha": image["sha"], "parameters": params, "edits": service.clean_edits(ed), "result": result}
+    record = {"sha": image["sha"], "parameters": params, "edits": ed, "result": result}
     n = len(result.get("spots") or [])
     return record, _note(f"Analysed: {n} spots.", "ok")
 
@@ -476,6 +488,9 @@ def _fmt_pm(value, err, unit="", digits=3):
 
 
 def _uncertainty(d: dict, base: str):
+    sig = d.get("sigma")
+    if isinstance(sig, dict) and sig.get(base) is not None:
+        return sig[base]
     for k in (f"{base}_err", f"{base}_sigma", f"{base}_unc", f"sigma_{base}", f"d{base}"):
         if k in d:
             return d[k]
@@ -523,21 +538,31 @@ def _result_children(result, record):
     spots = result.get("spots") or []
     params = (record or {}).get("parameters") or {}
     a, b, g = sub.get("a_angstrom"), sub.get("b_angstrom"), sub.get("gamma_deg")
+    label = str(sub.get("spec") or params.get("substrate") or "–")
+    if sub.get("net") and sub.get("net") != label:
+        label += f" ({sub['net']})"
     rows = [
-        ("Substrate", str(sub.get("net") or params.get("substrate") or "–")),
+        ("Substrate", label),
         ("a", _fmt_pm(a, _uncertainty(sub, "a_angstrom"), " Å")),
         ("b", _fmt_pm(b, _uncertainty(sub, "b_angstrom"), " Å")),
         ("γ", _fmt_pm(g, _uncertainty(sub, "gamma_deg"), "°", 2)),
     ]
-    rec = service.reciprocal_parameters(a, b, g)
+    rec = (sub.get("a_star_invA"), sub.get("b_star_invA"), sub.get("gamma_star_deg"))
+    if None in rec:
+        rec = service.reciprocal_parameters(a, b, g)
     if rec:
         rows.append(("Reciprocal net", f"a* {rec[0]:.4f} Å⁻¹, b* {rec[1]:.4f} Å⁻¹, γ* {rec[2]:.2f}° (no 2π)"))
     rows.append(("Energy", f"{float(params['energy_eV']):g} eV" if params.get("energy_eV") else "–"))
-    explained = [s for s in spots if s.get("explained") is True]
-    unexplained = [s for s in spots if s.get("explained") is False]
+    kinds = [s.get("kind") for s in spots]
     spot_line = f"{len(spots)} spot" + ("" if len(spots) == 1 else "s")
-    if explained or unexplained:
-        spot_line += f" ({len(explained)} explained, {len(unexplained)} unexplained)"
+    if any(kinds):
+        spot_line += (f" ({kinds.count('integer')} substrate, {kinds.count('fractional')} overlayer, "
+                      f"{kinds.count('unexplained')} unexplained)")
+    manual = sum(1 for s in spots if s.get("manual"))
+    if manual:
+        spot_line += f", {manual} added by hand"
+    if sub.get("lattice_source"):
+        rows.append(("Lattice from", str(sub["lattice_source"])))
     kind = ov.get("kind") or "–"
     wood = ov.get("wood")
     domains = ov.get("domains") or ([ov["matrix"]] if ov.get("matrix") is not None else [])
@@ -548,6 +573,7 @@ def _result_children(result, record):
     answer = html.Table(className="facts answer", children=[html.Tbody([
         html.Tr([html.Th("Overlayer"), html.Td(kind)]),
         html.Tr([html.Th("Wood notation"), html.Td(wood if wood else "none exists", id=ids.WOOD)]),
+        *([html.Tr([html.Th(""), html.Td(str(ov["wood_note"]), className="muted")])] if ov.get("wood_note") else []),
         html.Tr([html.Th("Matrix"), html.Td(_matrix_table(ov["matrix"]) if ov.get("matrix") is not None else "–",
                                             id=ids.MATRIX,
                                             **({"data-matrix": format_matrix(ov["matrix"])} if ov.get("matrix") is not None else {}))]),
@@ -557,7 +583,8 @@ def _result_children(result, record):
             [html.Div([html.Span(f"{i + 1}: ", className=f"dom dom{i % 8}"), _matrix_table(m)]) for i, m in enumerate(domains)]
             if domains else "–")]),
     ])])
-    return [answer, table]
+    warn = [html.Div(str(w), className="note note-warn") for w in (result.get("warnings") or [])]
+    return [*warn, answer, table]
 
 
 def _candidate_label(c: dict, i: int) -> str:
@@ -611,14 +638,12 @@ def on_try_model(n_clicks, n_submit, text, record, image, substrate):
     result = _result_of(record, image)
     if not result:
         return None, _note("Analyse the image first: the model is drawn on the fitted substrate net.")
-    sub = ((record or {}).get("parameters") or {}).get("substrate") or substrate
     try:
-        m = service.try_model(text, result, sub, width=image["width"], height=image["height"])
+        m = service.try_model(text, record)
     except Exception as err:  # noqa: BLE001
         return None, _note(_fail(err))
-    msg = (f"{m['label']}: {m['n_domains']} domain(s); explains {m['explained']} of "
-           f"{m['explained'] + m['unexplained']} spots, {m['unexplained']} unexplained "
-           f"(within {m['tolerance_px']:.1f} px).")
+    msg = (f"{m['label']} ({m['kind']}, {m['n_domains']} domain{'s' if m['n_domains'] != 1 else ''}): "
+           f"explains {m['explained']} spots beyond the substrate's; {m['unexplained']} stay unexplained.")
     return m, html.Div(msg, className="note note-ok", id="model-counts",
                        **{"data-explained": str(m["explained"]), "data-unexplained": str(m["unexplained"])})
 
