@@ -338,3 +338,19 @@ def test_measure_image_accepts_overrides_and_dicts():
     assert not (m.valid & im.masks["gun"]).any()
     d = m.to_dict()
     assert d["screen"]["center_px"] == pytest.approx([cx, cy]) and len(d["spots"]) == len(m.spots)
+
+
+def test_measure_from_a_loaded_png_with_unknown_spot_width(tmp_path):
+    from PIL import Image
+
+    from analysis.io import load_image
+
+    im = _frame(6, sigma=2.6, snr=(10.0, 200.0))
+    path = tmp_path / "frame.png"
+    Image.fromarray(im.image).save(path)
+    loaded = load_image(path)
+    m = measure_image(loaded, sigma_px=None)
+    # σ measured from the spots themselves (pixel integration adds 1/12 px² to σ²)
+    assert abs(m.sigma_px - math.sqrt(2.6**2 + 1 / 12)) < 0.15
+    n_true, n_hit, n_rep, n_false, ratio2 = _score(m.spots.rc, _truth(im), tol=5.0)
+    assert n_hit == n_true and n_false == 0
