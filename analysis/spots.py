@@ -1111,6 +1111,7 @@ def find_spots(image, *, sigma_px: float = 2.0, min_snr: float = 5.0, mask=None,
     s1 = f1 / noise_f
     cand = _maxima(s1, min_snr, valid)
     spots = _fit_pass1(fitter, res, noise, ok_fit, valid, cand, s1, f1, centre, gain, sigma_px, shape, half)
+    hints = np.full((len(spots["rc"]), 3), np.nan)  # (row, col, amplitude) of a possible companion
     if second_pass and len(spots["rc"]):
         # pass 2: the matched-filter residual after removing every fitted spot. A Gaussian
         # filtered by a Gaussian is a Gaussian, so the filtered models are drawn directly.
@@ -1132,20 +1133,24 @@ def find_spots(image, *, sigma_px: float = 2.0, min_snr: float = 5.0, mask=None,
             from scipy.spatial import cKDTree
 
             d, near = cKDTree(spots["rc"]).query(cand2, k=1)
-            # residual peaks right beside a spot mean that spot may be a blend: test it as a pair
+            # residual peaks right beside a spot mean that spot may be a blend: test it as a pair,
+            # starting the second member at the residual peak
             blend = d <= 3.0 * sigma_px
             spots["flags"][near[blend]] |= _FLAG_BLEND
+            for (r, c), i in sorted(zip(cand2[blend].tolist(), near[blend].tolist()), key=lambda t: s2[t[0][0], t[0][1]]):
+                hints[i] = (r, c, 2.0 * max(float(f1[r, c] - fm[r, c]), 0.0))
             cand2 = cand2[~blend]
         if len(cand2):
             mdl = _render(shape, sub["rc"], sub["amp"], sub["sr"], sub["st"], sub["u"], half)
             new = _fit_candidates(fitter, res - mdl, noise, ok_fit, valid, cand2, s2, centre, gain, sigma_px,
                                   mdl)
             spots = _concat(spots, new)
+            hints = np.vstack([hints, np.full((len(new["rc"]), 3), np.nan)])
         spots = _refit_neighbours(fitter, res, noise, ok_fit, valid, spots, centre, gain, sigma_px, shape, half,
                                   sweeps=60)
     if split_pairs and len(spots["rc"]):
         spots = _split_pairs(fitter, res, noise, ok_fit, valid, spots, centre, gain, sigma_px, shape, half,
-                             min_snr)
+                             min_snr, hints)
     spots = _dedupe(spots, 0.75 * sigma_px)
     if gain is None and len(spots["rc"]):
         # no variance law from the background: measure it on the fitted spots and measure again
@@ -1335,6 +1340,16 @@ def _refit_neighbours(fitter, res, noise, ok_fit, valid, spots, centre, gain, si
     return spots
 
 
+def _render_at(fitter, sub, r0, c0):
+    """(K, W, W) model of each spot (no offset) on windows centred at integer (r0, c0)."""
+    x = fitter.dr[None] - (sub["rc"][:, 0] - r0)[:, None, None]
+    y = fitter.dc[None] - (sub["rc"][:, 1] - c0)[:, None, None]
+    ur, uc = sub["u"][:, 0, None, None], sub["u"][:, 1, None, None]
+    rho, tau = x * ur + y * uc, -x * uc + y * ur
+    return sub["amp"][:, None, None] * np.exp(-0.5 * (rho**2 / sub["sr"][:, None, None] ** 2
+                                                      + tau**2 / sub["st"][:, None, None] ** 2))
+
+
 def _render_patches(fitter, sub, half):
     """(K, W, W) model of each spot on its own window (no offset)."""
     rc = sub["rc"]
@@ -1347,7 +1362,8 @@ def _render_patches(fitter, sub, half):
                                                       + tau**2 / sub["st"][:, None, None] ** 2))
 
 
-def _split_pairs(fitter, res, noise, ok_fit, valid, spots, centre, gain, sigma_px, shape, half, min_snr):
+def _split_pairs(fitter, res, noise, ok_fit, valid, spots, centre, gain, sigma_px, shape, half, min_snr,
+                 hints=None):
     """Replace wide, bright spots by two spots when a two-Gaussian fit is much better."""
     good = (spots["flags"] & FLAG_FIT_FAILED) == 0
     if good.sum() == 0:
@@ -1364,9 +1380,15 @@ def _split_pairs(fitter, res, noise, ok_fit, valid, spots, centre, gain, sigma_p
     if len(cand) == 0:
         return spots
     sub = _take(spots, cand)
+    hint = np.full((len(cand), 3), np.nan) if hints is None else hints[cand]
+    has = np.all(np.isfinite(hint), axis=1)
+    # window: on the spot, or halfway to its companion's residual peak
+    # (an elongated spot is more likely an even pair about its own centre: keep its window)
+    shift = has & ~wide[cand]
+    win = np.where(shift[:, None], 0.5 * (sub["rc"] + np.where(has[:, None], hint[:, :2], 0.0)), sub["rc"])
     mdl = _render(shape, spots["rc"], spots["amp"], spots["sr"], spots["st"], spots["u"], half)
-    own = _render_patches(fitter, sub, half)
-    r0, c0, inside, (data, nz, okp, vp, mp), _ = fitter.patches([res - mdl, noise, ok_fit, valid, mdl], sub["rc"])
+    r0, c0, inside, (data, nz, okp, vp, mp), _ = fitter.patches([res - mdl, noise, ok_fit, valid, mdl], win)
+    own = _render_at(fitter, sub, r0, c0)
     data = data + own
     okp = okp & inside
     nz2 = nz**2 + (gain * np.clip(mp - own, 0.0, None) if gain else 0.0)
@@ -1383,6 +1405,14 @@ def _split_pairs(fitter, res, noise, ok_fit, valid, spots, centre, gain, sigma_p
                          sub["amp"] * 0.6, dr0 - axis[:, 0] * sep, dc0 - axis[:, 1] * sep,
                          np.full(k, math.log(s_ref)), sub["off"]])
     q, chi2 = _fit_pair(fitter, data, nz2, okp, q, gain)
+    if has.any():  # also try the spot itself plus its companion at the residual peak; keep the better
+        qh = np.column_stack([sub["amp"][has], dr0[has], dc0[has], np.maximum(hint[has, 2], 1e-3),
+                              hint[has, 0] - r0[has], hint[has, 1] - c0[has], np.full(int(has.sum()),
+                              math.log(s_ref)), sub["off"][has]])
+        qh, ch = _fit_pair(fitter, data[has], nz2[has], okp[has], qh, gain)
+        take = np.isfinite(ch) & (ch < chi2[has])
+        idx = np.flatnonzero(has)[take]
+        q[idx], chi2[idx] = qh[take], ch[take]
     s2 = np.exp(q[:, 6])
     a1, a2 = q[:, 0], q[:, 3]
     d = np.hypot(q[:, 1] - q[:, 4], q[:, 2] - q[:, 5])
