@@ -484,8 +484,12 @@ def export_figure(levels: np.ndarray, *, factor: int = 1, result: dict | None = 
         _, xy = _substrate_points(result, center, w, h)
         ax.scatter(xy[:, 0], xy[:, 1], marker="+", s=60, c=PALETTE["vermillion"], linewidths=1.2, label="substrate net")
         for i, v in enumerate(np.asarray(sub["a_star_px"], dtype=float)):
-            ax.annotate(f"a{i + 1}*", xy=(center[0] + v[0], center[1] + v[1]), xytext=(center[0], center[1]),
-                        color=PALETTE["vermillion"], arrowprops=dict(arrowstyle="->", color=PALETTE["vermillion"], lw=1.5))
+            tip = (center[0] + v[0], center[1] + v[1])
+            ax.annotate("", xy=tip, xytext=(center[0], center[1]),
+                        arrowprops=dict(arrowstyle="->", color=PALETTE["vermillion"], lw=1.5))
+            u = v / max(np.hypot(*v), 1e-9)
+            ax.text(tip[0] + 14 * u[0] * factor, tip[1] + 14 * u[1] * factor, f"a{i + 1}*", color=PALETTE["vermillion"],
+                    ha="center", va="center", fontsize=9, fontweight="bold")
     for i, p in enumerate(_domain_predictions(result, result.get("overlayer") or {}, w, h)):
         sym, col = DOMAIN_STYLES[i % len(DOMAIN_STYLES)]
         ax.scatter(p["xy"][:, 0], p["xy"][:, 1], marker=_MPL_MARKERS[sym], s=110, facecolors="none",

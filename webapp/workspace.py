@@ -627,7 +627,7 @@ def _real_space(result, pick):
     chosen = _candidate(result, pick) or result.get("overlayer") or {}
     mats = chosen.get("domains") or ([chosen["matrix"]] if chosen.get("matrix") is not None else [])
     vec = service.substrate_vectors(sub)
-    return figures.real_space_figure(vec, mats, label=str(sub.get("net") or "substrate"))
+    return figures.real_space_figure(vec, mats, label=str(sub.get("spec") or sub.get("net") or "substrate"))
 
 
 # --------------------------------------------------------------------------- try a model
