@@ -1137,7 +1137,8 @@ def find_spots(image, *, sigma_px: float = 2.0, min_snr: float = 5.0, mask=None,
             # starting the second member at the residual peak
             blend = d <= 3.0 * sigma_px
             spots["flags"][near[blend]] |= _FLAG_BLEND
-            for (r, c), i in sorted(zip(cand2[blend].tolist(), near[blend].tolist()), key=lambda t: s2[t[0][0], t[0][1]]):
+            pairs_b = sorted(zip(cand2[blend].tolist(), near[blend].tolist()), key=lambda t: s2[t[0][0], t[0][1]])
+            for (r, c), i in pairs_b:  # the strongest residual peak of a spot is written last
                 hints[i] = (r, c, 2.0 * max(float(f1[r, c] - fm[r, c]), 0.0))
             cand2 = cand2[~blend]
         if len(cand2):
@@ -1592,7 +1593,8 @@ def measure_image(image, *, sigma_px: float | None = 2.0, min_snr: float = 5.0, 
     --------
     >>> rng = np.random.default_rng(2)
     >>> r, c = np.mgrid[:160, :160]
-    >>> lam = 5 + (40 + 300 * np.exp(-((r - 60.2) ** 2 + (c - 90.6) ** 2) / 8)) * ((r - 80) ** 2 + (c - 80) ** 2 < 70 ** 2)
+    >>> screen = (r - 80) ** 2 + (c - 80) ** 2 < 70**2
+    >>> lam = 5 + (40 + 300 * np.exp(-((r - 60.2) ** 2 + (c - 90.6) ** 2) / 8)) * screen
     >>> m = measure_image(rng.poisson(lam).astype(float))
     >>> print(m.screen.source, len(m.spots), np.round(m.spots.xy, 1).tolist())
     auto 1 [[90.6, 60.2]]
@@ -1707,7 +1709,7 @@ def localization_bound_px(photons, sigma_px, background_per_px, *, pixel_px: flo
         var = sa2 / n * (16.0 / 9.0 + 8 * np.pi * sa2 * b2 / (n * a * a))
     elif kind == "ml":
         tau = 2 * np.pi * sa2 * b2 / (n * a * a)
-        # −∫₀¹ t ln t /(t + τ) dt with t = e^(−u) is ∫₀^∞ e^(−u) u / (1 + τ e^u) du (Gauss–Laguerre)
+        # −∫₀¹ t ln t /(t + τ) dt, t = e^(−u), is ∫₀^∞ e^(−u) u / (1 + τ e^u) du: Gauss–Laguerre
         x, w = np.polynomial.laguerre.laggauss(100)
         t = tau.reshape(-1, 1)
         with np.errstate(over="ignore"):
