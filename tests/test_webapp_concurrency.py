@@ -1,4 +1,5 @@
-"""Several clients saving at once over HTTP on loopback, to two server processes sharing one SQLite file."""
+"""Several clients saving at once over HTTP on loopback, to two server processes sharing one database
+(a SQLite file; and PostgreSQL when RECINET_TEST_PG_URL is set)."""
 
 from __future__ import annotations
 
@@ -43,9 +44,8 @@ def _png(seed: int) -> bytes:
 
 
 @pytest.fixture
-def two_servers(tmp_path):
-    env = {**os.environ, "RECINET_DATA_DIR": str(tmp_path), "PYTHONPATH": str(ROOT)}
-    env.pop("RECINET_DATABASE_URL", None)
+def two_servers(tmp_path, store_url):
+    env = {**os.environ, "RECINET_DATA_DIR": str(tmp_path), "PYTHONPATH": str(ROOT), "RECINET_DATABASE_URL": store_url}
     env.pop("RECINET_ACCESS_KEY", None)
     procs, ports = [], []
     try:
@@ -58,7 +58,7 @@ def two_servers(tmp_path):
         for p in procs:
             line = p.stdout.readline()  # the child prints "ready" once it listens
             assert line.strip() == "ready", "a test server did not start"
-        yield ports, tmp_path
+        yield ports, store_url
     finally:
         for p in procs:
             p.terminate()
@@ -86,7 +86,7 @@ def test_clients_saving_at_once_lose_nothing_and_mix_nothing(two_servers):
     from webapp import service
     from webapp.store import Store
 
-    ports, data_dir = two_servers
+    ports, url = two_servers
     shared_image = _png(0)  # every client also saves the same image: it must be stored once
     written: list[tuple[str, int, int, bytes]] = []
     errors: list[BaseException] = []
@@ -128,7 +128,7 @@ def test_clients_saving_at_once_lose_nothing_and_mix_nothing(two_servers):
         assert got["edits"]["added"] == [[float(c), float(i)]]
         assert service.read_bundle(json.dumps(got), max_bytes=10**7)["image"]["data"] == img
 
-    store = Store(f"sqlite:///{data_dir / 'recinet.sqlite3'}")
+    store = Store(url)
     assert store.count_analyses() == N_CLIENTS * N_SAVES
     listed = store.recent(500)
     assert len({a.image_sha256 for a in listed}) == 1 + N_CLIENTS * (N_SAVES - 1)
