@@ -17,6 +17,7 @@ import hashlib
 import os
 import re
 import secrets
+import time
 from dataclasses import dataclass
 from datetime import datetime, timezone
 
@@ -144,7 +145,14 @@ class Store:
         self.url = url
         self._pid = os.getpid()
         self.engine = _make_engine(url)
-        _Base.metadata.create_all(self.engine)
+        for attempt in range(5):  # servers starting together may race to create the tables
+            try:
+                _Base.metadata.create_all(self.engine)
+                break
+            except (sa.exc.IntegrityError, sa.exc.ProgrammingError, sa.exc.OperationalError):
+                if attempt == 4:
+                    raise
+                time.sleep(0.2 * (attempt + 1))
 
     def _eng(self) -> sa.Engine:
         if os.getpid() != self._pid:  # forked job process: never share the parent's connections
