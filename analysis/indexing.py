@@ -59,7 +59,7 @@ __all__ = [
 ]
 
 _ACCEPTANCE_PRIOR_DEG = 52.0  # screen half-angle, common practice (≈ 50–55°)
-_DISTORTION_PRIOR = 0.2  # R/L used only to turn the screen radius into a scale prior
+_DISTORTION_PRIOR = 0.2  # typical R/L of rear-view optics (an assumption); also tried when spots leave it open
 _SCALE_PRIOR_SIGMA = 0.15  # relative (log) width: acceptance 48–56° and R/L 0–0.4 span ±15 % (common practice)
 
 
@@ -277,8 +277,6 @@ def fit_substrate(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity
         raise FitError(f"No reading of the {classify_net(hint)} substrate net "
                        f"({hint.label or 'given'}) fits the {len(xy)} spots.")
     fits.sort(key=lambda f: -f.score)
-    if geometry is None:
-        fits[0] = _distortion_from_fractions(xy, energy_eV, fits[0], tol_px)
     scores = np.array([f.score for f in fits])
     conf = np.exp(scores - scores.max())
     conf /= conf.sum()
@@ -317,7 +315,7 @@ def _try_substrate(xy, tree, inten, energy_eV, a_star, e, v, center, geometry, l
     k_px = float(np.hypot(*v)) / float(np.hypot(*e))  # px per Å⁻¹ at small angles
     if geometry is None:
         geom = ScreenGeometry(center[0], center[1], k_px / lam, distortion=0.0, rotation_deg=rot,
-                              acceptance_deg=89.0)
+                              acceptance_deg=89.0)  # the first stage keeps d = 0 (small angles)
         free_geo = ("center_x_px", "center_y_px", "scale_px", "rotation_deg", "distortion")
     else:
         geom = dataclasses.replace(geometry, center_x_px=float(center[0]), center_y_px=float(center[1]),
@@ -404,6 +402,27 @@ def _rational_residual(hk: np.ndarray, a_star: np.ndarray, max_den: int = 8) -> 
     return best
 
 
+def _distortion_open(fit: SubstrateFit) -> bool:
+    """True when the integer spots sit at too few radii to fix R/L (ratio of radii ≤ 1.6)."""
+    ii = np.flatnonzero(fit.integer)
+    if len(ii) < 3:
+        return True
+    r_int = np.linalg.norm(np.rint(fit.hk[ii]) @ fit.reciprocal_net.vectors, axis=1)
+    return bool(r_int.max() / max(r_int.min(), 1e-12) <= 1.6)
+
+
+def _with_distortion(xy: np.ndarray, energy_eV: float, fit: SubstrateFit, d: float, note: str) -> SubstrateFit:
+    """The same reading refitted with R/L held at `d`."""
+    ii = np.flatnonzero(fit.integer)
+    lat = fit.reciprocal_net.vectors
+    g0 = dataclasses.replace(fit.geometry, distortion=float(d))
+    g1, _, res, _ = _refine(xy[ii], np.rint(fit.hk[ii]), energy_eV, g0, lat,
+                            ("center_x_px", "center_y_px", "scale_px", "rotation_deg"), False)
+    hk = pixels_to_momentum(xy, energy_eV, g1) @ np.linalg.inv(lat)
+    return dataclasses.replace(fit, geometry=g1, hk=hk, a_star_px=lat @ local_jacobian(energy_eV, g1).T,
+                               notes=fit.notes + (note,))
+
+
 def _distortion_from_fractions(xy: np.ndarray, energy_eV: float, fit: SubstrateFit, tol_px: float,
                                grid=np.arange(0.0, 0.62, 0.02)) -> SubstrateFit:
     """Fix R/L with the fractional spots when the integer spots sit at too few radii.
@@ -418,8 +437,7 @@ def _distortion_from_fractions(xy: np.ndarray, energy_eV: float, fit: SubstrateF
         return fit
     lat = fit.reciprocal_net.vectors
     hk_int = np.rint(fit.hk[ii])
-    r_int = np.linalg.norm(hk_int @ lat, axis=1)
-    if r_int.max() / max(r_int.min(), 1e-12) > 1.6:
+    if not _distortion_open(fit):
         return fit  # several rings of integer spots fix the distortion themselves
 
     def trial(d):
@@ -502,8 +520,7 @@ def _refine(xy, hk, energy_eV, geom, lattice, free, fit_lattice):
 
     def resid(p):
         g_, lat = unpack(p)
-        r = (_screen_xy(hk @ lat, energy_eV, g_) - xy).ravel()
-        return np.nan_to_num(r, nan=1e3)
+        return np.nan_to_num((_screen_xy(hk @ lat, energy_eV, g_) - xy).ravel(), nan=1e3)
 
     if len(xy) * 2 <= len(p0):
         return geom, lattice, np.zeros((len(xy), 2)), {}
@@ -672,17 +689,22 @@ def _dedupe_vectors(vecs: np.ndarray, a_star: np.ndarray, tol_g: float, n_keep: 
 
 
 def _candidate_vectors(hk: np.ndarray, integer: np.ndarray, a_star: np.ndarray, tol_g: float,
-                       n_spots: int = 12, n_diff: int = 6) -> np.ndarray:
+                       intensity: np.ndarray | None = None, n_spots: int = 12, n_bright: int = 6,
+                       n_diff: int = 6) -> np.ndarray:
     """Reciprocal vectors to pair into overlayer bases.
 
     The shortest observed fractional beams (each is a lattice vector of some
-    domain), the substrate's short vectors, and a few short differences
-    between nearby beams (to recover beams hidden by the gun).
+    domain) and the brightest ones (first-order overlayer beams outshine
+    multiple-scattering satellites), the substrate's short vectors, and a few
+    short differences between nearby beams (to recover beams hidden by the gun).
     """
     g = hk @ a_star
     rad = np.hypot(g[:, 0], g[:, 1])
     frac_idx = [i for i in np.argsort(rad) if not integer[i]]
     primary = _dedupe_vectors(hk[frac_idx], a_star, tol_g, n_spots)
+    if intensity is not None and len(frac_idx):
+        bright = sorted(frac_idx, key=lambda i: -intensity[i])
+        primary += _dedupe_vectors(hk[bright], a_star, tol_g, n_bright, [v @ a_star for v in primary])
     ints = _dedupe_vectors(np.array([(1, 0), (0, 1), (1, 1), (1, -1)], float), a_star, tol_g, 4,
                            [v @ a_star for v in primary])
     near = np.argsort(rad)[:24]
@@ -761,15 +783,16 @@ def _score(ctx: _Context, matrix, *, all_domains: bool, satellites: bool) -> dic
                     expl[i] |= (np.hypot(dd[:, 0], dd[:, 1]) <= tol_g) & frac
     if all_domains:
         chosen = list(range(len(mats)))
-    else:  # greedy: the smallest set of domains that explains the spots
+    else:  # greedy: the smallest set of domains that explains the spots (a domain earns its
+        # place by beams of its own; satellites only count for domains already chosen)
         chosen, covered = [], np.zeros(len(hk), bool)
         while True:
-            gains = [int((expl[i] & ~covered).sum()) if i not in chosen else -1 for i in range(len(mats))]
+            gains = [int((primary[i] & ~covered).sum()) if i not in chosen else -1 for i in range(len(mats))]
             best = int(np.argmax(gains))
             if gains[best] < (1 if not chosen else 2):
                 break
             chosen.append(best)
-            covered |= expl[best]
+            covered |= primary[best]
         chosen = chosen or [0]
     by = np.full(len(hk), -1)
     by[ctx.integer] = -2
@@ -801,7 +824,8 @@ def _describe(ctx: _Context, sc: dict, *, kind_tol: float) -> OverlayerModel:
     m = sc["mats"][0]
     kind = classify_superstructure(ctx.substrate, m, tol=kind_tol)
     if kind.kind in ("commensurate", "coincidence", "none"):  # exact, and in a readable basis
-        mats = [nice_matrix(ctx.substrate, _snap_matrix(d, kind_tol, 12)) for d in sc["mats"]]
+        snapped = [_snap_matrix(d, kind_tol, 12) for d in sc["mats"]]
+        mats = [nice_matrix(ctx.substrate, d if q is None else q) for d, q in zip(sc["mats"], snapped)]
         m = mats[0]
     else:
         mats = sc["mats"]
@@ -910,7 +934,7 @@ def find_overlayers(hk: np.ndarray, integer: np.ndarray, substrate_fit: Substrat
         return [_describe(ctx, _score(ctx, np.eye(2), all_domains=False, satellites=False), kind_tol=1e-6)]
     n_frac = int((~ctx.integer).sum())
     a_star, tol_g = ctx.a_star, ctx.tol_g
-    vecs = _candidate_vectors(ctx.hk, ctx.integer, a_star, tol_g)
+    vecs = _candidate_vectors(ctx.hk, ctx.integer, a_star, tol_g, ctx.intensity)
     g_ref = float(np.min(np.linalg.norm(a_star, axis=1)))
     seen: list[np.ndarray] = []
     scored: list[tuple[dict, float]] = []
@@ -998,10 +1022,11 @@ def _prefer_simple(models: list[OverlayerModel]) -> list[OverlayerModel]:
     out = []
     for mm in models:
         s = mm.score
-        if mm.kind == "incommensurate":
-            s -= 1.5
+        if mm.kind == "incommensurate":  # four free parameters can absorb a small camera error:
+            s -= 1.5 + 0.05 * mm.explained  # they must explain clearly more than a rational cell
         ratio = mm.details.get("intensity_ratio")
-        if mm.n_domains > 1 and ratio is not None:  # can repay the domain penalty, no more
+        # only where positions cannot tell (rational models, no satellites); repays the domain penalty, no more
+        if mm.n_domains > 1 and ratio is not None and mm.kind != "incommensurate":
             s += mm.n_domains * math.tanh(max(math.log(ratio) - math.log(2.0), 0.0))
         out.append(dataclasses.replace(mm, score=float(s)))
     return out
@@ -1044,7 +1069,8 @@ def refine_with_model(xy_px: np.ndarray, energy_eV: float, fit: SubstrateFit, mo
     hk = pixels_to_momentum(xy, energy_eV, geom) @ np.linalg.inv(lat2)
     d_int = (hk - np.rint(hk)) @ lat2
     tol_g = 2.5 / (geom.scale_px * wavelength_A(energy_eV))
-    integer = np.hypot(d_int[:, 0], d_int[:, 1]) <= max(tol_g, 3 * fit.residual_px / (geom.scale_px * wavelength_A(energy_eV)))
+    near = np.hypot(d_int[:, 0], d_int[:, 1]) <= max(tol_g, 3 * fit.residual_px / (geom.scale_px * wavelength_A(energy_eV)))
+    integer = fit.integer | near  # a refit never demotes the substrate's own beams
     net = Net2D(np.linalg.inv(lat2).T, label=fit.net.label)
     return dataclasses.replace(fit, geometry=geom, reciprocal_net=Net2D(lat2), net=net, hk=hk, integer=integer,
                                a_star_px=lat2 @ local_jacobian(energy_eV, geom).T,
@@ -1091,16 +1117,27 @@ def index_pattern(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity
                          center_guess=center_guess, screen_radius_px=screen_radius_px, valid_mask=valid_mask,
                          tol_px=tol_px)
     kw = dict(energy_eV=energy_eV, intensity=intensity, valid_mask=valid_mask, tol_px=tol_px, n_results=n_results)
-    fit = fits[0]
-    models = find_overlayers(fit.hk, fit.integer, fit, **kw)
-    for _ in range(2):
-        if int((~fit.integer).sum()) == 0:
-            break
-        seed = next((m for m in models if m.kind != "incommensurate"), models[0])
-        fit2 = refine_with_model(xy, energy_eV, fit, seed, fit_lattice=geometry is not None)
-        models2 = find_overlayers(fit2.hk, fit2.integer, fit2, **kw)
-        if models2[0].score <= models[0].score + 1e-9:
-            break
-        fit, models = fit2, models2
+    variants = [fits[0]]
+    if geometry is None and _distortion_open(fits[0]):  # the spots leave R/L open: try readings
+        alt = _distortion_from_fractions(xy, energy_eV, fits[0], tol_px)
+        if alt is not fits[0]:
+            variants.append(alt)
+        variants.append(_with_distortion(xy, energy_eV, fits[0], _DISTORTION_PRIOR,
+                                         f"distortion R/L held at the typical {_DISTORTION_PRIOR}"))
+    best = None
+    for fit in variants:
+        models = find_overlayers(fit.hk, fit.integer, fit, **kw)
+        for _ in range(2):
+            if int((~fit.integer).sum()) == 0:
+                break
+            seed = next((m for m in models if m.kind != "incommensurate"), models[0])
+            fit2 = refine_with_model(xy, energy_eV, fit, seed, fit_lattice=geometry is not None)
+            models2 = find_overlayers(fit2.hk, fit2.integer, fit2, **kw)
+            if models2[0].score <= models[0].score + 1e-9:
+                break
+            fit, models = fit2, models2
+        if best is None or models[0].score > best[1][0].score:
+            best = (fit, models)
+    fit, models = best
     cands = [fit] + list(fits[1:])
     return IndexResult(substrate=fit, substrate_candidates=cands, models=models)

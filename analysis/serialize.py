@@ -133,7 +133,29 @@ def model_to_dict(model: OverlayerModel, substrate: Net2D) -> dict:
                              for a in kind.approximants]
     if kind is not None:
         d["point_on_line"] = bool(getattr(kind, "point_on_line", False))
+    if model.kind == "incommensurate":
+        d["moire_period_angstrom"] = _moire_period(m, substrate)
     return d
+
+
+def _moire_period(m: np.ndarray, substrate: Net2D) -> float | None:
+    """Period (Å) of the beat between overlayer and substrate nets: the real-space net of
+    the shortest differences b*_i − a*_j of their reciprocal vectors (a moiré)."""
+    a_star = reciprocal(substrate).vectors
+    b_star = np.linalg.inv(m).T @ a_star
+    vecs = [b - a for b in (b_star[0], b_star[1], b_star[0] + b_star[1], b_star[0] - b_star[1])
+            for a in (a_star[0], a_star[1], a_star[0] + a_star[1], a_star[0] - a_star[1], -a_star[0], -a_star[1])]
+    vecs = sorted(vecs, key=lambda v: float(np.hypot(*v)))
+    first = vecs[0]
+    second = next((v for v in vecs[1:] if abs(first[0] * v[1] - first[1] * v[0]) > 1e-6 * np.hypot(*first) * np.hypot(*v)),
+                  None)
+    if second is None or np.hypot(*first) < 1e-9:
+        return None
+    try:
+        moire = Net2D(np.linalg.inv(np.array([first, second])).T)
+    except ValueError:
+        return None
+    return float(min(moire.a, moire.b))
 
 
 def result_to_dict(result) -> dict:

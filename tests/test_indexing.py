@@ -82,6 +82,9 @@ CASES = {
     "crect-p2x1": ("W(110)", "p(2x1)", None, 110.0, "p(2×1)", "commensurate", {"gun_angle": 90.0}),
     "oblique-substrate": ("oblique:3.1,4.3,104", [[2, 0], [0, 1]], None, 110.0, "p(2×1)", "commensurate", {}),
     "clean-1x1": ("Pt(111)", None, None, 150.0, "(1×1)", "none", {}),
+    "oblique-overlayer-on-square": ("Cu(100)", [[2, 1], [0, 3]], None, 120.0, None, "commensurate",
+                                    {"shape": (900, 900)}),
+    "coincidence-hex": ("Pt(111)", [[1.5, 0], [0, 1.5]], None, 130.0, "(1.5×1.5)", "coincidence", {}),
 }
 
 
@@ -96,6 +99,9 @@ def test_superstructure_found_from_the_image(name):
     best = res.index.best
     assert best.kind == kind
     assert best.wood == wood
+    if kind == "coincidence":
+        kd = best.details["kind"]
+        assert kd.coincidence_cell is not None and abs(np.linalg.det(kd.coincidence_cell)) == pytest.approx(9)
     if structure is None:
         assert best.n_domains == 1 and same_lattice(best.matrix, np.eye(2))
     else:
@@ -117,6 +123,47 @@ def assert_same_fractional_spots(res, im, tol_px=2.0):
         assert np.min(np.hypot(*(p - q).T)) < tol_px
     for q in p[inside]:
         assert np.min(np.hypot(*(t - q).T)) < tol_px
+
+
+def test_moire_with_satellites_on_hexagonal():
+    # an aligned hexagonal layer of 2.46 Å on a 2.715 Å hexagonal net (graphene/Ir(111)-like
+    # lattice constants, from memory), with first-order multiple-scattering satellites
+    # g_sub ± (b*_i − a*_i) around the substrate beams; moiré period a1 a2 / |a1 − a2| ≈ 26.2 Å.
+    sub = parse_substrate("hexagonal:2.715")
+    m = (2.46 / 2.715) * np.eye(2)
+    geom_kw = {}
+    im, pat = render(sub, [m], energy=70.0, **geom_kw)
+    # add satellites to the rendered pattern
+    b_star = np.linalg.inv(m).T  # overlayer reciprocal basis in substrate hk units
+    moire = np.array([b_star[0] - [1, 0], b_star[1] - [0, 1], b_star[0] + b_star[1] - [1, 1]])
+    sat = []
+    for hk in pat.hk[pat.integer]:
+        for v in np.vstack([moire, -moire]):
+            sat.append(hk + v)
+    sat = np.array(sat)
+    pat2 = forward_pattern(sub, [m], energy_eV=70.0, geometry=pat.geometry)
+    from analysis.optics import momentum_to_pixels
+    a_star = reciprocal(sub).vectors
+    xy, vis = momentum_to_pixels(sat @ a_star, 70.0, pat.geometry)
+    ok = vis & np.all(np.isfinite(xy), axis=1)
+    sat, xy = sat[ok], xy[ok]
+    import dataclasses as dc
+    ext = dc.replace(pat2, hk=np.vstack([pat2.hk, sat]), g_par=np.vstack([pat2.g_par, sat @ a_star]),
+                     xy_px=np.vstack([pat2.xy_px, xy]),
+                     theta_deg=np.concatenate([pat2.theta_deg, np.zeros(len(sat)) + 20.0]),
+                     integer=np.concatenate([pat2.integer, np.zeros(len(sat), bool)]),
+                     domains=np.vstack([pat2.domains, np.zeros((len(sat), 1), bool)]))
+    inten = np.concatenate([symmetric_intensities(pat2), np.full(len(sat), 1200.0)])  # satellites are weaker
+    img = render_image(ext, shape=(1024, 1024), rng=np.random.default_rng(2), intensities=inten)
+    res = analyze_image(img.image, energy_eV=70.0, substrate="hexagonal:2.715")
+    best = res.index.best
+    assert best.kind == "incommensurate"
+    assert best.n_domains == 1
+    net = Net2D(np.asarray(best.matrix) @ sub.vectors)
+    assert net.a == pytest.approx(2.46, rel=0.005)
+    d = result_to_dict(res)
+    assert d["overlayer"]["moire_period_angstrom"] == pytest.approx(2.46 * 2.715 / (2.715 - 2.46), rel=0.05)
+    assert any("satellite" in n for n in best.notes)
 
 
 def test_single_domain_on_a_stepped_surface_is_reported_as_such():
