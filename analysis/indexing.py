@@ -33,12 +33,13 @@ from scipy.spatial import cKDTree
 
 from .calibration import estimate_center_from_pairs
 from .errors import FitError, NetError
-from .nets import Net2D, classify_net, point_group, reciprocal
+from .nets import Net2D, classify_net, point_group, reciprocal, reduce_net
 from .optics import ScreenGeometry, local_jacobian, momentum_to_pixels, pixels_to_momentum, wavelength_A
 from .superstructure import (
     classify_superstructure,
     coverage,
     hermite_normal_form,
+    _same_lattice_fast,
     nice_matrix,
     same_lattice,
     wood_notation,
@@ -721,7 +722,7 @@ def _domain_matrices(m: np.ndarray, ops) -> tuple[list[np.ndarray], list[str]]:
         mw = m @ op.matrix
         if np.linalg.det(mw) * np.linalg.det(m) < 0:
             mw = mw[::-1].copy()
-        if any(same_lattice(mw, x, tol=1e-6) for x in mats):
+        if any(_same_lattice_fast(mw, x, 1e-6) for x in mats):
             continue
         mats.append(mw)
         names.append(op.name)
@@ -815,7 +816,7 @@ def _score(ctx: _Context, matrix, *, all_domains: bool, satellites: bool) -> dic
     u = int(frac.sum()) - e
     det = abs(float(np.linalg.det(mats[chosen[0]])))
     score = (e - 0.5 * e_sat) - u - 0.5 * absent - 1.0 * (len(chosen) - 1) - 0.5 * abs(math.log2(det))
-    return {"mats": [mats[i] for i in chosen], "names": [names[i] for i in chosen], "e": e, "u": u,
+    return {"mats": [mats[i] for i in chosen], "names": [names[i] for i in chosen], "all_mats": mats, "e": e, "u": u,
             "absent": absent, "by": by, "score": float(score), "total": len(mats), "satellites": e_sat}
 
 
@@ -936,7 +937,7 @@ def find_overlayers(hk: np.ndarray, integer: np.ndarray, substrate_fit: Substrat
     a_star, tol_g = ctx.a_star, ctx.tol_g
     vecs = _candidate_vectors(ctx.hk, ctx.integer, a_star, tol_g, ctx.intensity)
     g_ref = float(np.min(np.linalg.norm(a_star, axis=1)))
-    seen: list[np.ndarray] = []
+    seen: set = set()
     scored: list[tuple[dict, float]] = []
     for i in range(len(vecs)):
         for j in range(i + 1, len(vecs)):
@@ -947,7 +948,10 @@ def find_overlayers(hk: np.ndarray, integer: np.ndarray, substrate_fit: Substrat
             cart = b @ a_star
             if det_b * abs(np.linalg.det(a_star)) / (np.linalg.norm(cart[0]) * np.linalg.norm(cart[1])) < 0.15:
                 continue  # nearly parallel
-            m = _refine_matrix(ctx.hk, np.linalg.inv(b).T, a_star, tol_g)
+            m0 = np.linalg.inv(b).T
+            if int((_explained(ctx.hk, m0, a_star, 2 * tol_g) & ~ctx.integer).sum()) < 2:
+                continue  # this pair spans no net the spots lie on
+            m = _refine_matrix(ctx.hk, m0, a_star, tol_g)
             if abs(np.linalg.det(m)) > max_det + 1e-6:
                 continue
             # the tolerance on M follows from the spot tolerance through |M|²
@@ -959,16 +963,20 @@ def find_overlayers(hk: np.ndarray, integer: np.ndarray, substrate_fit: Substrat
             if _snap_matrix(m, 2e-3, 12) is None:
                 options.append((m, 2e-3, True))  # the continuous fit competes too (incommensurate)
             for c, ktol, sat in options:
-                if any(same_lattice(c, k, tol=1e-3) for k in seen):
+                key = _structure_key(c, exact=not sat)
+                if key in seen:
                     continue
-                seen.append(c)
+                seen.add(key)
                 if int((_explained(ctx.hk, c, a_star, tol_g) & ~ctx.integer).sum()) < 2 and not sat:
                     continue
-                scored.append((_score(ctx, c, all_domains=False, satellites=sat), ktol))
+                sc = _score(ctx, c, all_domains=False, satellites=sat)
+                if not sat:  # every domain of this structure is now known
+                    seen.update(_structure_key(d, exact=True) for d in sc["all_mats"])
+                scored.append((sc, ktol))
     if not scored:
         scored.append((_score(ctx, np.eye(2), all_domains=False, satellites=False), 1e-6))
     scored.sort(key=lambda t: -t[0]["score"])
-    models = _prefer_simple([_describe(ctx, sc, kind_tol=kt) for sc, kt in scored[: 3 * n_results]])
+    models = _prefer_simple([_describe(ctx, sc, kind_tol=kt) for sc, kt in scored[: 2 * n_results]])
     models.sort(key=lambda mm: -mm.score)
     out, keys = [], []
     for mm in models:
@@ -1005,6 +1013,24 @@ def _lead_with_plainest_domain(ctx: _Context, mm: OverlayerModel) -> OverlayerMo
     return dataclasses.replace(mm, matrix=mm.domains[k], domains=[mm.domains[i] for i in order],
                                domain_ops=[mm.domain_ops[i] for i in order], wood=w.text, wood_note=w.note,
                                explained_by=by, details={**mm.details, "wood_notation": w})
+
+
+def _structure_key(m: np.ndarray, *, exact: bool) -> tuple:
+    """Hashable name of the lattice of `m`.
+
+    Exact (rational) matrices: the Hermite normal form. Others: the reduced
+    overlayer basis rounded to 0.002 in substrate units.
+    """
+    if exact:
+        try:
+            return tuple(np.round(hermite_normal_form(m, max_denominator=12).ravel(), 6))
+        except NetError:
+            pass
+    red, _ = reduce_net(Net2D(np.asarray(m, float)))
+    v = red.vectors
+    if v[0, 0] < 0 or (v[0, 0] == 0 and v[0, 1] < 0):
+        v = -v
+    return ("irrational",) + tuple(np.round(v.ravel() / 0.002).astype(int).tolist())
 
 
 def _lattice_key(m: np.ndarray) -> tuple:
@@ -1079,6 +1105,31 @@ def refine_with_model(xy_px: np.ndarray, energy_eV: float, fit: SubstrateFit, mo
                                notes=fit.notes + ("camera refitted with the fractional-order spots",))
 
 
+def _search_and_refit(xy, energy_eV, fit, geometry, kw, rounds: int = 2):
+    """Overlayer search, then refits of the camera with the best rational model's spots
+    (its nearest rational neighbour when only irrational models came out), kept while
+    they raise the best score."""
+    models = find_overlayers(fit.hk, fit.integer, fit, **kw)
+    for _ in range(rounds):
+        if int((~fit.integer).sum()) == 0:
+            break
+        top = models[0]
+        if top.kind != "incommensurate" and top.unexplained == 0 and top.absent == 0:
+            break
+        seed = next((m for m in models if m.kind != "incommensurate"), None)
+        if seed is None:
+            near = _snap_matrix(np.asarray(top.matrix, float), 0.05, 6)
+            seed = top if near is None else evaluate_model(
+                fit.hk, fit.integer, fit, near, energy_eV=kw["energy_eV"], intensity=kw["intensity"],
+                valid_mask=kw["valid_mask"], tol_px=3 * kw["tol_px"])
+        fit2 = refine_with_model(xy, energy_eV, fit, seed, fit_lattice=geometry is not None)
+        models2 = find_overlayers(fit2.hk, fit2.integer, fit2, **kw)
+        if models2[0].score <= models[0].score + 1e-9:
+            break
+        fit, models = fit2, models2
+    return fit, models
+
+
 @dataclass(frozen=True, eq=False)
 class IndexResult:
     """Substrate readings and overlayer models for one pattern.
@@ -1126,18 +1177,13 @@ def index_pattern(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity
                                          f"distortion R/L held at the typical {_DISTORTION_PRIOR}"))
     best = None
     for fit in variants:
-        models = find_overlayers(fit.hk, fit.integer, fit, **kw)
-        for _ in range(2):
-            if int((~fit.integer).sum()) == 0:
-                break
-            seed = next((m for m in models if m.kind != "incommensurate"), models[0])
-            fit2 = refine_with_model(xy, energy_eV, fit, seed, fit_lattice=geometry is not None)
-            models2 = find_overlayers(fit2.hk, fit2.integer, fit2, **kw)
-            if models2[0].score <= models[0].score + 1e-9:
-                break
-            fit, models = fit2, models2
+        fit, models = _search_and_refit(xy, energy_eV, fit, geometry, kw)
         if best is None or models[0].score > best[1][0].score:
             best = (fit, models)
+        top = best[1][0]
+        n_frac = max(int((~fit.integer).sum()), 1)
+        if top.kind != "incommensurate" and top.unexplained + top.absent <= max(1, 0.05 * n_frac):
+            break  # (nearly) every spot explained and none missing: other readings cannot do much better
     fit, models = best
     cands = [fit] + list(fits[1:])
     return IndexResult(substrate=fit, substrate_candidates=cands, models=models)

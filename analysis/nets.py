@@ -17,6 +17,7 @@ Conventions used throughout
 
 from __future__ import annotations
 
+import functools
 import math
 import re
 from dataclasses import dataclass
@@ -360,6 +361,17 @@ def _fmt_angle(x: float) -> str:
 
 
 def point_group(net: Net2D, *, tol: float = 2e-4) -> list[SymmetryOp]:
+    """See :func:`_point_group`; results are cached per basis (the ops are read-only)."""
+    key = tuple(np.round(net.vectors.ravel(), 12).tolist())
+    return list(_point_group_cached(key, float(tol)))
+
+
+@functools.lru_cache(maxsize=256)
+def _point_group_cached(key: tuple, tol: float) -> tuple:
+    return tuple(_point_group(Net2D(np.array(key).reshape(2, 2)), tol=tol))
+
+
+def _point_group(net: Net2D, *, tol: float = 2e-4) -> list[SymmetryOp]:
     """The holohedral point group of `net` as integer matrices in its own basis.
 
     Returns

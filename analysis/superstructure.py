@@ -221,6 +221,18 @@ def _fractions(matrix, max_denominator: int) -> list[list[Fraction]]:
     return fr
 
 
+def _same_lattice_fast(m1: np.ndarray, m2: np.ndarray, tol: float = 1e-6) -> bool:
+    """:func:`same_lattice` for validated float (2, 2) arrays, without the checks (hot loops)."""
+    d2 = m2[0, 0] * m2[1, 1] - m2[0, 1] * m2[1, 0]
+    d1 = m1[0, 0] * m1[1, 1] - m1[0, 1] * m1[1, 0]
+    if abs(abs(d1) - abs(d2)) > 1e-3 * max(abs(d1), abs(d2)) + tol:
+        return False  # different cell areas: different lattices
+    inv2 = np.array([[m2[1, 1], -m2[0, 1]], [-m2[1, 0], m2[0, 0]]]) / d2
+    t = m1 @ inv2
+    r = np.rint(t)
+    return bool(np.all(np.abs(t - r) <= tol) and abs(abs(r[0, 0] * r[1, 1] - r[0, 1] * r[1, 0]) - 1) < 0.5)
+
+
 def coincidence_cell(matrix, *, max_denominator: int = 12) -> np.ndarray:
     """Smallest common cell of substrate and overlayer lattices, in the substrate basis.
 
@@ -405,7 +417,7 @@ def domains(substrate: Net2D, matrix, *, tol: float = 1e-6, sym_tol: float = 2e-
         mw = _snap(m @ op.matrix)
         if np.linalg.det(mw) * np.linalg.det(m) < 0:
             mw = mw[::-1].copy()
-        if any(same_lattice(mw, d.matrix, tol=tol) for d in found):
+        if any(_same_lattice_fast(mw, d.matrix, tol) for d in found):
             continue
         found.append(Domain(_nice_or_self(substrate, mw), op))
     return found

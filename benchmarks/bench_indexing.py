@@ -1,0 +1,104 @@
+"""End-to-end benchmark of the main job: camera image in, superstructure out.
+
+Renders a fixed, seeded set of synthetic 1024×1024 LEED images (substrates and
+superstructures of textbook cases, varied energy, noise, camera distance, centre,
+gun direction and bit depth), runs ``analysis.pipeline.analyze_image`` on each and
+prints the fraction analysed correctly (Wood notation, kind and domain count all
+right) and the median seconds per image end to end. Times are also printed as a
+ratio to a baseline measured in the same run: rendering the same image
+(``analysis.simulate.render_image``), which scales with the machine in the same way.
+
+Targets (issue): ≥ 95 % correct, ≤ 0.5 s median per 1024×1024 image on 2 cores.
+
+Run: ``python benchmarks/bench_indexing.py [--n 30] [--quick]``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import dataclasses
+import statistics
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+
+from analysis.nets import parse_substrate  # noqa: E402
+from analysis.optics import ScreenGeometry  # noqa: E402
+from analysis.pipeline import analyze_image  # noqa: E402
+from analysis.simulate import GunShadow, forward_pattern, render_image  # noqa: E402
+from analysis.superstructure import domains, parse_wood  # noqa: E402
+
+# substrate, structure (Wood or matrix), expected Wood text, expected kind, energy range
+CASES = [
+    ("Pt(111)", "p(2x2)", "p(2×2)", "commensurate", (80, 140)),
+    ("Ru(0001)", "(√3×√3)R30°", "(√3×√3)R30°", "commensurate", (90, 150)),
+    ("Cu(100)", "c(2x2)", "c(2×2)", "commensurate", (110, 170)),
+    ("Cu(100)", "p(2x1)", "p(2×1)", "commensurate", (110, 170)),
+    ("Pt(111)", "(√7×√7)R19.1°", "(√7×√7)R19.1°", "commensurate", (110, 160)),
+    ("Cu(100)", "(2√2×√2)R45°", "(2√2×√2)R45°", "commensurate", (100, 150)),
+    ("Pt(111)", "c(4x2)", "c(4×2)", "commensurate", (90, 140)),
+    ("Cu(110)", "p(2x1)", "p(2×1)", "commensurate", (100, 160)),
+    ("W(110)", "p(2x1)", "p(2×1)", "commensurate", (90, 150)),
+    ("Pt(111)", None, "(1×1)", "none", (120, 200)),
+]
+
+
+def _intensities(pat, rng):
+    s = np.sin(np.radians(pat.theta_deg))
+    base = 30000.0 * (0.3 + 0.7 * np.exp(-(s / 0.5) ** 2)) * rng.uniform(0.8, 1.0)
+    return np.where(pat.integer, base, 0.35 * base)
+
+
+def make_case(i: int):
+    rng = np.random.default_rng(1000 + i)
+    spec, structure, wood, kind, (e_lo, e_hi) = CASES[i % len(CASES)]
+    sub = parse_substrate(spec)
+    mats = [] if structure is None else [d.matrix for d in domains(sub, parse_wood(structure, sub))]
+    energy = float(rng.uniform(e_lo, e_hi))
+    geom = ScreenGeometry(511.5 + rng.uniform(-15, 15), 511.5 + rng.uniform(-15, 15), rng.uniform(600, 680),
+                          distortion=rng.uniform(0.1, 0.3), rotation_deg=rng.uniform(-30, 30))
+    pat = forward_pattern(sub, mats, energy_eV=energy, geometry=geom)
+    gun = dataclasses.replace(GunShadow.scaled(460.0), arm_angle_deg=float(rng.uniform(0, 360)))
+    t0 = time.perf_counter()
+    im = render_image(pat, rng=rng, gun=gun, bit_depth=int(rng.choice([8, 16])),
+                      intensities=_intensities(pat, rng) * rng.uniform(0.3, 1.0))
+    t_render = time.perf_counter() - t0
+    return im.image, spec, energy, wood, kind, len(mats) or 1, t_render
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--n", type=int, default=30, help="number of images (≥ 30 for the target)")
+    ap.add_argument("--quick", action="store_true", help="10 images")
+    args = ap.parse_args(argv)
+    n = 10 if args.quick else args.n
+    correct, times, renders, rows = 0, [], [], []
+    for i in range(n):
+        image, spec, energy, wood, kind, ndom, t_render = make_case(i)
+        t0 = time.perf_counter()
+        try:
+            res = analyze_image(image, energy_eV=energy, substrate=spec)
+            best = res.index.best
+            ok = best.wood == wood and best.kind == kind and best.n_domains == ndom
+            got = f"{best.wood} {best.kind} ×{best.n_domains}"
+        except Exception as exc:  # a failure counts as wrong; the benchmark goes on
+            ok, got = False, f"error: {exc}"
+        dt = time.perf_counter() - t0
+        times.append(dt)
+        renders.append(t_render)
+        correct += ok
+        rows.append(f"{i:3d} {spec:9s} {energy:6.1f} eV  want {wood} ×{ndom:<2d} got {got:32s} {dt:6.2f} s {'ok' if ok else 'WRONG'}")
+    print("\n".join(rows))
+    med, base = statistics.median(times), statistics.median(renders)
+    print(f"\ncorrect: {correct}/{n} = {correct / n:.1%}   (target ≥ 95 %)")
+    print(f"median end-to-end: {med:.3f} s per 1024×1024 image   (target ≤ 0.5 s)")
+    print(f"baseline (render one image, same run): {base:.3f} s; ratio analysis/render = {med / base:.2f}")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
