@@ -371,7 +371,9 @@ def _try_substrate(xy, tree, inten, energy_eV, a_star, e, v, center, geometry, l
         tol_hk = 3 * tol_px / (geom.scale_px * lam * float(np.min(np.linalg.norm(lattice, axis=1)) ** -1)) / 1.0
         rational = np.array([_is_rational(h, 8, max(tol_hk, 0.02)) for h in frac_hk])
         indexable = (len(pi) + rational.sum()) / len(xy)
-        d_logi = float(np.median(np.log(inten[integer])) - np.median(np.log(inten[~integer])))
+        # substrate beams should outshine the brightest of the rest (not just their median,
+        # which many weak satellites would pull down)
+        d_logi = float(np.median(np.log(inten[integer])) - np.log(np.percentile(inten[~integer], 90)))
     else:
         indexable, d_logi = 1.0, 0.0
     score = 4.0 * completeness + 2.0 * indexable + math.tanh(d_logi)
