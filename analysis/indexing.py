@@ -983,9 +983,15 @@ def find_overlayers(hk: np.ndarray, integer: np.ndarray, substrate_fit: Substrat
     out, keys = [], []
     for mm in models:
         key = (mm.wood, mm.n_domains, mm.kind) if mm.wood else (mm.n_domains, mm.kind, _lattice_key(mm.matrix))
-        if key not in keys:
-            keys.append(key)
-            out.append(mm)
+        if key in keys:
+            continue
+        if mm.kind == "incommensurate":  # an unsnapped copy of a rational model listed already
+            near = _snap_matrix(np.asarray(mm.matrix, float), 0.02, 12)
+            if near is not None and any(o.kind != "incommensurate" and o.n_domains == mm.n_domains and
+                                        _same_lattice_fast(near, np.asarray(o.matrix, float), 1e-6) for o in out):
+                continue
+        keys.append(key)
+        out.append(mm)
     return [_lead_with_plainest_domain(ctx, mm) for mm in out[:n_results]]
 
 
