@@ -768,8 +768,12 @@ def _context(hk, integer, substrate_fit: SubstrateFit, energy_eV, intensity, val
                     substrate=sub)
 
 
-def _score(ctx: _Context, matrix, *, all_domains: bool, satellites: bool) -> dict:
-    """Explained / unexplained / absent counts and the score of one matrix with its domains."""
+def _score(ctx: _Context, matrix, *, all_domains: bool, satellites: bool, absent: bool = True) -> dict:
+    """Explained / unexplained / absent counts and the score of one matrix with its domains.
+
+    With ``absent=False`` the (costly) count of missing beams is left for
+    :func:`_with_absent`; ``score`` is then an upper bound.
+    """
     m = np.asarray(matrix, dtype=np.float64)
     hk, a_star, tol_g = ctx.hk, ctx.a_star, ctx.tol_g
     frac = ~ctx.integer
@@ -801,25 +805,35 @@ def _score(ctx: _Context, matrix, *, all_domains: bool, satellites: bool) -> dic
     by[ctx.integer] = -2
     for rank in range(len(chosen) - 1, -1, -1):
         by[expl[chosen[rank]]] = rank
-    absent = 0
-    center = np.array(ctx.geom.center_px)
-    for i in chosen:
-        pts = _lattice_points(np.linalg.inv(mats[i]).T, a_star, ctx.g_max)
-        pts = pts[np.any(np.abs(pts - np.rint(pts)) > 1e-6, axis=1)]
-        if not len(pts):
-            continue
-        seen = _seen(_screen_xy(pts @ a_star, ctx.energy_eV, ctx.geom), ctx.valid_mask, center, ctx.r_max, 0.0)
-        if seen.any():
-            d, _ = ctx.tree.query(pts[seen] @ a_star, distance_upper_bound=tol_g)
-            absent += int(np.sum(~np.isfinite(d)))
     covered = expl[chosen].any(axis=0) & frac
     e = int(covered.sum())
     e_sat = e - int((primary[chosen].any(axis=0) & frac).sum())
     u = int(frac.sum()) - e
     det = abs(float(np.linalg.det(mats[chosen[0]])))
-    score = (e - 0.5 * e_sat) - u - 0.5 * absent - 1.0 * (len(chosen) - 1) - 0.5 * abs(math.log2(det))
-    return {"mats": [mats[i] for i in chosen], "names": [names[i] for i in chosen], "all_mats": mats, "e": e, "u": u,
-            "absent": absent, "by": by, "score": float(score), "total": len(mats), "satellites": e_sat}
+    bound = (e - 0.5 * e_sat) - u - 1.0 * (len(chosen) - 1) - 0.5 * abs(math.log2(det))
+    sc = {"mats": [mats[i] for i in chosen], "names": [names[i] for i in chosen], "all_mats": mats, "e": e,
+          "u": u, "absent": None, "by": by, "score": float(bound), "bound": float(bound), "total": len(mats),
+          "satellites": e_sat}
+    return _with_absent(ctx, sc) if absent else sc
+
+
+def _with_absent(ctx: _Context, sc: dict) -> dict:
+    """Count predicted fractional beams missing where they could be seen; finish the score."""
+    if sc["absent"] is not None:
+        return sc
+    absent = 0
+    center = np.array(ctx.geom.center_px)
+    a_star = ctx.a_star
+    for m in sc["mats"]:
+        pts = _lattice_points(np.linalg.inv(m).T, a_star, ctx.g_max)
+        pts = pts[np.any(np.abs(pts - np.rint(pts)) > 1e-6, axis=1)]
+        if not len(pts):
+            continue
+        seen = _seen(_screen_xy(pts @ a_star, ctx.energy_eV, ctx.geom), ctx.valid_mask, center, ctx.r_max, 0.0)
+        if seen.any():
+            d, _ = ctx.tree.query(pts[seen] @ a_star, distance_upper_bound=ctx.tol_g)
+            absent += int(np.sum(~np.isfinite(d)))
+    return {**sc, "absent": absent, "score": float(sc["bound"] - 0.5 * absent)}
 
 
 def _describe(ctx: _Context, sc: dict, *, kind_tol: float) -> OverlayerModel:
@@ -971,13 +985,20 @@ def find_overlayers(hk: np.ndarray, integer: np.ndarray, substrate_fit: Substrat
                 seen.add(key)
                 if int((_explained(ctx.hk, c, a_star, tol_g) & ~ctx.integer).sum()) < 2 and not sat:
                     continue
-                sc = _score(ctx, c, all_domains=False, satellites=sat)
+                sc = _score(ctx, c, all_domains=False, satellites=sat, absent=False)
                 if not sat:  # every domain of this structure is now known
                     seen.update(_structure_key(d, exact=True) for d in sc["all_mats"])
                 scored.append((sc, ktol))
     if not scored:
-        scored.append((_score(ctx, np.eye(2), all_domains=False, satellites=False), 1e-6))
-    scored.sort(key=lambda t: -t[0]["score"])
+        scored.append((_score(ctx, np.eye(2), all_domains=False, satellites=False, absent=False), 1e-6))
+    # branch and bound: finish the scores best bound first, until no bound can enter the list
+    scored.sort(key=lambda t: -t[0]["bound"])
+    done: list[tuple[dict, float]] = []
+    for sc, kt in scored:
+        if len(done) >= 2 * n_results and sc["bound"] < sorted(d["score"] for d, _ in done)[-2 * n_results]:
+            break
+        done.append((_with_absent(ctx, sc), kt))
+    scored = sorted(done, key=lambda t: -t[0]["score"])
     models = _prefer_simple([_describe(ctx, sc, kind_tol=kt) for sc, kt in scored[: 2 * n_results]])
     models.sort(key=lambda mm: -mm.score)
     out, keys = [], []
