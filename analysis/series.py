@@ -32,6 +32,7 @@ from __future__ import annotations
 
 import argparse
 import csv
+import functools
 import io as _stdio
 import json
 import math
@@ -686,6 +687,133 @@ def beams_from_nets(substrate: Net2D, overlayers: Sequence = (), *, energy_max_e
 # --------------------------------------------------------------------------- windows, refinement, integration
 
 
+@functools.lru_cache(maxsize=16)
+def _disk_offsets(hi_px: float) -> tuple[np.ndarray, np.ndarray, np.ndarray, int, np.ndarray]:
+    """Pixel offsets (dy, dx) with dy² + dx² ≤ hi², sorted by dd = dy² + dx².
+
+    Sorted by distance, every disk or annulus about the centre pixel is one contiguous
+    column range of a gather (a view, no copy). Returns read-only (n,) int64 arrays
+    dy, dx, dd, the half-width h of the enclosing square and the (n,) flat indices of
+    the offsets in that (2h+1)² square (row-major).
+    """
+    n = int(math.floor(hi_px))
+    o = np.arange(-n, n + 1, dtype=np.int64)
+    dy, dx = np.repeat(o, o.size), np.tile(o, o.size)
+    dd = dy * dy + dx * dx
+    keep = np.flatnonzero(dd <= hi_px * hi_px)
+    keep = keep[np.argsort(dd[keep], kind="stable")]
+    out = (dy[keep], dx[keep], dd[keep], n, keep)
+    for a in (out[0], out[1], out[2], out[4]):
+        a.flags.writeable = False
+    return out
+
+
+@functools.lru_cache(maxsize=16)
+def _disk_basis(hi_px: float) -> np.ndarray:
+    """(3, n) float64 rows dy, dx, 1 of :func:`_disk_offsets` (for d² as a matrix product)."""
+    dy, dx = _disk_offsets(hi_px)[:2]
+    b = np.vstack([dy, dx, np.ones(dy.size)]).astype(np.float64)
+    b.flags.writeable = False
+    return b
+
+
+@functools.lru_cache(maxsize=16)
+def _square_offsets(half: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Offsets (dy, dx) of a (2h+1)² square in row-major order, and the flat indices of its
+    border ring (distance from the centre ≥ h − 1.5 px)."""
+    o = np.arange(-half, half + 1, dtype=np.int64)
+    dy, dx = np.repeat(o, o.size), np.tile(o, o.size)
+    ring = np.flatnonzero(dy * dy + dx * dx >= (half - 1.5) ** 2)
+    for a in (dy, dx, ring):
+        a.flags.writeable = False
+    return dy, dx, ring
+
+
+@dataclass(frozen=True, eq=False)
+class _MaskMap:
+    """A mask of usable pixels with, per pixel, the chessboard distance to the nearest
+    unusable one, so that windows far from every masked pixel skip the mask gather."""
+
+    mask: np.ndarray  # (M, N) bool, C-contiguous
+    clear: np.ndarray  # (M, N) int32, 0 on unusable pixels
+
+
+def _mask_map(mask: np.ndarray | None) -> _MaskMap | None:
+    if mask is None or bool(mask.all()):
+        return None
+    from scipy.ndimage import distance_transform_cdt
+
+    m = np.ascontiguousarray(mask, dtype=bool)
+    return _MaskMap(m, distance_transform_cdt(m, metric="chessboard").astype(np.int32))
+
+
+def _take(frame: np.ndarray, mask, centre: np.ndarray, half: int, cols: np.ndarray | None = None):
+    """Pixels of the (2h+1)² squares about K integer centres (or the columns `cols` of them).
+
+    Squares inside the image are gathered in one fancy-indexing step on a sliding-window
+    view; the few that cross the image edge through clipped flat indices. `mask` is None,
+    an (M, N) bool array or a :class:`_MaskMap`.
+
+    Returns ``data`` (K, n) float64 (0 outside the image), ``inside`` (K, n) bool or None
+    when every pixel is inside, and ``usable`` (K, n) bool (inside and not masked), with
+    n = (2h+1)² or ``len(cols)``.
+    """
+    from numpy.lib.stride_tricks import sliding_window_view
+
+    rows, ncols = frame.shape
+    k = centre.shape[0]
+    w = 2 * half + 1
+    dy, dx, _ = _square_offsets(half)
+    if cols is not None:
+        dy, dx = dy[cols], dx[cols]
+    n = dy.size
+    r0, c0 = centre[:, 0] - half, centre[:, 1] - half
+    full = (r0 >= 0) & (r0 + w <= rows) & (c0 >= 0) & (c0 + w <= ncols)
+    fi, part = np.flatnonzero(full), np.flatnonzero(~full)
+
+    def squares(img, sel):
+        sq = sliding_window_view(img, (w, w))[r0[sel], c0[sel]].reshape(sel.size, w * w)
+        return sq if cols is None else sq[:, cols]
+
+    def edge(sel):
+        rr = centre[sel, 0, None] + dy[None, :]
+        cc = centre[sel, 1, None] + dx[None, :]
+        ins = (rr >= 0) & (rr < rows) & (cc >= 0) & (cc < ncols)
+        return np.where(ins, rr * ncols + cc, 0), ins
+
+    inside = None
+    if part.size == 0:
+        data = squares(frame, fi)
+        if data.dtype != np.float64:
+            data = data.astype(np.float64)
+    else:
+        data = np.empty((k, n))
+        if fi.size:
+            data[fi] = squares(frame, fi)
+        idx, ins = edge(part)
+        data[part] = np.where(ins, frame.reshape(-1).take(idx), 0.0)
+        inside = np.ones((k, n), dtype=bool)
+        inside[part] = ins
+    usable = np.ones((k, n), dtype=bool) if inside is None else inside.copy()
+    if mask is None:
+        return data, inside, usable
+    if isinstance(mask, _MaskMap):
+        ok = (centre[:, 0] >= 0) & (centre[:, 0] < rows) & (centre[:, 1] >= 0) & (centre[:, 1] < ncols)
+        cr, cc_ = np.clip(centre[:, 0], 0, rows - 1), np.clip(centre[:, 1], 0, ncols - 1)
+        near = ~ok | (mask.clear[cr, cc_] <= half)
+        m = mask.mask
+    else:
+        near = np.ones(k, dtype=bool)
+        m = mask
+    nf, npart = np.flatnonzero(near & full), np.flatnonzero(near & ~full)
+    if nf.size:
+        usable[nf] = squares(m, nf)
+    if npart.size:
+        idx, ins = edge(npart)
+        usable[npart] = m.reshape(-1).take(idx) & ins
+    return data, inside, usable
+
+
 @dataclass(eq=False)
 class _Windows:
     """Small (K, w, w) cut-outs of one frame around K points."""
@@ -693,7 +821,6 @@ class _Windows:
     data: np.ndarray  # (K, w, w) float64 pixel values (0 outside the image)
     inside: np.ndarray  # (K, w, w) bool, pixel inside the image
     usable: np.ndarray  # (K, w, w) bool, inside the image and not masked
-    saturated: np.ndarray  # (K, w, w) bool, at or above the saturation level
     row0: np.ndarray  # (K,) int64 image row of window pixel [0, 0]
     col0: np.ndarray  # (K,) int64 image column of window pixel [0, 0]
 
@@ -702,35 +829,14 @@ class _Windows:
         return (self.data.shape[1] - 1) // 2
 
 
-def _extract(frame: np.ndarray, rc: np.ndarray, half: int, mask: np.ndarray | None,
-             saturation_level: float | None) -> _Windows:
-    rows, cols = frame.shape
+def _extract(frame: np.ndarray, rc: np.ndarray, half: int, mask: np.ndarray | None) -> _Windows:
     k = rc.shape[0]
     w = 2 * half + 1
     centre = np.rint(rc).astype(np.int64)
-    r0, c0 = centre[:, 0] - half, centre[:, 1] - half
-    full = (r0 >= 0) & (c0 >= 0) & (r0 + w <= rows) & (c0 + w <= cols)
-    raw = np.zeros((k, w, w), dtype=frame.dtype)
-    inside = np.ones((k, w, w), dtype=bool)
-    usable = np.ones((k, w, w), dtype=bool)
-    for i in np.flatnonzero(full):  # plain slices: much cheaper than a fancy-index gather
-        raw[i] = frame[r0[i]:r0[i] + w, c0[i]:c0[i] + w]
-        if mask is not None:
-            usable[i] = mask[r0[i]:r0[i] + w, c0[i]:c0[i] + w]
-    part = np.flatnonzero(~full)
-    if part.size:
-        off = np.arange(w)
-        rr = r0[part, None] + off[None, :]
-        cc = c0[part, None] + off[None, :]
-        ins = ((rr >= 0) & (rr < rows))[:, :, None] & ((cc >= 0) & (cc < cols))[:, None, :]
-        ri = np.clip(rr, 0, rows - 1)[:, :, None]
-        ci = np.clip(cc, 0, cols - 1)[:, None, :]
-        raw[part] = np.where(ins, frame[ri, ci], 0)
-        inside[part] = ins
-        usable[part] = ins if mask is None else ins & mask[ri, ci]
-    data = raw.astype(np.float64)
-    sat = (inside & (raw >= saturation_level)) if saturation_level is not None else np.zeros_like(inside)
-    return _Windows(data, inside, usable, sat, r0, c0)
+    data, inside, usable = _take(frame, mask, centre, half)
+    inside = np.ones((k, w, w), dtype=bool) if inside is None else inside.reshape(k, w, w)
+    return _Windows(data.reshape(k, w, w), inside, usable.reshape(k, w, w),
+                    centre[:, 0] - half, centre[:, 1] - half)
 
 
 def _local(win: _Windows, rc: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -742,24 +848,35 @@ def _local(win: _Windows, rc: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _robust(values: np.ndarray, select: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Per-window clipped mean, clipped standard deviation and the pixels kept, (K, n) in.
+    """Per-row clipped mean, clipped standard deviation and the pixels kept, (K, n) in.
 
-    Three passes of a 3σ clip (pixels of neighbouring spots and hot pixels drop out).
+    Three passes of a 3σ clip (pixels of neighbouring spots and hot pixels drop out). The
+    sums are float64 row dot products with the kept set. A row whose kept set did not
+    change in a pass has converged (the next pass would repeat it exactly), so the last
+    pass runs only on the rows still changing.
     """
     k = values.shape[0]
     v = values.reshape(k, -1)
     sel = select.reshape(k, -1)
-    keep = sel
-    mean = np.zeros(k)
-    sd = np.full(k, np.inf)
-    for _ in range(3):
-        n = keep.sum(axis=1)
-        nn = np.maximum(n, 1)
-        mean = np.where(keep, v, 0.0).sum(axis=1) / nn
-        dev = np.where(keep, v - mean[:, None], 0.0)
-        sd = np.sqrt((dev * dev).sum(axis=1) / np.maximum(n - 1, 1))
-        keep = sel & (np.abs(v - mean[:, None]) <= 3.0 * sd[:, None] + 1e-12)
-    n = keep.sum(axis=1)
+    v2 = v * v
+
+    def clip(v, v2, sel, keep):
+        kf = keep.astype(np.float64)
+        n = kf.sum(axis=1)
+        s1 = np.einsum("kn,kn->k", v, kf)
+        s2 = np.einsum("kn,kn->k", v2, kf)
+        mean = s1 / np.maximum(n, 1.0)
+        sd = np.sqrt(np.maximum(s2 - s1 * mean, 0.0) / np.maximum(n - 1.0, 1.0))
+        t = 3.0 * sd + 1e-12
+        return mean, sd, sel & (v >= (mean - t)[:, None]) & (v <= (mean + t)[:, None])
+
+    _, _, keep1 = clip(v, v2, sel, sel)
+    mean, sd, keep = clip(v, v2, sel, keep1)
+    moving = np.flatnonzero(np.any(keep != keep1, axis=1))
+    if moving.size:
+        m3, s3, k3 = clip(v[moving], v2[moving], sel[moving], keep[moving])
+        mean[moving], sd[moving], keep[moving] = m3, s3, k3
+    n = np.count_nonzero(keep, axis=1)
     return np.where(n > 0, mean, 0.0), np.where(n > 1, sd, np.inf), keep
 
 
@@ -772,21 +889,24 @@ def _refine(win: _Windows, rc_pred: np.ndarray, search_px: np.ndarray, radius_px
     """
     k, w, _ = win.data.shape
     h = win.half
-    yy, xx = np.divmod(np.arange(w * w), w)
-    ring = np.flatnonzero((yy - h) ** 2 + (xx - h) ** 2 >= (h - 1.5) ** 2)  # border of the window
-    bg, noise, _ = _robust(win.data.reshape(k, -1)[:, ring], win.usable.reshape(k, -1)[:, ring])
+    _, _, ring = _square_offsets(h)  # border of the window
+    flat = win.data.reshape(k, -1)
+    bg, noise, _ = _robust(flat[:, ring], win.usable.reshape(k, -1)[:, ring])
     noise = np.maximum(noise, 1e-6)
-    # peak search: 3×3 box sums in the central (2s+1)² part of the window only
+    # peak search: 3×3 box sums (separable) in the central (2s+1)² part of the window only
     s = min(int(math.ceil(float(np.max(search_px, initial=0.0)))) + 1, h - 1)
     lo, hi = h - s - 1, h + s + 2
-    v = np.where(win.usable[:, lo:hi, lo:hi], win.data[:, lo:hi, lo:hi] - bg[:, None, None], 0.0)
+    v = win.data[:, lo:hi, lo:hi] - bg[:, None, None]
+    v[~win.usable[:, lo:hi, lo:hi]] = 0.0
     n = 2 * s + 1
-    box = sum(v[:, i:i + n, j:j + n] for i in range(3) for j in range(3))
+    rows3 = v[:, 0:n] + v[:, 1:n + 1] + v[:, 2:n + 2]
+    box = rows3[:, :, 0:n] + rows3[:, :, 1:n + 1] + rows3[:, :, 2:n + 2]
     off_s = np.arange(h - s, h + s + 1, dtype=np.float64)
     br = (win.row0[:, None] + off_s[None, :] - rc_pred[:, 0, None])[:, :, None]
     bc = (win.col0[:, None] + off_s[None, :] - rc_pred[:, 1, None])[:, None, :]
     cand = win.usable[:, h - s:h + s + 1, h - s:h + s + 1] & (br * br + bc * bc <= (search_px[:, None, None]) ** 2)
-    score = np.where(cand, box, -np.inf).reshape(k, -1)
+    box[~cand] = -np.inf
+    score = box.reshape(k, -1)
     best = np.argmax(score, axis=1)
     snr = score[np.arange(k), best] / (3.0 * noise)
     snr = np.where(np.isfinite(snr), snr, 0.0)
@@ -798,24 +918,26 @@ def _refine(win: _Windows, rc_pred: np.ndarray, search_px: np.ndarray, radius_px
     ci = pc[:, None] + ob[None, :]
     okr, okc = (ri >= 0) & (ri < w), (ci >= 0) & (ci < w)
     ri, ci = np.clip(ri, 0, w - 1), np.clip(ci, 0, w - 1)
-    kk = np.arange(k)[:, None, None]
-    sub = win.data[kk, ri[:, :, None], ci[:, None, :]] - bg[:, None, None]
-    good_px = win.usable[kk, ri[:, :, None], ci[:, None, :]] & okr[:, :, None] & okc[:, None, :]
-    pos = np.where(good_px, np.clip(sub, 0.0, None), 0.0)
-    rows = (win.row0[:, None] + ri).astype(np.float64)[:, :, None]
-    cols = (win.col0[:, None] + ci).astype(np.float64)[:, None, :]
+    sel = (np.arange(k) * (w * w))[:, None, None] + ri[:, :, None] * w + ci[:, None, :]
+    pos = flat.take(sel) - bg[:, None, None]
+    np.maximum(pos, 0.0, out=pos)
+    pos[~(win.usable.reshape(-1).take(sel) & okr[:, :, None] & okc[:, None, :])] = 0.0
+    rows = (win.row0[:, None] + ri).astype(np.float64)  # (K, m)
+    cols = (win.col0[:, None] + ci).astype(np.float64)
     c = np.column_stack([win.row0 + pr, win.col0 + pc]).astype(np.float64)
     sigma = np.full(k, np.nan)
+    r2 = radius_px * radius_px
     for it in range(3):
-        dr, dc = rows - c[:, 0, None, None], cols - c[:, 1, None, None]
-        d2 = dr * dr + dc * dc
-        wgt = pos * (d2 <= radius_px * radius_px)
-        tot = wgt.sum(axis=(1, 2))
+        dr, dc = rows - c[:, 0, None], cols - c[:, 1, None]
+        dr2, dc2 = dr * dr, dc * dc
+        wgt = np.where(dr2[:, :, None] + dc2[:, None, :] <= r2, pos, 0.0)
+        w_r, w_c = wgt.sum(axis=2), wgt.sum(axis=1)  # (K, m) marginals
+        tot = w_r.sum(axis=1)
         good = tot > 0
         with np.errstate(invalid="ignore", divide="ignore"):
-            new = np.column_stack([(wgt * rows).sum(axis=(1, 2)) / tot, (wgt * cols).sum(axis=(1, 2)) / tot])
+            new = np.column_stack([_rowdot(w_r, rows) / tot, _rowdot(w_c, cols) / tot])
             if it == 2:
-                m2 = (wgt * d2).sum(axis=(1, 2)) / tot / 2.0
+                m2 = (_rowdot(w_r, dr2) + _rowdot(w_c, dc2)) / tot / 2.0
                 sigma = np.where(good & (snr > 20), np.sqrt(np.maximum(m2, 0.0)), np.nan)
         c = np.where(good[:, None], new, c)
     shift = np.hypot(c[:, 0] - rc_pred[:, 0], c[:, 1] - rc_pred[:, 1])
@@ -859,84 +981,108 @@ class SpotIntegrals:
     n_aperture: np.ndarray
 
 
-def _gather(win: _Windows, rc: np.ndarray, lo_px: float, hi_px: float):
-    """Window pixels whose distance from the window centre is in [lo, hi], flattened to (K, n):
-    (data, inside, usable, saturated, row offset from rc, column offset from rc)."""
-    k, w, _ = win.data.shape
-    h = win.half
-    yy, xx = np.divmod(np.arange(w * w), w)
-    dd = (yy - h) ** 2 + (xx - h) ** 2
-    sup = np.flatnonzero((dd >= max(lo_px, 0.0) ** 2) & (dd <= hi_px * hi_px))
-    flat = [a.reshape(k, -1)[:, sup] for a in (win.data, win.inside, win.usable, win.saturated)]
-    dr = (win.row0[:, None] + yy[sup][None, :]) - rc[:, 0, None]
-    dc = (win.col0[:, None] + xx[sup][None, :]) - rc[:, 1, None]
-    return (*flat, dr, dc)
+def _rowdot(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Row-wise dot product of two (K, n) arrays, (K,)."""
+    return np.einsum("kn,kn->k", a, b)
 
 
-def _integrate(win: _Windows, rc: np.ndarray, *, radius_px: float, annulus_px: tuple[float, float],
-               background: str, method: str, spot_sigma_px: float | None, gain: float) -> SpotIntegrals:
-    k = win.data.shape[0]
+def _normal_equations(cols: list, wts: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Weighted least-squares normal matrix (K, p, p) and right side (K, p) for the model
+    ``y ≈ Σ_p c_p · cols[p]`` with per-pixel weights, every array (K, n)."""
+    p = len(cols)
+    k = y.shape[0]
+    wc = [c * wts for c in cols]
+    nmat = np.empty((k, p, p))
+    for i in range(p):
+        for j in range(i, p):
+            nmat[:, i, j] = nmat[:, j, i] = _rowdot(wc[i], cols[j])
+    rhs = np.column_stack([_rowdot(c, y) for c in wc])
+    return nmat, rhs
+
+
+def _integrate(frame: np.ndarray, rc: np.ndarray, mask: np.ndarray | None, saturation_level: float | None, *,
+               radius_px: float, annulus_px: tuple[float, float], background: str, method: str,
+               spot_sigma_px: float | None, gain: float) -> SpotIntegrals:
+    """Integrate K spots at (row, col) `rc` straight from the frame (one gather of the disk
+    of radius r_out + 0.75 px about each spot's nearest pixel)."""
+    k = rc.shape[0]
     r_in, r_out = annulus_px
     scale = max(r_out, 1.0)
-    # The window centre is within 1.5 px of `rc`: gather supersets of the annulus and aperture.
-    a_data, _, a_use, _, a_dr, a_dc = _gather(win, rc, r_in - 1.5, r_out + 1.5)
-    a_d2 = a_dr * a_dr + a_dc * a_dc
+    # The nearest pixel is within √½ px of the sub-pixel centre, so with a margin of
+    # 0.75 px the distance-sorted columns dd ≤ (R + m)² hold the aperture and
+    # dd ≥ (r_in − m)² the annulus.
+    margin = 0.75
+    dy, dx, dd, sq_half, sq_cols = _disk_offsets(r_out + margin)
+    centre = np.rint(rc).astype(np.int64)
+    data, inside, usable = _take(frame, mask, centre, sq_half, sq_cols)
+    ofr, ofc = centre[:, 0] - rc[:, 0], centre[:, 1] - rc[:, 1]
+    # d² = (ofr + dy)² + (ofc + dx)² as one small matrix product
+    d2 = np.column_stack([2.0 * ofr, 2.0 * ofc, ofr * ofr + ofc * ofc]) @ _disk_basis(r_out + margin) + dd
+    n_p = int(np.searchsorted(dd, (radius_px + margin) ** 2, side="right"))
+    j_a = int(np.searchsorted(dd, max(r_in - margin, 0.0) ** 2, side="left"))
+    a_data, a_use, a_d2 = data[:, j_a:], usable[:, j_a:], d2[:, j_a:]
     sel = (a_d2 >= r_in * r_in) & (a_d2 <= r_out * r_out) & a_use
     mean, sd, keep = _robust(a_data, sel)
-    p_data, p_in, p_use, p_sat, p_dr, p_dc = _gather(win, rc, 0.0, radius_px + 1.5)
-    ap = p_dr * p_dr + p_dc * p_dc <= radius_px * radius_px
+    p_data, p_use, p_d2 = data[:, :n_p], usable[:, :n_p], d2[:, :n_p]
+    ap = p_d2 <= radius_px * radius_px
     flags = np.zeros(k, dtype=np.uint8)
-    flags[np.any(ap & ~p_in, axis=1)] |= FLAG_OFF_SCREEN
-    flags[np.any(ap & p_in & ~p_use, axis=1)] |= FLAG_MASKED
-    flags[np.any(ap & p_sat, axis=1)] |= FLAG_SATURATED
-    apu = ap & p_in
-    n_ap = apu.sum(axis=1)
-    n_keep = keep.sum(axis=1).astype(np.float64)
+    if inside is None:
+        apu = ap
+        flags[np.any(ap & ~p_use, axis=1)] |= FLAG_MASKED
+    else:
+        p_in = inside[:, :n_p]
+        apu = ap & p_in
+        flags[np.any(ap & ~p_in, axis=1)] |= FLAG_OFF_SCREEN
+        flags[np.any(apu & ~p_use, axis=1)] |= FLAG_MASKED
+    if saturation_level is not None:
+        flags[np.any(apu & (p_data >= saturation_level), axis=1)] |= FLAG_SATURATED
+    apf = apu.astype(np.float64)
+    n_ap = np.count_nonzero(apu, axis=1)
+    n_keep = np.count_nonzero(keep, axis=1).astype(np.float64)
     p_dim = 1 if background == "annulus" else 3
     enough = n_keep >= max(6, 2 * p_dim)
     if p_dim == 1:  # the clipped mean is the least-squares constant on the kept pixels
         coef = mean[:, None]
-        ninv = (1.0 / np.maximum(n_keep, 1.0))[:, None, None]
         s2 = sd * sd
         s2 = np.where(np.isfinite(s2), s2, 0.0)
-        bg_ap = coef
-        u = n_ap[:, None].astype(np.float64)
+        sum_bg = mean * n_ap
+        var_bg = s2 * n_ap * n_ap / np.maximum(n_keep, 1.0)
     else:
-        X = np.stack([np.ones_like(a_d2), a_dc / scale, a_dr / scale], axis=-1)  # (K, n, 3)
+        dr, dc = ofr[:, None] + dy[None, :], ofc[:, None] + dx[None, :]
         wk = keep.astype(np.float64)
-        nmat = np.einsum("knp,knq,kn->kpq", X, X, wk)
+        a_x, a_y = (dc[:, j_a:] / scale), (dr[:, j_a:] / scale)
+        nmat, rhs = _normal_equations([np.ones_like(a_x), a_x, a_y], wk, a_data)
         nmat = np.where(enough[:, None, None], nmat, np.eye(3)[None])
         ninv = np.linalg.inv(nmat)
-        coef = np.einsum("kpq,kq->kp", ninv, np.einsum("knp,kn->kp", X, a_data * wk))
-        resid = (a_data - np.einsum("knp,kp->kn", X, coef)) * wk
-        s2 = (resid * resid).sum(axis=1) / np.maximum(n_keep - 3, 1)
-        Xp = np.stack([np.ones_like(p_dr), p_dc / scale, p_dr / scale], axis=-1)
-        bg_ap = np.einsum("knp,kp->kn", Xp, coef)
-        u = np.einsum("knp,kn->kp", Xp, apu.astype(np.float64))
-    if method == "aperture":
-        inten = ((p_data - bg_ap) * apu).sum(axis=1)
+        coef = np.einsum("kpq,kq->kp", ninv, rhs)
+        resid = (a_data - coef[:, 0, None] - coef[:, 1, None] * a_x - coef[:, 2, None] * a_y) * wk
+        s2 = _rowdot(resid, resid) / np.maximum(n_keep - 3, 1)
+        u = np.column_stack([n_ap, _rowdot(apf, dc[:, :n_p]) / scale, _rowdot(apf, dr[:, :n_p]) / scale])
+        sum_bg = np.einsum("kp,kp->k", coef, u)
         var_bg = s2 * np.einsum("kp,kpq,kq->k", u, ninv, u)
+    if method == "aperture":
+        inten = _rowdot(p_data, apf) - sum_bg
         var = gain * np.maximum(inten, 0.0) + n_ap * s2 + var_bg
     else:
         if not (spot_sigma_px and spot_sigma_px > 0):
             raise ParameterError(f"The profile fit needs a spot width `spot_sigma_px` > 0, got {spot_sigma_px!r}.")
         sg = float(spot_sigma_px)
-        data, _, usable, _, dr, dc = _gather(win, rc, 0.0, r_out + 1.5)
-        d2 = dr * dr + dc * dc
+        dr, dc = ofr[:, None] + dy[None, :], ofc[:, None] + dx[None, :]
         in_ann = (d2 >= r_in * r_in) & (d2 <= r_out * r_out)
-        good_bg = in_ann & (np.abs(data - mean[:, None]) <= 3.0 * sd[:, None] + 1e-9)
+        lo_b, hi_b = mean - 3.0 * sd - 1e-9, mean + 3.0 * sd + 1e-9
+        good_bg = in_ann & (data >= lo_b[:, None]) & (data <= hi_b[:, None])
         fit_px = (d2 <= r_out * r_out) & usable & ((d2 <= radius_px * radius_px) | good_bg)
         gauss = np.exp(-d2 / (2.0 * sg * sg)) / (2.0 * math.pi * sg * sg)
         cols = [gauss, np.ones_like(d2)] + ([] if p_dim == 1 else [dc / scale, dr / scale])
-        Xf = np.stack(cols, axis=-1)
-        wts = fit_px / np.maximum(s2, 1e-12)[:, None]
+        fit_f = fit_px.astype(np.float64)
+        wts = fit_f / np.maximum(s2, 1e-12)[:, None]
         for _ in range(2):
-            nf = np.einsum("knp,knq,kn->kpq", Xf, Xf, wts)
+            nf, rhs = _normal_equations(cols, wts, data)
             nf = np.where(enough[:, None, None], nf, np.eye(p_dim + 1)[None])
             nfi = np.linalg.inv(nf)
-            cf = np.einsum("kpq,kq->kp", nfi, np.einsum("knp,kn->kp", Xf, data * wts))
+            cf = np.einsum("kpq,kq->kp", nfi, rhs)
             sig_model = np.maximum(cf[:, 0, None] * gauss, 0.0)
-            wts = fit_px / (np.maximum(s2, 1e-12)[:, None] + gain * sig_model)
+            wts = fit_f / (np.maximum(s2, 1e-12)[:, None] + gain * sig_model)
         inten = cf[:, 0]
         var = nfi[:, 0, 0]
         coef = cf[:, 1:]
@@ -1022,9 +1168,10 @@ def integrate_spots(frame: np.ndarray, xy_px, *, radius_px: float = 5.0, annulus
     if saturation_level is None and np.issubdtype(frame.dtype, np.integer):
         saturation_level = float(np.iinfo(frame.dtype).max)
     rc = xy[:, ::-1].copy()
-    win = _extract(frame, rc, int(math.ceil(ann[1])) + 1, mask, saturation_level)
-    return _integrate(win, rc, radius_px=float(radius_px), annulus_px=ann, background=background,
-                      method=method, spot_sigma_px=spot_sigma_px, gain=float(gain))
+    frame = np.ascontiguousarray(frame)
+    mask = None if mask is None else np.ascontiguousarray(mask)
+    return _integrate(frame, rc, mask, saturation_level, radius_px=float(radius_px), annulus_px=ann,
+                      background=background, method=method, spot_sigma_px=spot_sigma_px, gain=float(gain))
 
 
 # --------------------------------------------------------------------------- calibration from the series
@@ -1356,9 +1503,11 @@ def _neighbour_distance(xy: np.ndarray) -> np.ndarray:
     """Distance from each point to its nearest other point, px (inf when alone)."""
     if len(xy) < 2:
         return np.full(len(xy), np.inf)
-    d = np.hypot(xy[:, None, 0] - xy[None, :, 0], xy[:, None, 1] - xy[None, :, 1])
-    np.fill_diagonal(d, np.inf)
-    return d.min(axis=1)
+    dx = np.subtract.outer(xy[:, 0], xy[:, 0])
+    dy = np.subtract.outer(xy[:, 1], xy[:, 1])
+    d2 = dx * dx + dy * dy
+    np.fill_diagonal(d2, np.inf)
+    return np.sqrt(d2.min(axis=1))
 
 
 def track_series(frames, beams: BeamSet, geometry: ScreenGeometry, *, energies=None,
@@ -1455,16 +1604,17 @@ def track_series(frames, beams: BeamSet, geometry: ScreenGeometry, *, energies=N
             where = f"frame {i + 1}" + (f" (after {rec_names[-1]})" if rec_names else "")
             raise SeriesError(f"Cannot read {where}: {err}") from None
         i += 1
-        frame = np.asarray(frame)
+        frame = np.ascontiguousarray(frame)  # flat gathers below need one contiguous buffer
         if frame.ndim != 2:
             raise SeriesError(f"Frame {i} ({name}) is not a 2-D image (shape {frame.shape}).")
         if shape is None:
             shape = frame.shape
             if mask is not None:
-                mask = np.asarray(mask, dtype=bool)
+                mask = np.ascontiguousarray(mask, dtype=bool)
                 if mask.shape != shape:
                     raise SeriesError(f"The mask is {mask.shape[1]}×{mask.shape[0]} px but frame 0 ({name}) "
                                       f"is {shape[1]}×{shape[0]} px.")
+            mask_map = _mask_map(mask)
         elif frame.shape != shape:
             raise SeriesError(f"Frame {i} ({name}) is {frame.shape[1]}×{frame.shape[0]} px but frame 0 "
                               f"({rec_names[0]}) is {shape[1]}×{shape[0]} px: all frames must have one size.")
@@ -1473,9 +1623,9 @@ def track_series(frames, beams: BeamSet, geometry: ScreenGeometry, *, energies=N
         if sat is None and np.issubdtype(frame.dtype, np.integer):
             sat = float(np.iinfo(frame.dtype).max)
         if i == 0:
-            geom, r_ap, ann, last_sigma = _bootstrap(frame, e, g, geom, mask, sat, r_ap, ann, ann_given,
+            geom, r_ap, ann, last_sigma = _bootstrap(frame, e, g, geom, mask_map, sat, r_ap, ann, ann_given,
                                                      search_px, min_snr, fit, spot_sigma_px)
-        out = _one_frame(frame, e, g, geom, mask, sat, r_ap, ann, background, method, search_px, min_snr, gain,
+        out = _one_frame(frame, e, g, geom, mask_map, sat, r_ap, ann, background, method, search_px, min_snr, gain,
                          spot_sigma_px if spot_sigma_px else last_sigma)
         inten, sig, xy, flags, bgpx, okpos, sig_est = out
         if spot_sigma_px is None and np.isfinite(sig_est):
@@ -1520,10 +1670,16 @@ def track_series(frames, beams: BeamSet, geometry: ScreenGeometry, *, energies=N
                     currents, calibration, settings)
 
 
+_REFIT_POINTS = 4000  # points in the refits while tracking (the final calibration uses all)
+
+
 def _refit(pts_e, pts_g, pts_xy, geom, fit) -> ScreenGeometry:
+    e, g, xy = np.concatenate(pts_e), np.vstack(pts_g), np.vstack(pts_xy)
+    if e.size > _REFIT_POINTS:  # a fixed random subset: the prediction needs no more
+        pick = np.sort(np.random.default_rng(0).choice(e.size, _REFIT_POINTS, replace=False))
+        e, g, xy = e[pick], g[pick], xy[pick]
     try:
-        return fit_series_geometry(np.concatenate(pts_e), np.vstack(pts_g), np.vstack(pts_xy),
-                                   initial=geom, fit=fit).geometry
+        return fit_series_geometry(e, g, xy, initial=geom, fit=fit).geometry
     except FitError:
         return geom
 
@@ -1549,10 +1705,10 @@ def _bootstrap(frame, e, g, geom, mask, sat, r_ap, ann, ann_given, search_px, mi
         search = np.minimum(wide * search_px, 0.45 * nn)
         half = int(math.ceil(max(search.max(initial=0.0) + r_try, r_try + 3))) + 1
         rc = xy[idx, ::-1]
-        win = _extract(frame, rc, half, mask, sat)
+        win = _extract(frame, rc, half, mask)
         ref, snr, ok, sig_est = _refine(win, rc, search, r_try, min_snr)
-        ok &= ~np.any(win.inside & ~win.usable & ((_local(win, ref)[0] ** 2 + _local(win, ref)[1] ** 2)
-                                                   <= r_try * r_try), axis=(1, 2))
+        dr, dc = _local(win, ref)
+        ok &= ~np.any(win.inside & ~win.usable & (dr * dr + dc * dc <= r_try * r_try), axis=(1, 2))
         good = np.isfinite(sig_est) & ok
         if good.any() and sigma is None:
             sigma = float(np.median(sig_est[good]))
@@ -1587,17 +1743,15 @@ def _one_frame(frame, e, g, geom, mask, sat, r_ap, ann, background, method, sear
     search = np.minimum(search_px, 0.45 * nn)
     half = int(math.ceil(max(ann[1], search.max(initial=0.0) + r_ap))) + 2
     rc_pred = xy[idx, ::-1]
-    win = _extract(frame, rc_pred, half, mask, sat)
+    win = _extract(frame, rc_pred, half, mask)
     ref, snr, ok, s_est = _refine(win, rc_pred, search, r_ap, min_snr)
     good = np.isfinite(s_est) & ok
     if good.any():
         sig_est = float(np.median(s_est[good]))
     rc = np.where(ok[:, None], ref, rc_pred)
-    if np.any(np.abs(rc - rc_pred) > 0.5):  # the window must stay centred on the spot
-        win = _extract(frame, rc, half, mask, sat)
     s_use = sigma if sigma else (sig_est if np.isfinite(sig_est) else r_ap / 3.0)
-    res = _integrate(win, rc, radius_px=r_ap, annulus_px=ann, background=background, method=method,
-                     spot_sigma_px=s_use, gain=gain)
+    res = _integrate(frame, rc, mask, sat, radius_px=r_ap, annulus_px=ann, background=background,
+                     method=method, spot_sigma_px=s_use, gain=gain)
     f = res.flags.copy()
     f[nn < 2.0 * r_ap] |= FLAG_CROWDED
     f[~ok] |= FLAG_NOT_REFINED
