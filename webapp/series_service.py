@@ -1,0 +1,516 @@
+"""The web app's calls into :mod:`analysis.series` for energy series, and the checks in front of them.
+
+A series arrives as one uploaded file (a multi-page TIFF or a zip of images); its
+bytes are kept in a disk cache of the data folder under their SHA-256, so every
+worker and the background job see them, and no user input becomes a file path.
+A run indexes one frame (:func:`analysis.pipeline.analyze_image`), lists the beams
+of the substrate and overlayer domains (:func:`analysis.series.beams_from_nets`),
+tracks them (:func:`analysis.series.track_series`) and keeps the
+:class:`~analysis.series.IVResult` and a small 8-bit preview of every frame in
+the same cache under a run key. The page holds only :func:`run_series`'s small
+JSON summary. Every function raises a :class:`analysis.errors.RecinetError` with
+one line a page can show as it is.
+
+Positions at this edge are (x, y) pixels, x right, y down, the centre of the
+top-left pixel at (0, 0).
+"""
+
+from __future__ import annotations
+
+import functools
+import hashlib
+import json
+import math
+import os
+import tempfile
+from pathlib import Path
+
+import numpy as np
+
+from analysis.errors import FitError, ImageError, ParameterError, RecinetError, SeriesError
+
+__all__ = [
+    "MAX_FRAMES", "MAX_FRAME_PIXELS", "MAX_SIDECAR_BYTES", "PREVIEW_SIDE", "ENERGY_MODES",
+    "frames_of", "store_upload", "read_energies", "run_series", "load_result", "frame_view",
+    "first_frame_view", "preview_factor", "groups_of", "export_csv", "export_json",
+]
+
+MAX_FRAMES = 1000  # frames in one uploaded series
+MAX_FRAME_PIXELS = 4096 * 4096  # pixels in one frame (a zip or TIFF may inflate a lot)
+MAX_SIDECAR_BYTES = 2_000_000  # an energy file
+PREVIEW_SIDE = 512  # longer side of the 8-bit frame previews, px
+ENERGY_MODES = ("file", "step", "names")
+_KEEP_S = 3 * 86400  # uploads and runs stay this long in the cache
+
+_STATE = {"cache": None, "pid": None}
+
+
+def _cache():
+    """diskcache in the data folder's job-cache (shared by workers and background jobs)."""
+    import diskcache
+
+    from .runtime import get_settings
+
+    if _STATE["cache"] is None or _STATE["pid"] != os.getpid():
+        path = get_settings().cache_dir / "series"
+        _STATE["cache"] = diskcache.Cache(str(path), size_limit=4 * 1024**3, eviction_policy="least-recently-used")
+        _STATE["pid"] = os.getpid()
+    return _STATE["cache"]
+
+
+def _short(name) -> str:
+    return str(name or "upload")[:120]
+
+
+# --------------------------------------------------------------------------- frames
+
+def frames_of(raw: bytes, filename: str):
+    """Yield ``(name, (M, N) float64 frame)`` of an uploaded stack, one at a time.
+
+    Frame names carry the upload's file name (``stack.tif#3``) or the zip member's;
+    errors name the file the user chose. More than :data:`MAX_FRAMES` frames is refused.
+    """
+    from analysis.io import iter_frames
+
+    name = _short(filename)
+    it = iter_frames(raw, max_pixels=MAX_FRAME_PIXELS)
+    i = 0
+    while True:
+        try:
+            fname, frame = next(it)
+        except StopIteration:
+            return
+        except ImageError as err:
+            raise ImageError(str(err).replace("<bytes>", name)) from None
+        if i >= MAX_FRAMES:
+            raise SeriesError(f"{name}: more than {MAX_FRAMES} frames; split the series into parts.")
+        yield fname.replace("<bytes>", name, 1), frame
+        i += 1
+
+
+def _preview(frame: np.ndarray) -> bytes:
+    """An 8-bit PNG of one frame for the slider view, at most :data:`PREVIEW_SIDE` px."""
+    from . import figures
+
+    small, _ = figures.downsample(frame, PREVIEW_SIDE)
+    return figures.png_bytes(figures.display_levels(small, scale="gamma", gamma=0.5, clip_pct=(1.0, 99.95)))
+
+
+def preview_factor(width: int, height: int) -> int:
+    """How many times smaller than the frame its preview is (1 up to :data:`PREVIEW_SIDE` px)."""
+    return max(1, math.ceil(max(width, height) / PREVIEW_SIDE))
+
+
+def store_upload(raw: bytes, filename: str) -> dict:
+    """Keep an uploaded series on the server; return ``{"sha", "filename", "width", "height", "bytes"}``.
+
+    Only the first frame is decoded here (to refuse what is not an image at once);
+    the rest is read by the run.
+    """
+    name = _short(filename)
+    try:
+        first_name, first = next(frames_of(raw, name))
+    except StopIteration:
+        raise SeriesError(f"{name}: the file holds no frames.") from None
+    sha = hashlib.sha256(raw).hexdigest()
+    c = _cache()
+    c.set(("raw", sha), raw, expire=_KEEP_S)
+    c.set(("first", sha), _preview(first), expire=_KEEP_S)
+    h, w = first.shape
+    return {"sha": sha, "filename": name, "width": int(w), "height": int(h), "bytes": len(raw)}
+
+
+def _raw(sha: str) -> bytes:
+    raw = _cache().get(("raw", str(sha)))
+    if raw is None:
+        raise SeriesError("The uploaded series is no longer on the server; drop it again.")
+    return raw
+
+
+def first_frame_view(sha: str) -> str | None:
+    """PNG data URL of the first frame of an uploaded series (before any run), or None."""
+    import base64
+
+    png = _cache().get(("first", str(sha)))
+    return None if png is None else "data:image/png;base64," + base64.b64encode(png).decode("ascii")
+
+
+# --------------------------------------------------------------------------- energies
+
+def read_energies(raw: bytes, filename: str) -> dict:
+    """Read an uploaded energy file (CSV or JSON, as :func:`analysis.series.read_energy_file`).
+
+    Returns ``{"filename", "energy_eV", "current" or None, "frame" or None}`` (JSON-safe).
+    Energies in frame order are checked at once (positive, steadily rising or falling).
+    """
+    from analysis.series import check_energies, read_energy_file
+
+    name = _short(filename)
+    if not raw:
+        raise SeriesError(f"{name}: the energy file is empty.")
+    if len(raw) > MAX_SIDECAR_BYTES:
+        raise SeriesError(f"{name}: an energy file of {len(raw) / 1e6:.1f} MB is more than the "
+                          f"{MAX_SIDECAR_BYTES / 1e6:.0f} MB limit.")
+    suffix = ".json" if name.lower().endswith(".json") else ".csv"
+    fixed = "energies" + suffix  # our own name on disk; messages get the user's back
+    with tempfile.TemporaryDirectory(prefix="recinet-energies-") as d:
+        p = Path(d) / fixed
+        p.write_bytes(raw)
+        try:
+            table = read_energy_file(p)
+        except SeriesError as err:
+            raise SeriesError(str(err).replace(fixed, name)) from None
+    frame = None if table.frame is None else list(table.frame)
+    numbered = frame is None or all(f.strip().lstrip("+-").isdigit() for f in frame)
+    if numbered:
+        try:
+            check_energies(table.energy_eV)
+        except SeriesError as err:
+            raise SeriesError(f"{name}: {err}") from None
+    return {"filename": name, "energy_eV": table.energy_eV.tolist(),
+            "current": None if table.current is None else table.current.tolist(), "frame": frame}
+
+
+def _number(value, what: str) -> float:
+    try:
+        v = float(value)
+    except (TypeError, ValueError):
+        raise SeriesError(f"{what} must be a number of eV, got {str(value)[:40]!r}.") from None
+    if not math.isfinite(v):
+        raise SeriesError(f"{what} must be a finite number of eV, got {value!r}.")
+    return v
+
+
+def _energy_table(table: dict):
+    from analysis.series import EnergyTable
+
+    if not isinstance(table, dict) or not table.get("energy_eV"):
+        raise SeriesError("Drop an energy file (CSV or JSON) first, or choose 'a start and a step'.")
+    cur = table.get("current")
+    frame = table.get("frame")
+    return EnergyTable(np.asarray(table["energy_eV"], dtype=np.float64),
+                       None if cur is None else np.asarray(cur, dtype=np.float64),
+                       None if frame is None else tuple(str(f) for f in frame), _short(table.get("filename")))
+
+
+def _energies(mode: str, table, start, step, pattern, names: list[str]):
+    """(energies for track_series, (F,) energies in frame order) for the frames `names`."""
+    from analysis.series import DEFAULT_NAME_PATTERN, energies_from_names, energies_from_start_step
+
+    n = len(names)
+    if mode == "file":
+        t = _energy_table(table)
+        if t.frame is not None and not all(f.strip().lstrip("+-").isdigit() for f in t.frame):
+            rows = {Path(f.strip()).name.lower(): i for i, f in enumerate(t.frame)}
+            e = []
+            for i, nm in enumerate(names):
+                key = Path(nm).name.lower()
+                if key not in rows:
+                    raise SeriesError(f"Frame {i} ({nm}) is not listed in the `frame` column of {t.source}.")
+                e.append(t.energy_eV[rows[key]])
+            return t, np.asarray(e)
+        if len(t) != n:
+            raise SeriesError(f"The series has {n} frames but {t.source} lists {len(t)} energies.")
+        return t, np.asarray(t.energy_eV)
+    if mode == "step":
+        if start in (None, ""):
+            raise SeriesError("Give the energy of the first frame (start, eV).")
+        if step in (None, ""):
+            raise SeriesError("Give the energy step between frames (eV).")
+        s, d = _number(start, "The start energy"), _number(step, "The energy step")
+        if d == 0:
+            raise SeriesError("The energy step must not be 0: energies must not repeat.")
+        e = energies_from_start_step(n, start_eV=s, step_eV=d)
+        return e, e
+    if mode == "names":
+        pat = str(pattern).strip() if pattern else DEFAULT_NAME_PATTERN
+        if len(pat) > 200:
+            raise SeriesError("The file-name pattern is too long (at most 200 characters).")
+        e = energies_from_names(names, pattern=pat)
+        return e, e
+    raise SeriesError(f"Unknown energy source {str(mode)[:20]!r}; use {', '.join(ENERGY_MODES)}.")
+
+
+# --------------------------------------------------------------------------- the run
+
+def _first_pass(raw: bytes, filename: str, pick: int):
+    """Names of every frame and frame `pick` itself (frames streamed, one held at a time; sizes checked)."""
+    names, chosen, shape = [], None, None
+    it = frames_of(raw, filename)
+    while True:
+        try:
+            nm, frame = next(it)
+        except StopIteration:
+            break
+        except ImageError as err:
+            after = f" (after {names[-1]})" if names else ""
+            raise SeriesError(f"Cannot read frame {len(names)}{after}: {err}") from None
+        if shape is None:
+            shape = frame.shape
+        elif frame.shape != shape:  # the same words as track_series, before any indexing is spent
+            raise SeriesError(f"Frame {len(names)} ({nm}) is {frame.shape[1]}×{frame.shape[0]} px but frame 0 "
+                              f"({names[0]}) is {shape[1]}×{shape[0]} px: all frames must have one size.")
+        if len(names) == pick:
+            chosen = frame
+        names.append(nm)
+    if not names:
+        raise SeriesError(f"{_short(filename)}: the file holds no frames.")
+    if chosen is None:
+        raise SeriesError(f"There is no frame {pick} to index: the series has {len(names)} frames "
+                          f"(0 to {len(names) - 1}).")
+    return names, chosen
+
+
+def _saturation(raw: bytes):
+    from analysis.io import load_image
+
+    try:
+        return load_image(raw, max_pixels=MAX_FRAME_PIXELS).saturation_level
+    except RecinetError:
+        return None  # e.g. a zip: integer depth unknown, no saturation flags
+
+
+def _run_key(sha: str, params: dict) -> str:
+    blob = json.dumps([sha, params], sort_keys=True, default=str)
+    return hashlib.sha256(blob.encode()).hexdigest()[:32]
+
+
+def _index_frame(value) -> int:
+    if value in (None, ""):
+        return 0
+    try:
+        v = float(value)
+    except (TypeError, ValueError):
+        raise SeriesError(f"The frame to index must be a frame number, got {str(value)[:40]!r}.") from None
+    if not (math.isfinite(v) and v >= 0 and v == int(v)):
+        raise SeriesError(f"The frame to index must be a whole number from 0, got {value!r}.")
+    return int(v)
+
+
+_NO_OVERLAYER = ("none", "no", "clean", "1x1", "(1x1)", "1×1", "(1×1)", "p(1x1)", "p(1×1)")
+
+
+def _overlayer_matrix(text, hint):
+    """None (as indexed), "none" (substrate beams only) or the (2, 2) matrix typed (a matrix or Wood)."""
+    from analysis.superstructure import parse_matrix, parse_wood
+
+    t = (text or "").strip()
+    if not t:
+        return None
+    if len(t) > 200:
+        raise SeriesError("The overlayer text is too long (at most 200 characters).")
+    if t.lower() in _NO_OVERLAYER:
+        return "none"
+    wood = "(" in t and ("x" in t.lower() or "×" in t)
+    return parse_wood(t, hint) if wood else parse_matrix(t)
+
+
+def run_series(sha: str, filename: str, *, substrate: str, mode: str = "file", table: dict | None = None,
+               start=None, step=None, pattern: str | None = None, index_frame=0, overlayer: str | None = None,
+               progress=None) -> dict:
+    """Index one frame, track every beam through the uploaded series, keep the result; return its summary.
+
+    Parameters
+    ----------
+    sha, filename : str
+        The upload kept by :func:`store_upload`.
+    substrate : str, keyword-only
+        ``"Cu(100)"`` or ``"hexagonal:2.775"`` (:func:`analysis.nets.parse_substrate`).
+    mode : {"file", "step", "names"}, keyword-only
+        Energies from `table` (:func:`read_energies`), from `start` + i·`step` (eV), or
+        from a number in each frame's name (`pattern`, a regular expression).
+    index_frame : int, keyword-only
+        The frame whose pattern is indexed (geometry, substrate net, overlayer domains).
+    overlayer : str, keyword-only
+        Empty: follow the overlayer domains the indexing found; ``"none"``: substrate beams
+        only; a matrix (``"2 0 / 0 2"``) or a Wood notation (``"c(2x2)"``): its domains.
+    progress : callable(fraction, text), optional
+
+    Returns
+    -------
+    dict
+        JSON-safe: ``key`` (for :func:`load_result`), ``n_frames``, ``energy_eV``, ``width``,
+        ``height``, ``factor`` (preview downsampling), ``beams`` [{label, group, n_valid}],
+        ``groups`` [{label, members, r_pendry, r_zj, overlap_eV, range_eV}], ``calibration``,
+        ``index`` {frame, name, energy_eV, kind, wood, matrix, n_domains}, ``normalised``,
+        ``default_beams``.
+    """
+    from analysis import pipeline
+    from analysis.nets import Net2D
+    from analysis.series import beams_from_nets, track_series
+    from analysis.superstructure import domains, format_matrix
+
+    from . import service
+
+    say = progress or (lambda f, t="": None)
+    hint = service.check_substrate(substrate)
+    k = _index_frame(index_frame)
+    typed = _overlayer_matrix(overlayer, hint)
+    if mode not in ENERGY_MODES:
+        raise SeriesError(f"Unknown energy source {str(mode)[:20]!r}; use {', '.join(ENERGY_MODES)}.")
+    raw = _raw(sha)
+    say(0.02, "reading the frames")
+    names, chosen = _first_pass(raw, filename, k)
+    spec, energies = _energies(mode, table, start, step, pattern, names)
+    e_k = float(energies[k])
+    say(0.12, f"indexing frame {k} at {e_k:g} eV")
+    try:
+        found = pipeline.analyze_image(chosen, energy_eV=e_k, substrate=hint)
+    except (FitError, ParameterError, ImageError) as err:
+        raise SeriesError(f"Could not index frame {k} ({names[k]}) at {e_k:g} eV: {err} "
+                          "Try indexing another frame.") from None
+    fit = found.index.substrate
+    best = found.index.best
+    net = Net2D(fit.net.vectors, label=hint.label)
+    if typed is None:
+        mats = [np.asarray(m, dtype=np.float64) for m in best.domains] if best.kind != "none" else []
+        shown = {"kind": best.kind, "wood": best.wood,
+                 "matrix": format_matrix(best.matrix) if best.kind != "none" else None, "source": "indexed"}
+    elif isinstance(typed, str):
+        mats = []
+        shown = {"kind": "none", "wood": None, "matrix": None, "source": "typed"}
+    else:
+        mats = [np.asarray(d.matrix, dtype=np.float64) for d in domains(net, typed)]
+        shown = {"kind": "typed", "wood": wood_notation_or_none(net, typed), "matrix": format_matrix(typed),
+                 "source": "typed"}
+    beams = beams_from_nets(net, mats, energy_max_eV=float(np.max(energies)), geometry=fit.geometry)
+    say(0.2, "following the beams")
+    n = len(names)
+    previews: list[bytes] = []
+
+    def streamed():
+        for nm, frame in frames_of(raw, filename):
+            previews.append(_preview(frame))
+            yield nm, frame
+
+    res = track_series(streamed(), beams, fit.geometry, energies=spec, mask=found.measurement.valid,
+                       saturation_level=_saturation(raw),
+                       progress=lambda i, _n, e: say(0.2 + 0.78 * i / n, f"frame {i} of {n}, {e:g} eV"))
+    params = {"mode": mode, "table": table, "start": start, "step": step, "pattern": pattern,
+              "substrate": substrate, "index_frame": k, "overlayer": overlayer}
+    key = _run_key(sha, params)
+    c = _cache()
+    c.set(("iv", key), res, expire=_KEEP_S)
+    c.set(("previews", key), previews, expire=_KEEP_S)
+    say(1.0, "done")
+    h, w = (int(v) for v in res.settings["frame_shape"])
+    groups = groups_of(res)
+    valid = res.valid
+    beams_out = [{"label": lab, "group": int(res.beams.group[j]), "n_valid": int(valid[:, j].sum())}
+                 for j, lab in enumerate(res.beams.labels)]
+    if not any(b["n_valid"] for b in beams_out):
+        raise SeriesError("No beam could be followed in any frame: check the substrate, the energies and "
+                          "the frame indexed.")
+    cal = res.calibration
+    return _json_safe({
+        "key": key, "sha": sha, "filename": _short(filename), "n_frames": int(res.energy_eV.size),
+        "energy_eV": res.energy_eV.tolist(), "frame_names": list(res.frame_names), "width": w, "height": h,
+        "factor": preview_factor(w, h), "beams": beams_out,
+        "groups": [{"label": g.label, "members": list(g.members), "r_pendry": g.r_pendry, "r_zj": g.r_zj,
+                    "overlap_eV": g.overlap_eV, "range_eV": g.range_eV} for g in groups],
+        "calibration": None if cal is None else cal.to_dict(),
+        "index": {"frame": k, "name": names[k], "energy_eV": e_k, **shown,
+                  "n_domains": len(mats), "substrate": hint.label or str(substrate)},
+        "symmetry": res.beams.symmetry,
+        "normalised": bool(res.settings.get("normalised_by_current")),
+        "default_beams": _default_beams(groups),
+    })
+
+
+def wood_notation_or_none(net, matrix) -> str | None:
+    """The Wood notation of `matrix` on `net` as text, or None when none exists."""
+    from analysis.superstructure import wood_notation
+
+    try:
+        w = wood_notation(net, matrix)
+    except RecinetError:
+        return None
+    return getattr(w, "text", None)
+
+
+def _default_beams(groups) -> list[str]:
+    """The members of the equivalent group seen longest (not the specular beam), at most six."""
+    best = None
+    for g in groups:
+        if g.label == "(0,0)":
+            continue
+        score = (len(g.members) > 1, g.overlap_eV, g.range_eV)
+        if best is None or score > best[0]:
+            best = (score, g)
+    return [] if best is None else list(best[1].members[:6])
+
+
+def _json_safe(x):
+    if isinstance(x, dict):
+        return {str(k): _json_safe(v) for k, v in x.items()}
+    if isinstance(x, (list, tuple)):
+        return [_json_safe(v) for v in x]
+    if isinstance(x, (np.floating, float)):
+        return float(x) if math.isfinite(x) else None
+    if isinstance(x, np.integer):
+        return int(x)
+    if isinstance(x, np.ndarray):
+        return _json_safe(x.tolist())
+    return x
+
+
+# --------------------------------------------------------------------------- reading a run back
+
+@functools.lru_cache(maxsize=4)
+def _load(key: str):
+    res = _cache().get(("iv", key))
+    if res is None:
+        raise SeriesError("This run is no longer kept on the server; press 'Follow the beams' again.")
+    return res
+
+
+def load_result(key: str):
+    """The :class:`analysis.series.IVResult` of a run (read once per process)."""
+    return _load(str(key))
+
+
+@functools.lru_cache(maxsize=64)
+def _preview_url(key: str, i: int) -> str:
+    import base64
+
+    previews = _cache().get(("previews", key))
+    if previews is None:
+        raise SeriesError("The frames of this run are no longer kept on the server; run it again.")
+    if not 0 <= i < len(previews):
+        raise SeriesError(f"There is no frame {i}; the series has {len(previews)} frames.")
+    return "data:image/png;base64," + base64.b64encode(previews[i]).decode("ascii")
+
+
+def frame_view(key: str, i: int) -> str:
+    """PNG data URL of the preview of frame `i` of a run."""
+    return _preview_url(str(key), int(i))
+
+
+@functools.lru_cache(maxsize=4)
+def _groups(key: str):
+    from analysis.series import average_equivalent
+
+    return average_equivalent(_load(key))
+
+
+def groups_of(res) -> list:
+    """The equivalent-beam groups (:func:`analysis.series.average_equivalent`) of an IVResult or run key."""
+    from analysis.series import average_equivalent
+
+    if isinstance(res, str):
+        return _groups(res)
+    return average_equivalent(res)
+
+
+def export_csv(key: str, *, averaged: bool = False) -> str:
+    """The I(V) table as CSV (energy in eV first, one column per beam or per group)."""
+    from analysis.series import csv_text
+
+    return csv_text(load_result(key), averaged=averaged)
+
+
+def export_json(key: str) -> str:
+    """The whole run as JSON (:func:`analysis.series.result_to_dict`)."""
+    from analysis.series import result_to_dict
+
+    return json.dumps(result_to_dict(load_result(key)), indent=1, allow_nan=False)
