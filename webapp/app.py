@@ -53,6 +53,7 @@ app.layout = html.Div(className="shell", children=[
         html.Nav(id=ids.NAV, children=[
             html.A("Analyse", href="/"),
             html.A("Saved analyses", href="/recent"),
+            html.A("Energy series", href="/series"),
         ]),
         html.Span(f"uploads up to {settings.max_upload_bytes / 1e6:.0f} MB", className="limit",
                   **{"data-max-bytes": str(settings.max_upload_bytes)}),
