@@ -135,14 +135,16 @@ def _int_points(a_star: np.ndarray, g_max: float) -> np.ndarray:
     return hk[np.hypot(g[:, 0], g[:, 1]) <= g_max]
 
 
-def _match(pred: np.ndarray, obs_tree: cKDTree, tol: float) -> tuple[np.ndarray, np.ndarray]:
-    """Nearest observed spot to each prediction within tol: (pred index, obs index), one-to-one."""
+def _match(pred: np.ndarray, obs_tree: cKDTree, tol) -> tuple[np.ndarray, np.ndarray]:
+    """Nearest observed spot to each prediction within tol (a number, or one per
+    prediction): (pred index, obs index), one-to-one."""
     ok = np.all(np.isfinite(pred), axis=1)
     if not ok.any():
         return np.zeros(0, int), np.zeros(0, int)
-    d, j = obs_tree.query(pred[ok], distance_upper_bound=tol)
+    tol_each = np.broadcast_to(np.asarray(tol, dtype=np.float64), (len(pred),))[ok]
+    d, j = obs_tree.query(pred[ok], distance_upper_bound=float(tol_each.max()))
     idx = np.flatnonzero(ok)
-    hit = np.isfinite(d)
+    hit = np.isfinite(d) & (d <= tol_each)
     pi, oj, dd = idx[hit], j[hit], d[hit]
     order = np.argsort(dd)  # one-to-one: closest pairs first
     used_o, used_p, keep = set(), set(), []
@@ -339,10 +341,14 @@ def _try_substrate(xy, tree, inten, energy_eV, a_star, e, v, center, geometry, l
               (max(tol_px, min(0.06 * vlen, 0.3 * nn)), np.inf, free_geo), (tol_px, np.inf, free_geo)]
     pi = oj = np.zeros(0, int)
     lattice = a_star.copy()
-    for tol, rad, free in stages:
+    for n_stage, (tol, rad, free) in enumerate(stages):
         pred = _screen_xy(hk_all @ lattice, energy_eV, geom)
         rr = np.hypot(pred[:, 0] - geom.center_x_px, pred[:, 1] - geom.center_y_px)
-        pred = np.where((rr <= min(rad, r_max))[:, None], pred, np.nan)
+        if n_stage in (1, 2):  # an unfitted distortion moves outer rings most (outwards in the model)
+            pred = np.where((rr <= min(rad, 1.15 * r_max))[:, None], pred, np.nan)
+            tol = np.clip(0.12 * rr, tol, 0.45 * nn)
+        else:
+            pred = np.where((rr <= min(rad, r_max))[:, None], pred, np.nan)
         pi, oj = _match(pred, tree, tol)
         if len(pi) < 2 or np.linalg.matrix_rank(hk_all[pi]) < 2:
             return None
@@ -427,7 +433,7 @@ def _with_distortion(xy: np.ndarray, energy_eV: float, fit: SubstrateFit, d: flo
 
 
 def _distortion_from_fractions(xy: np.ndarray, energy_eV: float, fit: SubstrateFit, tol_px: float,
-                               grid=np.arange(0.0, 0.62, 0.02)) -> SubstrateFit:
+                               grid=np.arange(0.0, 0.61, 0.04)) -> SubstrateFit:
     """Fix R/L with the fractional spots when the integer spots sit at too few radii.
 
     For each trial distortion the camera is refitted to the integer spots; the
@@ -989,8 +995,8 @@ def find_overlayers(hk: np.ndarray, integer: np.ndarray, substrate_fit: Substrat
                 if not sat:  # every domain of this structure is now known
                     seen.update(_structure_key(d, exact=True) for d in sc["all_mats"])
                 scored.append((sc, ktol))
-    if not scored:
-        scored.append((_score(ctx, np.eye(2), all_domains=False, satellites=False, absent=False), 1e-6))
+    # the bare substrate always competes: a few stray spots do not make a superstructure
+    scored.append((_score(ctx, np.eye(2), all_domains=False, satellites=False, absent=False), 1e-6))
     # branch and bound: finish the scores best bound first, until no bound can enter the list
     scored.sort(key=lambda t: -t[0]["bound"])
     done: list[tuple[dict, float]] = []
@@ -999,7 +1005,7 @@ def find_overlayers(hk: np.ndarray, integer: np.ndarray, substrate_fit: Substrat
             break
         done.append((_with_absent(ctx, sc), kt))
     scored = sorted(done, key=lambda t: -t[0]["score"])
-    models = _prefer_simple([_describe(ctx, sc, kind_tol=kt) for sc, kt in scored[: 2 * n_results]])
+    models = _prefer_simple([_describe(ctx, sc, kind_tol=kt) for sc, kt in scored[: n_results + 3]])
     models.sort(key=lambda mm: -mm.score)
     out, keys = [], []
     for mm in models:
