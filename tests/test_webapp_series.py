@@ -239,7 +239,7 @@ def test_frame_view_draws_the_beams_where_they_were_followed(page, run):
     picked = next(t for t in fig.data if t.name == "(1,0)")
     j = res.beams.index("(1,0)")
     assert picked.x[0] == pytest.approx(res.xy_px[5, j, 0]) and picked.y[0] == pytest.approx(res.xy_px[5, j, 1])
-    assert "Frame 5 of 29" in _text(label) and "140 eV" in _text(label)
+    assert "Frame 5 (of 0–29)" in _text(label) and "140 eV" in _text(label)
 
 
 def test_picking_beams_by_list_group_and_click(page, run):

@@ -71,7 +71,6 @@ RECENT_LIST = "recent-list"
 # energy-series page
 SERIES_UPLOAD = "series-upload"
 SERIES_PAYLOAD = "series-payload"
-SERIES_LIMIT_NOTE = "series-limit-note"
 SERIES_UPLOAD_NOTE = "series-upload-note"
 SERIES_META = "series-meta"
 SERIES_ENERGY_UPLOAD = "series-energy-upload"

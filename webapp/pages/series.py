@@ -83,7 +83,6 @@ def layout(**_query):
                    accept=".tif,.tiff,.zip", children=html.Div([
                        "Drop an energy series here: a multi-page TIFF or a zip of images, or ",
                        html.A("choose a file")])),
-        html.Div(id=ids.SERIES_LIMIT_NOTE, **{"aria-live": "polite"}),
         html.Div(id=ids.SERIES_UPLOAD_NOTE, **{"aria-live": "polite"}),
         html.Div(className="row", children=[html.Label("Energies from", htmlFor=ids.SERIES_ENERGY_MODE)]),
         dcc.RadioItems(id=ids.SERIES_ENERGY_MODE, options=_ENERGY_MODES, value="file", className="series-modes"),
@@ -258,10 +257,12 @@ def _fmt(v, digits=2, unit=""):
 
 
 def _pm(v, u, digits=2, unit=""):
-    s = _fmt(v, digits)
-    if s != "–" and isinstance(u, (int, float)) and math.isfinite(u):
-        s += f" ± {u:.{digits}f}"
-    return s + unit
+    """``value ± u`` with u to two significant digits and the value to the same place."""
+    if isinstance(u, (int, float)) and math.isfinite(u) and u > 0:
+        digits = min(max(0, 1 - math.floor(math.log10(u))), 6)
+        s = _fmt(v, digits)
+        return s + unit if s == "–" else f"{s} ± {u:.{digits}f}{unit}"
+    return _fmt(v, digits) + unit
 
 
 def summary_panel(summary: dict):
@@ -342,7 +343,7 @@ def on_result(summary):
         step = max(1, n // 6)
         marks = {i: f"{e[i]:g}" for i in range(0, n, step)}
         marks[n - 1] = f"{e[n - 1]:g} eV"
-        options = [{"label": f"{b['label']}  ·  group {b['group'] + 1}", "value": b["label"]}
+        options = [{"label": b["label"], "value": b["label"]}
                    for b in summary["beams"] if b["n_valid"] >= 2]
         groups = [{"label": _group_label(g), "value": i} for i, g in enumerate(summary.get("groups") or [])]
         return (max(n - 1, 1), marks, n < 2, options, groups, None, summary_panel(summary),
@@ -453,7 +454,7 @@ def render_frame(meta, summary, frame, picked):
                        xy=res.xy_px[i], labels=res.beams.labels, ok=res.valid[i], flags=res.flags[i],
                        intensity=res.intensity[i], picked=picked or [])
     name = summary["frame_names"][i] if i < len(summary.get("frame_names") or []) else ""
-    label = html.Span([f"Frame {i} of {summary['n_frames'] - 1} · ", html.B(f"{summary['energy_eV'][i]:g} eV"),
+    label = html.Span([f"Frame {i} (of 0–{summary['n_frames'] - 1}) · ", html.B(f"{summary['energy_eV'][i]:g} eV"),
                        f" · {name}" if name else "", f" · {int(res.valid[i].sum())} beams integrated"],
                       id="series-frame-text", **{"data-frame": str(i)})
     return fig, label
@@ -616,17 +617,23 @@ clientside_callback(
         var el = document.querySelector("[data-max-bytes]");
         var max = el ? parseInt(el.getAttribute("data-max-bytes"), 10) : 0;
         var comma = contents.indexOf(",");
-        var bytes = Math.floor((contents.length - comma - 1) * 3 / 4);
-        if (max && bytes > max) {
-            var msg = (filename || "the file") + ": the file is " + (bytes / 1e6).toFixed(1) +
-                      " MB; the limit is " + (max / 1e6).toFixed(1) + " MB.";
-            return [nu, {type: "Div", namespace: "dash_html_components",
-                         props: {children: msg, className: "note note-error", role: "alert"}}];
+        var pad = contents.endsWith("==") ? 2 : (contents.endsWith("=") ? 1 : 0);
+        var bytes = Math.floor((contents.length - comma - 1) * 3 / 4) - pad;
+        var name = filename || "the file";
+        function note(text, kind) {
+            return {type: "Div", namespace: "dash_html_components",
+                    props: {children: text, className: "note note-" + kind, role: kind === "error" ? "alert" : null}};
         }
-        return [{contents: contents, filename: filename}, null];
+        if (max && bytes > max) {
+            var a = (bytes / 1e6).toFixed(1), b = (max / 1e6).toFixed(1);
+            if (a === b) { a = bytes.toLocaleString("en") + " bytes"; b = max.toLocaleString("en") + " bytes"; }
+            else { a += " MB"; b += " MB"; }
+            return [nu, note(name + ": the file is " + a + "; the limit is " + b + ".", "error")];
+        }
+        return [{contents: contents, filename: filename}, note("Reading " + name + "…", "wait")];
     }
     """,
-    Output(ids.SERIES_PAYLOAD, "data"), Output(ids.SERIES_LIMIT_NOTE, "children"),
+    Output(ids.SERIES_PAYLOAD, "data"), Output(ids.SERIES_UPLOAD_NOTE, "children", allow_duplicate=True),
     Input(ids.SERIES_UPLOAD, "contents"), State(ids.SERIES_UPLOAD, "filename"),
     prevent_initial_call=True,
 )
