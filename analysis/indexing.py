@@ -412,12 +412,12 @@ def _rational_residual(hk: np.ndarray, a_star: np.ndarray, max_den: int = 8) -> 
 
 
 def _distortion_open(fit: SubstrateFit) -> bool:
-    """True when the integer spots sit at too few radii to fix R/L (ratio of radii ≤ 1.6)."""
+    """True when the integer spots all sit on one ring, which cannot fix R/L (two rings can)."""
     ii = np.flatnonzero(fit.integer)
     if len(ii) < 3:
         return True
     r_int = np.linalg.norm(np.rint(fit.hk[ii]) @ fit.reciprocal_net.vectors, axis=1)
-    return bool(r_int.max() / max(r_int.min(), 1e-12) <= 1.6)
+    return bool(r_int.max() / max(r_int.min(), 1e-12) <= 1.05)
 
 
 def _with_distortion(xy: np.ndarray, energy_eV: float, fit: SubstrateFit, d: float, note: str) -> SubstrateFit:
