@@ -27,15 +27,13 @@ Schema (``"schema": "recinet.analysis"``, ``"version": 1``), keys kept stable:
 from __future__ import annotations
 
 import math
-from fractions import Fraction
-
 import numpy as np
 
 from .errors import ParameterError
 from .indexing import OverlayerModel, model_indices
 from .nets import Net2D, classify_net, reciprocal
 from .optics import momentum_to_pixels, wavelength_A
-from .superstructure import format_matrix, overlayer_net
+from .superstructure import beam_label, format_matrix, overlayer_net
 
 __all__ = ["SCHEMA", "VERSION", "result_to_dict", "model_to_dict", "check_result_dict", "predicted_spots"]
 
@@ -48,11 +46,6 @@ def _f(x) -> float | None:
         return None
     x = float(x)
     return x if math.isfinite(x) else None
-
-
-def _frac_text(x: float) -> str:
-    f = Fraction(float(x)).limit_denominator(12)
-    return str(f) if abs(float(f) - x) < 1e-6 else f"{x:.3f}"
 
 
 def predicted_spots(fit, model: OverlayerModel | None, energy_eV: float) -> dict:
@@ -173,7 +166,7 @@ def result_to_dict(result) -> dict:
         spots.append({
             "x": float(p[0]), "y": float(p[1]),
             "h": _f(h) if explained else None, "k": _f(k) if explained else None,
-            "label": f"({_frac_text(h)},{_frac_text(k)})" if explained else None,
+            "label": beam_label(h, k) if explained else None,
             "h_measured": float(hkm[0]), "k_measured": float(hkm[1]),
             "intensity": _f(result.intensity[i]), "snr": _f(result.snr[i]),
             "kind": kind, "domain": int(by[i]) if by[i] >= 0 else None, "manual": bool(result.manual[i]),

@@ -21,7 +21,6 @@ import dataclasses
 import math
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import dataclass
-from fractions import Fraction
 
 import numpy as np
 from scipy.sparse import coo_matrix
@@ -32,6 +31,7 @@ from scipy.special import erf
 from .errors import NetError, ParameterError
 from .nets import Net2D, reciprocal
 from .optics import ScreenGeometry, momentum_to_pixels, wavelength_A
+from .superstructure import beam_label
 
 __all__ = [
     "Pattern",
@@ -125,13 +125,7 @@ def hk_label(h: float, k: float, *, max_denominator: int = 12) -> str:
     ('(1/2, -1/3)', '(1, 0)', '(0.1235, 0)')
     """
 
-    def one(x: float) -> str:
-        f = Fraction(float(x)).limit_denominator(max_denominator)
-        if abs(float(f) - x) > 1e-6:
-            return f"{x:.4g}"
-        return str(f.numerator) if f.denominator == 1 else f"{f.numerator}/{f.denominator}"
-
-    return f"({one(h)}, {one(k)})"
+    return beam_label(h, k, sep=", ", max_denominator=max_denominator)
 
 
 def _rotation(angle_deg: float) -> np.ndarray:

@@ -47,6 +47,8 @@ __all__ = [
     "parse_wood",
     "nice_matrix",
     "format_matrix",
+    "fraction_text",
+    "beam_label",
     "parse_matrix",
 ]
 
@@ -727,6 +729,32 @@ def nice_matrix(substrate: Net2D, matrix) -> np.ndarray:
     return _snap(red.vectors @ np.linalg.inv(substrate.vectors))
 
 
+def fraction_text(x: float, *, max_denominator: int = 12, tol: float = 1e-6, fmt: str = ".4g") -> str:
+    """A number as a simple fraction when it is one (``1/2``, ``-2/3``, ``3``), else decimal.
+
+    Examples
+    --------
+    >>> fraction_text(0.5), fraction_text(-2 / 3), fraction_text(3.0), fraction_text(0.1234567)
+    ('1/2', '-2/3', '3', '0.1235')
+    """
+    f = Fraction(float(x)).limit_denominator(max_denominator)
+    if abs(float(f) - x) > tol:
+        return format(float(x), fmt)
+    return str(f.numerator) if f.denominator == 1 else f"{f.numerator}/{f.denominator}"
+
+
+def beam_label(h: float, k: float, *, sep: str = ",", max_denominator: int = 12) -> str:
+    """Beam label in substrate units, e.g. ``(1/2,0)``, ``(-1,1)``; `sep` joins h and k.
+
+    Examples
+    --------
+    >>> beam_label(0.5, 0.0), beam_label(2 / 3, -1 / 3, sep=", ")
+    ('(1/2,0)', '(2/3, -1/3)')
+    """
+    return f"({fraction_text(h, max_denominator=max_denominator)}{sep}" \
+           f"{fraction_text(k, max_denominator=max_denominator)})"
+
+
 def format_matrix(matrix, *, digits: int = 3) -> str:
     """``(m11 m12 / m21 m22)`` with integers and small fractions shown exactly.
 
@@ -738,10 +766,7 @@ def format_matrix(matrix, *, digits: int = 3) -> str:
     m = np.asarray(matrix, dtype=np.float64)
 
     def one(x):
-        f = Fraction(float(x)).limit_denominator(12)
-        if abs(float(f) - x) < 10 ** -(digits + 2):
-            return str(f)
-        return f"{x:.{digits}f}"
+        return fraction_text(x, tol=10 ** -(digits + 2), fmt=f".{digits}f")
 
     return f"({one(m[0, 0])} {one(m[0, 1])} / {one(m[1, 0])} {one(m[1, 1])})"
 
