@@ -94,6 +94,8 @@ def test_upload_follow_the_beams_slide_and_pick(page, live_server, tmp_path):
     page.fill("#series-overlayer", "c(2x2)")
     page.press("#series-overlayer", "Enter")
     page.click("#series-run")
+    page.wait_for_selector("#series-progress", state="visible")  # indexing alone takes seconds
+    _shot(page, "series-running.png")
     page.wait_for_selector("#series-facts", timeout=WAIT_MS)
     page.wait_for_selector("#series-iv .scatterlayer .trace", state="attached")
     assert f"through {len(ENERGIES)} frames" in page.inner_text("#series-message")
@@ -128,6 +130,14 @@ def test_upload_follow_the_beams_slide_and_pick(page, live_server, tmp_path):
         "n => document.querySelectorAll('#series-iv .scatterlayer .trace').length > n", arg=before)
     assert target["label"] in page.inner_text("#series-beams")
     assert target["label"] in page.locator("#series-iv .legend").text_content()  # SVG: text, not innerText
+    _shot(page, "series-picked.png")
+
+    # a group of equivalent beams: its members and their average, with the group's R-factor
+    page.click("#series-group")
+    page.get_by_role("option").filter(has_text="(1,1)").first.click()
+    page.wait_for_function("() => document.querySelector('#series-iv .legend')?.textContent.includes('average')")
+    legend = page.locator("#series-iv .legend").text_content()
+    assert "(1,1) average (4 beams, R_P" in legend and "(-1,-1)" in legend
     _shot(page, "series-result.png")
 
     with page.expect_download() as dl:

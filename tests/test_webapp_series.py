@@ -278,6 +278,25 @@ def test_frame_steps_and_clicks_on_the_plot(page, run):
     assert _call(page.move_frame, f"{ids.SERIES_RESULT}.data", None, None, None, summary, 12) == 0
 
 
+def test_a_new_upload_clears_the_last_run(page):
+    from webapp import ids
+
+    mx, marks, disabled, options, groups, group, facts, table = page.on_result(None)
+    assert (mx, marks, disabled, options, groups, group) == (1, None, True, [], [], None)
+    assert _text(facts) == "No series followed yet."
+    assert _call(page.pick_beams, f"{ids.SERIES_RESULT}.data", None, None, None, 3, ["(1,0)"]) == []
+    assert _call(page.move_frame, f"{ids.SERIES_RESULT}.data", None, None, None, None, 3) == 0
+
+
+def test_typing_energies_chooses_their_source(page):
+    from webapp import ids
+
+    assert _call(page.mode_from_typing, f"{ids.SERIES_STEP}.value", 40, 2, None) == "step"
+    assert _call(page.mode_from_typing, f"{ids.SERIES_NAME_PATTERN}.value", None, None, r"E(\d+)") == "names"
+    with pytest.raises(PreventUpdate):
+        _call(page.mode_from_typing, f"{ids.SERIES_START}.value", 40, None, None)
+
+
 def test_exports_are_the_series_csv_and_json(page, run):
     from webapp import ids
 

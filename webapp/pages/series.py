@@ -223,6 +223,16 @@ def on_energy_upload(contents, filename):
     return table, _note(text + ".", "ok"), "file", None
 
 
+def mode_from_typing(start, step, pattern):
+    """Typing a start and a step, or a file-name pattern, chooses that source of energies."""
+    trig = _triggered()
+    if trig == ids.SERIES_NAME_PATTERN and pattern:
+        return "names"
+    if trig in (ids.SERIES_START, ids.SERIES_STEP) and start not in (None, "") and step not in (None, ""):
+        return "step"
+    raise PreventUpdate
+
+
 # --------------------------------------------------------------------------- the background run
 
 def run_series_job(set_progress, n_clicks, meta, table, mode, start, step, pattern, substrate, index_frame,
@@ -335,8 +345,9 @@ def _group_label(g: dict) -> str:
 
 def on_result(summary):
     """A new run -> slider (max, marks, disabled), beam options, group options and value, summary, groups."""
-    if not summary:
-        raise PreventUpdate
+    if not summary:  # a new upload: forget the last run
+        return (1, None, True, [], [], None, html.P("No series followed yet.", className="muted"),
+                html.P("The groups appear once the beams are followed.", className="muted"))
     try:
         n = int(summary["n_frames"])
         e = summary["energy_eV"]
@@ -356,6 +367,8 @@ def pick_beams(click, group, summary, frame, current):
     """The beams in the plot: defaults for a new run, a group's members, or a clicked spot added."""
     trig = _triggered()
     if not summary:
+        if trig == ids.SERIES_RESULT:
+            return []
         raise PreventUpdate
     known = {b["label"] for b in summary["beams"] if b["n_valid"] >= 2}
     current = [b for b in (current or []) if b in known]
@@ -412,6 +425,8 @@ def move_frame(prev, nxt, iv_click, summary, value):
     """The slider's frame: 0 for a new run, one step back or on, or the energy clicked in the I(V) plot."""
     trig = _triggered()
     if not summary:
+        if trig == ids.SERIES_RESULT:
+            return 0
         raise PreventUpdate
     n = int(summary["n_frames"])
     i = _frame_index(value, summary)
@@ -651,6 +666,12 @@ callback(
     Input(ids.SERIES_ENERGY_UPLOAD, "contents"), State(ids.SERIES_ENERGY_UPLOAD, "filename"),
     prevent_initial_call=True,
 )(on_energy_upload)
+
+callback(
+    Output(ids.SERIES_ENERGY_MODE, "value", allow_duplicate=True),
+    Input(ids.SERIES_START, "value"), Input(ids.SERIES_STEP, "value"), Input(ids.SERIES_NAME_PATTERN, "value"),
+    prevent_initial_call=True,
+)(mode_from_typing)
 
 callback(
     Output(ids.SERIES_RESULT, "data"), Output(ids.SERIES_MESSAGE, "children"),
