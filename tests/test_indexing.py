@@ -69,6 +69,8 @@ CASES = {
     "sqrt3-hex": ("Ru(0001)", "(√3×√3)R30°", None, 112.0, "(√3×√3)R30°", "commensurate",
                   {"bit_depth": 8, "photons": 9000.0, "background": 12.0}),
     "c2x2-square": ("Cu(100)", "c(2x2)", None, 130.0, "c(2×2)", "commensurate", {"gun_angle": 300.0}),
+    "c2x2-square-small-8bit": ("Cu(100)", "c(2x2)", None, 150.0, "c(2×2)", "commensurate",
+                               {"shape": (512, 512), "bit_depth": 8, "photons": 12000.0, "background": 15.0}),
     "p2x1-square-two-domains": ("Cu(100)", "p(2x1)", None, 140.0, "p(2×1)", "commensurate",
                                 {"distortion": 0.35, "seed": 3}),
     "2x1-hex-three-domains": ("Pt(111)", "p(2x1)", None, 100.0, "p(2×1)", "commensurate",
