@@ -41,14 +41,14 @@ import re
 import sys
 import tempfile
 import time
-from collections.abc import Callable, Iterable, Iterator, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field, replace
 from fractions import Fraction
 from pathlib import Path
 
 import numpy as np
 
-from .errors import FitError, ImageError, NetError, ParameterError, RecinetError, SeriesError
+from .errors import FitError, ImageError, ParameterError, RecinetError, SeriesError
 from .nets import Net2D, parse_substrate, point_group, reciprocal
 from .optics import H2_OVER_2ME_EV_A2, ScreenGeometry, momentum_to_pixels
 from .rfactor import pairwise_pendry_r, zanazzi_jona_r
@@ -79,6 +79,8 @@ __all__ = [
     "result_to_dict",
     "write_json",
     "add_iv_parser",
+    "SeriesIndexing",
+    "index_series_frame",
     "FLAG_OFF_SCREEN",
     "FLAG_MASKED",
     "FLAG_SATURATED",
@@ -2074,6 +2076,157 @@ def write_json(result: IVResult, path, **kw) -> None:
     _atomic_write(path, json.dumps(result_to_dict(result, **kw), indent=1, allow_nan=False))
 
 
+# --------------------------------------------------------------------------- indexing one frame of a series
+
+
+@dataclass(frozen=True, eq=False)
+class SeriesIndexing:
+    """What indexing one frame of a series found (:func:`index_series_frame`).
+
+    Attributes
+    ----------
+    frame : int
+        Position of the frame in the series (0-based).
+    frame_name : str
+    energy_eV : float
+        Energy of that frame, eV.
+    geometry : ScreenGeometry
+        Camera model fitted on that frame (the starting geometry for tracking).
+    substrate : Net2D
+        Real-space substrate net in the surface axes of `geometry`, Å (label kept).
+    overlayers : tuple of (2, 2) ndarray of float64
+        Matrices of every overlayer domain found, ``overlayer = M @ substrate``; empty
+        for a clean (1×1) surface.
+    kind : str
+        ``"none"`` (clean), ``"commensurate"``, ``"coincidence"`` or ``"incommensurate"``.
+    wood : str or None
+        Wood notation of the superstructure, when one exists.
+    matrix_text : str
+        The first domain's matrix as text.
+    confidence : float
+        Share of the substrate reading among the readings found (0–1).
+    mask : (M, N) ndarray of bool or None
+        Pixels that may be used: the screen found on that frame minus the gun shadow.
+    warnings : tuple of str
+    """
+
+    frame: int
+    frame_name: str
+    energy_eV: float
+    geometry: ScreenGeometry
+    substrate: Net2D
+    overlayers: tuple
+    kind: str
+    wood: str | None
+    matrix_text: str
+    confidence: float
+    mask: np.ndarray | None = None
+    warnings: tuple = ()
+
+    @property
+    def label(self) -> str:
+        """Short name of what was found, e.g. ``"c(2×2)"`` or ``"clean (1×1)"``."""
+        if self.kind == "none":
+            return "clean (1×1)"
+        name = self.wood or self.matrix_text
+        n = len(self.overlayers)
+        return f"{name}, {self.kind}" + (f", {n} domains" if n > 1 else "")
+
+    def to_dict(self) -> dict:
+        """JSON-safe summary (the mask left out)."""
+        return _json_safe({
+            "frame": self.frame, "frame_name": self.frame_name, "energy_eV": self.energy_eV,
+            "superstructure": self.label, "kind": self.kind, "wood": self.wood, "matrix_text": self.matrix_text,
+            "domains": [np.asarray(m, dtype=np.float64).tolist() for m in self.overlayers],
+            "substrate_confidence": self.confidence, "geometry": self.geometry.to_dict(),
+            "substrate_net_A": self.substrate.vectors.tolist(), "warnings": list(self.warnings)})
+
+
+def index_series_frame(frame, *, energy_eV: float, substrate: str | Net2D, frame_index: int = 0,
+                       frame_name: str = "", min_snr: float = 5.0) -> SeriesIndexing:
+    """Index one frame of a series with :func:`analysis.pipeline.analyze_image`.
+
+    The camera model, the substrate net in the optics' axes and the overlayer domains
+    found are what :func:`beams_from_nets` and :func:`track_series` need. When the
+    spots pair up about a centre other than the gun shadow's, the frame is indexed a
+    second time from the centre of the symmetric spot pairs.
+
+    Parameters
+    ----------
+    frame : (M, N) ndarray or LoadedImage
+        The frame, frame units.
+    energy_eV : float, keyword-only
+        Its energy, eV.
+    substrate : str or Net2D, keyword-only
+        E.g. ``"Cu(100)"``.
+    frame_index, frame_name : keyword-only
+        Where the frame sits in the series (for the record and the messages).
+    min_snr : float, keyword-only
+        Spot detection threshold.
+
+    Returns
+    -------
+    SeriesIndexing
+
+    Raises
+    ------
+    SeriesError
+        One line naming the frame and the reason when the frame cannot be indexed.
+
+    Examples
+    --------
+    >>> from analysis.simulate import forward_pattern, render_image
+    >>> geom = ScreenGeometry(258.6, 251.4, 290.0, distortion=0.1, rotation_deg=6.0)
+    >>> pat = forward_pattern(parse_substrate("Cu(100)"), [[[1, 1], [-1, 1]]], energy_eV=120.0, geometry=geom)
+    >>> im = render_image(pat, shape=(512, 512), rng=np.random.default_rng(0))
+    >>> found = index_series_frame(im.image, energy_eV=120.0, substrate="Cu(100)", frame_index=7)
+    >>> print(found.label, round(found.geometry.scale_px, 1))
+    c(2×2), commensurate 290.0
+    """
+    from .pipeline import Edits, analyze_image
+
+    from .io import load_image
+
+    where = f"frame {frame_index}" + (f" ({frame_name})" if frame_name else "")
+    try:
+        e = float(energy_eV)
+        frame = load_image(frame)
+        try:
+            res = analyze_image(frame, energy_eV=e, substrate=substrate, min_snr=min_snr)
+        except FitError:
+            centre = _pair_centre(frame, min_snr)
+            if centre is None:
+                raise
+            res = analyze_image(frame, energy_eV=e, substrate=substrate, min_snr=min_snr,
+                                edits=Edits(center_xy=centre))
+    except (RecinetError, TypeError, ValueError) as err:
+        raise SeriesError(f"Could not index {where} at {energy_eV:g} eV: {err}") from None
+    fit = res.index.substrate
+    best = res.index.best
+    hint = res.substrate_hint
+    mats = () if best.kind == "none" else tuple(np.array(m, dtype=np.float64) for m in best.domains)
+    from .superstructure import format_matrix
+
+    return SeriesIndexing(frame=int(frame_index), frame_name=str(frame_name), energy_eV=e, geometry=fit.geometry,
+                          substrate=Net2D(fit.net.vectors, label=hint.label), overlayers=mats, kind=best.kind,
+                          wood=best.wood, matrix_text=format_matrix(np.asarray(best.matrix, dtype=np.float64)),
+                          confidence=float(fit.confidence), mask=np.array(res.measurement.valid, dtype=bool),
+                          warnings=tuple(res.warnings))
+
+
+def _pair_centre(frame, min_snr: float):
+    """(x, y) centre of the symmetric spot pairs found by a vote over all pairs, or None."""
+    from .calibration import estimate_center_from_pairs
+    from .spots import measure_image
+
+    try:
+        spots = measure_image(frame, sigma_px=None, min_snr=min_snr).spots
+        c = estimate_center_from_pairs(spots.xy).center_xy
+    except RecinetError:
+        return None
+    return float(c[0]), float(c[1])
+
+
 # --------------------------------------------------------------------------- command line
 
 
@@ -2122,20 +2275,6 @@ def _read_geometry(path) -> ScreenGeometry:
         raise SeriesError(f"Geometry file {p.name}: {exc}") from None
 
 
-def _auto_index(first: np.ndarray, energy_eV: float, substrate: Net2D, saturation):
-    """Screen, gun shadow and substrate net from the first frame (spots + indexing)."""
-    from .indexing import fit_substrate
-    from .spots import find_gun_shadow, find_screen, find_spots
-
-    screen = find_screen(first)
-    gun = find_gun_shadow(first, screen)
-    mask = screen.mask & ~gun.mask
-    spots = find_spots(first, mask=mask, saturation_level=saturation)
-    fits = fit_substrate(spots.xy, energy_eV, substrate, screen_radius_px=screen.radius_px, valid_mask=mask)
-    fit = fits[0]
-    return fit.geometry, Net2D(fit.net.vectors, label=substrate.label), mask
-
-
 def add_iv_parser(subparsers) -> argparse.ArgumentParser:
     """Add the ``iv`` command to an argparse sub-parser collection; returns its parser."""
     _ap = argparse
@@ -2153,7 +2292,10 @@ def add_iv_parser(subparsers) -> argparse.ArgumentParser:
                    help="regular expression reading the energy from each file name (first group)")
     p.add_argument("--csv", required=True, help="output CSV: energy_eV, then one column per beam")
     p.add_argument("--json", help="output JSON with curves, flags, calibration and equivalent groups")
-    p.add_argument("--geometry", help="JSON screen geometry (a saved calibration); default: index frame 0")
+    p.add_argument("--geometry", help="JSON screen geometry (a saved calibration); default: index one frame")
+    p.add_argument("--index-frame", type=int, dest="index_frame", metavar="N",
+                   help="frame to index (0-based) when no --geometry is given; default: the frame nearest "
+                        "the middle of the energy range")
     p.add_argument("--overlayer", action="append", default=[], metavar="MATRIX",
                    help="superstructure matrix, e.g. '2 0 / 0 2' (repeat for several)")
     p.add_argument("--all-domains", action="store_true", help="add the symmetry-equivalent domains")
@@ -2175,6 +2317,51 @@ def add_iv_parser(subparsers) -> argparse.ArgumentParser:
     return p
 
 
+def _count_frames(series, energies, first) -> int | None:
+    """Frames in a series when known without decoding them (table, page count, folder listing)."""
+    if isinstance(energies, EnergyTable) and not (energies.frame and not all(
+            re.fullmatch(r"[+-]?\d+", f or "") for f in energies.frame)):
+        return len(energies)
+    p = Path(series)
+    if p.is_dir():
+        from .io import IMAGE_SUFFIXES
+
+        return sum(1 for f in p.iterdir() if f.is_file() and not f.name.startswith(".")
+                   and f.suffix.lower() in IMAGE_SUFFIXES) or None
+    if first is not None and first.n_frames > 1:
+        return int(first.n_frames)
+    return None
+
+
+def _middle_frame(series, energies, first) -> int:
+    """The frame nearest the middle of the energy range (or of the series)."""
+    n = _count_frames(series, energies, first)
+    if isinstance(energies, EnergyTable) and n == len(energies):
+        e = energies.energy_eV
+        return int(np.argmin(np.abs(e - 0.5 * (e.min() + e.max()))))
+    if n is None:  # e.g. a zip with energies in the file names: count the frames once
+        from .io import iter_frames
+
+        n = sum(1 for _ in iter_frames(series, max_bytes=_STACK_MAX_BYTES))
+    return max(n - 1, 0) // 2
+
+
+def _seek_frame(series, n: int, energies, name_pattern: str):
+    """(name, frame, energy_eV) of frame `n`, checking the energies of the frames before it."""
+    from .io import iter_frames
+
+    en = _Energies(energies, name_pattern)
+    i = -1
+    try:
+        for i, (name, frame) in enumerate(iter_frames(series, max_bytes=_STACK_MAX_BYTES)):
+            e, _ = en.at(i, name)
+            if i == n:
+                return name, frame, e
+    except ImageError as err:
+        raise SeriesError(f"Cannot read frame {i + 1}: {err}") from None
+    raise SeriesError(f"--index-frame {n} is beyond the last frame (the series has {i + 1} frames).")
+
+
 def _cmd_iv(args) -> int:
     from .io import iter_frames, load_image
 
@@ -2183,6 +2370,10 @@ def _cmd_iv(args) -> int:
         raise SeriesError("Give either --energies or --start-eV/--step-eV, not both.")
     if (args.start_eV is None) != (args.step_eV is None):
         raise SeriesError("--start-eV and --step-eV go together.")
+    if args.index_frame is not None and args.geometry:
+        raise SeriesError("Give either --geometry or --index-frame, not both.")
+    if args.index_frame is not None and args.index_frame < 0:
+        raise SeriesError(f"--index-frame must be 0 or more, got {args.index_frame}.")
     energies = None
     if args.energies:
         energies = read_energy_file(args.energies)
@@ -2196,10 +2387,12 @@ def _cmd_iv(args) -> int:
     for out in (args.csv, args.json, args.save_calibration):
         if out and not Path(out).resolve().parent.is_dir():
             raise SeriesError(f"Output folder of {out} does not exist.")
-    try:
-        first = load_image(args.series, max_bytes=_STACK_MAX_BYTES) if not Path(args.series).is_dir() else None
-    except ImageError as err:
-        raise SeriesError(f"Cannot read frame 0: {err}") from None
+    first = None  # frame 0's stored depth (saturation level) and the page count of a stack
+    if not Path(args.series).is_dir():
+        try:
+            first = load_image(args.series, max_bytes=_STACK_MAX_BYTES)
+        except ImageError:
+            first = None  # a zip, or unreadable: iter_frames names the problem below
     frames = iter_frames(args.series, max_bytes=_STACK_MAX_BYTES)
     try:
         name0, frame0 = next(frames)
@@ -2218,18 +2411,28 @@ def _cmd_iv(args) -> int:
     mask = None
     if args.mask:
         mask = load_image(args.mask, _allow_constant=True).data > 0
+    found = None
     if args.geometry:
         geom = _read_geometry(args.geometry)
         net = substrate
         azimuth = args.azimuth_deg
     else:
+        n_idx = args.index_frame if args.index_frame is not None else _middle_frame(args.series, energies, first)
+        if n_idx == 0:
+            name_i, frame_i, e_i = name0, frame0, e0
+        else:
+            name_i, frame_i, e_i = _seek_frame(args.series, n_idx, energies, args.name_pattern)
         try:
-            geom, net, auto_mask = _auto_index(frame0, e0, substrate, saturation)
-        except (FitError, ParameterError) as err:
-            raise SeriesError(f"Could not index frame 0 ({name0}) at {e0:g} eV: {err} "
-                              "Give --geometry with a saved calibration.") from None
-        mask = auto_mask if mask is None else mask
-        azimuth = 0.0
+            found = index_series_frame(frame_i, energy_eV=e_i, substrate=substrate, frame_index=n_idx,
+                                       frame_name=name_i)
+        except SeriesError as err:
+            raise SeriesError(f"{err} Give --geometry with a saved calibration, or another frame with "
+                              "--index-frame.") from None
+        del frame_i
+        geom, net, azimuth = found.geometry, found.substrate, 0.0
+        mask = found.mask if mask is None else mask
+        if not mats:
+            mats = list(found.overlayers)
     beams = beams_from_nets(net, mats, energy_max_eV=max(e_max, e0), geometry=geom, azimuth_deg=azimuth,
                             all_domains=args.all_domains, symmetry=args.symmetry)
 
@@ -2247,6 +2450,8 @@ def _cmd_iv(args) -> int:
     finally:
         if bar is not None:
             sys.stderr.write("\n")
+    if found is not None:
+        res = replace(res, settings={**res.settings, "indexing": found.to_dict()})
     texts = [(args.csv, csv_text(res, averaged=args.average, smooth_eV=args.smooth_eV, v0i_eV=args.v0i_eV))]
     if args.json:
         texts.append((args.json, json.dumps(result_to_dict(res, v0i_eV=args.v0i_eV, smooth_eV=args.smooth_eV),
@@ -2260,6 +2465,8 @@ def _cmd_iv(args) -> int:
     n_beams = int(np.sum(res.valid.any(axis=0)))
     cal = res.calibration
     msg = f"{res.energy_eV.size} frames, {n_beams} beams -> {args.csv}"
+    if found is not None:
+        msg += f"; indexed frame {found.frame} ({found.energy_eV:g} eV): {found.label}"
     if cal is not None:
         g = cal.geometry
         msg += (f"; centre ({g.center_x_px:.2f}, {g.center_y_px:.2f}) px, scale {cal.scale_px_sqrt_eV_A:.1f} "
