@@ -458,6 +458,10 @@ def _distortion_from_fractions(xy: np.ndarray, energy_eV: float, fit: SubstrateF
 
     results = [trial(d) for d in grid]
     k = int(np.argmin([r[0] for r in results]))
+    step = float(grid[1] - grid[0]) if len(grid) > 1 else 0.0
+    fine = [d for d in np.arange(grid[k] - step + 0.01, grid[k] + step - 0.005, 0.01) if d >= 0 and abs(d - grid[k]) > 1e-9]
+    results += [trial(d) for d in fine]  # then in steps of 0.01 around the best
+    k = int(np.argmin([r[0] for r in results]))
     here = trial(fit.geometry.distortion)
     if results[k][0] >= 0.7 * here[0]:
         return fit
@@ -698,8 +702,8 @@ def _dedupe_vectors(vecs: np.ndarray, a_star: np.ndarray, tol_g: float, n_keep: 
 
 
 def _candidate_vectors(hk: np.ndarray, integer: np.ndarray, a_star: np.ndarray, tol_g: float,
-                       intensity: np.ndarray | None = None, n_spots: int = 12, n_bright: int = 6,
-                       n_diff: int = 6) -> np.ndarray:
+                       intensity: np.ndarray | None = None, n_spots: int = 10, n_bright: int = 6,
+                       n_diff: int = 4) -> np.ndarray:
     """Reciprocal vectors to pair into overlayer bases.
 
     The shortest observed fractional beams (each is a lattice vector of some
@@ -1204,12 +1208,10 @@ def index_pattern(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity
                          tol_px=tol_px)
     kw = dict(energy_eV=energy_eV, intensity=intensity, valid_mask=valid_mask, tol_px=tol_px, n_results=n_results)
     variants = [fits[0]]
-    if geometry is None and _distortion_open(fits[0]):  # the spots leave R/L open: try readings
-        alt = _distortion_from_fractions(xy, energy_eV, fits[0], tol_px)
-        if alt is not fits[0]:
-            variants.append(alt)
-        variants.append(_with_distortion(xy, energy_eV, fits[0], _DISTORTION_PRIOR,
-                                         f"distortion R/L held at the typical {_DISTORTION_PRIOR}"))
+    if geometry is None and _distortion_open(fits[0]):  # the spots leave R/L open: try readings,
+        alt = _distortion_from_fractions(xy, energy_eV, fits[0], tol_px)  # the likeliest first
+        variants = ([alt] if alt is not fits[0] else []) + [fits[0], _with_distortion(
+            xy, energy_eV, fits[0], _DISTORTION_PRIOR, f"distortion R/L held at the typical {_DISTORTION_PRIOR}")]
     best = None
     for fit in variants:
         fit, models = _search_and_refit(xy, energy_eV, fit, geometry, kw)
