@@ -1420,6 +1420,68 @@ def _as_frames(frames) -> Iterator[tuple[str, np.ndarray]]:
             yield f"frame {i}", item
 
 
+class _Prefetch:
+    """Frames read on a second thread, at most `depth` ahead of the consumer.
+
+    Reading and decoding a stack (file reads, NumPy's conversions) release the GIL, so
+    they overlap the tracking of the frame before. Items come out in order; an error of
+    the reader is raised by ``next`` where the frame would have come; ``close`` stops
+    the reader and closes the source.
+    """
+
+    def __init__(self, source: Iterator, depth: int = 2):
+        import queue
+        import threading
+
+        self._queue = queue.Queue(maxsize=depth)
+        self._full = queue.Full
+        self._stop = threading.Event()
+        self._source = source
+        self._done = False
+        self._thread = threading.Thread(target=self._run, name="recinet-frame-reader", daemon=True)
+        self._thread.start()
+
+    def _put(self, item) -> bool:
+        while not self._stop.is_set():
+            try:
+                self._queue.put(item, timeout=0.05)
+                return True
+            except self._full:
+                continue
+        return False
+
+    def _run(self) -> None:
+        try:
+            for item in self._source:
+                if not self._put(("frame", item)):
+                    return
+            self._put(("end", None))
+        except BaseException as exc:  # noqa: BLE001 - handed over to the consumer
+            self._put(("error", exc))
+        finally:
+            close = getattr(self._source, "close", None)
+            if close is not None:
+                close()
+
+    def __iter__(self):
+        return self
+
+    def __next__(self):
+        if self._done:
+            raise StopIteration
+        kind, value = self._queue.get()
+        if kind == "frame":
+            return value
+        self._done = True
+        if kind == "end":
+            raise StopIteration
+        raise value
+
+    def close(self) -> None:
+        self._stop.set()
+        self._thread.join()
+
+
 class _Energies:
     """Energy (and current) of frame i, checked as the frames arrive."""
 
@@ -1519,7 +1581,8 @@ def track_series(frames, beams: BeamSet, geometry: ScreenGeometry, *, energies=N
                  min_snr: float = 6.0, gain: float = 1.0, saturation_level: float | None = None,
                  fit: Sequence[str] = ("center", "scale", "distortion", "rotation"),
                  normalise_current: bool = True,
-                 progress: Callable[[int, int | None, float], None] | None = None) -> IVResult:
+                 progress: Callable[[int, int | None, float], None] | None = None,
+                 prefetch: bool | None = None) -> IVResult:
     """Follow every beam through an energy series and integrate it in every frame.
 
     Frames are streamed: only the current frame is held. For each frame the beams are
@@ -1561,6 +1624,9 @@ def track_series(frames, beams: BeamSet, geometry: ScreenGeometry, *, energies=N
         Divide by the beam current when the energy table has one.
     progress : callable(i, n, energy_eV), optional
         Called after each frame (n is None when the count is not known in advance).
+    prefetch : bool, optional, keyword-only
+        Read the next frames on a second thread (at most two ahead) while one is tracked;
+        default: when `frames` is a path or bytes (decoding is then worth overlapping).
 
     Returns
     -------
@@ -1596,60 +1662,66 @@ def track_series(frames, beams: BeamSet, geometry: ScreenGeometry, *, energies=N
     last_sigma = spot_sigma_px
     i = -1
     it = _as_frames(frames)
+    if prefetch or (prefetch is None and isinstance(frames, (str, os.PathLike, bytes, bytearray))):
+        it = _Prefetch(it)  # decode the next frames while this one is tracked
     n_total = en.n if en.by_name is None else None
-    while True:
-        try:
-            name, frame = next(it)
-        except StopIteration:
-            break
-        except ImageError as err:
-            where = f"frame {i + 1}" + (f" (after {rec_names[-1]})" if rec_names else "")
-            raise SeriesError(f"Cannot read {where}: {err}") from None
-        i += 1
-        frame = np.ascontiguousarray(frame)  # flat gathers below need one contiguous buffer
-        if frame.ndim != 2:
-            raise SeriesError(f"Frame {i} ({name}) is not a 2-D image (shape {frame.shape}).")
-        if shape is None:
-            shape = frame.shape
-            if mask is not None:
-                mask = np.ascontiguousarray(mask, dtype=bool)
-                if mask.shape != shape:
-                    raise SeriesError(f"The mask is {mask.shape[1]}×{mask.shape[0]} px but frame 0 ({name}) "
-                                      f"is {shape[1]}×{shape[0]} px.")
-            mask_map = _mask_map(mask)
-        elif frame.shape != shape:
-            raise SeriesError(f"Frame {i} ({name}) is {frame.shape[1]}×{frame.shape[0]} px but frame 0 "
-                              f"({rec_names[0]}) is {shape[1]}×{shape[0]} px: all frames must have one size.")
-        e, cur = en.at(i, name)
-        sat = saturation_level
-        if sat is None and np.issubdtype(frame.dtype, np.integer):
-            sat = float(np.iinfo(frame.dtype).max)
-        if i == 0:
-            geom, r_ap, ann, last_sigma = _bootstrap(frame, e, g, geom, mask_map, sat, r_ap, ann, ann_given,
-                                                     search_px, min_snr, fit, spot_sigma_px)
-        out = _one_frame(frame, e, g, geom, mask_map, sat, r_ap, ann, background, method, search_px, min_snr, gain,
-                         spot_sigma_px if spot_sigma_px else last_sigma)
-        inten, sig, xy, flags, bgpx, okpos, sig_est = out
-        if spot_sigma_px is None and np.isfinite(sig_est):
-            last_sigma = sig_est
-        if cur is not None and normalise_current:
-            inten, sig = inten / cur, sig / cur
-        rec_e.append(e)
-        rec_names.append(name)
-        rec_cur.append(cur)
-        rec_I.append(inten)
-        rec_s.append(sig)
-        rec_xy.append(xy)
-        rec_f.append(flags)
-        rec_bg.append(bgpx)
-        if okpos.any():
-            pts_e.append(np.full(int(okpos.sum()), e))
-            pts_g.append(g[okpos])
-            pts_xy.append(xy[okpos])
-        if fit and ((i + 1) & i) == 0 and i > 0 and pts_e:  # after frames 1, 2, 4, 8, … (0-based 1, 3, 7)
-            geom = _refit(pts_e, pts_g, pts_xy, geom, fit)
-        if progress is not None:
-            progress(i + 1, n_total, e)
+    try:
+        while True:
+            try:
+                name, frame = next(it)
+            except StopIteration:
+                break
+            except ImageError as err:
+                where = f"frame {i + 1}" + (f" (after {rec_names[-1]})" if rec_names else "")
+                raise SeriesError(f"Cannot read {where}: {err}") from None
+            i += 1
+            frame = np.ascontiguousarray(frame)  # flat gathers below need one contiguous buffer
+            if frame.ndim != 2:
+                raise SeriesError(f"Frame {i} ({name}) is not a 2-D image (shape {frame.shape}).")
+            if shape is None:
+                shape = frame.shape
+                if mask is not None:
+                    mask = np.ascontiguousarray(mask, dtype=bool)
+                    if mask.shape != shape:
+                        raise SeriesError(f"The mask is {mask.shape[1]}×{mask.shape[0]} px but frame 0 ({name}) "
+                                          f"is {shape[1]}×{shape[0]} px.")
+                mask_map = _mask_map(mask)
+            elif frame.shape != shape:
+                raise SeriesError(f"Frame {i} ({name}) is {frame.shape[1]}×{frame.shape[0]} px but frame 0 "
+                                  f"({rec_names[0]}) is {shape[1]}×{shape[0]} px: all frames must have one size.")
+            e, cur = en.at(i, name)
+            sat = saturation_level
+            if sat is None and np.issubdtype(frame.dtype, np.integer):
+                sat = float(np.iinfo(frame.dtype).max)
+            if i == 0:
+                geom, r_ap, ann, last_sigma = _bootstrap(frame, e, g, geom, mask_map, sat, r_ap, ann, ann_given,
+                                                         search_px, min_snr, fit, spot_sigma_px)
+            out = _one_frame(frame, e, g, geom, mask_map, sat, r_ap, ann, background, method, search_px, min_snr, gain,
+                             spot_sigma_px if spot_sigma_px else last_sigma)
+            inten, sig, xy, flags, bgpx, okpos, sig_est = out
+            if spot_sigma_px is None and np.isfinite(sig_est):
+                last_sigma = sig_est
+            if cur is not None and normalise_current:
+                inten, sig = inten / cur, sig / cur
+            rec_e.append(e)
+            rec_names.append(name)
+            rec_cur.append(cur)
+            rec_I.append(inten)
+            rec_s.append(sig)
+            rec_xy.append(xy)
+            rec_f.append(flags)
+            rec_bg.append(bgpx)
+            if okpos.any():
+                pts_e.append(np.full(int(okpos.sum()), e))
+                pts_g.append(g[okpos])
+                pts_xy.append(xy[okpos])
+            if fit and ((i + 1) & i) == 0 and i > 0 and pts_e:  # after frames 1, 2, 4, 8, … (0-based 1, 3, 7)
+                geom = _refit(pts_e, pts_g, pts_xy, geom, fit)
+            if progress is not None:
+                progress(i + 1, n_total, e)
+    finally:
+        if isinstance(it, _Prefetch):
+            it.close()
     if i < 0:
         raise SeriesError("The series holds no frames.")
     en.finish(i + 1)
@@ -2446,7 +2518,8 @@ def _cmd_iv(args) -> int:
         res = track_series(all_frames(), beams, geom, energies=energies, name_pattern=args.name_pattern,
                            mask=mask, radius_px=args.radius_px, background=args.background, method=args.method,
                            gain=args.gain, saturation_level=saturation, normalise_current=not args.no_current,
-                           progress=None if bar is None else (lambda i, n, e: bar(i, n or n_known, e)))
+                           progress=None if bar is None else (lambda i, n, e: bar(i, n or n_known, e)),
+                           prefetch=True)
     finally:
         if bar is not None:
             sys.stderr.write("\n")
