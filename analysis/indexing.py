@@ -1009,7 +1009,7 @@ def find_overlayers(hk: np.ndarray, integer: np.ndarray, substrate_fit: Substrat
             break
         done.append((_with_absent(ctx, sc), kt))
     scored = sorted(done, key=lambda t: -t[0]["score"])
-    models = _prefer_simple([_describe(ctx, sc, kind_tol=kt) for sc, kt in scored[: n_results + 3]])
+    models = _prefer_simple([_describe(ctx, sc, kind_tol=kt) for sc, kt in scored[: n_results + 1]])
     models.sort(key=lambda mm: -mm.score)
     out, keys = [], []
     for mm in models:
@@ -1023,7 +1023,8 @@ def find_overlayers(hk: np.ndarray, integer: np.ndarray, substrate_fit: Substrat
                 continue
         keys.append(key)
         out.append(mm)
-    return [_lead_with_plainest_domain(ctx, mm) for mm in out[:n_results]]
+    out = out[:n_results]
+    return [_lead_with_plainest_domain(ctx, out[0])] + out[1:] if out else out
 
 
 def _lead_with_plainest_domain(ctx: _Context, mm: OverlayerModel) -> OverlayerModel:
