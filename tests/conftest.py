@@ -70,3 +70,56 @@ def fresh_store(webapp_env, tmp_path):
     runtime.reset(dataclasses.replace(base, data_dir=tmp_path, database_url=f"sqlite:///{tmp_path / 'app.sqlite3'}"))
     yield runtime.get_store()
     runtime.reset(base)
+
+
+# --------------------------------------------------------------------------- browser tests
+
+CHROMIUM = "/usr/bin/chromium"
+CHROMIUM_ARGS = ["--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+                 "--disable-background-networking", "--disable-component-update", "--disable-sync",
+                 "--disable-dev-shm-usage"]
+
+
+def free_port() -> int:
+    import socket
+
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+@pytest.fixture(scope="session")
+def live_server(webapp_env):
+    """The web app served on loopback in a thread for the whole session."""
+    import threading
+
+    from werkzeug.serving import make_server
+
+    srv = make_server("127.0.0.1", free_port(), webapp_env.server, threaded=True)
+    threading.Thread(target=srv.serve_forever, daemon=True).start()
+    yield f"http://127.0.0.1:{srv.server_port}"
+    srv.shutdown()
+
+
+@pytest.fixture(scope="session")
+def browser():
+    """Debian's Chromium through Playwright (never `playwright install`); skips with the reason."""
+    import shutil
+
+    if not (os.path.exists(CHROMIUM) or shutil.which("chromium")):
+        pytest.skip("Debian chromium is not installed (apt-get install chromium); browser tests skip")
+    sync_api = pytest.importorskip("playwright.sync_api", reason="the playwright package is not installed")
+    exe = CHROMIUM if os.path.exists(CHROMIUM) else shutil.which("chromium")
+    with sync_api.sync_playwright() as p:
+        b = p.chromium.launch(executable_path=exe, headless=True, args=CHROMIUM_ARGS)
+        yield b
+        b.close()
+
+
+@pytest.fixture
+def page(browser):
+    ctx = browser.new_context(viewport={"width": 1500, "height": 1100}, accept_downloads=True)
+    pg = ctx.new_page()
+    pg.set_default_timeout(30_000)
+    yield pg
+    ctx.close()

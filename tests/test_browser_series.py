@@ -9,9 +9,6 @@ $RECINET_SHOTS (default /tmp/recinet-shots).
 from __future__ import annotations
 
 import os
-import shutil
-import socket
-import threading
 from pathlib import Path
 
 import pytest
@@ -20,49 +17,12 @@ from test_webapp_series import ENERGIES, write_series
 
 pytestmark = pytest.mark.browser
 
-CHROMIUM = "/usr/bin/chromium"
-ARGS = ["--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run", "--disable-background-networking",
-        "--disable-component-update", "--disable-sync", "--disable-dev-shm-usage"]
 SHOTS = Path(os.environ.get("RECINET_SHOTS", "/tmp/recinet-shots"))
 WAIT_MS = 120_000  # indexing one frame and following 30 on a busy 2-core machine
 
 
-def _free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
-@pytest.fixture(scope="module")
-def live_server(webapp_env):
-    from werkzeug.serving import make_server
-
-    srv = make_server("127.0.0.1", _free_port(), webapp_env.server, threaded=True)
-    t = threading.Thread(target=srv.serve_forever, daemon=True)
-    t.start()
-    yield f"http://127.0.0.1:{srv.server_port}"
-    srv.shutdown()
-
-
-@pytest.fixture(scope="module")
-def browser():
-    if not (os.path.exists(CHROMIUM) or shutil.which("chromium")):
-        pytest.skip("Debian chromium is not installed (apt-get install chromium); browser tests skip")
-    sync_api = pytest.importorskip("playwright.sync_api", reason="the playwright package is not installed")
-    exe = CHROMIUM if os.path.exists(CHROMIUM) else shutil.which("chromium")
-    with sync_api.sync_playwright() as p:
-        b = p.chromium.launch(executable_path=exe, headless=True, args=ARGS)
-        yield b
-        b.close()
-
-
-@pytest.fixture
-def page(browser):
-    ctx = browser.new_context(viewport={"width": 1500, "height": 1100}, accept_downloads=True)
-    pg = ctx.new_page()
-    pg.set_default_timeout(30_000)
-    yield pg
-    ctx.close()
 
 
 def _shot(page, name):

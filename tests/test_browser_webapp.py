@@ -7,64 +7,22 @@ Screenshots go to $RECINET_SHOTS (default /tmp/recinet-shots).
 
 from __future__ import annotations
 
-import base64
 import json
 import os
-import shutil
-import socket
-import threading
 from pathlib import Path
 
 import pytest
 
 pytestmark = pytest.mark.browser
 
-CHROMIUM = "/usr/bin/chromium"
-ARGS = ["--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run", "--disable-background-networking",
-        "--disable-component-update", "--disable-sync", "--disable-dev-shm-usage"]
 SHOTS = Path(os.environ.get("RECINET_SHOTS", "/tmp/recinet-shots"))
 ROOT = Path(__file__).resolve().parent.parent
 DEMO = ROOT / "demo_images"
 WAIT_MS = 120_000  # an analysis of a 1024² demo image on a busy 2-core machine
 
 
-def _free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
-@pytest.fixture(scope="session")
-def live_server(webapp_env):
-    from werkzeug.serving import make_server
-
-    port = _free_port()
-    srv = make_server("127.0.0.1", port, webapp_env.server, threaded=True)
-    t = threading.Thread(target=srv.serve_forever, daemon=True)
-    t.start()
-    yield f"http://127.0.0.1:{port}"
-    srv.shutdown()
-
-
-@pytest.fixture(scope="session")
-def browser():
-    if not (os.path.exists(CHROMIUM) or shutil.which("chromium")):
-        pytest.skip("Debian chromium is not installed (apt-get install chromium); browser tests skip")
-    sync_api = pytest.importorskip("playwright.sync_api", reason="the playwright package is not installed")
-    exe = CHROMIUM if os.path.exists(CHROMIUM) else shutil.which("chromium")
-    with sync_api.sync_playwright() as p:
-        b = p.chromium.launch(executable_path=exe, headless=True, args=ARGS)
-        yield b
-        b.close()
-
-
-@pytest.fixture
-def page(browser):
-    ctx = browser.new_context(viewport={"width": 1500, "height": 1000}, accept_downloads=True)
-    pg = ctx.new_page()
-    pg.set_default_timeout(30_000)
-    yield pg
-    ctx.close()
 
 
 def _shot(page, name):
