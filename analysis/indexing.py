@@ -135,14 +135,25 @@ def _int_points(a_star: np.ndarray, g_max: float) -> np.ndarray:
     return hk[np.hypot(g[:, 0], g[:, 1]) <= g_max]
 
 
-def _match(pred: np.ndarray, obs_tree: cKDTree, tol) -> tuple[np.ndarray, np.ndarray]:
-    """Nearest observed spot to each prediction within tol (a number, or one per
-    prediction): (pred index, obs index), one-to-one."""
+def _match(pred: np.ndarray, obs_tree: cKDTree, tol, brightness: np.ndarray | None = None
+           ) -> tuple[np.ndarray, np.ndarray]:
+    """Observed spot for each prediction within tol (a number, or one per prediction):
+    (pred index, obs index), one-to-one. The nearest spot, or with `brightness` the
+    brightest one within tol (substrate beams outshine satellites crowding around them)."""
     ok = np.all(np.isfinite(pred), axis=1)
     if not ok.any():
         return np.zeros(0, int), np.zeros(0, int)
     tol_each = np.broadcast_to(np.asarray(tol, dtype=np.float64), (len(pred),))[ok]
-    d, j = obs_tree.query(pred[ok], distance_upper_bound=float(tol_each.max()))
+    if brightness is not None:
+        d = np.full(int(ok.sum()), np.inf)
+        j = np.full(int(ok.sum()), obs_tree.n)
+        for n, (p, t) in enumerate(zip(pred[ok], tol_each)):
+            near = obs_tree.query_ball_point(p, t)
+            if near:
+                k = max(near, key=lambda q: brightness[q])
+                j[n], d[n] = k, float(np.hypot(*(obs_tree.data[k] - p)))
+    else:
+        d, j = obs_tree.query(pred[ok], distance_upper_bound=float(tol_each.max()))
     idx = np.flatnonzero(ok)
     hit = np.isfinite(d) & (d <= tol_each)
     pi, oj, dd = idx[hit], j[hit], d[hit]
@@ -344,12 +355,13 @@ def _try_substrate(xy, tree, inten, energy_eV, a_star, e, v, center, geometry, l
     for n_stage, (tol, rad, free) in enumerate(stages):
         pred = _screen_xy(hk_all @ lattice, energy_eV, geom)
         rr = np.hypot(pred[:, 0] - geom.center_x_px, pred[:, 1] - geom.center_y_px)
-        if n_stage in (1, 2):  # an unfitted distortion moves outer rings most (outwards in the model)
+        if n_stage in (1, 2):  # an unfitted distortion moves outer rings most (outwards in the model):
             pred = np.where((rr <= min(rad, 1.15 * r_max))[:, None], pred, np.nan)
-            tol = np.clip(0.12 * rr, tol, 0.45 * nn)
+            tol = np.maximum(0.12 * rr, tol)  # look wider, and take the brightest spot there
+            pi, oj = _match(pred, tree, tol, brightness=inten)
         else:
             pred = np.where((rr <= min(rad, r_max))[:, None], pred, np.nan)
-        pi, oj = _match(pred, tree, tol)
+            pi, oj = _match(pred, tree, tol)
         if len(pi) < 2 or np.linalg.matrix_rank(hk_all[pi]) < 2:
             return None
         geom, lattice, _, _ = _refine(xy[oj], hk_all[pi], energy_eV, geom, lattice, free,
