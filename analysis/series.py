@@ -733,20 +733,39 @@ def _square_offsets(half: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
 
 @dataclass(frozen=True, eq=False)
 class _MaskMap:
-    """A mask of usable pixels with, per pixel, the chessboard distance to the nearest
-    unusable one, so that windows far from every masked pixel skip the mask gather."""
+    """A mask of usable pixels with a summed-area table of its unusable ones, so that
+    windows holding no masked pixel skip the mask gather."""
 
     mask: np.ndarray  # (M, N) bool, C-contiguous
-    clear: np.ndarray  # (M, N) int32, 0 on unusable pixels
+    blocked: np.ndarray  # (M + 1, N + 1) int64: unusable pixels above and left of each corner
+    views: dict = field(default_factory=dict)  # window width -> sliding-window view of `mask`
+
+    def windows(self, w: int) -> np.ndarray:
+        """(M − w + 1, N − w + 1, w, w) read-only view of every w × w window of the mask."""
+        if w not in self.views:
+            from numpy.lib.stride_tricks import sliding_window_view
+
+            self.views[w] = sliding_window_view(self.mask, (w, w))
+        return self.views[w]
+
+    def any_blocked(self, r0: np.ndarray, c0: np.ndarray, w: int) -> np.ndarray:
+        """(K,) bool: the w × w window with top-left pixel (r0, c0) holds an unusable pixel
+        (windows reaching beyond the image count as blocked)."""
+        rows, cols = self.mask.shape
+        inside = (r0 >= 0) & (c0 >= 0) & (r0 + w <= rows) & (c0 + w <= cols)
+        a, b = np.where(inside, r0, 0), np.where(inside, c0, 0)
+        t = self.blocked
+        n = t[a + w, b + w] - t[a, b + w] - t[a + w, b] + t[a, b]
+        return ~inside | (n > 0)
 
 
 def _mask_map(mask: np.ndarray | None) -> _MaskMap | None:
     if mask is None or bool(mask.all()):
         return None
-    from scipy.ndimage import distance_transform_cdt
-
     m = np.ascontiguousarray(mask, dtype=bool)
-    return _MaskMap(m, distance_transform_cdt(m, metric="chessboard").astype(np.int32))
+    table = np.zeros((m.shape[0] + 1, m.shape[1] + 1), dtype=np.int64)
+    np.cumsum(np.cumsum(~m, axis=0, dtype=np.int64), axis=1, out=table[1:, 1:])
+    return _MaskMap(m, table)
 
 
 def _take(frame: np.ndarray, mask, centre: np.ndarray, half: int, cols: np.ndarray | None = None):
@@ -774,7 +793,8 @@ def _take(frame: np.ndarray, mask, centre: np.ndarray, half: int, cols: np.ndarr
     fi, part = np.flatnonzero(full), np.flatnonzero(~full)
 
     def squares(img, sel):
-        sq = sliding_window_view(img, (w, w))[r0[sel], c0[sel]].reshape(sel.size, w * w)
+        view = img.windows(w) if isinstance(img, _MaskMap) else sliding_window_view(img, (w, w))
+        sq = view[r0[sel], c0[sel]].reshape(sel.size, w * w)
         return sq if cols is None else sq[:, cols]
 
     def edge(sel):
@@ -800,10 +820,8 @@ def _take(frame: np.ndarray, mask, centre: np.ndarray, half: int, cols: np.ndarr
     if mask is None:
         return data, inside, usable
     if isinstance(mask, _MaskMap):
-        ok = (centre[:, 0] >= 0) & (centre[:, 0] < rows) & (centre[:, 1] >= 0) & (centre[:, 1] < ncols)
-        cr, cc_ = np.clip(centre[:, 0], 0, rows - 1), np.clip(centre[:, 1], 0, ncols - 1)
-        near = ~ok | (mask.clear[cr, cc_] <= half)
-        m = mask.mask
+        near = mask.any_blocked(r0, c0, w)
+        m = mask
     else:
         near = np.ones(k, dtype=bool)
         m = mask
@@ -812,7 +830,7 @@ def _take(frame: np.ndarray, mask, centre: np.ndarray, half: int, cols: np.ndarr
         usable[nf] = squares(m, nf)
     if npart.size:
         idx, ins = edge(npart)
-        usable[npart] = m.reshape(-1).take(idx) & ins
+        usable[npart] = (m.mask if isinstance(m, _MaskMap) else m).reshape(-1).take(idx) & ins
     return data, inside, usable
 
 
@@ -929,19 +947,19 @@ def _refine(win: _Windows, rc_pred: np.ndarray, search_px: np.ndarray, radius_px
     c = np.column_stack([win.row0 + pr, win.col0 + pc]).astype(np.float64)
     sigma = np.full(k, np.nan)
     r2 = radius_px * radius_px
-    for it in range(3):
-        dr, dc = rows - c[:, 0, None], cols - c[:, 1, None]
-        dr2, dc2 = dr * dr, dc * dc
-        wgt = np.where(dr2[:, :, None] + dc2[:, None, :] <= r2, pos, 0.0)
-        w_r, w_c = wgt.sum(axis=2), wgt.sum(axis=1)  # (K, m) marginals
-        tot = w_r.sum(axis=1)
-        good = tot > 0
-        with np.errstate(invalid="ignore", divide="ignore"):
-            new = np.column_stack([_rowdot(w_r, rows) / tot, _rowdot(w_c, cols) / tot])
+    with np.errstate(invalid="ignore", divide="ignore"):
+        for it in range(3):
+            dr, dc = rows - c[:, 0, None], cols - c[:, 1, None]
+            dr2, dc2 = dr * dr, dc * dc
+            wgt = pos * (dr2[:, :, None] + dc2[:, None, :] <= r2)
+            w_r, w_c = wgt.sum(axis=2), wgt.sum(axis=1)  # (K, m) marginals
+            tot = w_r.sum(axis=1)
+            good = tot > 0
+            new_r, new_c = _rowdot(w_r, rows) / tot, _rowdot(w_c, cols) / tot
             if it == 2:
                 m2 = (_rowdot(w_r, dr2) + _rowdot(w_c, dc2)) / tot / 2.0
                 sigma = np.where(good & (snr > 20), np.sqrt(np.maximum(m2, 0.0)), np.nan)
-        c = np.where(good[:, None], new, c)
+            c[good, 0], c[good, 1] = new_r[good], new_c[good]
     shift = np.hypot(c[:, 0] - rc_pred[:, 0], c[:, 1] - rc_pred[:, 1])
     ok = (snr >= min_snr) & (shift <= search_px)
     # Correct the second moment for the truncation at radius R: for a Gaussian,
@@ -1295,9 +1313,14 @@ def fit_series_geometry(energy_eV, g_par, xy_px, *, initial: ScreenGeometry,
         d.update(zip(names, p))
         return ScreenGeometry.from_dict(d)
 
+    # λ ∝ 1/√E, so the beams at their own energies land where the momenta scaled by
+    # √(E_ref / E) land at E_ref: one energy per call, the same model.
+    e_ref = 100.0
+    g_ref = g * np.sqrt(e_ref / e)[:, None]
+
     def resid(p):
         try:
-            model, _ = momentum_to_pixels(g, e, geom_of(p))
+            model, _ = momentum_to_pixels(g_ref, e_ref, geom_of(p))
         except ParameterError:
             return np.full(2 * e.size, 1e6)
         r = (model - xy).ravel()
@@ -1563,6 +1586,13 @@ def _name_key(name: str) -> str:
     return Path(str(name).strip()).name.lower()
 
 
+def _median(values: np.ndarray) -> float:
+    """Median of a short 1-D array (as numpy.median, without its overhead)."""
+    v = np.sort(values)
+    n = v.size
+    return float(v[n // 2]) if n % 2 else float((v[n // 2 - 1] + v[n // 2]) / 2)
+
+
 def _neighbour_distance(xy: np.ndarray) -> np.ndarray:
     """Distance from each point to its nearest other point, px (inf when alone)."""
     if len(xy) < 2:
@@ -1821,7 +1851,7 @@ def _one_frame(frame, e, g, geom, mask, sat, r_ap, ann, background, method, sear
     ref, snr, ok, s_est = _refine(win, rc_pred, search, r_ap, min_snr)
     good = np.isfinite(s_est) & ok
     if good.any():
-        sig_est = float(np.median(s_est[good]))
+        sig_est = _median(s_est[good])
     rc = np.where(ok[:, None], ref, rc_pred)
     s_use = sigma if sigma else (sig_est if np.isfinite(sig_est) else r_ap / 3.0)
     res = _integrate(frame, rc, mask, sat, radius_px=r_ap, annulus_px=ann, background=background,
