@@ -797,6 +797,8 @@ def _score(ctx: _Context, matrix, *, all_domains: bool, satellites: bool, absent
     :func:`_with_absent`; ``score`` is then an upper bound.
     """
     m = np.asarray(matrix, dtype=np.float64)
+    if np.linalg.det(m) < 0:  # report bases with the substrate's handedness (det M > 0)
+        m = m[::-1].copy()
     hk, a_star, tol_g = ctx.hk, ctx.a_star, ctx.tol_g
     frac = ~ctx.integer
     mats, names = _domain_matrices(m, ctx.ops)

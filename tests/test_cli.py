@@ -43,6 +43,8 @@ def test_analyze_writes_the_json_contract(tmp_path, capsys):
     d = json.loads(out.read_text())
     truth = json.loads((DEMO / "ru0001_RX-2_sqrt3.json").read_text())
     assert d["overlayer"]["wood"] == "(√3×√3)R30°"
+    # matrix in the 120° substrate basis, worked by hand: b1 = 2a1 + a2, b2 = −a1 + a2 (CHECK_VALUES §4)
+    assert d["overlayer"]["matrix"] == [[2, 1], [-1, 1]]
     assert d["overlayer"]["kind"] == "commensurate"
     assert d["overlayer"]["coverage"] == pytest.approx(1 / 3)
     assert d["substrate"]["net"] == "hexagonal"
