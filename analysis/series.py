@@ -1774,7 +1774,7 @@ def track_series(frames, beams: BeamSet, geometry: ScreenGeometry, *, energies=N
                     currents, calibration, settings)
 
 
-_REFIT_POINTS = 4000  # points in the refits while tracking (the final calibration uses all)
+_REFIT_POINTS = 2000  # points in the refits while tracking (the final calibration uses all)
 
 
 def _refit(pts_e, pts_g, pts_xy, geom, fit) -> ScreenGeometry:

@@ -8,17 +8,21 @@ drifting background) into a multi-page TIFF, then measures in the same run:
 * decode only: ``analysis.io.iter_frames`` over the stack (what any reader must pay),
   and tifffile's raw page decode for reference;
 * the whole extraction: ``track_series`` (prediction, local refinement, integration,
-  geometry refits, final joint calibration) reading the same file.
+  geometry refits, final joint calibration) reading the same file, as it runs by default
+  (the next frames are decoded on a second thread while one is tracked), and once more
+  on one thread only (``prefetch=False``) for reference.
 
-Prints the total time, its ratio to the decode time, the peak resident memory seen while
-tracking (psutil, sampled every 20 ms) and the peak of traced Python/numpy allocations
-(tracemalloc, on a second pass). Targets: ≤ 30 s total, ≤ 3× decode, peak < 2 GB.
-Pin the process to the cores you want (e.g. ``taskset -c 0,1``).
+Prints the total times, their ratios to the decode time, the peak resident memory seen
+while tracking (psutil, sampled every 20 ms), the peak of traced Python/numpy allocations
+(tracemalloc, on another pass) and the load average before the run (other work on the
+machine slows both the decode and the extraction). Targets: ≤ 30 s total, ≤ 3× decode,
+peak < 2 GB. Pin the process to the cores you want (e.g. ``taskset -c 0,1``).
 """
 
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 import tempfile
 import threading
@@ -129,12 +133,16 @@ def main() -> int:
     beams = beams_from_nets(sub, [[[2, 0], [0, 2]]], energy_max_eV=float(energies.max()), geometry=geom)
     start = ScreenGeometry(geom.center_x_px - 3.0, geom.center_y_px + 2.0, geom.scale_px * 0.98,
                            rotation_deg=geom.rotation_deg + 0.4)
+    load = os.getloadavg()[0]
     with _RssPeak() as rss:
         t = time.perf_counter()
         res = track_series(stack, beams, start, energies=energies, mask=mask, gain=4.0)
         t_track = time.perf_counter() - t
     t_dec = min(decode_io(), decode_io())
     t_raw = min(decode_raw(), decode_raw())
+    t = time.perf_counter()
+    track_series(stack, beams, start, energies=energies, mask=mask, gain=4.0, prefetch=False)
+    t_one = time.perf_counter() - t
 
     tracemalloc.start()
     track_series(stack, beams, start, energies=energies, mask=mask, gain=4.0)
@@ -158,6 +166,8 @@ def main() -> int:
     print(f"whole extraction (track_series):       {t_track:6.2f} s   target ≤ 30 s")
     print(f"ratio extraction / decode:             {t_track / t_dec:6.2f}     target ≤ 3")
     print(f"ratio extraction / raw decode:         {t_track / t_raw:6.2f}")
+    print(f"one thread only (prefetch=False):      {t_one:6.2f} s   ratio to decode {t_one / t_dec:.2f}")
+    print(f"load average (1 min) before the run:   {load:6.2f}   (2 cores)")
     print(f"peak resident memory while tracking:   {rss.peak / 1e9:6.3f} GB   target < 2 GB")
     print(f"peak traced allocations (tracemalloc): {traced_peak / 1e6:6.1f} MB "
           f"(one float64 frame is {args.size * args.size * 8 / 1e6:.1f} MB)")
