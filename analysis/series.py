@@ -2307,12 +2307,15 @@ def index_series_frame(frame, *, energy_eV: float, substrate: str | Net2D, frame
     best = res.index.best
     hint = res.substrate_hint
     mats = () if best.kind == "none" else tuple(np.array(m, dtype=np.float64) for m in best.domains)
+    valid = np.array(res.measurement.valid, dtype=bool)
+    for a in (*mats, valid):
+        a.flags.writeable = False
     from .superstructure import format_matrix
 
     return SeriesIndexing(frame=int(frame_index), frame_name=str(frame_name), energy_eV=e, geometry=fit.geometry,
                           substrate=Net2D(fit.net.vectors, label=hint.label), overlayers=mats, kind=best.kind,
                           wood=best.wood, matrix_text=format_matrix(np.asarray(best.matrix, dtype=np.float64)),
-                          confidence=float(fit.confidence), mask=np.array(res.measurement.valid, dtype=bool),
+                          confidence=float(fit.confidence), mask=valid,
                           warnings=tuple(res.warnings))
 
 

@@ -471,6 +471,19 @@ def test_series_energies_from_names_and_start_step(small):
     assert_allclose(stepped.intensity, by_name.intensity, equal_nan=True)
 
 
+def test_series_read_ahead_gives_the_same_result(small, tmp_path):
+    import tifffile
+
+    e, frames, beams, geom = small
+    stack = tmp_path / "stack.tif"
+    tifffile.imwrite(stack, np.stack([f for _, f in frames]), photometric="minisblack")
+    ahead = track_series(stack, beams, geom, energies=e)  # a path: read on a second thread
+    inline = track_series(stack, beams, geom, energies=e, prefetch=False)
+    assert_allclose(ahead.intensity, inline.intensity, rtol=0, atol=0, equal_nan=True)
+    assert_allclose(ahead.xy_px, inline.xy_px, rtol=0, atol=0, equal_nan=True)
+    assert np.array_equal(ahead.flags, inline.flags) and ahead.frame_names == inline.frame_names
+
+
 def test_series_frames_of_different_sizes(small):
     e, frames, beams, geom = small
     odd = list(frames[:4]) + [("odd.tif", np.zeros((100, 128), np.uint16))] + list(frames[5:])
