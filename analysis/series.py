@@ -2400,7 +2400,7 @@ def add_iv_parser(subparsers) -> argparse.ArgumentParser:
     p.add_argument("--geometry", help="JSON screen geometry (a saved calibration); default: index one frame")
     p.add_argument("--index-frame", type=int, dest="index_frame", metavar="N",
                    help="frame to index (0-based) when no --geometry is given; default: the frame nearest "
-                        "the middle of the energy range")
+                        "the middle of the energy range, or nearest 150 eV when the middle is higher")
     p.add_argument("--overlayer", action="append", default=[], metavar="MATRIX",
                    help="superstructure matrix, e.g. '2 0 / 0 2' (repeat for several)")
     p.add_argument("--all-domains", action="store_true", help="add the symmetry-equivalent domains")
@@ -2438,12 +2438,23 @@ def _count_frames(series, energies, first) -> int | None:
     return None
 
 
-def _middle_frame(series, energies, first) -> int:
-    """The frame nearest the middle of the energy range (or of the series)."""
+# Indexing works best on a pattern with a moderate number of spots: above this energy the
+# pattern crowds towards the screen edge (more spots, slower and less certain readings).
+_INDEX_EV_MAX = 150.0
+
+
+def _index_frame_choice(series, energies, first) -> int:
+    """The frame nearest the middle of the energy range, or nearest 150 eV when the middle
+    is higher; the middle of the series when the energies are known only frame by frame."""
     n = _count_frames(series, energies, first)
+    e = None
     if isinstance(energies, EnergyTable) and n == len(energies):
         e = energies.energy_eV
-        return int(np.argmin(np.abs(e - 0.5 * (e.min() + e.max()))))
+    elif isinstance(energies, _StartStep) and n:
+        e = energies.start + energies.step * np.arange(n)
+    if e is not None:
+        target = min(0.5 * (e.min() + e.max()), _INDEX_EV_MAX)
+        return int(np.argmin(np.abs(e - target)))
     if n is None:  # e.g. a zip with energies in the file names: count the frames once
         from .io import iter_frames
 
@@ -2522,7 +2533,9 @@ def _cmd_iv(args) -> int:
         net = substrate
         azimuth = args.azimuth_deg
     else:
-        n_idx = args.index_frame if args.index_frame is not None else _middle_frame(args.series, energies, first)
+        n_idx = args.index_frame
+        if n_idx is None:
+            n_idx = _index_frame_choice(args.series, energies, first)
         if n_idx == 0:
             name_i, frame_i, e_i = name0, frame0, e0
         else:
