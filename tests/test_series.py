@@ -620,6 +620,16 @@ def test_cli_indexes_a_frame_when_no_geometry_is_given(auto_stack, capsys):
     assert abs(g["scale_px"] / AUTO_TRUTH.scale_px - 1) < 2e-3
 
 
+def test_index_frame_choice_prefers_moderate_energies(tmp_path):
+    from analysis.series import _index_frame_choice
+
+    wide = np.arange(40.0, 490.0, 1.5)  # middle 264 eV: crowded, so the frame nearest 150 eV
+    assert wide[_index_frame_choice(tmp_path / "scan.tif", EnergyTable(wide), None)] == 149.5
+    assert AUTO_E[_index_frame_choice(tmp_path / "scan.tif", EnergyTable(AUTO_E), None)] == 127.0  # middle
+    down = EnergyTable(wide[::-1])  # a falling series: the same energy
+    assert down.energy_eV[_index_frame_choice(tmp_path / "scan.tif", down, None)] == 149.5
+
+
 def test_cli_indexing_failure_is_one_line(tmp_path, capsys):
     import tifffile
 
