@@ -690,14 +690,15 @@ def _refine_matrix(hk: np.ndarray, m: np.ndarray, a_star: np.ndarray, tol_g: flo
 
 
 def _dedupe_vectors(vecs: np.ndarray, a_star: np.ndarray, tol_g: float, n_keep: int,
-                    kept_c: list | None = None) -> list[np.ndarray]:
-    """Shortest vectors first, dropping ±duplicates and integer multiples of kept ones."""
+                    kept_c: list | None = None, *, by_length: bool = True) -> list[np.ndarray]:
+    """Up to `n_keep` vectors (shortest first, or in the given order), dropping ±duplicates
+    and integer multiples of those kept."""
     if not len(vecs):
         return []
     cart = vecs @ a_star
     ln = np.hypot(cart[:, 0], cart[:, 1])
     out, out_c = [], list(kept_c or [])
-    for i in np.argsort(ln, kind="stable"):
+    for i in (np.argsort(ln, kind="stable") if by_length else range(len(vecs))):
         c = cart[i]
         if ln[i] <= 2 * tol_g:
             continue
@@ -729,7 +730,8 @@ def _candidate_vectors(hk: np.ndarray, integer: np.ndarray, a_star: np.ndarray, 
     primary = _dedupe_vectors(hk[frac_idx], a_star, tol_g, n_spots)
     if intensity is not None and len(frac_idx):
         bright = sorted(frac_idx, key=lambda i: -intensity[i])
-        primary += _dedupe_vectors(hk[bright], a_star, tol_g, n_bright, [v @ a_star for v in primary])
+        primary += _dedupe_vectors(hk[bright], a_star, tol_g, n_bright, [v @ a_star for v in primary],
+                                   by_length=False)
     ints = _dedupe_vectors(np.array([(1, 0), (0, 1), (1, 1), (1, -1)], float), a_star, tol_g, 4,
                            [v @ a_star for v in primary])
     near = np.argsort(rad)[:24]
@@ -834,7 +836,7 @@ def _score(ctx: _Context, matrix, *, all_domains: bool, satellites: bool, absent
     e_sat = e - int((primary[chosen].any(axis=0) & frac).sum())
     u = int(frac.sum()) - e
     det = abs(float(np.linalg.det(mats[chosen[0]])))
-    bound = (e - 0.5 * e_sat) - u - 1.0 * (len(chosen) - 1) - 0.5 * abs(math.log2(det))
+    bound = (e - 0.25 * e_sat) - u - 1.0 * (len(chosen) - 1) - 0.5 * abs(math.log2(det))
     sc = {"mats": [mats[i] for i in chosen], "names": [names[i] for i in chosen], "all_mats": mats, "e": e,
           "u": u, "absent": None, "by": by, "score": float(bound), "bound": float(bound), "total": len(mats),
           "satellites": e_sat}
@@ -1103,7 +1105,8 @@ def _prefer_simple(models: list[OverlayerModel]) -> list[OverlayerModel]:
     for mm in models:
         s = mm.score
         if mm.kind == "incommensurate":  # four free parameters can absorb a small camera error:
-            s -= 1.5 + 0.05 * mm.explained  # they must explain clearly more than a rational cell
+            s -= 1.5 + 0.05 * mm.explained  # they must explain clearly more than a rational cell,
+            s -= 2.0 * (mm.n_domains - 1)  # and each further irrational domain is a new free orientation
         ratio = mm.details.get("intensity_ratio")
         # only where positions cannot tell (rational models, no satellites); repays the domain penalty, no more
         if mm.n_domains > 1 and ratio is not None and mm.kind != "incommensurate":
