@@ -843,6 +843,7 @@ class _Windows:
     usable: np.ndarray  # (K, w, w) bool, inside the image and not masked
     row0: np.ndarray  # (K,) int64 image row of window pixel [0, 0]
     col0: np.ndarray  # (K,) int64 image column of window pixel [0, 0]
+    all_inside: bool = False  # every window lies inside the image
 
     @property
     def half(self) -> int:
@@ -854,9 +855,10 @@ def _extract(frame: np.ndarray, rc: np.ndarray, half: int, mask: np.ndarray | No
     w = 2 * half + 1
     centre = np.rint(rc).astype(np.int64)
     data, inside, usable = _take(frame, mask, centre, half)
+    all_inside = inside is None
     inside = np.ones((k, w, w), dtype=bool) if inside is None else inside.reshape(k, w, w)
     return _Windows(data.reshape(k, w, w), inside, usable.reshape(k, w, w),
-                    centre[:, 0] - half, centre[:, 1] - half)
+                    centre[:, 0] - half, centre[:, 1] - half, all_inside)
 
 
 def _local(win: _Windows, rc: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -1020,9 +1022,41 @@ def _normal_equations(cols: list, wts: np.ndarray, y: np.ndarray) -> tuple[np.nd
     return nmat, rhs
 
 
+def _disk_pixels(frame, mask, centre: np.ndarray, hi_px: float, window: _Windows | None):
+    """:func:`_take` of the distance-sorted disk of radius `hi_px` about each centre, cut
+    from the refinement windows where they hold it (no second pass over the frame)."""
+    dy, dx, _, sq_half, sq_cols = _disk_offsets(hi_px)
+    if window is None:
+        return _take(frame, mask, centre, sq_half, sq_cols)
+    k = centre.shape[0]
+    h = window.half
+    w = 2 * h + 1
+    sr, sc = centre[:, 0] - (window.row0 + h), centre[:, 1] - (window.col0 + h)
+    held = np.maximum(np.abs(sr), np.abs(sc)) + sq_half <= h
+    rows = np.flatnonzero(held)
+    idx = (rows * (w * w) + (h + sr[rows]) * w + (h + sc[rows]))[:, None] + (dy * w + dx)[None, :]
+    data = window.data.reshape(-1).take(idx)
+    usable = window.usable.reshape(-1).take(idx)
+    inside = None if window.all_inside else window.inside.reshape(-1).take(idx)
+    if rows.size == k:
+        return data, inside, usable
+    rest = np.flatnonzero(~held)
+    d2, i2, u2 = _take(frame, mask, centre[rest], sq_half, sq_cols)
+    out_d, out_u = np.empty((k, dy.size)), np.empty((k, dy.size), dtype=bool)
+    out_d[rows], out_u[rows], out_d[rest], out_u[rest] = data, usable, d2, u2
+    if inside is None and i2 is None:
+        return out_d, None, out_u
+    out_i = np.ones((k, dy.size), dtype=bool)
+    if inside is not None:
+        out_i[rows] = inside
+    if i2 is not None:
+        out_i[rest] = i2
+    return out_d, out_i, out_u
+
+
 def _integrate(frame: np.ndarray, rc: np.ndarray, mask: np.ndarray | None, saturation_level: float | None, *,
                radius_px: float, annulus_px: tuple[float, float], background: str, method: str,
-               spot_sigma_px: float | None, gain: float) -> SpotIntegrals:
+               spot_sigma_px: float | None, gain: float, window: _Windows | None = None) -> SpotIntegrals:
     """Integrate K spots at (row, col) `rc` straight from the frame (one gather of the disk
     of radius r_out + 0.75 px about each spot's nearest pixel)."""
     k = rc.shape[0]
@@ -1032,9 +1066,9 @@ def _integrate(frame: np.ndarray, rc: np.ndarray, mask: np.ndarray | None, satur
     # 0.75 px the distance-sorted columns dd ≤ (R + m)² hold the aperture and
     # dd ≥ (r_in − m)² the annulus.
     margin = 0.75
-    dy, dx, dd, sq_half, sq_cols = _disk_offsets(r_out + margin)
+    dy, dx, dd, _, _ = _disk_offsets(r_out + margin)
     centre = np.rint(rc).astype(np.int64)
-    data, inside, usable = _take(frame, mask, centre, sq_half, sq_cols)
+    data, inside, usable = _disk_pixels(frame, mask, centre, r_out + margin, window)
     ofr, ofc = centre[:, 0] - rc[:, 0], centre[:, 1] - rc[:, 1]
     # d² = (ofr + dy)² + (ofc + dx)² as one small matrix product
     d2 = np.column_stack([2.0 * ofr, 2.0 * ofc, ofr * ofr + ofc * ofc]) @ _disk_basis(r_out + margin) + dd
@@ -1855,7 +1889,7 @@ def _one_frame(frame, e, g, geom, mask, sat, r_ap, ann, background, method, sear
     rc = np.where(ok[:, None], ref, rc_pred)
     s_use = sigma if sigma else (sig_est if np.isfinite(sig_est) else r_ap / 3.0)
     res = _integrate(frame, rc, mask, sat, radius_px=r_ap, annulus_px=ann, background=background,
-                     method=method, spot_sigma_px=s_use, gain=gain)
+                     method=method, spot_sigma_px=s_use, gain=gain, window=win)
     f = res.flags.copy()
     f[nn < 2.0 * r_ap] |= FLAG_CROWDED
     f[~ok] |= FLAG_NOT_REFINED
