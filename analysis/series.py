@@ -13,9 +13,13 @@ at sin θ = λ |g| with λ = √(150.4 / E) Å, so on a distant camera its radiu
 * measures a spot's integrated intensity with a local background (annulus mean or a
   fitted plane) or by a profile fit, with saturation flags and a counting-statistics
   uncertainty (:func:`integrate_spots`);
-* tracks every beam through the stack, frames streamed one at a time: predict from the
-  current screen geometry, refine locally, integrate, and refit the geometry from all
-  frames so far (:func:`track_series`);
+* indexes one frame of the series (the camera model, the substrate net and the
+  overlayer domains it shows) with :func:`analysis.pipeline.analyze_image`
+  (:func:`index_series_frame`);
+* tracks every beam through the stack, frames streamed one at a time (a stack on disk is
+  read a frame or two ahead on a second thread): predict from the current screen
+  geometry, refine locally, integrate, and refit the geometry from all frames so far
+  (:func:`track_series`);
 * fits the screen geometry (centre, scale per √eV, distortion, rotation) from all frames
   jointly, with uncertainties (:func:`fit_series_geometry`);
 * builds I(V) curves, averages symmetry-equivalent beams with the Pendry and
