@@ -2506,13 +2506,16 @@ def _seek_frame(series, n: int, energies, name_pattern: str):
 
     en = _Energies(energies, name_pattern)
     i = -1
+    frames = iter_frames(series, max_bytes=_STACK_MAX_BYTES)
     try:
-        for i, (name, frame) in enumerate(iter_frames(series, max_bytes=_STACK_MAX_BYTES)):
+        for i, (name, frame) in enumerate(frames):
             e, _ = en.at(i, name)
             if i == n:
                 return name, frame, e
     except ImageError as err:
         raise SeriesError(f"Cannot read frame {i + 1}: {err}") from None
+    finally:
+        frames.close()  # the stack's file is closed now, not when the reader is collected
     raise SeriesError(f"--index-frame {n} is beyond the last frame (the series has {i + 1} frames).")
 
 
