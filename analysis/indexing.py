@@ -255,10 +255,16 @@ def fit_substrate(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity
     elif geometry is not None:
         center = np.array(geometry.center_px)
     else:
-        try:  # ±g pairs agree to about a pixel; a tight tolerance keeps dense patterns apart
-            center = estimate_center_from_pairs(xy, tol_px=max(3.0, 1.2 * tol_px), initial_xy=center_guess).center_xy
-        except FitError:
-            center = estimate_center_from_pairs(xy, initial_xy=center_guess).center_xy
+        center = None  # ±g pairs agree to about a pixel; a tight tolerance keeps dense patterns apart
+        for guess, tol in ((center_guess, max(3.0, 1.2 * tol_px)), (None, max(3.0, 1.2 * tol_px)), (None, None)):
+            try:  # from the guess (e.g. the gun disk) first, then from the vote of all pair midpoints
+                center = estimate_center_from_pairs(xy, tol_px=tol, initial_xy=guess).center_xy
+                break
+            except FitError:
+                continue
+        if center is None:
+            raise FitError(f"No spots pair up as g and −g among the {len(xy)} found: the pattern centre "
+                           "cannot be found (set it by hand, or check that the beam hits at normal incidence).")
     fit_lattice = (geometry is not None) if fit_lattice is None else fit_lattice
     lam = wavelength_A(energy_eV)
     r = np.hypot(xy[:, 0] - center[0], xy[:, 1] - center[1])
