@@ -47,7 +47,6 @@ import tempfile
 import time
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field, replace
-from fractions import Fraction
 from pathlib import Path
 
 import numpy as np
@@ -56,6 +55,7 @@ from .errors import FitError, ImageError, ParameterError, RecinetError, SeriesEr
 from .nets import Net2D, parse_substrate, point_group, reciprocal
 from .optics import H2_OVER_2ME_EV_A2, ScreenGeometry, momentum_to_pixels
 from .rfactor import pairwise_pendry_r, zanazzi_jona_r
+from .superstructure import beam_label
 
 __all__ = [
     "EnergyTable",
@@ -427,26 +427,6 @@ def energies_from_start_step(n_frames: int, *, start_eV: float, step_eV: float) 
 
 
 # --------------------------------------------------------------------------- beams
-
-
-def beam_label(h: float, k: float, *, max_denominator: int = 12) -> str:
-    """Column heading of a beam in substrate units: ``(1,0)``, ``(-1,1)``, ``(1/2,0)``.
-
-    Fractions are reduced; indices that are not simple fractions are written as decimals.
-
-    Examples
-    --------
-    >>> beam_label(0.5, 0.0), beam_label(-1.0, 1.0), beam_label(2 / 3, -1 / 3)
-    ('(1/2,0)', '(-1,1)', '(2/3,-1/3)')
-    """
-
-    def one(x: float) -> str:
-        f = Fraction(float(x)).limit_denominator(max_denominator)
-        if abs(float(f) - x) > 1e-6:
-            return f"{x:.4g}"
-        return str(f.numerator) if f.denominator == 1 else f"{f.numerator}/{f.denominator}"
-
-    return f"({one(h)},{one(k)})"
 
 
 @dataclass(frozen=True, eq=False)
