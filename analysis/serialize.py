@@ -30,6 +30,7 @@ import math
 import numpy as np
 
 from .errors import ParameterError
+from .jsonsafe import json_safe
 from .indexing import OverlayerModel, model_indices
 from .nets import Net2D, classify_net, reciprocal
 from .optics import momentum_to_pixels, wavelength_A
@@ -217,24 +218,7 @@ def result_to_dict(result) -> dict:
         "pixel_convention": "x right, y down, centre of the top-left pixel at (0, 0)",
         "matrix_convention": "real space, (b1, b2) = M (a1, a2) in the substrate basis",
     }
-    return _clean(out)
-
-
-def _clean(x):
-    """Replace NaN/inf with None and numpy scalars with Python ones, recursively."""
-    if isinstance(x, dict):
-        return {str(k): _clean(v) for k, v in x.items()}
-    if isinstance(x, (list, tuple)):
-        return [_clean(v) for v in x]
-    if isinstance(x, np.ndarray):
-        return _clean(x.tolist())
-    if isinstance(x, (np.bool_, bool)):
-        return bool(x)
-    if isinstance(x, (np.integer,)):
-        return int(x)
-    if isinstance(x, (float, np.floating)):
-        return _f(x)
-    return x
+    return json_safe(out)
 
 
 _REQUIRED = {"center_px": list, "spots": list, "substrate": dict, "overlayer": dict, "candidates": list}

@@ -52,6 +52,7 @@ from pathlib import Path
 import numpy as np
 
 from .errors import FitError, ImageError, ParameterError, RecinetError, SeriesError
+from .jsonsafe import json_safe
 from .nets import Net2D, parse_substrate, point_group, reciprocal
 from .optics import H2_OVER_2ME_EV_A2, ScreenGeometry, momentum_to_pixels
 from .rfactor import pairwise_pendry_r, zanazzi_jona_r
@@ -2133,22 +2134,6 @@ def write_csv(result: IVResult, path, **kw) -> None:
     _atomic_write(path, csv_text(result, **kw))
 
 
-def _json_safe(x):
-    if isinstance(x, (bool, np.bool_)):
-        return bool(x)
-    if isinstance(x, (int, np.integer)):
-        return int(x)
-    if isinstance(x, (float, np.floating)):
-        return float(x) if math.isfinite(x) else None
-    if isinstance(x, np.ndarray):
-        return _json_safe(x.tolist())
-    if isinstance(x, (list, tuple)):
-        return [_json_safe(v) for v in x]
-    if isinstance(x, dict):
-        return {str(k): _json_safe(v) for k, v in x.items()}
-    return x
-
-
 def result_to_dict(result: IVResult, *, v0i_eV: float = 4.0, smooth_eV: float = 0.0) -> dict:
     """JSON-safe record of a series: metadata, calibration, curves, flags and equivalent groups.
 
@@ -2188,7 +2173,7 @@ def result_to_dict(result: IVResult, *, v0i_eV: float = 4.0, smooth_eV: float = 
                     "n_used": g.n_used, "r_pendry": g.r_pendry, "r_zanazzi_jona": g.r_zj,
                     "v0i_eV": v0i_eV, "overlap_eV": g.overlap_eV, "range_eV": g.range_eV} for g in groups],
     }
-    return _json_safe(d)
+    return json_safe(d)
 
 
 def write_json(result: IVResult, path, **kw) -> None:
@@ -2254,7 +2239,7 @@ class SeriesIndexing:
 
     def to_dict(self) -> dict:
         """JSON-safe summary (the mask left out)."""
-        return _json_safe({
+        return json_safe({
             "frame": self.frame, "frame_name": self.frame_name, "energy_eV": self.energy_eV,
             "superstructure": self.label, "kind": self.kind, "wood": self.wood, "matrix_text": self.matrix_text,
             "domains": [np.asarray(m, dtype=np.float64).tolist() for m in self.overlayers],
@@ -2599,7 +2584,7 @@ def _cmd_iv(args) -> int:
     if args.save_calibration:
         if res.calibration is None:
             raise SeriesError("No calibration could be fitted from the series (too few refined beams).")
-        texts.append((args.save_calibration, json.dumps(_json_safe(res.calibration.to_dict()), indent=1)))
+        texts.append((args.save_calibration, json.dumps(json_safe(res.calibration.to_dict()), indent=1)))
     for path, text in texts:
         _atomic_write(path, text)
     n_beams = int(np.sum(res.valid.any(axis=0)))

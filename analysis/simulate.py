@@ -29,6 +29,7 @@ from scipy.spatial import cKDTree
 from scipy.special import erf
 
 from .errors import NetError, ParameterError
+from .jsonsafe import json_safe
 from .nets import Net2D, reciprocal
 from .optics import ScreenGeometry, momentum_to_pixels, wavelength_A
 from .superstructure import beam_label
@@ -464,23 +465,6 @@ def _background(x, y, center_px, radius: float, peak: float, gradient) -> np.nda
     return peak * radial * tilt
 
 
-def _json(x):
-    """Plain JSON value: floats (None for NaN), ints, bools, lists."""
-    if isinstance(x, (bool, np.bool_)):
-        return bool(x)
-    if isinstance(x, (int, np.integer)):
-        return int(x)
-    if isinstance(x, (float, np.floating)):
-        return float(x) if math.isfinite(x) else None
-    if isinstance(x, np.ndarray):
-        return [_json(v) for v in x.tolist()]
-    if isinstance(x, (list, tuple)):
-        return [_json(v) for v in x]
-    if isinstance(x, dict):
-        return {str(k): _json(v) for k, v in x.items()}
-    return x
-
-
 _DEFAULT = object()
 
 
@@ -634,7 +618,7 @@ def render_image(pattern: Pattern, *, shape=(1024, 1024), rng: np.random.Generat
         "pixel_convention": "x right, y down, centre of the top-left pixel at (0, 0)",
         "spots": spots,
     }
-    return SyntheticImage(image=image, truth=_json(truth), masks=masks)
+    return SyntheticImage(image=image, truth=json_safe(truth), masks=masks)
 
 
 def _spot_truth(pattern, sigma, photons, seen, s_centre, s_radius, gun, image, full, bg_at) -> list[dict]:
