@@ -194,7 +194,7 @@ def test_scale_per_sqrt_eV():
         xy, _ = momentum_to_pixels(k, e, cal.geometry)
         assert_allclose(np.hypot(*xy[0]) * math.sqrt(e) / np.hypot(*k[0]), cal.scale_px_sqrt_eV, rtol=1e-12)
     assert_allclose(cal.scale_px_sqrt_eV, 500.0 * math.sqrt(H2_OVER_2ME_EV_A2))
-    # λ(100 eV) = 1.226426 Å: /work/shared/CHECK_VALUES.md §1 (CODATA via scipy.constants)
+    # λ(100 eV) = 1.226426 Å from h, m_e, e (CODATA 2022 via scipy.constants)
     assert_allclose(cal.pixels_per_inv_A(100.0), 500.0 * 1.226426, rtol=1e-6)
 
 

@@ -9,7 +9,8 @@ from numpy.testing import assert_allclose
 from analysis.errors import ParameterError
 from analysis.rfactor import pairwise_pendry_r, pendry_r, pendry_y, r_factor, zanazzi_jona_r
 
-# Lorentzian test curves of /work/shared/CHECK_VALUES.md §8: peaks (eV), amplitudes,
+# Lorentzian test curves (the project's reference set for the Pendry R-factor, computed with numpy.gradient
+# and the trapezoid rule from the formula of Pendry, J. Phys. C 13, 937 (1980)): peaks (eV), amplitudes,
 # half-width 5 eV, background 0.02, 30–400 eV in 0.5 eV steps.
 PEAKS_EV = (55, 92, 140, 190, 255, 330)
 AMPS = (1.0, 0.6, 1.3, 0.5, 0.9, 0.4)

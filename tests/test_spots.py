@@ -84,7 +84,7 @@ def _score(rc, truth, tol):
 
 
 def test_bound_worked_example():
-    # /work/shared/CHECK_VALUES.md §9: s = 2 px, a = 1, N = 2000, b² = 10 gives Thompson 0.05520 px,
+    # worked example of the formulas: s = 2 px, a = 1, N = 2000, b² = 10 gives Thompson 0.05520 px,
     # Mortensen LS 0.06839 px, Mortensen ML 0.06181 px (Thompson et al. 2002; Mortensen et al. 2010)
     assert_allclose(localization_bound_px(2000, 2.0, 10.0, kind="thompson"), 0.05520, atol=5e-6)
     assert_allclose(localization_bound_px(2000, 2.0, 10.0, kind="ls"), 0.06839, atol=5e-6)
