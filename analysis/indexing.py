@@ -204,8 +204,8 @@ def _hint_variants(hint: Net2D) -> list[np.ndarray]:
 
 def fit_substrate(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity: np.ndarray | None = None,
                   geometry: ScreenGeometry | None = None, center_px=None, center_guess=None,
-                  screen_radius_px: float | None = None, valid_mask: np.ndarray | None = None,
-                  fit_lattice: bool | None = None,
+                  screen_radius_px: float | None = None, screen_prior_sigma: float = _SCALE_PRIOR_SIGMA,
+                  valid_mask: np.ndarray | None = None, fit_lattice: bool | None = None,
                   tol_px: float = 2.5, n_candidates: int = 12, max_results: int = 3) -> list[SubstrateFit]:
     """Find the substrate reciprocal net among the spots, ranked.
 
@@ -229,6 +229,8 @@ def fit_substrate(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity
         Where to start pairing spots (e.g. the gun-disk centre).
     screen_radius_px : float, optional
         Radius of the visible screen; gives a scale prior when no geometry is known.
+    screen_prior_sigma : float
+        Relative width of that prior (wider when the radius is only the image frame's).
     valid_mask : (M, N) ndarray of bool, optional
         Pixels where a spot could be seen (screen minus gun shadow).
     fit_lattice : bool, optional
@@ -256,8 +258,8 @@ def fit_substrate(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity
         center = np.array(geometry.center_px)
     else:
         center = None  # ±g pairs agree to about a pixel; a tight tolerance keeps dense patterns apart
-        for guess, tol in ((center_guess, max(3.0, 1.2 * tol_px)), (None, max(3.0, 1.2 * tol_px)), (None, None)):
-            try:  # from the guess (e.g. the gun disk) first, then from the vote of all pair midpoints
+        for guess, tol in ((None, max(3.0, 1.2 * tol_px)), (center_guess, max(3.0, 1.2 * tol_px)), (None, None)):
+            try:  # the vote of all pair midpoints first (a gun disk may sit off the centre), then the guess
                 center = estimate_center_from_pairs(xy, tol_px=tol, initial_xy=guess).center_xy
                 break
             except FitError:
@@ -272,7 +274,7 @@ def fit_substrate(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity
     r_min = 0.0
     tree = cKDTree(xy)
     prior = geometry.scale_px if geometry is not None else _scale_prior(screen_radius_px)
-    prior_sigma = 0.03 if geometry is not None else _SCALE_PRIOR_SIGMA
+    prior_sigma = 0.03 if geometry is not None else float(screen_prior_sigma)
 
     order = [i for i in np.argsort(r) if r[i] > 3 * tol_px]
     near = order[:n_candidates]
@@ -1218,24 +1220,45 @@ class IndexResult:
 
 def index_pattern(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity: np.ndarray | None = None,
                   geometry: ScreenGeometry | None = None, center_px=None, center_guess=None,
-                  screen_radius_px: float | None = None, valid_mask: np.ndarray | None = None,
-                  tol_px: float = 2.5, n_results: int = 5) -> IndexResult:
-    """Index a whole pattern: substrate net, then overlayer models, then a joint refit.
+                  screen_radius_px: float | None = None, screen_prior_sigma: float = _SCALE_PRIOR_SIGMA,
+                  valid_mask: np.ndarray | None = None,
+                  tol_px: float = 2.5, n_results: int = 5, min_confidence: float = 0.15,
+                  max_readings: int = 3) -> IndexResult:
+    """Index a whole pattern: substrate readings, overlayer models for each, joint refits.
 
-    The camera model is refitted with the spots the best rational model
-    explains and the overlayer search repeated on the refined indices, as long
-    as that raises the best score (at most twice).
+    Every substrate reading with confidence ≥ `min_confidence` (at most
+    `max_readings`) is followed to its best overlayer model; the reading kept is
+    the one with the best ``substrate score − ½ (unexplained + absent) −
+    ½ (domains − 1)`` of its model: when positions and brightness leave two
+    readings close, the one whose superstructure explains the spots more simply
+    wins (e.g. p(2×2) over a (√5×√5)R26.6° reading of the same spots). For each
+    reading the camera model is refitted with the spots the best rational model
+    explains while that raises the best score.
     """
     xy = np.asarray(xy_px, dtype=np.float64).reshape(-1, 2)
     fits = fit_substrate(xy, energy_eV, hint, intensity=intensity, geometry=geometry, center_px=center_px,
-                         center_guess=center_guess, screen_radius_px=screen_radius_px, valid_mask=valid_mask,
-                         tol_px=tol_px)
+                         center_guess=center_guess, screen_radius_px=screen_radius_px,
+                         screen_prior_sigma=screen_prior_sigma, valid_mask=valid_mask, tol_px=tol_px)
     kw = dict(energy_eV=energy_eV, intensity=intensity, valid_mask=valid_mask, tol_px=tol_px, n_results=n_results)
-    variants = [fits[0]]
-    if geometry is None and _distortion_open(fits[0]):  # the spots leave R/L open: try readings,
-        alt = _distortion_from_fractions(xy, energy_eV, fits[0], tol_px)  # the likeliest first
-        variants = ([alt] if alt is not fits[0] else []) + [fits[0], _with_distortion(
-            xy, energy_eV, fits[0], _DISTORTION_PRIOR, f"distortion R/L held at the typical {_DISTORTION_PRIOR}")]
+    readings = [f for f in fits[:max_readings] if f is fits[0] or f.confidence >= min_confidence]
+    followed = []
+    for reading in readings:
+        fit, models = _follow_reading(xy, energy_eV, reading, geometry, tol_px, kw)
+        top = models[0]
+        key = reading.score - 0.5 * (top.unexplained + top.absent) - 0.5 * (top.n_domains - 1)
+        followed.append((key, fit, models, reading))
+    key, fit, models, reading = max(followed, key=lambda t: t[0])
+    cands = [fit] + [f for f in fits if f is not reading]
+    return IndexResult(substrate=fit, substrate_candidates=cands, models=models)
+
+
+def _follow_reading(xy, energy_eV, reading: SubstrateFit, geometry, tol_px, kw):
+    """Best overlayer models for one substrate reading (trying camera readings when R/L is open)."""
+    variants = [reading]
+    if geometry is None and _distortion_open(reading):  # the spots leave R/L open: try readings,
+        alt = _distortion_from_fractions(xy, energy_eV, reading, tol_px)  # the likeliest first
+        variants = ([alt] if alt is not reading else []) + [reading, _with_distortion(
+            xy, energy_eV, reading, _DISTORTION_PRIOR, f"distortion R/L held at the typical {_DISTORTION_PRIOR}")]
     best = None
     for fit in variants:
         fit, models = _search_and_refit(xy, energy_eV, fit, geometry, kw)
@@ -1245,6 +1268,4 @@ def index_pattern(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity
         n_frac = max(int((~fit.integer).sum()), 1)
         if top.kind != "incommensurate" and top.unexplained + top.absent <= max(1, 0.05 * n_frac):
             break  # (nearly) every spot explained and none missing: other readings cannot do much better
-    fit, models = best
-    cands = [fit] + list(fits[1:])
-    return IndexResult(substrate=fit, substrate_candidates=cands, models=models)
+    return best

@@ -243,9 +243,13 @@ def analyze_image(image, *, energy_eV: float, substrate: str | Net2D, reference=
     center_guess = None
     if meas.gun.center_rc is not None:
         center_guess = (float(meas.gun.center_rc[1]), float(meas.gun.center_rc[0]))
+    # the screen's radius sets a scale prior; when no screen edge was found, the image frame's
+    # half-size stands in for it with a wider prior (screens usually fill most of the frame)
+    framed = screen.source == "frame"
     idx = index_pattern(xy, e, hint, intensity=inten, geometry=geometry, center_px=ed.center_xy,
                         center_guess=center_guess,
-                        screen_radius_px=screen.radius_px if screen.source != "frame" else None,
+                        screen_radius_px=(0.45 * min(img.shape) if framed else screen.radius_px),
+                        screen_prior_sigma=0.3 if framed else 0.15,
                         valid_mask=meas.valid, tol_px=tol_px)
     timings["total"] = time.perf_counter() - t0
     if idx.substrate.confidence < 0.8:
