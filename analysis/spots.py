@@ -305,6 +305,9 @@ def _auto_screen(img: np.ndarray, margin_px: float) -> ScreenMask:
     # Otsu on a copy clipped at the 99th percentile, so bright spots do not pull the split up
     t = float(threshold_otsu(np.minimum(small, np.percentile(small, 99.0))))
     dark_px = small < t
+    if dark_px.mean() > 0.9:  # many bright spots: the split fell between spots and screen; clip lower
+        t = float(threshold_otsu(np.minimum(small, np.percentile(small, 90.0))))
+        dark_px = small < t
     if dark_px.mean() < 0.02 or dark_px.mean() > 0.98:
         return _frame_screen(img, margin_px)
     lo, hi = float(np.median(small[dark_px])), float(np.median(small[~dark_px]))
