@@ -1223,17 +1223,16 @@ def index_pattern(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity
                   screen_radius_px: float | None = None, screen_prior_sigma: float = _SCALE_PRIOR_SIGMA,
                   valid_mask: np.ndarray | None = None,
                   tol_px: float = 2.5, n_results: int = 5, min_confidence: float = 0.15,
-                  max_readings: int = 3) -> IndexResult:
-    """Index a whole pattern: substrate readings, overlayer models for each, joint refits.
+                  max_readings: int = 1) -> IndexResult:
+    """Index a whole pattern: substrate readings, overlayer models, joint refits.
 
-    Every substrate reading with confidence ≥ `min_confidence` (at most
-    `max_readings`) is followed to its best overlayer model; the reading kept is
-    the one with the best ``substrate score − ½ (unexplained + absent) −
-    ½ (domains − 1)`` of its model: when positions and brightness leave two
-    readings close, the one whose superstructure explains the spots more simply
-    wins (e.g. p(2×2) over a (√5×√5)R26.6° reading of the same spots). For each
-    reading the camera model is refitted with the spots the best rational model
-    explains while that raises the best score.
+    The best substrate reading is followed to its best overlayer model (the
+    others stay listed with their confidence). With ``max_readings > 1`` the
+    next readings with confidence ≥ `min_confidence` are followed too, and the
+    one with the best ``substrate score − ½ (unexplained + absent) − ½ (domains − 1)``
+    is kept (off by default: stray spots then favour wrong readings too easily).
+    For each reading the camera model is refitted with the spots the best
+    rational model explains while that raises the best score.
     """
     xy = np.asarray(xy_px, dtype=np.float64).reshape(-1, 2)
     fits = fit_substrate(xy, energy_eV, hint, intensity=intensity, geometry=geometry, center_px=center_px,
