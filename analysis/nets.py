@@ -563,11 +563,12 @@ def parse_substrate(spec: str) -> Net2D:
     if not isinstance(spec, str) or not spec.strip():
         raise NetError(f"Empty substrate; give {_ACCEPTED}.")
     s = spec.strip()
+    m = re.fullmatch(r"(fcc|bcc|hcp|diamond)\s*\(\s*(\d{3,4})\s*\)", s, flags=re.I)
+    if m:
+        raise NetError(f"{s!r} needs a lattice constant, e.g. '{m.group(1).lower()}({m.group(2)}):3.9'.")
     m = re.fullmatch(r"([A-Za-z]{1,2})\s*\(\s*(\d{3,4})\s*\)", s)
     if m:
         sym = m.group(1).capitalize()
-        if sym.lower() in SURFACE_FACES:
-            raise NetError(f"{s!r} needs a lattice constant, e.g. '{sym.lower()}({m.group(2)}):3.9'.")
         if sym not in LATTICE_CONSTANTS_A:
             known = ", ".join(sorted(LATTICE_CONSTANTS_A))
             raise NetError(f"Unknown element {sym!r} in {s!r}; known: {known}. Or give {_ACCEPTED}.")

@@ -281,6 +281,7 @@ def test_parse_substrate_good(spec, a, b, gamma, kind):
     ("oblique:3,4,190", "strictly between 0 and 180"),
     ("hcp(0001):nan", "not a finite number"),
     ("banana", "Cannot read substrate 'banana'"),
+    ("fcc(111)", "'fcc\\(111\\)' needs a lattice constant"),
 ])
 def test_parse_substrate_bad(spec, match):
     with pytest.raises(NetError, match=match):
