@@ -6,7 +6,6 @@ import base64
 import csv
 import io
 import json
-from contextvars import copy_context
 
 import numpy as np
 import pytest
@@ -14,21 +13,16 @@ from PIL import Image
 
 from analysis.errors import ImageError, NetError, ParameterError
 
-
-def _call(fn, prop_id, *args):
-    """Run a callback function with Dash's callback context saying `prop_id` fired (Dash's unit-test recipe)."""
-    from dash._callback_context import context_value
-    from dash._utils import AttributeDict
-
-    def run():
-        context_value.set(AttributeDict(triggered_inputs=[{"prop_id": prop_id, "value": None}]))
-        return fn(*args)
-
-    return copy_context().run(run)
+from dash_helpers import call_callback as _call
+from dash_helpers import data_url
+from dash_helpers import text_of as _text
 
 
 def _data_url(raw: bytes, mime="image/png") -> str:
-    return f"data:{mime};base64," + base64.b64encode(raw).decode()
+    return data_url(raw, mime)
+
+
+
 
 
 def _png(arr) -> bytes:
@@ -56,16 +50,6 @@ def _page_layout(name: str):
 
     return next(p["layout"] for p in dash.page_registry.values() if p["module"].endswith("." + name))
 
-
-def _text(component) -> str:
-    """All text inside a Dash component tree."""
-    if component is None:
-        return ""
-    if isinstance(component, (str, int, float)):
-        return str(component)
-    if isinstance(component, (list, tuple)):
-        return " ".join(_text(c) for c in component)
-    return _text(getattr(component, "children", None))
 
 
 # --------------------------------------------------------------------------- uploads

@@ -9,14 +9,12 @@ must come back as one line in the page.
 
 from __future__ import annotations
 
-import base64
 import csv
 import dataclasses
 import io
 import json
 import sys
 import zipfile
-from contextvars import copy_context
 
 import numpy as np
 import pytest
@@ -25,6 +23,11 @@ from dash.exceptions import PreventUpdate
 from analysis.nets import parse_substrate
 from analysis.optics import ScreenGeometry
 from analysis.rfactor import pendry_r
+
+from dash_helpers import call_callback as _call
+from dash_helpers import data_url as _data_url
+from dash_helpers import text_of as _text
+
 
 N_PX = 256
 ENERGIES = np.arange(130.0, 190.0, 2.0)  # 30 frames
@@ -77,30 +80,7 @@ def write_series(folder, energies=ENERGIES):
     return stack, side
 
 
-def _call(fn, prop_id, *args):
-    """Run a callback function with Dash's callback context saying `prop_id` fired."""
-    from dash._callback_context import context_value
-    from dash._utils import AttributeDict
 
-    def run():
-        context_value.set(AttributeDict(triggered_inputs=[{"prop_id": prop_id, "value": None}]))
-        return fn(*args)
-
-    return copy_context().run(run)
-
-
-def _data_url(raw: bytes, mime="application/octet-stream") -> str:
-    return f"data:{mime};base64," + base64.b64encode(raw).decode()
-
-
-def _text(component) -> str:
-    if component is None:
-        return ""
-    if isinstance(component, (str, int, float)):
-        return str(component)
-    if isinstance(component, (list, tuple)):
-        return " ".join(_text(c) for c in component)
-    return _text(getattr(component, "children", None))
 
 
 def _csv(energies, name="energies.csv") -> str:
