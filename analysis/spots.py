@@ -706,7 +706,7 @@ def estimate_background(image, mask=None, *, block_px: int = 32, exclude=None,
         kn = keep.sum(axis=1)
         vals = np.where(keep, blocks, 0.0).astype(np.float64)
         mean = vals.sum(axis=1) / np.maximum(kn, 1)
-        var = (np.where(keep, (blocks - mean[:, None]) ** 2, 0.0)).sum(axis=1) / np.maximum(kn - 1, 1)
+        var = np.maximum((vals * vals).sum(axis=1) - kn * mean * mean, 0.0) / np.maximum(kn - 1, 1)
         # noise from differences of horizontal neighbours: a smooth gradient across the block
         # does not count as noise (independent pixels: Var(a − b) = 2 Var)
         pair = keep[:, :-1] & keep[:, 1:] & ((np.arange(b * b - 1) % b) != b - 1)[None, :]
@@ -743,8 +743,9 @@ def estimate_background(image, mask=None, *, block_px: int = 32, exclude=None,
         dm = _check_mask(dark_mask, img.shape, "dark_mask")
         if dm.sum() >= 200:
             dv = img[dm]
-            d_med = float(np.median(dv))
-            d_sd = 1.4826 * float(np.median(np.abs(dv - d_med)))
+            dq = dv[:: max(1, len(dv) // 50_000)]  # median and MAD from ≤ 10⁵ pixels are plenty
+            d_med = float(np.median(dq))
+            d_sd = 1.4826 * float(np.median(np.abs(dq - d_med)))
             inl = np.abs(dv - d_med) < 5 * max(d_sd, 0.5)
             dark_level = float(dv[inl].mean())
             dark_var = float(dv[inl].var())
@@ -876,7 +877,35 @@ def _gauss_kernel_norm(sigma: float) -> float:
 
 
 def _matched(res: np.ndarray, sigma: float) -> np.ndarray:
-    return ndi.gaussian_filter(res, sigma, truncate=3.0, mode="constant")
+    rad = int(3.0 * sigma + 0.5)
+    return _by_row_strips(lambda a: ndi.gaussian_filter(a, sigma, truncate=3.0, mode="constant"), res, rad)
+
+
+_POOL = None
+
+
+def _by_row_strips(func, a: np.ndarray, halo: int) -> np.ndarray:
+    """func(a) computed as two row strips in two threads (ndimage releases the GIL).
+
+    `func` must be a local filter reaching at most `halo` rows; each strip
+    carries that many rows of its neighbour, so the result equals func(a)
+    exactly. Small images are done in one call.
+    """
+    global _POOL
+    m = a.shape[0]
+    if m < 256 or a.size < 200_000 or halo >= m // 4:
+        return func(a)
+    if _POOL is None:
+        from concurrent.futures import ThreadPoolExecutor
+
+        _POOL = ThreadPoolExecutor(max_workers=2, thread_name_prefix="recinet-filter")
+    h = m // 2
+    top = _POOL.submit(func, a[: h + halo])
+    bottom = func(a[h - halo:])
+    out = np.empty(a.shape, dtype=bottom.dtype)
+    out[h:] = bottom[halo:]
+    out[:h] = top.result()[:h]
+    return out
 
 
 def _maxima(s: np.ndarray, thr: float, valid: np.ndarray) -> np.ndarray:
@@ -1036,7 +1065,7 @@ def _render(shape, rc, amp, sr, st, u, half) -> np.ndarray:
     val = amp[:, None, None] * np.exp(-0.5 * (rho**2 / sr[:, None, None] ** 2 + tau**2 / st[:, None, None] ** 2))
     ok = (rr >= 0) & (rr < shape[0]) & (cc >= 0) & (cc < shape[1])
     rr, cc = np.broadcast_to(rr, val.shape), np.broadcast_to(cc, val.shape)
-    np.add.at(out, (rr * shape[1] + cc)[ok], val[ok])
+    out = np.bincount((rr * shape[1] + cc)[ok], weights=val[ok], minlength=out.size)
     return out.reshape(shape)
 
 
@@ -1626,20 +1655,16 @@ def measure_image(image, *, sigma_px: float | None = 2.0, min_snr: float = 5.0, 
         center_rc = gsh.center_rc if gsh.center_rc is not None else scr.center_rc
     bg = estimate_background(img, valid, block_px=block_px, dark_mask=dark)
     s = 2.0 if sigma_px is None else float(sigma_px)
-    if sigma_px is None:
-        first = find_spots(img, sigma_px=s, min_snr=min_snr, mask=valid, background=bg, center_rc=center_rc,
-                           saturation_level=sat, **spot_kw)
-        good = (first.flags == 0) & (first.peak_snr > 10)
-        if good.sum() >= 3:
-            s = float(np.median(np.sqrt(first.fwhm_radial_px[good] * first.fwhm_tangential_px[good])) / _FWHM)
-            s = min(max(s, 0.5), 20.0)
-        rc1, amp1 = first.rc, first.amplitude
-    else:  # detection only: where the spots are and roughly how bright
-        res = np.where(valid, img - bg.background, 0.0).astype(np.float32)
-        noise_f = np.maximum(bg.noise, 1e-6) * _gauss_kernel_norm(s)
-        f1 = _matched(res, s)
-        rc1 = _maxima(f1 / noise_f, min_snr, valid)
-        amp1 = 2.0 * f1[rc1[:, 0], rc1[:, 1]] if len(rc1) else np.zeros(0)
+    # detection only: where the spots are and roughly how bright
+    res = np.where(valid, img - bg.background, 0.0).astype(np.float32)
+    rc1, amp1, snr1 = _detect(res, bg, valid, s, min_snr)
+    if sigma_px is None:  # the spot size from the brightest isolated spots
+        s_new = _sigma_from_bright(res, bg, valid, None if sat is None else img < sat - 0.5, rc1, snr1, s,
+                                   np.asarray(center_rc, float))
+        if s_new is not None:
+            s = s_new
+            if abs(math.log(s / 2.0)) > math.log(1.3):  # a filter matched to the real spot size
+                rc1, amp1, snr1 = _detect(res, bg, valid, s, min_snr)
     # second background pass with the spots masked out, out to where a spot falls below ½ σ of noise
     excl = np.zeros(img.shape, bool)
     if len(rc1):
@@ -1651,6 +1676,43 @@ def measure_image(image, *, sigma_px: float | None = 2.0, min_snr: float = 5.0, 
     spots = find_spots(img, sigma_px=s, min_snr=min_snr, mask=valid, background=bg2, center_rc=center_rc,
                        saturation_level=sat, **spot_kw)
     return Measurement(spots, scr, gsh, bg2, valid, s)
+
+
+def _detect(res, bg, valid, s, min_snr):
+    """Matched-filter maxima (row, col), rough amplitudes and detection SNR (no fitting)."""
+    noise_f = np.maximum(bg.noise, 1e-6) * _gauss_kernel_norm(s)
+    f1 = _matched(res, s)
+    snr = f1 / noise_f
+    rc = _maxima(snr, min_snr, valid)
+    if not len(rc):
+        return rc, np.zeros(0), np.zeros(0)
+    return rc, 2.0 * f1[rc[:, 0], rc[:, 1]], snr[rc[:, 0], rc[:, 1]]
+
+
+def _sigma_from_bright(res, bg, valid, unsaturated, rc, snr, s0, centre_rc, n_max: int = 40):
+    """Median Gaussian σ (px) of up to `n_max` bright, isolated spots; None when fewer than 3 fit.
+
+    Spots closer than 6 σ₀ to another detection are left out (their fits pull
+    on each other); the window is the one :func:`find_spots` uses for σ₀.
+    """
+    if len(rc) < 3:
+        return None
+    from scipy.spatial import cKDTree
+
+    d, _ = cKDTree(rc).query(rc, k=2)
+    pick = np.flatnonzero((d[:, 1] > 6.0 * s0) & (snr > 15.0))
+    pick = pick[np.argsort(-snr[pick])][:n_max]
+    if len(pick) < 3:
+        return None
+    ok_fit = valid if unsaturated is None else valid & unsaturated
+    half = max(3, int(math.ceil(3.0 * s0)))
+    fit = _fit_candidates(_Fitter(half), res, np.maximum(bg.noise, 1e-6), ok_fit, valid, rc[pick].astype(float),
+                          np.zeros(res.shape, np.float32), centre_rc, bg.gain_adu, s0)
+    noise_at = bg.noise[rc[pick, 0], rc[pick, 1]]
+    good = (fit["flags"] == 0) & (fit["amp"] > 10.0 * np.maximum(noise_at, 1e-9))
+    if good.sum() < 3:
+        return None
+    return float(min(max(np.median(np.sqrt(fit["sr"][good] * fit["st"][good])), 0.5), 20.0))
 
 
 def _disks(shape, rc, rad) -> np.ndarray:

@@ -354,3 +354,13 @@ def test_measure_from_a_loaded_png_with_unknown_spot_width(tmp_path):
     assert abs(m.sigma_px - math.sqrt(2.6**2 + 1 / 12)) < 0.15
     n_true, n_hit, n_rep, n_false, ratio2 = _score(m.spots.rc, _truth(im), tol=5.0)
     assert n_hit == n_true and n_false == 0
+
+
+@pytest.mark.parametrize("sigma", [1.2, 4.0])
+def test_unknown_spot_width_far_from_the_first_guess(sigma):
+    # truth: the renderer's Gaussian σ; a pixel adds 1/12 px² to σ² (box integration)
+    im = _frame(7, sigma=sigma, snr=(15.0, 200.0))
+    m = measure_image(im.image, sigma_px=None)
+    assert abs(m.sigma_px - math.sqrt(sigma**2 + 1 / 12)) < 0.1 * sigma
+    n_true, n_hit, n_rep, n_false, ratio2 = _score(m.spots.rc, _truth(im), tol=max(5.0, 2 * sigma))
+    assert n_hit == n_true and n_false == 0
