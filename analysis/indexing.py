@@ -34,7 +34,8 @@ from scipy.spatial import cKDTree
 from .calibration import estimate_center_from_pairs
 from .errors import FitError, NetError
 from .nets import Net2D, classify_net, point_group, reciprocal, reduce_net
-from .optics import ScreenGeometry, local_jacobian, momentum_to_pixels, pixels_to_momentum, wavelength_A
+from .optics import (ScreenGeometry, local_jacobian, momentum_to_pixels, pixel_derivatives, pixels_to_momentum,
+                     wavelength_A)
 from .superstructure import (
     classify_superstructure,
     coverage,
@@ -508,6 +509,9 @@ def _is_rational(hk: np.ndarray, max_den: int, tol: float) -> bool:
     return False
 
 
+_GEOM_COLUMN = {"center_x_px": 0, "center_y_px": 1, "scale_px": 2, "rotation_deg": 3, "distortion": 4}
+
+
 def _refine(xy, hk, energy_eV, geom, lattice, free, fit_lattice):
     """Fit geometry (and optionally the reciprocal basis) to spots of known indices.
 
@@ -555,9 +559,21 @@ def _refine(xy, hk, energy_eV, geom, lattice, free, fit_lattice):
         g_, lat = unpack(p)
         return np.nan_to_num((_screen_xy(hk @ lat, energy_eV, g_) - xy).ravel(), nan=1e3)
 
+    cols = [_GEOM_COLUMN[n] for n in names] + ([5, 6] if ell else [])
+
+    def jac(p):  # exact derivatives of the camera model (see optics.pixel_derivatives)
+        g_, lat = unpack(p)
+        xy_, d_k, d_g = pixel_derivatives(hk @ lat, energy_eV, g_)
+        parts = [d_g[:, :, cols]]
+        if fit_lattice:  # k_j = Σ_i hk_i L_ij  →  ∂k_j/∂L_ij = hk_i
+            parts.append(np.einsum("kab,ki->kaib", d_k, hk).reshape(len(hk), 2, 4))
+        j = np.concatenate(parts, axis=2).reshape(2 * len(hk), -1)
+        j[~np.isfinite(xy_.ravel())] = 0.0
+        return np.nan_to_num(j)
+
     if len(xy) * 2 <= len(p0):
         return geom, lattice, np.zeros((len(xy), 2)), {}
-    sol = least_squares(resid, p0, bounds=(lo, hi), x_scale="jac", method="trf")
+    sol = least_squares(resid, p0, jac=jac, bounds=(lo, hi), x_scale="jac", method="trf")
     g_fit, lat = unpack(sol.x)
     res = resid(sol.x).reshape(-1, 2)
     dof = max(res.size - len(p0), 1)

@@ -38,6 +38,8 @@ __all__ = [
     "momentum_to_pixels",
     "pixels_to_momentum",
     "local_jacobian",
+    "pixel_derivatives",
+    "GEOMETRY_PARAMETERS",
     "H2_OVER_2ME_EV_A2",
 ]
 
@@ -281,3 +283,92 @@ def local_jacobian(energy_eV: float, geom: ScreenGeometry, *, relativistic: bool
     flip = np.diag([1.0, -1.0])  # y up → y down
     # dr/d(sin θ) at θ = 0 is s (1 − d) / (1 − d) = s
     return geom.scale_px * lam * (flip @ _ellipse(geom) @ rot)
+
+
+#: Parameters of :func:`pixel_derivatives`, in its column order: centre (px), ln scale,
+#: rotation (deg), distortion R/L, and the ellipse pair (e1, e2) = (ε − 1)(cos 2β, sin 2β).
+GEOMETRY_PARAMETERS = ("center_x_px", "center_y_px", "log_scale", "rotation_deg", "distortion", "e1", "e2")
+
+
+def pixel_derivatives(k_par: np.ndarray, energy_eV: float, geom: ScreenGeometry, *,
+                      relativistic: bool = False) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Pixels of beams with their exact derivatives (for least-squares fits of the camera).
+
+    Parameters
+    ----------
+    k_par : (K, 2) ndarray of float
+        Outgoing parallel momentum, Å⁻¹ without 2π (as :func:`momentum_to_pixels`).
+
+    Returns
+    -------
+    xy_px : (K, 2) ndarray
+        As :func:`momentum_to_pixels` (NaN beyond the screen).
+    d_k : (K, 2, 2) ndarray
+        d(x, y)/d(k_x, k_y), pixels per Å⁻¹.
+    d_geom : (K, 2, 7) ndarray
+        d(x, y)/d(parameter) for the parameters named in :data:`GEOMETRY_PARAMETERS`.
+        Both are NaN where the beam misses the screen.
+
+    Examples
+    --------
+    >>> g = ScreenGeometry(512.0, 480.0, 700.0, distortion=0.3, rotation_deg=12.0)
+    >>> xy, dk, dg = pixel_derivatives([[0.0, 0.0]], 100.0, g)
+    >>> bool(np.allclose(dk[0], local_jacobian(100.0, g)))
+    True
+    """
+    k = np.asarray(k_par, dtype=np.float64).reshape(-1, 2)
+    lam = wavelength_A(energy_eV, relativistic=relativistic)
+    d, sc_px = geom.distortion, geom.scale_px
+    kn = np.hypot(k[:, 0], k[:, 1])
+    st = lam * kn
+    visible = st <= math.sin(math.radians(geom.acceptance_deg)) + 1e-12
+    with np.errstate(invalid="ignore", divide="ignore"):
+        st_ok = np.where(st < 1.0, st, np.nan)
+        c = np.sqrt(1.0 - st_ok**2)
+        den = 1.0 - d * c
+        f = st_ok * (1.0 - d) / den  # r / s
+        df_dst = (1.0 - d) * (1.0 - d / c) / den**2
+        df_dd = st_ok * (c - 1.0) / den**2
+    phi0 = np.arctan2(k[:, 1], k[:, 0])
+    phi = phi0 + math.radians(geom.rotation_deg)
+    cp, sp = np.cos(phi), np.sin(phi)
+    r = sc_px * f
+    v = np.stack([r * cp, r * sp], axis=1)  # before the ellipse, y up
+    e = _ellipse(geom)
+    # dv/dk: radial part along (cos φ, sin φ), azimuthal part along (−sin φ, cos φ)
+    small = kn < 1e-12
+    kn_s = np.where(small, 1.0, kn)
+    u0 = np.stack([k[:, 0] / kn_s, k[:, 1] / kn_s], axis=1)  # unit k (surface axes)
+    t0 = np.stack([-u0[:, 1], u0[:, 0]], axis=1)
+    radial = np.stack([cp, sp], axis=1)
+    azim = np.stack([-sp, cp], axis=1)
+    dr_dk = (sc_px * df_dst * lam)[:, None] * u0  # (K, 2)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        dphi_dk = t0 / kn_s[:, None]
+    dv_dk = radial[:, :, None] * dr_dk[:, None, :] + (r[:, None, None] * azim[:, :, None]) * dphi_dk[:, None, :]
+    if small.any():  # at k = 0: the linear map s λ f'(0) R(rotation)
+        cr, sr = math.cos(math.radians(geom.rotation_deg)), math.sin(math.radians(geom.rotation_deg))
+        dv_dk[small] = sc_px * lam * (1.0 - d) / (1.0 - d) * np.array([[cr, -sr], [sr, cr]])
+    flip = np.array([1.0, -1.0])
+    d_k = flip[None, :, None] * np.einsum("ij,kjl->kil", e, dv_dk)
+    xy_up = v @ e.T
+    xy = np.column_stack([geom.center_x_px + xy_up[:, 0], geom.center_y_px - xy_up[:, 1]])
+    d_geom = np.zeros((len(k), 2, 7))
+    d_geom[:, 0, 0] = 1.0
+    d_geom[:, 1, 1] = 1.0
+    d_geom[:, :, 2] = flip * xy_up
+    d_geom[:, :, 3] = flip * ((r[:, None] * azim) @ e.T) * (math.pi / 180.0)
+    d_geom[:, :, 4] = flip * (((sc_px * df_dd)[:, None] * radial) @ e.T)
+    eps1 = geom.ellipticity - 1.0
+    b2 = math.radians(2.0 * geom.ellipse_deg)
+    e1, e2 = eps1 * math.cos(b2), eps1 * math.sin(b2)
+    h = math.hypot(e1, e2)
+    c1, c2 = (e1 / h, e2 / h) if h > 1e-12 else (0.0, 0.0)
+    de1 = 0.5 * np.array([[c1 + 1.0, 0.0], [0.0, c1 - 1.0]])
+    de2 = 0.5 * np.array([[c2, 1.0], [1.0, c2]])
+    d_geom[:, :, 5] = flip * (v @ de1.T)
+    d_geom[:, :, 6] = flip * (v @ de2.T)
+    xy[~visible] = np.nan
+    d_k[~visible] = np.nan
+    d_geom[~visible] = np.nan
+    return xy, d_k, d_geom

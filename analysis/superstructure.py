@@ -532,29 +532,27 @@ def _wood_cells(substrate: Net2D, lattice_xy: np.ndarray, *, index: int, tol: fl
     # rotating the substrate basis by a symmetry rotation gives an equivalent basis,
     # so the Wood angle counts modulo the smallest rotation of the substrate
     step = 2 * math.pi / sum(1 for op in point_group(substrate) if op.kind == "rotation")
+    # every (p, q) pair at once: q ∥ R(φ_p) a2 (same sense), area index × area(L), and for
+    # index 2 the cell centre on the lattice; for each p the shortest such q makes the cell
+    phi = np.arctan2(vecs[:, 1], vecs[:, 0]) - ang_a1
+    phi = (phi + math.pi) % (2 * math.pi) - math.pi
+    phi_w = (phi + step / 2) % step - step / 2  # in [−step/2, step/2)
+    phi_w = np.where(np.abs(phi_w + step / 2) < 1e-9, step / 2, phi_w)
+    c, s = np.cos(phi), np.sin(phi)
+    u = np.column_stack([c * a2[0] - s * a2[1], s * a2[0] + c * a2[1]]) / substrate.b  # (P, 2)
+    cross = u[:, 1, None] * vecs[None, :, 0] - u[:, 0, None] * vecs[None, :, 1]  # (P, Q)
+    dot = u @ vecs.T
+    area = np.abs(vecs[:, 0, None] * vecs[None, :, 1] - vecs[:, 1, None] * vecs[None, :, 0])
+    ok = (np.abs(cross) <= tol * lengths[None, :]) & (dot > 0) & \
+        (np.abs(area - index * area_l) <= 1e-6 * area_l * index)
+    if index == 2:
+        cc = ((vecs[:, None, :] + vecs[None, :, :]) / 2.0) @ inv_l
+        ok &= np.all(np.abs(cc - np.rint(cc)) <= 1e-6, axis=2)
     out = []
-    for p, lp in zip(vecs, lengths):
-        phi = math.atan2(p[1], p[0]) - ang_a1
-        phi = (phi + math.pi) % (2 * math.pi) - math.pi
-        phi_w = (phi + step / 2) % step - step / 2  # in [−step/2, step/2)
-        if abs(phi_w + step / 2) < 1e-9:
-            phi_w = step / 2
-        c, s = math.cos(phi), math.sin(phi)
-        u = np.array([c * a2[0] - s * a2[1], s * a2[0] + c * a2[1]]) / substrate.b
-        cross = vecs[:, 0] * u[1] - vecs[:, 1] * u[0]
-        dot = vecs @ u
-        par = (np.abs(cross) <= tol * lengths) & (dot > 0)
-        for q, lq in zip(vecs[par], lengths[par]):
-            area = abs(p[0] * q[1] - p[1] * q[0])
-            if abs(area - index * area_l) > 1e-6 * area_l * index:
-                continue
-            if index == 2:
-                cc = ((p + q) / 2.0) @ inv_l
-                if np.any(np.abs(cc - np.rint(cc)) > 1e-6):
-                    continue
-            out.append((round(abs(math.degrees(phi_w)), 6), math.degrees(phi_w), lp / substrate.a,
-                        lq / substrate.b, p, q, math.degrees(phi)))
-            break  # the shortest parallel q makes the cell for this p
+    for i in np.flatnonzero(ok.any(axis=1)):
+        j = int(np.argmax(ok[i]))
+        out.append((round(abs(math.degrees(phi_w[i])), 6), math.degrees(phi_w[i]), lengths[i] / substrate.a,
+                    lengths[j] / substrate.b, vecs[i], vecs[j], math.degrees(phi[i])))
     # least Wood rotation, R+ before R−, m ≥ n, then the cell nearest the substrate axes themselves
     out.sort(key=lambda t: (t[0], -round(t[1], 6), -round(t[2], 9), round(abs(t[6]), 6), -round(t[6], 6)))
     return out
@@ -587,6 +585,19 @@ def wood_notation(substrate: Net2D, matrix, *, tol: float = 1e-6) -> WoodNotatio
     (√3×√3)R30° c(2×2)
     """
     m = as_matrix(matrix)
+    key = (substrate.vectors.tobytes(), m.tobytes(), float(tol))
+    hit = _WOOD_CACHE.get(key)
+    if hit is None:
+        if len(_WOOD_CACHE) >= 4096:
+            _WOOD_CACHE.clear()
+        hit = _WOOD_CACHE[key] = _wood_notation(substrate, m, tol)
+    return hit
+
+
+_WOOD_CACHE: dict = {}  # the search names the same cells many times; results are immutable
+
+
+def _wood_notation(substrate: Net2D, m: np.ndarray, tol: float) -> WoodNotation:
     lattice_xy = m @ substrate.vectors
     prim = _wood_cells(substrate, lattice_xy, index=1, tol=max(tol, 1e-9))
     cent = _wood_cells(substrate, lattice_xy, index=2, tol=max(tol, 1e-9))
@@ -604,6 +615,8 @@ def wood_notation(substrate: Net2D, matrix, *, tol: float = 1e-6) -> WoodNotatio
     p_text = text(prim[0], "p") if prim else None
     c_text = text(cent[0], "c") if cent else None
     basis = _snap(np.array([prim[0][4], prim[0][5]]) @ inv_v) if prim else None
+    if basis is not None:
+        basis.setflags(write=False)
     use_centered = cent and abs(cent[0][1]) < 0.05 and (not prim or abs(prim[0][1]) >= 0.05)
     if use_centered:
         _, phi, mm, nn = cent[0][:4]
@@ -724,7 +737,7 @@ def nice_matrix(substrate: Net2D, matrix) -> np.ndarray:
     if w.basis is not None:
         b = w.basis
         if np.sign(np.linalg.det(b)) == np.sign(np.linalg.det(m)):
-            return b
+            return b.copy()
     red, _ = reduce_net(Net2D(m @ substrate.vectors))
     return _snap(red.vectors @ np.linalg.inv(substrate.vectors))
 

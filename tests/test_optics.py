@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import math
 
 import numpy as np
@@ -14,7 +15,9 @@ from analysis.optics import (
     ScreenGeometry,
     exit_angles_deg,
     local_jacobian,
+    GEOMETRY_PARAMETERS,
     momentum_to_pixels,
+    pixel_derivatives,
     pixels_to_momentum,
     sin_theta,
     wavelength_A,
@@ -173,6 +176,44 @@ def test_local_jacobian_matches_finite_differences(seed):
     fd = np.column_stack(cols)
     jac = local_jacobian(e, geom)
     assert_allclose(jac, fd, rtol=1e-5, atol=1e-5 * np.abs(jac).max())
+
+
+def _nudged(geom: ScreenGeometry, name: str, dx: float) -> ScreenGeometry:
+    d = geom.to_dict()
+    if name == "log_scale":
+        d["scale_px"] *= math.exp(dx)
+    elif name in ("e1", "e2"):
+        eps, b = d["ellipticity"] - 1.0, math.radians(2.0 * d["ellipse_deg"])
+        e1, e2 = eps * math.cos(b), eps * math.sin(b)
+        e1, e2 = (e1 + dx, e2) if name == "e1" else (e1, e2 + dx)
+        d["ellipticity"], d["ellipse_deg"] = 1.0 + math.hypot(e1, e2), math.degrees(0.5 * math.atan2(e2, e1)) % 180
+    else:
+        d[name] += dx
+    return ScreenGeometry(**d)
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_pixel_derivatives_match_central_differences(seed):
+    # the exact derivatives used by the camera fits against central differences of the model itself
+    rng = np.random.default_rng(300 + seed)
+    geom = dataclasses.replace(_random_geometry(rng), ellipticity=1.0 + rng.uniform(0.01, 0.06),
+                               ellipse_deg=rng.uniform(0, 180))
+    e = rng.uniform(40.0, 300.0)
+    k = rng.normal(0.0, 0.25, (8, 2))
+    k[0] = 0.0  # the specular beam, where the polar form is singular
+    xy, d_k, d_g = pixel_derivatives(k, e, geom)
+    assert_allclose(xy, momentum_to_pixels(k, e, geom)[0], atol=1e-9)
+    h = 1e-6
+    for j in range(2):
+        kp, km = k.copy(), k.copy()
+        kp[:, j] += h
+        km[:, j] -= h
+        fd = (momentum_to_pixels(kp, e, geom)[0] - momentum_to_pixels(km, e, geom)[0]) / (2 * h)
+        assert_allclose(d_k[:, :, j], fd, rtol=1e-5, atol=1e-5 * np.nanmax(np.abs(d_k)))
+    for i, name in enumerate(GEOMETRY_PARAMETERS):
+        fd = (momentum_to_pixels(k, e, _nudged(geom, name, h))[0] -
+              momentum_to_pixels(k, e, _nudged(geom, name, -h))[0]) / (2 * h)
+        assert_allclose(d_g[:, :, i], fd, rtol=1e-4, atol=1e-4 * max(np.nanmax(np.abs(d_g[:, :, i])), 1.0)), name
 
 
 @pytest.mark.parametrize("kw, match", [
