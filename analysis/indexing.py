@@ -701,8 +701,12 @@ def _explained(hk: np.ndarray, m: np.ndarray, a_star: np.ndarray, tol_g: float) 
 
 def _refine_matrix(hk: np.ndarray, m: np.ndarray, a_star: np.ndarray, tol_g: float) -> np.ndarray:
     """Least-squares reciprocal basis of matrix m from the spots it explains."""
+    prev = None
     for _ in range(3):
         ok = _explained(hk, m, a_star, tol_g)
+        if prev is not None and np.array_equal(ok, prev):
+            return m  # the same spots give the same fit
+        prev = ok
         n = np.rint(hk[ok] @ m.T)
         if len(n) < 3 or np.linalg.matrix_rank(n) < 2:
             return m
@@ -767,16 +771,17 @@ def _candidate_vectors(hk: np.ndarray, integer: np.ndarray, a_star: np.ndarray, 
 
 def _domain_matrices(m: np.ndarray, ops) -> tuple[list[np.ndarray], list[str]]:
     """Distinct domains M W (W in the substrate group), right-handed like M, with the op names."""
-    mats, names = [], []
-    for op in ops:
-        mw = m @ op.matrix
-        if np.linalg.det(mw) * np.linalg.det(m) < 0:
-            mw = mw[::-1].copy()
-        if any(_same_lattice_fast(mw, x, 1e-6) for x in mats):
-            continue
-        mats.append(mw)
-        names.append(op.name)
-    return mats, names
+    w = np.array([op.matrix for op in ops], dtype=np.float64)
+    mw = np.einsum("ij,gjk->gik", m, w)
+    flip = np.linalg.det(mw) * np.linalg.det(m) < 0
+    mw[flip] = mw[flip][:, ::-1]
+    # same lattice: mw_i mw_j⁻¹ is an integer matrix of determinant ±1
+    t = np.einsum("aij,bjk->abik", mw, np.linalg.inv(mw))
+    r = np.rint(t)
+    same = np.all(np.abs(t - r) <= 1e-6, axis=(2, 3)) & \
+        (np.abs(np.abs(r[..., 0, 0] * r[..., 1, 1] - r[..., 0, 1] * r[..., 1, 0]) - 1) < 0.5)
+    keep = [g for g in range(len(w)) if not same[g, :g].any()]
+    return [mw[g].copy() for g in keep], [ops[g].name for g in keep]
 
 
 @dataclass(frozen=True, eq=False)
@@ -950,9 +955,12 @@ def _population_test(hk: np.ndarray, by: np.ndarray, intensity: np.ndarray, ops)
     if sel.sum() < 6:
         return None
     li = np.log(np.clip(intensity[sel], 1e-9, None))
-    inv_t = [np.linalg.inv(op.matrix).T for op in ops]
-    keys = [max(tuple(np.round(h @ t, 3) + 0.0) for t in inv_t) for h in hk[sel]]
-    _, cls = np.unique(np.array(keys), axis=0, return_inverse=True)
+    inv_t = np.array([np.linalg.inv(op.matrix).T for op in ops])
+    # class key: the lexicographically largest image of the beam index under the group
+    img = np.round(np.einsum("si,gij->sgj", hk[sel], inv_t), 3) + 0.0  # (S, G, 2)
+    k0 = img[:, :, 0].max(axis=1)
+    k1 = np.where(img[:, :, 0] == k0[:, None], img[:, :, 1], -np.inf).max(axis=1)
+    _, cls = np.unique(np.column_stack([k0, k1]), axis=0, return_inverse=True)
     cls = cls.ravel()
     dom = by[sel]
 
