@@ -26,16 +26,16 @@ import dataclasses
 import math
 from dataclasses import dataclass, field
 from fractions import Fraction
+from types import SimpleNamespace
 
 import numpy as np
-from scipy.optimize import least_squares
 from scipy.spatial import cKDTree
 
 from .calibration import estimate_center_from_pairs
 from .errors import FitError, NetError
 from .nets import Net2D, classify_net, point_group, reciprocal, reduce_net
-from .optics import (ScreenGeometry, local_jacobian, momentum_to_pixels, pixel_derivatives, pixels_to_momentum,
-                     wavelength_A)
+from .optics import (ScreenGeometry, local_jacobian, momentum_to_pixels, pixels_to_momentum, project,
+                     project_derivatives, wavelength_A)
 from .superstructure import (
     classify_superstructure,
     coverage,
@@ -282,16 +282,16 @@ def fit_substrate(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity
     bright = sorted(order, key=lambda i: -inten[i])[:n_candidates]
     cands = list(dict.fromkeys(near + bright))
     fits: list[SubstrateFit] = []
-    tried: list[np.ndarray] = []
+    tried_inv: list[np.ndarray] = []  # inverses of the start bases tried
     for a_star in _hint_variants(hint):
         short = _distinct_short_vectors(a_star)
         for i in cands:
             v = np.array([xy[i, 0] - center[0], center[1] - xy[i, 1]])  # y up
             for e in short:
                 start = _similarity_basis(a_star, e, v)
-                if any(same_lattice(start, t, tol=0.08) for t in tried):
+                if tried_inv and _any_same_lattice(start, np.array(tried_inv), 0.08):
                     continue  # a symmetry-equivalent start was tried already
-                tried.append(start)
+                tried_inv.append(np.linalg.inv(start))
                 f = _try_substrate(xy, tree, inten, energy_eV, a_star, e, v, center, geometry, lam, tol_px,
                                    r_max, r_min, valid_mask, prior, prior_sigma, fit_lattice, hint)
                 if f is not None and not any(_same_reading(f, g) for g in fits):
@@ -304,6 +304,14 @@ def fit_substrate(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity
     conf = np.exp(scores - scores.max())
     conf /= conf.sum()
     return [dataclasses.replace(f, confidence=float(c)) for f, c in zip(fits, conf)][:max_results]
+
+
+def _any_same_lattice(m: np.ndarray, inverses: np.ndarray, tol: float) -> bool:
+    """Whether m spans the lattice of any basis whose inverse is in `inverses` (T, 2, 2)."""
+    t = np.einsum("ij,tjk->tik", m, inverses)
+    r = np.rint(t)
+    det = r[:, 0, 0] * r[:, 1, 1] - r[:, 0, 1] * r[:, 1, 0]
+    return bool(np.any(np.all(np.abs(t - r) <= tol, axis=(1, 2)) & (np.abs(np.abs(det) - 1) < 0.5)))
 
 
 def _distinct_short_vectors(a_star: np.ndarray) -> list[np.ndarray]:
@@ -374,7 +382,7 @@ def _try_substrate(xy, tree, inten, energy_eV, a_star, e, v, center, geometry, l
         if len(pi) < 2 or np.linalg.matrix_rank(hk_all[pi]) < 2:
             return None
         geom, lattice, _, _ = _refine(xy[oj], hk_all[pi], energy_eV, geom, lattice, free,
-                                      fit_lattice and rad == np.inf)
+                                      fit_lattice and rad == np.inf, rtol=1e-6)
     pred = _screen_xy(hk_all @ lattice, energy_eV, geom)
     pi, oj = _match(pred, tree, tol_px)
     if len(pi) < 3:
@@ -509,15 +517,69 @@ def _is_rational(hk: np.ndarray, max_den: int, tol: float) -> bool:
     return False
 
 
+def _bounded_lm(fun, jac, x0: np.ndarray, lo: np.ndarray, hi: np.ndarray, *, max_iter: int = 100,
+                rtol: float = 1e-10) -> tuple[np.ndarray, np.ndarray]:
+    """Levenberg–Marquardt for small problems with box bounds (steps projected onto the box).
+
+    Minimises ½|fun(x)|² with Marquardt's scaling (damping ∝ diag JᵀJ, like
+    ``x_scale="jac"``). Stops when a step lowers the cost by less than `rtol`
+    relatively or moves no parameter by more than `rtol` of its scale.
+    Returns (x, J(x)).
+
+    Examples
+    --------
+    >>> t = np.linspace(0, 1, 20); y = 2.0 * np.exp(-1.5 * t)
+    >>> f = lambda p: p[0] * np.exp(-p[1] * t) - y
+    >>> jf = lambda p: np.column_stack([np.exp(-p[1] * t), -p[0] * t * np.exp(-p[1] * t)])
+    >>> x, _ = _bounded_lm(f, jf, np.array([1.0, 0.5]), np.array([-9.0, 0.0]), np.array([9.0, 9.0]))
+    >>> print(np.round(x, 6))
+    [2.  1.5]
+    """
+    x = np.clip(np.asarray(x0, dtype=np.float64), lo, hi)
+    r = fun(x)
+    cost = float(r @ r)
+    j = jac(x)
+    mu = 1e-3
+    for _ in range(max_iter):
+        jtj = j.T @ j
+        g = j.T @ r
+        d = np.maximum(np.diag(jtj), 1e-12 * max(float(np.max(np.diag(jtj))), 1e-300))
+        accepted = False
+        for _ in range(12):
+            try:
+                step = -np.linalg.solve(jtj + mu * np.diag(d), g)
+            except np.linalg.LinAlgError:
+                mu *= 10.0
+                continue
+            x_new = np.clip(x + step, lo, hi)
+            r_new = fun(x_new)
+            c_new = float(r_new @ r_new)
+            if c_new < cost:
+                accepted = True
+                break
+            mu *= 4.0
+        if not accepted:
+            break
+        moved = np.abs(x_new - x) <= rtol * (np.abs(x) + 1e-8)
+        gain = cost - c_new
+        x, r, cost = x_new, r_new, c_new
+        j = jac(x)
+        mu = max(mu / 3.0, 1e-12)
+        if gain <= rtol * max(cost, 1e-300) or moved.all():
+            break
+    return x, j
+
+
 _GEOM_COLUMN = {"center_x_px": 0, "center_y_px": 1, "scale_px": 2, "rotation_deg": 3, "distortion": 4}
 
 
-def _refine(xy, hk, energy_eV, geom, lattice, free, fit_lattice):
+def _refine(xy, hk, energy_eV, geom, lattice, free, fit_lattice, *, rtol: float = 1e-10):
     """Fit geometry (and optionally the reciprocal basis) to spots of known indices.
 
     `free` names ScreenGeometry fields; ``"ellipticity"`` fits the axis ratio
     and its direction through (e1, e2) = (ε − 1)(cos 2β, sin 2β), which stays
     smooth at ε = 1. Fields are dropped when the spots cannot carry them.
+    `rtol` is the relative cost change that ends the fit (looser for trial stages).
     """
     base = geom.to_dict()
     # with a free lattice its own orientation replaces the camera rotation
@@ -539,7 +601,7 @@ def _refine(xy, hk, energy_eV, geom, lattice, free, fit_lattice):
             d["ellipticity"] = 1.0 + math.hypot(e1, e2)
             d["ellipse_deg"] = math.degrees(0.5 * math.atan2(e2, e1)) % 180.0
         lat = p[n_geo:].reshape(2, 2) if fit_lattice else lattice
-        return ScreenGeometry(**d), lat
+        return d, lat
 
     p0 = [math.log(base[n]) if n == "scale_px" else base[n] for n in names]
     lo = [0.0 if n == "distortion" else -np.inf for n in names]
@@ -555,15 +617,17 @@ def _refine(xy, hk, energy_eV, geom, lattice, free, fit_lattice):
         hi += [np.inf] * 4
     p0 = np.clip(np.array(p0, dtype=float), np.array(lo) + 1e-12, np.array(hi) - 1e-12)
 
-    def resid(p):
-        g_, lat = unpack(p)
-        return np.nan_to_num((_screen_xy(hk @ lat, energy_eV, g_) - xy).ravel(), nan=1e3)
+    lam = wavelength_A(energy_eV)
+
+    def resid(p):  # the camera fields as a plain namespace: no validation in the loop
+        d, lat = unpack(p)
+        return np.nan_to_num((project(hk @ lat, lam, SimpleNamespace(**d))[0] - xy).ravel(), nan=1e3)
 
     cols = [_GEOM_COLUMN[n] for n in names] + ([5, 6] if ell else [])
 
     def jac(p):  # exact derivatives of the camera model (see optics.pixel_derivatives)
-        g_, lat = unpack(p)
-        xy_, d_k, d_g = pixel_derivatives(hk @ lat, energy_eV, g_)
+        d, lat = unpack(p)
+        xy_, d_k, d_g = project_derivatives(hk @ lat, lam, SimpleNamespace(**d))
         parts = [d_g[:, :, cols]]
         if fit_lattice:  # k_j = Σ_i hk_i L_ij  →  ∂k_j/∂L_ij = hk_i
             parts.append(np.einsum("kab,ki->kaib", d_k, hk).reshape(len(hk), 2, 4))
@@ -573,14 +637,15 @@ def _refine(xy, hk, energy_eV, geom, lattice, free, fit_lattice):
 
     if len(xy) * 2 <= len(p0):
         return geom, lattice, np.zeros((len(xy), 2)), {}
-    sol = least_squares(resid, p0, jac=jac, bounds=(lo, hi), x_scale="jac", method="trf")
-    g_fit, lat = unpack(sol.x)
-    res = resid(sol.x).reshape(-1, 2)
+    x, j_fit = _bounded_lm(resid, jac, p0, np.array(lo, float), np.array(hi, float), rtol=rtol)
+    d_fit, lat = unpack(x)
+    g_fit = ScreenGeometry(**d_fit)
+    res = resid(x).reshape(-1, 2)
     dof = max(res.size - len(p0), 1)
     s2 = float(np.sum(res**2)) / dof
     sig = {}
     try:
-        cov = np.linalg.pinv(sol.jac.T @ sol.jac) * s2
+        cov = np.linalg.pinv(j_fit.T @ j_fit) * s2
         sd = np.sqrt(np.clip(np.diag(cov), 0, None))
         for n, sd_n in zip(names, sd[: len(names)]):
             sig[n] = float(sd_n * (g_fit.scale_px if n == "scale_px" else 1.0))

@@ -224,8 +224,16 @@ def momentum_to_pixels(k_par: np.ndarray, energy_eV: float, geom: ScreenGeometry
     >>> print(np.round(xy, 3).tolist(), vis.tolist())
     [[100.0, 100.0], [140.0, 100.0]] [True, True]
     """
+    return project(k_par, wavelength_A(energy_eV, relativistic=relativistic), geom)
+
+
+def project(k_par, lam: float, geom) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`momentum_to_pixels` for a wavelength `lam` (Å) already known (hot loops).
+
+    `geom` is a ScreenGeometry or any object with its fields (no validation here).
+    """
     k = np.asarray(k_par, dtype=np.float64).reshape(-1, 2)
-    st = wavelength_A(energy_eV, relativistic=relativistic) * np.hypot(k[:, 0], k[:, 1])
+    st = lam * np.hypot(k[:, 0], k[:, 1])
     visible = st <= math.sin(math.radians(geom.acceptance_deg)) + 1e-12
     phi = np.arctan2(k[:, 1], k[:, 0]) + math.radians(geom.rotation_deg)
     with np.errstate(invalid="ignore"):
@@ -316,8 +324,12 @@ def pixel_derivatives(k_par: np.ndarray, energy_eV: float, geom: ScreenGeometry,
     >>> bool(np.allclose(dk[0], local_jacobian(100.0, g)))
     True
     """
+    return project_derivatives(k_par, wavelength_A(energy_eV, relativistic=relativistic), geom)
+
+
+def project_derivatives(k_par, lam: float, geom) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """:func:`pixel_derivatives` for a wavelength `lam` (Å) already known (hot loops)."""
     k = np.asarray(k_par, dtype=np.float64).reshape(-1, 2)
-    lam = wavelength_A(energy_eV, relativistic=relativistic)
     d, sc_px = geom.distortion, geom.scale_px
     kn = np.hypot(k[:, 0], k[:, 1])
     st = lam * kn
