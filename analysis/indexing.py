@@ -866,9 +866,11 @@ class _Context:
     valid_mask: np.ndarray | None
     intensity: np.ndarray | None
     substrate: Net2D
+    max_denominator: int = 6
 
 
-def _context(hk, integer, substrate_fit: SubstrateFit, energy_eV, intensity, valid_mask, tol_px) -> _Context:
+def _context(hk, integer, substrate_fit: SubstrateFit, energy_eV, intensity, valid_mask, tol_px,
+             max_denominator: int = 6) -> _Context:
     hk = np.asarray(hk, dtype=np.float64).reshape(-1, 2)
     geom = substrate_fit.geometry
     a_star = substrate_fit.reciprocal_net.vectors
@@ -883,7 +885,7 @@ def _context(hk, integer, substrate_fit: SubstrateFit, energy_eV, intensity, val
                     ops=point_group(sub, tol=2e-3), tree=cKDTree(hk @ a_star), r_max=r_max,
                     g_max=math.sin(math.radians(min(geom.acceptance_deg, 80.0))) / lam,
                     valid_mask=valid_mask, intensity=None if intensity is None else np.asarray(intensity, float),
-                    substrate=sub)
+                    substrate=sub, max_denominator=int(max_denominator))
 
 
 def _score(ctx: _Context, matrix, *, all_domains: bool, satellites: bool, absent: bool = True) -> dict:
@@ -931,9 +933,15 @@ def _score(ctx: _Context, matrix, *, all_domains: bool, satellites: bool, absent
     u = int(frac.sum()) - e
     det = abs(float(np.linalg.det(mats[chosen[0]])))
     bound = (e - 0.25 * e_sat) - u - 1.0 * (len(chosen) - 1) - 0.5 * abs(math.log2(det))
+    if e_sat and ctx.intensity is not None:  # a layer's own beams outshine its multiple-scattering satellites
+        own = primary[chosen].any(axis=0) & frac
+        sat_only = covered & ~own
+        if own.any() and sat_only.any():
+            li = np.log(np.clip(ctx.intensity, 1e-9, None))
+            bound += math.tanh(float(np.median(li[own]) - np.median(li[sat_only])))
     sc = {"mats": [mats[i] for i in chosen], "names": [names[i] for i in chosen], "all_mats": mats, "e": e,
           "u": u, "absent": None, "by": by, "score": float(bound), "bound": float(bound), "total": len(mats),
-          "satellites": e_sat}
+          "satellites": e_sat, "satellites_allowed": bool(satellites)}
     return _with_absent(ctx, sc) if absent else sc
 
 
@@ -959,7 +967,10 @@ def _with_absent(ctx: _Context, sc: dict) -> dict:
 def _describe(ctx: _Context, sc: dict, *, kind_tol: float) -> OverlayerModel:
     """Turn a scored matrix into a model with kind, Wood notation and coverage."""
     m = sc["mats"][0]
-    kind = classify_superstructure(ctx.substrate, m, tol=kind_tol)
+    # a continuous fit names only the coincidences the search itself would have snapped to;
+    # closer high-order ones are listed as its approximants
+    kind = classify_superstructure(ctx.substrate, m, tol=kind_tol,
+                                   max_denominator=ctx.max_denominator if sc["satellites_allowed"] else 12)
     if kind.kind in ("commensurate", "coincidence", "none"):  # exact, and in a readable basis
         snapped = [_snap_matrix(d, kind_tol, 12) for d in sc["mats"]]
         mats = [nice_matrix(ctx.substrate, d if q is None else q) for d, q in zip(sc["mats"], snapped)]
@@ -1069,7 +1080,7 @@ def find_overlayers(hk: np.ndarray, integer: np.ndarray, substrate_fit: Substrat
     list of OverlayerModel
         Best first. A clean surface gives one model, the identity, kind ``none``.
     """
-    ctx = _context(hk, integer, substrate_fit, energy_eV, intensity, valid_mask, tol_px)
+    ctx = _context(hk, integer, substrate_fit, energy_eV, intensity, valid_mask, tol_px, max_denominator)
     if int((~ctx.integer).sum()) == 0:
         return [_describe(ctx, _score(ctx, np.eye(2), all_domains=False, satellites=False), kind_tol=1e-6)]
     n_frac = int((~ctx.integer).sum())
@@ -1099,7 +1110,7 @@ def find_overlayers(hk: np.ndarray, integer: np.ndarray, substrate_fit: Substrat
             if snapped is None:
                 snapped = _snap_matrix(m, min(m_tol, 0.05), max_denominator)
             options = [(snapped, 1e-6, False)] if snapped is not None and abs(np.linalg.det(snapped)) > 1e-9 else []
-            if _snap_matrix(m, 2e-3, 12) is None:
+            if not options or _snap_matrix(m, 2e-3, 12) is None:
                 options.append((m, 2e-3, True))  # the continuous fit competes too (incommensurate)
             for c, ktol, sat in options:
                 key = _structure_key(c, exact=not sat)
@@ -1114,14 +1125,25 @@ def find_overlayers(hk: np.ndarray, integer: np.ndarray, substrate_fit: Substrat
                 scored.append((sc, ktol))
     # the bare substrate always competes: a few stray spots do not make a superstructure
     scored.append((_score(ctx, np.eye(2), all_domains=False, satellites=False, absent=False), 1e-6))
-    # branch and bound: finish the scores best bound first, until no bound can enter the list
-    scored.sort(key=lambda t: -t[0]["bound"])
+    # branch and bound: finish the scores best bound first, until no bound can enter the list;
+    # irrational fits are ranked with the handicap _prefer_simple gives them
+    def rank(sc, key="score"):
+        return sc[key] - (_irrational_handicap(sc["e"], len(sc["mats"])) if sc["satellites_allowed"] else 0.0)
+
+    scored.sort(key=lambda t: -rank(t[0], "bound"))
     done: list[tuple[dict, float]] = []
     for sc, kt in scored:
-        if len(done) >= 2 * n_results and sc["bound"] < sorted(d["score"] for d, _ in done)[-2 * n_results]:
+        if len(done) >= 2 * n_results and rank(sc, "bound") < sorted(rank(d) for d, _ in done)[-2 * n_results]:
             break
         done.append((_with_absent(ctx, sc), kt))
-    scored = sorted(done, key=lambda t: -t[0]["score"])
+    done.sort(key=lambda t: -rank(t[0]))
+    scored = []
+    for sc, kt in done:  # irrational fits of one lattice (other bases, other starts) count once
+        if sc["satellites_allowed"] and any(
+                o["satellites_allowed"] and len(o["mats"]) == len(sc["mats"]) and
+                any(_same_lattice_fast(sc["mats"][0], x, 0.02) for x in o["all_mats"]) for o, _ in scored):
+            continue
+        scored.append((sc, kt))
     models = _prefer_simple([_describe(ctx, sc, kind_tol=kt) for sc, kt in scored[: n_results + 1]])
     models.sort(key=lambda mm: -mm.score)
     out, keys = [], []
@@ -1194,6 +1216,13 @@ def _lattice_key(m: np.ndarray) -> tuple:
         return tuple(np.round(m.ravel(), 2))
 
 
+def _irrational_handicap(explained: int, n_domains: int) -> float:
+    """Score handicap of an irrational (incommensurate) model: four free parameters can absorb
+    a small camera error, so it must explain clearly more than a rational cell, and each
+    further irrational domain is a new free orientation."""
+    return 1.5 + 0.05 * explained + 2.0 * (n_domains - 1)
+
+
 def _prefer_simple(models: list[OverlayerModel]) -> list[OverlayerModel]:
     """Adjust scores: an irrational matrix must explain clearly more than a rational one;
     a multi-domain model gains when the intensities say the domains are unequally
@@ -1201,9 +1230,8 @@ def _prefer_simple(models: list[OverlayerModel]) -> list[OverlayerModel]:
     out = []
     for mm in models:
         s = mm.score
-        if mm.kind == "incommensurate":  # four free parameters can absorb a small camera error:
-            s -= 1.5 + 0.05 * mm.explained  # they must explain clearly more than a rational cell,
-            s -= 2.0 * (mm.n_domains - 1)  # and each further irrational domain is a new free orientation
+        if mm.kind == "incommensurate":
+            s -= _irrational_handicap(mm.explained, mm.n_domains)
         ratio = mm.details.get("intensity_ratio")
         # only where positions cannot tell (rational models, no satellites); repays the domain penalty, no more
         if mm.n_domains > 1 and ratio is not None and mm.kind != "incommensurate":
@@ -1249,7 +1277,10 @@ def refine_with_model(xy_px: np.ndarray, energy_eV: float, fit: SubstrateFit, mo
     hk = pixels_to_momentum(xy, energy_eV, geom) @ np.linalg.inv(lat2)
     d_int = (hk - np.rint(hk)) @ lat2
     tol_g = 2.5 / (geom.scale_px * wavelength_A(energy_eV))
-    near = np.hypot(d_int[:, 0], d_int[:, 1]) <= max(tol_g, 3 * fit.residual_px / (geom.scale_px * wavelength_A(energy_eV)))
+    # spots the refitted camera puts on integer positions join the substrate (within at most 1.5 ×
+    # the matching tolerance: a poor refit must not swallow the fractional-order spots)
+    loose = 3 * fit.residual_px / (geom.scale_px * wavelength_A(energy_eV))
+    near = np.hypot(d_int[:, 0], d_int[:, 1]) <= min(max(tol_g, loose), 1.5 * tol_g)
     integer = fit.integer | near  # a refit never demotes the substrate's own beams
     net = Net2D(np.linalg.inv(lat2).T, label=fit.net.label)
     return dataclasses.replace(fit, geometry=geom, reciprocal_net=Net2D(lat2), net=net, hk=hk, integer=integer,
@@ -1278,7 +1309,10 @@ def _search_and_refit(xy, energy_eV, fit, geometry, kw, rounds: int = 2):
                 valid_mask=kw["valid_mask"], tol_px=3 * kw["tol_px"])
         fit2 = refine_with_model(xy, energy_eV, fit, seed, fit_lattice=geometry is not None)
         models2 = find_overlayers(fit2.hk, fit2.integer, fit2, **kw)
-        if models2[0].score <= models[0].score + 1e-9:
+        # spots that became substrate beams no longer count for or against a model: the refit
+        # must win without them
+        promoted = int((fit2.integer & ~fit.integer).sum())
+        if models2[0].score - promoted <= models[0].score + 1e-9:
             break
         fit, models = fit2, models2
     return fit, models
