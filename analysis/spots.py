@@ -961,11 +961,12 @@ class _Fitter:
         out = [a[rr_, cc_] for a in arrays]
         return r0, c0, inside, out, (rr, cc)
 
-    def fit(self, data, noise2, w_ok, p, u, gain, *, n_iter=20, sigma_bounds=(0.4, 12.0)):
+    def fit(self, data, noise2, w_ok, p, u, gain, *, n_iter=20, sigma_bounds=(0.4, 12.0), min_iter=3):
         """data, noise2, w_ok: (K, W, W); p: (K, 6) [A, dr0, dc0, log sr, log st, b] (offsets in window).
 
         Returns (p, covariance (K, 6, 6), reduced χ², model (K, W, W)). Spots leave the
-        iteration as soon as their centre moves by less than 10⁻³ px.
+        iteration as soon as their centre moves by less than 10⁻³ px (after `min_iter`
+        iterations; 1 suits a start at a previous solution).
         """
         k = len(p)
         p = np.array(p, dtype=np.float64)
@@ -974,12 +975,12 @@ class _Fitter:
         act = np.arange(k)
         if isinstance(noise2, float) or np.ndim(noise2) == 0:
             noise2 = np.broadcast_to(noise2, data.shape)
+        mdl, aux = self._model(p, u)  # model of the active spots at their current parameters
         for it in range(n_iter):
             if len(act) == 0:
                 break
             d, n2, ok, uu = data[act], noise2[act], w_ok[act], u[act]
             pa = p[act]
-            mdl, aux = self._model(pa, uu)
             w = self._weights(mdl, pa, n2, ok, gain)
             chi2 = np.sum(w * (d - mdl) ** 2, axis=(1, 2))
             jac = self._jac(aux, uu)
@@ -999,14 +1000,18 @@ class _Fitter:
             step[:, 3:5] = np.clip(step[:, 3:5], -0.5, 0.5)
             pn = pa + step
             pn[:, 3:5] = np.clip(pn[:, 3:5], lo, hi)
-            mdl_n, _ = self._model(pn, uu)
+            mdl_n, aux_n = self._model(pn, uu)
             chi2_n = np.sum(w * (d - mdl_n) ** 2, axis=(1, 2))
             better = np.isfinite(chi2_n) & (chi2_n <= chi2)
             p[act] = np.where(better[:, None], pn, pa)
             lam[act] = np.where(better, np.maximum(lam[act] / 5, 1e-7), lam[act] * 10)
+            b3 = better[:, None, None]
+            mdl = np.where(b3, mdl_n, mdl)
+            aux = tuple(np.where(b3, xn, x) for xn, x in zip(aux_n, aux))
             done = better & (np.abs(step[:, 1:3]).max(axis=1) < 1e-3) | (lam[act] > 1e6)
-            if it >= 2:
-                act = act[~done]
+            if it >= min_iter - 1 and done.any():
+                act, keep = act[~done], ~done
+                mdl, aux = mdl[keep], tuple(x[keep] for x in aux)
         # covariance at the solution
         mdl, aux = self._model(p, u)
         w = self._weights(mdl, p, noise2, w_ok, gain)
@@ -1052,19 +1057,34 @@ class _Fitter:
 
 def _render(shape, rc, amp, sr, st, u, half) -> np.ndarray:
     """Sum of the fitted Gaussians (no offsets) as an image, each on a square window of
-    half-width `half`, or less where the Gaussian is below 10⁻⁹ of its peak beyond."""
+    half-width `half` around its rounded centre, or less where the Gaussian is below
+    10⁻⁹ of its peak beyond."""
+    out = np.zeros(shape)
     if len(rc) == 0:
-        return np.zeros(shape)
+        return out
     # exp(−6.5²/2) < 10⁻⁹: one very wide spot need not make every window wide
     h_own = np.minimum(half, np.ceil(6.5 * np.maximum(sr, st))).astype(np.int64)
-    idx, val = [], []
     for h in np.unique(h_own):
-        g = h_own == h
-        i, v = _model_pixels(shape, rc[g], amp[g], sr[g], st[g], u[g], int(h))
-        idx.append(i)
-        val.append(v)
-    out = np.bincount(np.concatenate(idx), weights=np.concatenate(val), minlength=shape[0] * shape[1])
-    return out.reshape(shape)
+        g = np.flatnonzero(h_own == h)
+        h = int(h)
+        _add_windows(out, rc[g], _gauss_windows(rc[g], amp[g], sr[g], st[g], u[g], h))
+    return out
+
+
+def _add_windows(out, rc, val):
+    """Add (K, W, W) windows `val` centred on the rounded `rc` into the image `out`, in place."""
+    w = val.shape[1]
+    h = w // 2
+    r0 = (np.rint(rc[:, 0]).astype(np.int64) - h).tolist()
+    c0 = (np.rint(rc[:, 1]).astype(np.int64) - h).tolist()
+    m, n = out.shape
+    for k, (a, b) in enumerate(zip(r0, c0)):  # window by window: no index arrays
+        if 0 <= a and a + w <= m and 0 <= b and b + w <= n:
+            out[a:a + w, b:b + w] += val[k]
+            continue
+        ra, rb, ca, cb = max(a, 0), min(a + w, m), max(b, 0), min(b + w, n)
+        if ra < rb and ca < cb:
+            out[ra:rb, ca:cb] += val[k, ra - a:rb - a, ca - b:cb - b]
 
 
 def find_spots(image, *, sigma_px: float = 2.0, min_snr: float = 5.0, mask=None, background=None,
@@ -1356,7 +1376,6 @@ def _refit_neighbours(fitter, res, noise, ok_fit, valid, spots, centre, gain, si
         return spots
     spots = {k: v.copy() for k, v in spots.items()}
     mdl = _render(shape, spots["rc"], spots["amp"], spots["sr"], spots["st"], spots["u"], half)
-    flat = mdl.reshape(-1)
     nb_ptr, nb_idx = _overlap_graph(spots["rc"][crowded], half)
     colour = _greedy_colours(nb_ptr, nb_idx)
     nz_c = noise[ri[crowded], ci[crowded]]
@@ -1370,7 +1389,7 @@ def _refit_neighbours(fitter, res, noise, ok_fit, valid, spots, centre, gain, si
         for c in np.unique(colour[active]):
             batch = np.flatnonzero(active & (colour == c))
             changed[batch] = _refit_batch(fitter, res, noise, ok_fit, valid, spots, crowded[batch], nz_c[batch],
-                                          flat, mdl, gain, sigma_px, shape, half, tol_px)
+                                          mdl, gain, sigma_px, shape, half, tol_px)
         refits[active] += 1
         active = changed.copy()
         active[nb_idx[np.repeat(changed, np.diff(nb_ptr))]] = True
@@ -1409,25 +1428,29 @@ def _greedy_colours(ptr, idx):
     return col
 
 
-def _model_pixels(shape, rc, amp, sr, st, u, half):
-    """Flat pixel indices and values of the spots' Gaussians as :func:`_render` draws them."""
+def _gauss_windows(rc, amp, sr, st, u, half):
+    """(K, W, W) values of the spots' Gaussians on (2 half + 1)² windows around the rounded
+    centres (axes σr along u and σt across it)."""
     o = np.arange(-half, half + 1)
-    r0, c0 = np.rint(rc[:, 0]).astype(np.int64), np.rint(rc[:, 1]).astype(np.int64)
-    rr = r0[:, None, None] + o[None, :, None]
-    cc = c0[:, None, None] + o[None, None, :]
-    x, y = rr - rc[:, 0, None, None], cc - rc[:, 1, None, None]
-    ur, uc = u[:, 0, None, None], u[:, 1, None, None]
-    rho, tau = x * ur + y * uc, -x * uc + y * ur
-    val = amp[:, None, None] * np.exp(-0.5 * (rho**2 / sr[:, None, None] ** 2 + tau**2 / st[:, None, None] ** 2))
-    ok = (rr >= 0) & (rr < shape[0]) & (cc >= 0) & (cc < shape[1])
-    rr, cc = np.broadcast_to(rr, val.shape), np.broadcast_to(cc, val.shape)
-    return (rr * shape[1] + cc)[ok], val[ok]
+    x = (np.rint(rc[:, 0]) - rc[:, 0])[:, None] + o[None, :]  # (K, W) row offsets from the centre
+    y = (np.rint(rc[:, 1]) - rc[:, 1])[:, None] + o[None, :]
+    # ρ²/σr² + τ²/σt² = a x² + 2 b x y + c y² with ρ = x ur + y uc, τ = −x uc + y ur
+    ur, uc = u[:, 0], u[:, 1]
+    ir2, it2 = 1.0 / np.square(sr), 1.0 / np.square(st)
+    a = ur * ur * ir2 + uc * uc * it2
+    b = ur * uc * (ir2 - it2)
+    c = uc * uc * ir2 + ur * ur * it2
+    arg = (-b[:, None] * x)[:, :, None] * y[:, None, :]
+    arg += (-0.5 * a[:, None] * x * x)[:, :, None]
+    arg += (-0.5 * c[:, None] * y * y)[:, None, :]
+    val = np.exp(arg, out=arg)
+    val *= np.asarray(amp, dtype=np.float64)[:, None, None]
+    return val
 
 
-def _refit_batch(fitter, res, noise, ok_fit, valid, spots, ids, nz_c, flat, mdl, gain, sigma_px, shape, half,
-                 tol_px):
-    """Refit spots `ids` (no two overlapping) against the current model image `mdl` (its flat view
-    `flat`), write the results into `spots`, redraw them in `mdl`; True where a spot changed."""
+def _refit_batch(fitter, res, noise, ok_fit, valid, spots, ids, nz_c, mdl, gain, sigma_px, shape, half, tol_px):
+    """Refit spots `ids` (no two overlapping) against the current model image `mdl`, write the
+    results into `spots` and redraw them in `mdl`; True where a spot changed."""
     sub = _take(spots, ids)
     own = _render_patches(fitter, sub, half)
     r0, c0, inside, (rp, nz, okp, vp, mp), _ = fitter.patches([res, noise, ok_fit, valid, mdl], sub["rc"])
@@ -1454,10 +1477,8 @@ def _refit_batch(fitter, res, noise, ok_fit, valid, spots, ids, nz_c, flat, mdl,
     if changed.any():
         o = _take(sub, changed)
         n = _take(new, changed)
-        i_old, v_old = _model_pixels(shape, o["rc"], o["amp"], o["sr"], o["st"], o["u"], half)
-        i_new, v_new = _model_pixels(shape, n["rc"], n["amp"], n["sr"], n["st"], n["u"], half)
-        np.add.at(flat, i_old, -v_old)
-        np.add.at(flat, i_new, v_new)
+        _add_windows(mdl, o["rc"], -_gauss_windows(o["rc"], o["amp"], o["sr"], o["st"], o["u"], half))
+        _add_windows(mdl, n["rc"], _gauss_windows(n["rc"], n["amp"], n["sr"], n["st"], n["u"], half))
     return changed
 
 
