@@ -1352,7 +1352,7 @@ def _take(a, idx):
 
 
 def _refit_neighbours(fitter, res, noise, ok_fit, valid, spots, centre, gain, sigma_px, shape, half, sweeps=2,
-                      tol_px: float = 1e-3, max_refits: int = 20):
+                      tol_px: float = 1e-3, max_refits: int = 10):
     """Refit spots that share a window, each with the others' models removed.
 
     Block Gauss–Seidel over the crowded spots: spots whose windows overlap are
@@ -1460,13 +1460,15 @@ def _refit_batch(fitter, res, noise, ok_fit, valid, spots, ids, nz_c, mdl, gain,
     p = np.column_stack([sub["amp"], sub["rc"][:, 0] - r0, sub["rc"][:, 1] - c0, np.log(sub["sr"]),
                          np.log(sub["st"]), sub["off"]])
     keep_failed = (sub["flags"] & FLAG_FIT_FAILED) > 0
-    p, cov, _, _ = fitter.fit(data, nz2, okp, p, sub["u"], gain, n_iter=10)
+    p, cov, _, _ = fitter.fit(data, nz2, okp, p, sub["u"], gain, n_iter=10, min_iter=1)
     new = _from_fit(p, cov, r0, c0, sub["u"], sub["snr"], vp & inside, okp, sigma_px, half, sub["rc"],
                     flags0=(sub["flags"] & ~np.uint8(FLAG_FIT_FAILED | FLAG_NEAR_EDGE)).astype(np.uint8))
-    again = keep_failed & ((new["flags"] & FLAG_FIT_FAILED) > 0)  # failed once more: the spot stays as it was
+    failed = (new["flags"] & FLAG_FIT_FAILED) > 0
+    new["rc"] = np.where((keep_failed & failed)[:, None], sub["rc"], new["rc"])
+    # a failed fit says nothing about the height: the neighbours see the residual peak instead
+    h = fitter.half
+    new["amp"] = np.where(failed, np.maximum(data[:, h, h], 0.0), new["amp"])
     for key in spots:
-        if key != "flags":
-            new[key][again] = sub[key][again]
         spots[key][ids] = new[key]
     moved = np.hypot(*(new["rc"] - sub["rc"]).T)
     # largest change of each model: amplitude, shift (max slope 0.61 A/σ) and width (max 0.74 A Δlog σ)
