@@ -573,13 +573,36 @@ def _bounded_lm(fun, jac, x0: np.ndarray, lo: np.ndarray, hi: np.ndarray, *, max
 _GEOM_COLUMN = {"center_x_px": 0, "center_y_px": 1, "scale_px": 2, "rotation_deg": 3, "distortion": 4}
 
 
-def _refine(xy, hk, energy_eV, geom, lattice, free, fit_lattice, *, rtol: float = 1e-10):
+@dataclass(frozen=True, eq=False)
+class _OverlayerTerms:
+    """Spot indices as functions of a free overlayer basis B₀ (rows b1*, b2*, hk units):
+    hk_i = h_i + u_i B₀ T_i, with h_i integer (the substrate beam a satellite sits on, or the
+    beam itself), u_i integer (the overlayer beam; 0 for substrate beams) and T_i the
+    transposed-inverse substrate operation that turns domain 0 into the spot's domain."""
+
+    h: np.ndarray  # (K, 2)
+    u: np.ndarray  # (K, 2)
+    t: np.ndarray  # (K, 2, 2)
+    b0: np.ndarray  # (2, 2) start
+
+    def hk(self, b0: np.ndarray) -> np.ndarray:
+        return self.h + np.einsum("ka,ab,kbc->kc", self.u, b0, self.t)
+
+    def d_hk(self) -> np.ndarray:
+        """∂hk_c/∂B₀[a, b] as (K, 2, 4) (hk is linear in B₀)."""
+        return np.einsum("ka,kbc->kcab", self.u, self.t).reshape(len(self.u), 2, 4)
+
+
+def _refine(xy, hk, energy_eV, geom, lattice, free, fit_lattice, *, rtol: float = 1e-10,
+            overlayer: _OverlayerTerms | None = None):
     """Fit geometry (and optionally the reciprocal basis) to spots of known indices.
 
     `free` names ScreenGeometry fields; ``"ellipticity"`` fits the axis ratio
     and its direction through (e1, e2) = (ε − 1)(cos 2β, sin 2β), which stays
     smooth at ε = 1. Fields are dropped when the spots cannot carry them.
     `rtol` is the relative cost change that ends the fit (looser for trial stages).
+    With `overlayer` the indices are not fixed: its basis B₀ is fitted jointly with
+    the camera (satellites at other radii then pin the distortion); `hk` is ignored.
     """
     base = geom.to_dict()
     # with a free lattice its own orientation replaces the camera rotation
@@ -600,8 +623,13 @@ def _refine(xy, hk, energy_eV, geom, lattice, free, fit_lattice, *, rtol: float 
             e1, e2 = p[len(names)], p[len(names) + 1]
             d["ellipticity"] = 1.0 + math.hypot(e1, e2)
             d["ellipse_deg"] = math.degrees(0.5 * math.atan2(e2, e1)) % 180.0
-        lat = p[n_geo:].reshape(2, 2) if fit_lattice else lattice
+        lat = p[n_geo:n_geo + 4].reshape(2, 2) if fit_lattice else lattice
         return d, lat
+
+    n_lat = 4 if fit_lattice else 0
+
+    def hk_of(p):
+        return hk if overlayer is None else overlayer.hk(p[n_geo + n_lat:].reshape(2, 2))
 
     p0 = [math.log(base[n]) if n == "scale_px" else base[n] for n in names]
     lo = [0.0 if n == "distortion" else -np.inf for n in names]
@@ -615,23 +643,31 @@ def _refine(xy, hk, energy_eV, geom, lattice, free, fit_lattice, *, rtol: float 
         p0 += list(lat0)
         lo += [-np.inf] * 4
         hi += [np.inf] * 4
+    if overlayer is not None:
+        p0 += list(overlayer.b0.ravel())
+        lo += [-np.inf] * 4
+        hi += [np.inf] * 4
+        d_hk_b0 = overlayer.d_hk()
     p0 = np.clip(np.array(p0, dtype=float), np.array(lo) + 1e-12, np.array(hi) - 1e-12)
 
     lam = wavelength_A(energy_eV)
 
     def resid(p):  # the camera fields as a plain namespace: no validation in the loop
         d, lat = unpack(p)
-        return np.nan_to_num((project(hk @ lat, lam, SimpleNamespace(**d))[0] - xy).ravel(), nan=1e3)
+        return np.nan_to_num((project(hk_of(p) @ lat, lam, SimpleNamespace(**d))[0] - xy).ravel(), nan=1e3)
 
     cols = [_GEOM_COLUMN[n] for n in names] + ([5, 6] if ell else [])
 
     def jac(p):  # exact derivatives of the camera model (see optics.pixel_derivatives)
         d, lat = unpack(p)
-        xy_, d_k, d_g = project_derivatives(hk @ lat, lam, SimpleNamespace(**d))
+        hk_p = hk_of(p)
+        xy_, d_k, d_g = project_derivatives(hk_p @ lat, lam, SimpleNamespace(**d))
         parts = [d_g[:, :, cols]]
         if fit_lattice:  # k_j = Σ_i hk_i L_ij  →  ∂k_j/∂L_ij = hk_i
-            parts.append(np.einsum("kab,ki->kaib", d_k, hk).reshape(len(hk), 2, 4))
-        j = np.concatenate(parts, axis=2).reshape(2 * len(hk), -1)
+            parts.append(np.einsum("kab,ki->kaib", d_k, hk_p).reshape(len(hk_p), 2, 4))
+        if overlayer is not None:  # ∂k_j/∂B₀[q] = Σ_c ∂hk_c/∂B₀[q] L_cj
+            parts.append(np.einsum("kij,kjq->kiq", d_k, np.einsum("kcq,cj->kjq", d_hk_b0, lat)))
+        j = np.concatenate(parts, axis=2).reshape(2 * len(hk_p), -1)
         j[~np.isfinite(xy_.ravel())] = 0.0
         return np.nan_to_num(j)
 
@@ -652,7 +688,7 @@ def _refine(xy, hk, energy_eV, geom, lattice, free, fit_lattice, *, rtol: float 
         if ell:
             sig["ellipticity"] = float(math.hypot(sd[len(names)], sd[len(names) + 1]))
         if fit_lattice:
-            sig.update(_lattice_sigma(lat, cov[n_geo:, n_geo:]))
+            sig.update(_lattice_sigma(lat, cov[n_geo:n_geo + 4, n_geo:n_geo + 4]))
     except np.linalg.LinAlgError:  # pragma: no cover
         pass
     return g_fit, lat, res, sig
@@ -757,11 +793,16 @@ def _lattice_points(b_star_hk: np.ndarray, a_star: np.ndarray, g_max: float) -> 
     return hk[np.hypot(g[:, 0], g[:, 1]) <= g_max]
 
 
-def _explained(hk: np.ndarray, m: np.ndarray, a_star: np.ndarray, tol_g: float) -> np.ndarray:
-    """Which spots lie on the reciprocal net of matrix m (within tol_g, Å⁻¹)."""
+def _lattice_distance(hk: np.ndarray, m: np.ndarray, a_star: np.ndarray) -> np.ndarray:
+    """Distance (Å⁻¹) of each spot to the nearest point of the reciprocal net of matrix m."""
     n = hk @ m.T  # hk = n @ inv(M).T  →  n = hk @ M.T
     d = (hk - np.rint(n) @ np.linalg.inv(m).T) @ a_star
-    return np.hypot(d[:, 0], d[:, 1]) <= tol_g
+    return np.hypot(d[:, 0], d[:, 1])
+
+
+def _explained(hk: np.ndarray, m: np.ndarray, a_star: np.ndarray, tol_g: float) -> np.ndarray:
+    """Which spots lie on the reciprocal net of matrix m (within tol_g, Å⁻¹)."""
+    return _lattice_distance(hk, m, a_star) <= tol_g
 
 
 def _refine_matrix(hk: np.ndarray, m: np.ndarray, a_star: np.ndarray, tol_g: float) -> np.ndarray:
@@ -867,11 +908,13 @@ class _Context:
     intensity: np.ndarray | None
     substrate: Net2D
     max_denominator: int = 6
+    reliable: np.ndarray | None = None  # (K,) spots whose centres are trusted (None: all)
 
 
 def _context(hk, integer, substrate_fit: SubstrateFit, energy_eV, intensity, valid_mask, tol_px,
-             max_denominator: int = 6) -> _Context:
+             max_denominator: int = 6, reliable=None) -> _Context:
     hk = np.asarray(hk, dtype=np.float64).reshape(-1, 2)
+    reliable = np.ones(len(hk), bool) if reliable is None else np.asarray(reliable, dtype=bool).reshape(len(hk))
     geom = substrate_fit.geometry
     a_star = substrate_fit.reciprocal_net.vectors
     lam = wavelength_A(energy_eV)
@@ -885,7 +928,7 @@ def _context(hk, integer, substrate_fit: SubstrateFit, energy_eV, intensity, val
                     ops=point_group(sub, tol=2e-3), tree=cKDTree(hk @ a_star), r_max=r_max,
                     g_max=math.sin(math.radians(min(geom.acceptance_deg, 80.0))) / lam,
                     valid_mask=valid_mask, intensity=None if intensity is None else np.asarray(intensity, float),
-                    substrate=sub, max_denominator=int(max_denominator))
+                    substrate=sub, max_denominator=int(max_denominator), reliable=reliable)
 
 
 def _score(ctx: _Context, matrix, *, all_domains: bool, satellites: bool, absent: bool = True) -> dict:
@@ -900,7 +943,8 @@ def _score(ctx: _Context, matrix, *, all_domains: bool, satellites: bool, absent
     hk, a_star, tol_g = ctx.hk, ctx.a_star, ctx.tol_g
     frac = ~ctx.integer
     mats, names = _domain_matrices(m, ctx.ops)
-    expl = np.array([_explained(hk, d, a_star, tol_g) for d in mats]) & frac[None, :]
+    dist = np.array([_lattice_distance(hk, d, a_star) for d in mats])  # (D, K) Å⁻¹
+    expl = (dist <= tol_g) & frac[None, :]
     primary = expl.copy()
     if satellites:
         for i, d in enumerate(mats):
@@ -909,7 +953,8 @@ def _score(ctx: _Context, matrix, *, all_domains: bool, satellites: bool, absent
                 for sign in (1, -1):
                     sh = hk - sign * vec
                     dd = (sh - np.rint(sh)) @ a_star
-                    expl[i] |= (np.hypot(dd[:, 0], dd[:, 1]) <= tol_g) & frac
+                    dist[i] = np.minimum(dist[i], np.hypot(dd[:, 0], dd[:, 1]))
+        expl = (dist <= tol_g) & frac[None, :]
     if all_domains:
         chosen = list(range(len(mats)))
     else:  # greedy: the smallest set of domains that explains the spots (a domain earns its
@@ -931,11 +976,20 @@ def _score(ctx: _Context, matrix, *, all_domains: bool, satellites: bool, absent
     e = int(covered.sum())
     e_sat = e - int((primary[chosen].any(axis=0) & frac).sum())
     u = int(frac.sum()) - e
+    # the score counts spots with trusted centres only (not cut by a mask edge, fit converged):
+    # a biased centre must not decide between models
+    rel = ctx.reliable
+    e_r = int((covered & rel).sum())
+    e_sat_r = e_r - int((primary[chosen].any(axis=0) & frac & rel).sum())
+    u_r = int((frac & rel).sum()) - e_r
     det = abs(float(np.linalg.det(mats[chosen[0]])))
-    bound = (e - 0.25 * e_sat) - u - 1.0 * (len(chosen) - 1) - 0.5 * abs(math.log2(det))
+    bound = (e_r - 0.25 * e_sat_r) - u_r - 1.0 * (len(chosen) - 1) - 0.5 * abs(math.log2(det))
+    if e_r:  # the tighter fit wins a tie: mean squared miss of the explained spots, in tolerances
+        miss = dist[chosen].min(axis=0)[covered & rel] / tol_g
+        bound -= float(np.mean(miss**2))
     if e_sat and ctx.intensity is not None:  # a layer's own beams outshine its multiple-scattering satellites
-        own = primary[chosen].any(axis=0) & frac
-        sat_only = covered & ~own
+        own = primary[chosen].any(axis=0) & frac & rel
+        sat_only = covered & rel & ~own
         if own.any() and sat_only.any():
             li = np.log(np.clip(ctx.intensity, 1e-9, None))
             bound += math.tanh(float(np.median(li[own]) - np.median(li[sat_only])))
@@ -994,7 +1048,7 @@ def _describe(ctx: _Context, sc: dict, *, kind_tol: float) -> OverlayerModel:
 def evaluate_model(hk: np.ndarray, integer: np.ndarray, substrate_fit: SubstrateFit, matrix, *,
                    energy_eV: float, intensity: np.ndarray | None = None, valid_mask: np.ndarray | None = None,
                    tol_px: float = 2.5, all_domains: bool = False, satellites: bool = False,
-                   kind_tol: float = 1e-6) -> OverlayerModel:
+                   kind_tol: float = 1e-6, reliable: np.ndarray | None = None) -> OverlayerModel:
     """Score one superstructure matrix (with its symmetry domains) against the spots.
 
     Parameters
@@ -1014,8 +1068,11 @@ def evaluate_model(hk: np.ndarray, integer: np.ndarray, substrate_fit: Substrate
         an overlayer beam), for incommensurate overlayers.
     kind_tol : float
         Absolute tolerance on the matrix entries for integer / rational.
+    reliable : (K,) ndarray of bool, optional
+        Spots whose centres are trusted; only they count in the score
+        (the counts reported cover every spot).
     """
-    ctx = _context(hk, integer, substrate_fit, energy_eV, intensity, valid_mask, tol_px)
+    ctx = _context(hk, integer, substrate_fit, energy_eV, intensity, valid_mask, tol_px, reliable=reliable)
     sc = _score(ctx, matrix, all_domains=all_domains, satellites=satellites)
     return _describe(ctx, sc, kind_tol=kind_tol)
 
@@ -1063,7 +1120,7 @@ def model_from_matrix(hk, integer, substrate_fit, matrix, *, energy_eV, **kw) ->
 def find_overlayers(hk: np.ndarray, integer: np.ndarray, substrate_fit: SubstrateFit, *, energy_eV: float,
                     intensity: np.ndarray | None = None, valid_mask: np.ndarray | None = None,
                     tol_px: float = 2.5, max_det: float = 64.0, max_denominator: int = 6,
-                    n_results: int = 5) -> list[OverlayerModel]:
+                    n_results: int = 5, reliable: np.ndarray | None = None) -> list[OverlayerModel]:
     """Search superstructure matrices that explain the fractional-order spots.
 
     Candidates come from pairs of short observed beam vectors (and their
@@ -1080,7 +1137,7 @@ def find_overlayers(hk: np.ndarray, integer: np.ndarray, substrate_fit: Substrat
     list of OverlayerModel
         Best first. A clean surface gives one model, the identity, kind ``none``.
     """
-    ctx = _context(hk, integer, substrate_fit, energy_eV, intensity, valid_mask, tol_px, max_denominator)
+    ctx = _context(hk, integer, substrate_fit, energy_eV, intensity, valid_mask, tol_px, max_denominator, reliable)
     if int((~ctx.integer).sum()) == 0:
         return [_describe(ctx, _score(ctx, np.eye(2), all_domains=False, satellites=False), kind_tol=1e-6)]
     n_frac = int((~ctx.integer).sum())
@@ -1257,23 +1314,79 @@ def model_indices(hk: np.ndarray, model: OverlayerModel) -> np.ndarray:
     return out
 
 
+def _overlayer_terms(hk: np.ndarray, model: OverlayerModel, a_star: np.ndarray, tol_g: float,
+                     trusted: np.ndarray) -> tuple[_OverlayerTerms, np.ndarray] | None:
+    """Each explained spot as h + u B₀ T (see :class:`_OverlayerTerms`), satellites included.
+
+    Returns (terms, used) with `used` the spots kept, or None when the domains are not
+    images of domain 0 under substrate operations.
+    """
+    mats = [np.asarray(m, dtype=np.float64) for m in model.domains]
+    b0 = np.linalg.inv(mats[0]).T
+    inv_b0 = np.linalg.inv(b0)
+    pt = []  # per domain: (P, T) with B_d = P B₀ T, P the identity or the row swap
+    for m in mats:
+        b_d = np.linalg.inv(m).T
+        for p in (np.eye(2), np.array([[0.0, 1.0], [1.0, 0.0]])):
+            t = inv_b0 @ p @ b_d
+            if np.all(np.abs(t - np.rint(t)) <= 1e-6):
+                pt.append((p, np.rint(t)))
+                break
+        else:
+            return None
+    by = model.explained_by
+    k = len(hk)
+    h, u, t = np.zeros((k, 2)), np.zeros((k, 2)), np.tile(np.eye(2), (k, 1, 1))
+    used = np.zeros(k, bool)
+    ints = (by == -2) & trusted
+    h[ints], used[ints] = np.rint(hk[ints]), True
+    steps = np.array([(1, 0), (0, 1), (1, 1), (1, -1), (-1, 0), (0, -1), (-1, -1), (-1, 1)], dtype=np.float64)
+    for i in np.flatnonzero((by >= 0) & trusted):
+        d = int(by[i])
+        p, t_d = pt[d]
+        b_d = p @ b0 @ t_d
+        n = np.rint(hk[i] @ mats[d].T)
+        if np.hypot(*((n @ b_d - hk[i]) @ a_star)) <= tol_g:  # a beam of the layer itself
+            u[i], t[i], used[i] = n @ p, t_d, True
+            continue
+        for v_n in steps:  # a satellite: a substrate beam plus a first-order layer beam
+            sh = hk[i] - v_n @ b_d
+            if np.hypot(*((sh - np.rint(sh)) @ a_star)) <= tol_g:
+                h[i], u[i], t[i], used[i] = np.rint(sh), v_n @ p, t_d, True
+                break
+    return _OverlayerTerms(h[used], u[used], t[used], b0), used
+
+
 def refine_with_model(xy_px: np.ndarray, energy_eV: float, fit: SubstrateFit, model: OverlayerModel, *,
-                      fit_lattice: bool = False) -> SubstrateFit:
+                      fit_lattice: bool = False, reliable: np.ndarray | None = None) -> SubstrateFit:
     """Refit the camera model with every spot the model explains (integer and fractional).
 
     Fractional spots at other radii than the integer ones pin the distortion
-    and the centre; the reciprocal basis is kept unless `fit_lattice`.
+    and the centre; the reciprocal basis is kept unless `fit_lattice`. An
+    irrational (incommensurate) model has no exact indices: its basis is fitted
+    with the camera, satellites included. Only `reliable` spots (default all) enter the fit.
     """
     xy = np.asarray(xy_px, dtype=np.float64).reshape(-1, 2)
-    hk_model = model_indices(fit.hk, model)
-    use = np.all(np.isfinite(hk_model), axis=1)
-    # drop satellites and loose matches: keep spots within 3× the integer-spot residual of the model
-    if use.sum() < 4:
-        return fit
+    trusted = np.ones(len(xy), bool) if reliable is None else np.asarray(reliable, dtype=bool)
     lat = fit.reciprocal_net.vectors
     free = ("center_x_px", "center_y_px", "rotation_deg") if fit.scale_source == "calibration" else \
         ("center_x_px", "center_y_px", "scale_px", "rotation_deg", "distortion", "ellipticity")
-    geom, lat2, res, sig = _refine(xy[use], hk_model[use], energy_eV, fit.geometry, lat, free, fit_lattice)
+    joint = None
+    if model.kind == "incommensurate":
+        tol_g = float(model.details.get("tol_g", 2.5 / (fit.geometry.scale_px * wavelength_A(energy_eV))))
+        joint = _overlayer_terms(fit.hk, model, lat, tol_g, trusted)
+    if joint is not None:
+        terms, use = joint
+        if use.sum() < 6:
+            return fit
+        geom, lat2, res, sig = _refine(xy[use], None, energy_eV, fit.geometry, lat, free, fit_lattice,
+                                       overlayer=terms)
+    else:
+        hk_model = model_indices(fit.hk, model)
+        use = np.all(np.isfinite(hk_model), axis=1) & trusted
+        if use.sum() < 4:
+            return fit
+        geom, lat2, res, sig = _refine(xy[use], hk_model[use], energy_eV, fit.geometry, lat, free, fit_lattice)
     hk = pixels_to_momentum(xy, energy_eV, geom) @ np.linalg.inv(lat2)
     d_int = (hk - np.rint(hk)) @ lat2
     tol_g = 2.5 / (geom.scale_px * wavelength_A(energy_eV))
@@ -1306,15 +1419,21 @@ def _search_and_refit(xy, energy_eV, fit, geometry, kw, rounds: int = 2):
             near = _snap_matrix(np.asarray(top.matrix, float), 0.05, 6)
             seed = top if near is None else evaluate_model(
                 fit.hk, fit.integer, fit, near, energy_eV=kw["energy_eV"], intensity=kw["intensity"],
-                valid_mask=kw["valid_mask"], tol_px=3 * kw["tol_px"])
-        fit2 = refine_with_model(xy, energy_eV, fit, seed, fit_lattice=geometry is not None)
-        models2 = find_overlayers(fit2.hk, fit2.integer, fit2, **kw)
-        # spots that became substrate beams no longer count for or against a model: the refit
-        # must win without them
-        promoted = int((fit2.integer & ~fit.integer).sum())
-        if models2[0].score - promoted <= models[0].score + 1e-9:
+                valid_mask=kw["valid_mask"], tol_px=3 * kw["tol_px"], reliable=kw["reliable"])
+        seeds = [seed] + ([top] if top.kind == "incommensurate" and seed is not top else [])
+        best = None
+        for sd in seeds:  # the rational reading first; an irrational top also refits jointly with its net
+            fit2 = refine_with_model(xy, energy_eV, fit, sd, fit_lattice=geometry is not None,
+                                     reliable=kw["reliable"])
+            models2 = find_overlayers(fit2.hk, fit2.integer, fit2, **kw)
+            # spots that became substrate beams no longer count for or against a model: the refit
+            # must win without them
+            gain = models2[0].score - int((fit2.integer & ~fit.integer).sum()) - models[0].score
+            if gain > 1e-9 and (best is None or gain > best[0]):
+                best = (gain, fit2, models2)
+        if best is None:
             break
-        fit, models = fit2, models2
+        _, fit, models = best
     return fit, models
 
 
@@ -1346,7 +1465,7 @@ def index_pattern(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity
                   screen_radius_px: float | None = None, screen_prior_sigma: float = _SCALE_PRIOR_SIGMA,
                   valid_mask: np.ndarray | None = None,
                   tol_px: float = 2.5, n_results: int = 5, min_confidence: float = 0.15,
-                  max_readings: int = 1) -> IndexResult:
+                  max_readings: int = 1, reliable: np.ndarray | None = None) -> IndexResult:
     """Index a whole pattern: substrate readings, overlayer models, joint refits.
 
     The best substrate reading is followed to its best overlayer model (the
@@ -1361,7 +1480,8 @@ def index_pattern(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity
     fits = fit_substrate(xy, energy_eV, hint, intensity=intensity, geometry=geometry, center_px=center_px,
                          center_guess=center_guess, screen_radius_px=screen_radius_px,
                          screen_prior_sigma=screen_prior_sigma, valid_mask=valid_mask, tol_px=tol_px)
-    kw = dict(energy_eV=energy_eV, intensity=intensity, valid_mask=valid_mask, tol_px=tol_px, n_results=n_results)
+    kw = dict(energy_eV=energy_eV, intensity=intensity, valid_mask=valid_mask, tol_px=tol_px, n_results=n_results,
+              reliable=None if reliable is None else np.asarray(reliable, dtype=bool).reshape(len(xy)))
     readings = [f for f in fits[:max_readings] if f is fits[0] or f.confidence >= min_confidence]
     followed = []
     for reading in readings:

@@ -20,7 +20,7 @@ from .indexing import IndexResult, index_pattern, model_from_matrix
 from .io import LoadedImage, load_image
 from .nets import Net2D, parse_substrate
 from .optics import ScreenGeometry
-from .spots import Measurement, measure_image
+from .spots import FLAG_FIT_FAILED, FLAG_NEAR_EDGE, Measurement, measure_image
 from .superstructure import parse_matrix, parse_wood
 
 __all__ = ["Edits", "AnalysisResult", "analyze_image", "try_model", "check_energy"]
@@ -117,6 +117,9 @@ class AnalysisResult:
     calibration_source : str
         ``"none"``, ``"reference"`` or ``"calibration"``.
     timings_s : dict
+    trusted : (K,) ndarray of bool or None
+        Spots whose centres count when models are scored (not cut by a mask
+        edge, fit converged; spots added by hand are trusted). None: all.
     """
 
     xy_px: np.ndarray
@@ -134,6 +137,7 @@ class AnalysisResult:
     reference_geometry: ScreenGeometry | None = None
     warnings: tuple = ()
     timings_s: dict = field(default_factory=dict)
+    trusted: np.ndarray | None = None
 
 
 def _as_image(image) -> LoadedImage:
@@ -163,6 +167,8 @@ def _apply_edits(meas: Measurement, img: np.ndarray, edits: Edits):
             if d[j] <= edits.pick_px:
                 keep[j] = False
     xy_k, inten, snr = xy[keep], st.intensity[keep], st.snr[keep]
+    # a centre biased by a mask edge, or from a failed fit, is not trusted for choosing models
+    trusted = (st.flags[keep] & (FLAG_NEAR_EDGE | FLAG_FIT_FAILED)) == 0
     add = np.array(edits.added_xy, dtype=np.float64).reshape(-1, 2)
     bg = meas.background.background
     add_i = np.array([_local_intensity(img, bg, x, y) for x, y in add])
@@ -170,7 +176,8 @@ def _apply_edits(meas: Measurement, img: np.ndarray, edits: Edits):
     inten_all = np.concatenate([inten, np.clip(add_i, 1e-6, None)]) if len(add) else inten
     snr_all = np.concatenate([snr, np.full(len(add), np.nan)]) if len(add) else snr
     manual = np.concatenate([np.zeros(len(xy_k), bool), np.ones(len(add), bool)])
-    return xy_all, inten_all, snr_all, manual
+    trusted_all = np.concatenate([trusted, np.ones(len(add), bool)])  # spots placed by hand are trusted
+    return xy_all, inten_all, snr_all, manual, trusted_all
 
 
 def analyze_image(image, *, energy_eV: float, substrate: str | Net2D, reference=None,
@@ -214,7 +221,7 @@ def analyze_image(image, *, energy_eV: float, substrate: str | Net2D, reference=
     say(0.05, "finding the screen, the gun shadow and the spots")
     meas = measure_image(img, sigma_px=sigma_px, min_snr=min_snr)
     timings["spots"] = time.perf_counter() - t0
-    xy, inten, snr, manual = _apply_edits(meas, img.data, ed)
+    xy, inten, snr, manual, trusted = _apply_edits(meas, img.data, ed)
     if len(xy) < 3:
         raise FitError(f"Only {len(xy)} spots found (signal-to-noise ≥ {min_snr:g}); an ordered surface shows "
                        f"at least the first-order substrate spots. Check the energy, exposure and screen.")
@@ -250,7 +257,7 @@ def analyze_image(image, *, energy_eV: float, substrate: str | Net2D, reference=
                         center_guess=center_guess,
                         screen_radius_px=(0.45 * min(img.shape) if framed else screen.radius_px),
                         screen_prior_sigma=0.3 if framed else 0.15,
-                        valid_mask=meas.valid, tol_px=tol_px)
+                        valid_mask=meas.valid, tol_px=tol_px, reliable=trusted)
     timings["total"] = time.perf_counter() - t0
     if idx.substrate.confidence < 0.8:
         warnings.append(f"The substrate reading is uncertain ({idx.substrate.confidence:.0%}); "
@@ -259,7 +266,7 @@ def analyze_image(image, *, energy_eV: float, substrate: str | Net2D, reference=
     return AnalysisResult(xy_px=xy, intensity=inten, snr=snr, manual=manual, index=idx, measurement=meas,
                           energy_eV=e, substrate_spec=hint.label or str(substrate), substrate_hint=hint,
                           image_shape=tuple(img.shape), edits=ed, calibration_source=source,
-                          reference_geometry=ref_geom, warnings=tuple(warnings), timings_s=timings)
+                          reference_geometry=ref_geom, warnings=tuple(warnings), timings_s=timings, trusted=trusted)
 
 
 def try_model(result: AnalysisResult, text: str):
@@ -279,4 +286,5 @@ def try_model(result: AnalysisResult, text: str):
     t = (text or "").strip()
     m = parse_wood(t, sub.net) if ("(" in t and ("x" in t.lower() or "×" in t)) else parse_matrix(t)
     return model_from_matrix(sub.hk, sub.integer, sub, m, energy_eV=result.energy_eV,
-                             intensity=result.intensity, valid_mask=result.measurement.valid)
+                             intensity=result.intensity, valid_mask=result.measurement.valid,
+                             reliable=result.trusted)

@@ -174,7 +174,7 @@ def test_moire_with_satellites_on_hexagonal():
     _check_moire(analyze_image(img.image, energy_eV=150.0, substrate="hexagonal:2.715"), sub)
 
 
-@pytest.mark.parametrize("energy", [60.0, 70.0, 100.0])
+@pytest.mark.parametrize("energy", [60.0, 70.0, 120.0])
 def test_moire_with_satellites_one_substrate_ring(energy):
     # one ring of substrate beams leaves the camera distortion loose; the layer's own beams (brighter
     # than its satellites) and the satellites must still give the aligned single layer
@@ -291,3 +291,34 @@ def test_dim_integer_beams_and_an_off_centre_gun():
     res = analyze_image(im.image, energy_eV=energy, substrate="Cu(100)")
     assert res.index.best.wood == "p(2×2)"
     assert np.hypot(*(np.array(res.index.substrate.geometry.center_px) - geom.center_px)) < 0.5
+
+
+def test_joint_camera_and_overlayer_fit_recovers_distortion_from_satellites():
+    # truth: our own camera model; one ring of substrate beams cannot fix R/L, but the layer's beams
+    # and the satellites g_sub ± (b* − a*) sit at other radii and do, once b* is fitted with the camera
+    from analysis.indexing import _OverlayerTerms, _refine
+    from analysis.optics import ScreenGeometry, momentum_to_pixels
+
+    sub = parse_substrate("hexagonal:2.715")
+    a_star = reciprocal(sub).vectors
+    truth = ScreenGeometry(512.0, 500.0, 640.0, distortion=0.22, rotation_deg=7.0)
+    b0 = (2.715 / 2.46) * np.eye(2)  # overlayer reciprocal basis in substrate units
+    h_sub = np.array([(1, 0), (0, 1), (-1, 1), (-1, 0), (0, -1), (1, -1)], float)
+    steps = np.array([(1, 0), (0, 1), (1, 1), (-1, 0), (0, -1), (-1, -1)], float)
+    h = [*h_sub, *np.zeros((6, 2))]
+    u = [*np.zeros((6, 2)), *h_sub]  # substrate beams, then the layer's own first-order beams
+    for hs in h_sub:  # satellites: substrate beam + (u B0) − (the matching substrate step)
+        for st in steps:
+            h.append(hs - st)
+            u.append(st)
+    terms_true = _OverlayerTerms(np.array(h), np.array(u), np.tile(np.eye(2), (len(h), 1, 1)), b0)
+    xy, vis = momentum_to_pixels(terms_true.hk(b0) @ a_star, 100.0, truth)
+    keep = vis & np.all(np.isfinite(xy), axis=1)
+    start = dataclasses.replace(truth, distortion=0.35, scale_px=655.0)
+    terms = _OverlayerTerms(terms_true.h[keep], terms_true.u[keep], terms_true.t[keep], b0 * 1.006)
+    geom, _, res, _ = _refine(xy[keep], None, 100.0, start, a_star,
+                              ("center_x_px", "center_y_px", "scale_px", "rotation_deg", "distortion"), False,
+                              overlayer=terms)
+    assert geom.distortion == pytest.approx(0.22, abs=1e-4)
+    assert geom.scale_px == pytest.approx(640.0, rel=1e-5)
+    assert np.abs(res).max() < 1e-4
