@@ -961,12 +961,14 @@ class _Fitter:
         out = [a[rr_, cc_] for a in arrays]
         return r0, c0, inside, out, (rr, cc)
 
-    def fit(self, data, noise2, w_ok, p, u, gain, *, n_iter=20, sigma_bounds=(0.4, 12.0), min_iter=3):
+    def fit(self, data, noise2, w_ok, p, u, gain, *, n_iter=20, sigma_bounds=(0.4, 12.0), restart=False):
         """data, noise2, w_ok: (K, W, W); p: (K, 6) [A, dr0, dc0, log sr, log st, b] (offsets in window).
 
         Returns (p, covariance (K, 6, 6), reduced χ², model (K, W, W)). Spots leave the
-        iteration as soon as their centre moves by less than 10⁻³ px (after `min_iter`
-        iterations; 1 suits a start at a previous solution).
+        iteration as soon as their centre moves by less than 10⁻³ px, after three
+        iterations; with `restart` (`p` is a previous solution) after one, and a lightly
+        damped step below 10⁻³ px ends the fit even when it does not lower χ² (at the
+        minimum, rounding and the reweighting reject such steps).
         """
         k = len(p)
         p = np.array(p, dtype=np.float64)
@@ -1004,12 +1006,14 @@ class _Fitter:
             chi2_n = np.sum(w * (d - mdl_n) ** 2, axis=(1, 2))
             better = np.isfinite(chi2_n) & (chi2_n <= chi2)
             p[act] = np.where(better[:, None], pn, pa)
+            small = np.abs(step[:, 1:3]).max(axis=1) < 1e-3
+            flat = small & ~better & (lam[act] < 1.0) if restart else np.zeros(len(act), bool)
             lam[act] = np.where(better, np.maximum(lam[act] / 5, 1e-7), lam[act] * 10)
             b3 = better[:, None, None]
             mdl = np.where(b3, mdl_n, mdl)
             aux = tuple(np.where(b3, xn, x) for xn, x in zip(aux_n, aux))
-            done = better & (np.abs(step[:, 1:3]).max(axis=1) < 1e-3) | (lam[act] > 1e6)
-            if it >= min_iter - 1 and done.any():
+            done = better & small | flat | (lam[act] > 1e6)
+            if it >= (0 if restart else 2) and done.any():
                 act, keep = act[~done], ~done
                 mdl, aux = mdl[keep], tuple(x[keep] for x in aux)
         # covariance at the solution
@@ -1460,7 +1464,7 @@ def _refit_batch(fitter, res, noise, ok_fit, valid, spots, ids, nz_c, mdl, gain,
     p = np.column_stack([sub["amp"], sub["rc"][:, 0] - r0, sub["rc"][:, 1] - c0, np.log(sub["sr"]),
                          np.log(sub["st"]), sub["off"]])
     keep_failed = (sub["flags"] & FLAG_FIT_FAILED) > 0
-    p, cov, _, _ = fitter.fit(data, nz2, okp, p, sub["u"], gain, n_iter=10, min_iter=1)
+    p, cov, _, _ = fitter.fit(data, nz2, okp, p, sub["u"], gain, n_iter=10, restart=True)
     new = _from_fit(p, cov, r0, c0, sub["u"], sub["snr"], vp & inside, okp, sigma_px, half, sub["rc"],
                     flags0=(sub["flags"] & ~np.uint8(FLAG_FIT_FAILED | FLAG_NEAR_EDGE)).astype(np.uint8))
     failed = (new["flags"] & FLAG_FIT_FAILED) > 0
