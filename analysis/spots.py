@@ -1356,7 +1356,7 @@ def _take(a, idx):
 
 
 def _refit_neighbours(fitter, res, noise, ok_fit, valid, spots, centre, gain, sigma_px, shape, half, sweeps=2,
-                      tol_px: float = 1e-3, max_refits: int = 10):
+                      tol_px: float = 1e-3, max_refits: int = 10, max_fails: int = 2):
     """Refit spots that share a window, each with the others' models removed.
 
     Block Gauss–Seidel over the crowded spots: spots whose windows overlap are
@@ -1368,7 +1368,8 @@ def _refit_neighbours(fitter, res, noise, ok_fit, valid, spots, centre, gain, si
     spot has changed when its centre moved by `tol_px` or more, or its model by
     more than 2 % of the local noise. At most `sweeps` sweeps, and at most
     `max_refits` fits of any one spot (a spot that still changes after that
-    many, typically a false detection on a sharp edge, keeps its last fit).
+    many, typically a false detection on a sharp edge, keeps its last fit);
+    a spot whose fit failed `max_fails` times is not fitted again.
     """
     if len(spots["rc"]) < 2:
         return spots
@@ -1385,8 +1386,9 @@ def _refit_neighbours(fitter, res, noise, ok_fit, valid, spots, centre, gain, si
     nz_c = noise[ri[crowded], ci[crowded]]
     active = np.ones(len(crowded), bool)
     refits = np.zeros(len(crowded), np.int64)
+    fails = np.zeros(len(crowded), np.int64)
     for _ in range(sweeps):
-        active &= refits < max_refits
+        active &= (refits < max_refits) & (fails < max_fails)
         if not active.any():
             break
         changed = np.zeros(len(crowded), bool)
@@ -1395,6 +1397,7 @@ def _refit_neighbours(fitter, res, noise, ok_fit, valid, spots, centre, gain, si
             changed[batch] = _refit_batch(fitter, res, noise, ok_fit, valid, spots, crowded[batch], nz_c[batch],
                                           mdl, gain, sigma_px, shape, half, tol_px)
         refits[active] += 1
+        fails[active] += (spots["flags"][crowded[active]] & FLAG_FIT_FAILED) > 0
         active = changed.copy()
         active[nb_idx[np.repeat(changed, np.diff(nb_ptr))]] = True
     return spots
