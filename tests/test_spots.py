@@ -364,3 +364,39 @@ def test_unknown_spot_width_far_from_the_first_guess(sigma):
     assert abs(m.sigma_px - math.sqrt(sigma**2 + 1 / 12)) < 0.1 * sigma
     n_true, n_hit, n_rep, n_false, ratio2 = _score(m.spots.rc, _truth(im), tol=max(5.0, 2 * sigma))
     assert n_hit == n_true and n_false == 0
+
+
+# --------------------------------------------------------------------------- crowded spots
+
+
+def test_crowded_grid_is_resolved_to_the_bound():
+    # nine spots 8.5 px (4.25 σ) apart share their 13-px fit windows; brightness varies tenfold
+    errs, extra = [], 0
+    for seed in range(4):
+        rc = np.array([(r, c) for r in range(3) for c in range(3)], float) * 8.5 + [38.2, 38.7]
+        rc += np.random.default_rng(seed).uniform(-0.5, 0.5, rc.shape)
+        photons = np.random.default_rng(100 + seed).uniform(3000.0, 30000.0, len(rc))
+        t = find_spots(_gauss_image([(y, x, n) for (y, x), n in zip(rc, photons)], seed=seed), sigma_px=2.0)
+        d = np.hypot(*(t.rc[:, None, :] - rc[None]).transpose(2, 0, 1))  # (found, true)
+        assert d.min(axis=0).max() < 0.5
+        extra += len(t) - len(rc)
+        # background 50 photons per pixel (_gauss_image); the bound is per coordinate
+        errs.extend(d.min(axis=0) / math.sqrt(2) / localization_bound_px(photons, 2.0, 50.0))
+    assert extra == 0
+    # neighbours' light adds noise the isolated-spot bound leaves out; 1.3 as in the frame test
+    assert math.sqrt(np.mean(np.square(errs))) <= 1.3
+
+
+def test_dense_bright_pattern_recall_precision_and_localisation():
+    # (7×7) on Pt(111) at 220 eV on a 512-px frame: most beams sit inside a neighbour's 13-px window
+    im = _frame(34, substrate="Pt(111)", over=([[7, 0], [0, 7]],), energy=220.0, snr=(5.0, 300.0))
+    truth = _truth(im)
+    seen = truth[truth[:, 6] > 0, :2]
+    assert np.mean(cKDTree(seen).query(seen, k=2)[0][:, 1] < 13.0) > 0.5  # crowded as intended
+    m = measure_image(im.image, sigma_px=2.0)
+    # match within 2 px: beams are ≈ 12 px apart, so a looser match could pair a spot with a neighbour
+    n_true, n_hit, n_rep, n_false, ratio2 = _score(m.spots.rc, truth, tol=2.0)
+    assert n_true >= 400
+    assert n_hit / n_true >= 0.97
+    assert 1 - n_false / n_rep >= 0.98
+    assert math.sqrt(float(np.mean(ratio2))) <= 1.3
