@@ -985,12 +985,11 @@ class _Fitter:
             pa = p[act]
             w = self._weights(mdl, pa, n2, ok, gain)
             chi2 = np.sum(w * (d - mdl) ** 2, axis=(1, 2))
-            jac = self._jac(aux, uu)
             ka = len(act)
-            jf = jac.reshape(ka, -1, 6)
-            jtw = jf * w.reshape(ka, -1, 1)
-            hmat = np.matmul(jtw.transpose(0, 2, 1), jf)
-            grad = np.matmul(jtw.transpose(0, 2, 1), (d - mdl).reshape(ka, -1, 1))[:, :, 0]
+            jf = self._jac(aux, uu).reshape(ka, 6, -1)  # (K, 6, pixels)
+            jtw = jf * w.reshape(ka, 1, -1)
+            hmat = np.matmul(jtw, jf.transpose(0, 2, 1))
+            grad = np.matmul(jtw, (d - mdl).reshape(ka, -1, 1))[:, :, 0]
             diag = np.einsum("kii->ki", hmat)
             hd = hmat + (lam[act, None] * np.maximum(diag, 1e-12))[:, :, None] * np.eye(6)[None]
             hd = hd + 1e-12 * np.eye(6)[None]
@@ -1019,8 +1018,8 @@ class _Fitter:
         # covariance at the solution
         mdl, aux = self._model(p, u)
         w = self._weights(mdl, p, noise2, w_ok, gain)
-        jf = self._jac(aux, u).reshape(k, -1, 6)
-        hmat = np.matmul((jf * w.reshape(k, -1, 1)).transpose(0, 2, 1), jf)
+        jf = self._jac(aux, u).reshape(k, 6, -1)
+        hmat = np.matmul(jf * w.reshape(k, 1, -1), jf.transpose(0, 2, 1))
         try:
             cov = np.linalg.inv(hmat + 1e-12 * np.eye(6)[None])
         except np.linalg.LinAlgError:
@@ -1049,13 +1048,13 @@ class _Fitter:
         ur, uc = u[:, 0, None, None], u[:, 1, None, None]
         ae = a * e
         gr, gt = ae * rho * isr2, ae * tau * ist2
-        jac = np.empty(e.shape + (6,))
-        jac[..., 0] = e
-        jac[..., 1] = gr * ur - gt * uc
-        jac[..., 2] = gr * uc + gt * ur
-        jac[..., 3] = gr * rho
-        jac[..., 4] = gt * tau
-        jac[..., 5] = 1.0
+        jac = np.empty((e.shape[0], 6) + e.shape[1:])  # (K, 6, W, W): one contiguous plane per parameter
+        jac[:, 0] = e
+        np.subtract(gr * ur, gt * uc, out=jac[:, 1])
+        np.add(gr * uc, gt * ur, out=jac[:, 2])
+        np.multiply(gr, rho, out=jac[:, 3])
+        np.multiply(gt, tau, out=jac[:, 4])
+        jac[:, 5] = 1.0
         return jac
 
 
