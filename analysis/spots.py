@@ -1355,7 +1355,7 @@ def _take(a, idx):
 
 
 def _refit_neighbours(fitter, res, noise, ok_fit, valid, spots, centre, gain, sigma_px, shape, half, sweeps=2,
-                      tol_px: float = 1e-3, max_refits: int = 10, max_fails: int = 2):
+                      tol_px: float = 1e-3, max_refits: int = 6, max_fails: int = 2):
     """Refit spots that share a window, each with the others' models removed.
 
     Block Gauss–Seidel over the crowded spots: spots whose windows overlap are
