@@ -1403,8 +1403,8 @@ def _refit_neighbours(fitter, res, noise, ok_fit, valid, spots, centre, gain, si
 
 
 def _overlap_graph(rc, half):
-    """CSR neighbour lists (ptr, idx) of spots whose (2 half + 1)² windows overlap or come
-    within reach of it as the centres move (3 px of margin)."""
+    """CSR neighbour lists (ptr, idx) of spots whose (2 half + 1)² windows overlap, with
+    3 px to spare for centres that move during the fits."""
     from scipy.spatial import cKDTree
 
     k = len(rc)
@@ -1471,9 +1471,10 @@ def _refit_batch(fitter, res, noise, ok_fit, valid, spots, ids, nz_c, mdl, gain,
                     flags0=(sub["flags"] & ~np.uint8(FLAG_FIT_FAILED | FLAG_NEAR_EDGE)).astype(np.uint8))
     failed = (new["flags"] & FLAG_FIT_FAILED) > 0
     new["rc"] = np.where((keep_failed & failed)[:, None], sub["rc"], new["rc"])
-    # a failed fit says nothing about the height: the neighbours see the residual peak instead
+    # a failed fit says little about the height: the neighbours see the residual peak instead
+    # (a fit that went negative still reports no light, as a failed first fit does)
     h = fitter.half
-    new["amp"] = np.where(failed, np.maximum(data[:, h, h], 0.0), new["amp"])
+    new["amp"] = np.where(failed & (new["amp"] > 0), np.maximum(data[:, h, h], 0.0), new["amp"])
     for key in spots:
         spots[key][ids] = new[key]
     moved = np.hypot(*(new["rc"] - sub["rc"]).T)

@@ -110,8 +110,8 @@ def main(argv=None) -> int:
               flush=True)
     found = [r for r in rows if r[4] == "auto"]
     tot = np.sum([r[:4] for r in found], axis=0) if found else np.zeros(4)
-    print(f"\nslowest frame: {max(times):.2f} s, {max(ratios):.2f}× its render time; median {statistics.median(ratios):.2f}×"
-          f"  (target: ≤ about 1 s, about 5× the render time)")
+    print(f"\nslowest frame: {max(times):.2f} s; time ÷ render time: largest {max(ratios):.2f}, median "
+          f"{statistics.median(ratios):.2f}  (target: ≤ about 1 s, about 5× the render time)")
     print(f"frames with the screen found: recall {tot[1] / max(tot[0], 1):.3f}, precision "
           f"{1 - tot[3] / max(tot[2], 1):.3f}  (targets 0.97 and 0.98). Where the whole frame is searched the"
           f"\nscreen edge itself gives false spots: their precision is the screen finder's, not the fitter's.")
