@@ -943,17 +943,20 @@ def _score(ctx: _Context, matrix, *, all_domains: bool, satellites: bool, absent
     hk, a_star, tol_g = ctx.hk, ctx.a_star, ctx.tol_g
     frac = ~ctx.integer
     mats, names = _domain_matrices(m, ctx.ops)
-    dist = np.array([_lattice_distance(hk, d, a_star) for d in mats])  # (D, K) Å⁻¹
+    ms = np.array(mats)
+    bs = np.linalg.inv(ms).transpose(0, 2, 1)  # reciprocal bases (D, 2, 2), hk units
+    # distance of every spot to each domain's net: hk ≈ rint(hk Mᵀ) B
+    near = np.einsum("dkj,dji->dki", np.rint(np.einsum("ki,dji->dkj", hk, ms)), bs)
+    dd = (hk[None] - near) @ a_star
+    dist = np.hypot(dd[..., 0], dd[..., 1])  # (D, K) Å⁻¹
     expl = (dist <= tol_g) & frac[None, :]
     primary = expl.copy()
-    if satellites:
-        for i, d in enumerate(mats):
-            b = np.linalg.inv(d).T
-            for vec in (b[0], b[1], b[0] + b[1], b[0] - b[1]):
-                for sign in (1, -1):
-                    sh = hk - sign * vec
-                    dd = (sh - np.rint(sh)) @ a_star
-                    dist[i] = np.minimum(dist[i], np.hypot(dd[:, 0], dd[:, 1]))
+    if satellites:  # a substrate beam plus a first-order beam of the layer (± b1*, b2*, b1* ± b2*)
+        v = np.stack([bs[:, 0], bs[:, 1], bs[:, 0] + bs[:, 1], bs[:, 0] - bs[:, 1]], axis=1)
+        v = np.concatenate([v, -v], axis=1)  # (D, 8, 2)
+        sh = hk[None, None] - v[:, :, None, :]
+        dd = (sh - np.rint(sh)) @ a_star
+        dist = np.minimum(dist, np.hypot(dd[..., 0], dd[..., 1]).min(axis=1))
         expl = (dist <= tol_g) & frac[None, :]
     if all_domains:
         chosen = list(range(len(mats)))
@@ -1006,15 +1009,14 @@ def _with_absent(ctx: _Context, sc: dict) -> dict:
     absent = 0
     center = np.array(ctx.geom.center_px)
     a_star = ctx.a_star
-    for m in sc["mats"]:
-        pts = _lattice_points(np.linalg.inv(m).T, a_star, ctx.g_max)
-        pts = pts[np.any(np.abs(pts - np.rint(pts)) > 1e-6, axis=1)]
-        if not len(pts):
-            continue
+    pts = [_lattice_points(np.linalg.inv(m).T, a_star, ctx.g_max) for m in sc["mats"]]
+    pts = np.concatenate(pts) if pts else np.zeros((0, 2))  # every domain at once
+    pts = pts[np.any(np.abs(pts - np.rint(pts)) > 1e-6, axis=1)]
+    if len(pts):
         seen = _seen(_screen_xy(pts @ a_star, ctx.energy_eV, ctx.geom), ctx.valid_mask, center, ctx.r_max, 0.0)
         if seen.any():
             d, _ = ctx.tree.query(pts[seen] @ a_star, distance_upper_bound=ctx.tol_g)
-            absent += int(np.sum(~np.isfinite(d)))
+            absent = int(np.sum(~np.isfinite(d)))
     return {**sc, "absent": absent, "score": float(sc["bound"] - 0.5 * absent)}
 
 
