@@ -116,15 +116,23 @@ def disk_mask(shape, center_rc, radius_px: float, *, axes_px=None, angle_deg: fl
     >>> int(disk_mask((11, 11), (5, 5), 2.0).sum())
     13
     """
-    r = np.arange(shape[0], dtype=np.float64)[:, None] - center_rc[0]
-    c = np.arange(shape[1], dtype=np.float64)[None, :] - center_rc[1]
-    if axes_px is None:
-        return r * r + c * c <= radius_px * radius_px
-    a, b = axes_px
+    a, b = (radius_px, radius_px) if axes_px is None else axes_px
     t = math.radians(angle_deg)
-    u = c * math.cos(t) - r * math.sin(t)  # along the a-axis (y up)
-    v = c * math.sin(t) + r * math.cos(t)
-    return (u / a) ** 2 + (v / b) ** 2 <= 1.0
+    ct, st = math.cos(t), math.sin(t)
+    # row by row the ellipse is an interval of columns: with u = c cos t − r sin t (along a, y up)
+    # and v = c sin t + r cos t, (u/a)² + (v/b)² ≤ 1 is A c² + B c + C ≤ 0 for each row offset r
+    r = np.arange(shape[0], dtype=np.float64) - center_rc[0]
+    qa = (ct / a) ** 2 + (st / b) ** 2
+    qb = 2.0 * r * (-st * ct / a**2 + st * ct / b**2)
+    qc = r * r * ((st / a) ** 2 + (ct / b) ** 2) - 1.0
+    disc = qb * qb - 4.0 * qa * qc
+    with np.errstate(invalid="ignore"):
+        root = np.sqrt(disc)
+    lo = np.where(disc >= 0, (-qb - root) / (2 * qa), np.inf) + center_rc[1]
+    hi = np.where(disc >= 0, (-qb + root) / (2 * qa), -np.inf) + center_rc[1]
+    c = np.arange(shape[1], dtype=np.float64)[None, :]
+    eps = 1e-9 * max(a, b, 1.0)  # pixel centres exactly on the rim count as inside
+    return (c >= lo[:, None] - eps) & (c <= hi[:, None] + eps)
 
 
 def _block_reduce_mean(a: np.ndarray, f: int) -> np.ndarray:
@@ -502,6 +510,18 @@ def _none_shadow(shape, margin_px) -> ShadowMask:
     return ShadowMask(np.zeros(shape, bool), None, 0.0, None, 0.0, "none", float(margin_px))
 
 
+def _nan_percentile(a: np.ndarray, q: float) -> np.ndarray:
+    """``np.nanpercentile(a, q, axis=-1)`` (linear interpolation) by one sort; all-NaN rows give NaN."""
+    srt = np.sort(a, axis=-1)  # NaN last
+    n = np.sum(np.isfinite(srt), axis=-1)
+    pos = (q / 100.0) * np.maximum(n - 1, 0)
+    i0 = np.floor(pos).astype(np.int64)
+    i1 = np.minimum(i0 + 1, np.maximum(n - 1, 0))
+    v0 = np.take_along_axis(srt, i0[..., None], -1)[..., 0]
+    v1 = np.take_along_axis(srt, i1[..., None], -1)[..., 0]
+    return np.where(n > 0, v0 + (pos - i0) * (v1 - v0), np.nan)
+
+
 def _auto_gun(img: np.ndarray, screen: ScreenMask, margin_px: float) -> ShadowMask:
     m, n = img.shape
     f = max(1, int(round(max(m, n) / 256)))
@@ -520,7 +540,7 @@ def _auto_gun(img: np.ndarray, screen: ScreenMask, margin_px: float) -> ShadowMa
 
     with np.errstate(all="ignore"), warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN blocks outside the screen
-        lev = np.nanpercentile(np.where(cnt[..., None] > 0.1 * b * b, blocks, np.nan), 75, axis=2) \
+        lev = _nan_percentile(np.where(cnt[..., None] > 0.1 * b * b, blocks, np.nan), 75.0) \
             if np.any(cnt > 0.1 * b * b) else np.full((gm, gn), np.nan)
     lev = _fill_nan_grid(lev)
     if np.all(np.isnan(lev)):
@@ -635,6 +655,56 @@ class BackgroundEstimate:
         return v
 
 
+_POOL = None
+
+
+def _pool():
+    """A second thread for array work that releases the GIL (numpy, ndimage)."""
+    global _POOL
+    if _POOL is None:
+        from concurrent.futures import ThreadPoolExecutor
+
+        _POOL = ThreadPoolExecutor(max_workers=2, thread_name_prefix="recinet-arrays")
+    return _POOL
+
+
+def _block_stats(pad: np.ndarray, b: int, step: float):
+    """Clipped mean, noise, kept count and usability of each b×b block of `pad` (NaN = invalid),
+    blocks in row-major order."""
+    gm, gn = pad.shape[0] // b, pad.shape[1] // b
+    blocks = pad.reshape(gm, b, gn, b).transpose(0, 2, 1, 3).reshape(gm * gn, b * b)
+    # quartiles (only used to set the clip limits) from every fourth pixel of a block
+    sub = blocks.reshape(-1, b // 2, 2, b)[:, :, 0, ::2].reshape(len(blocks), -1) if b % 2 == 0 and b >= 16 \
+        else blocks
+    srt = np.sort(sub, axis=1)  # NaN last
+    cnt = np.sum(np.isfinite(srt), axis=1)
+    good = np.sum(np.isfinite(blocks), axis=1) >= max(16, b * b // 8)
+    ci = np.clip(cnt - 1, 0, None)
+    q = lambda p: np.take_along_axis(srt, np.rint(p * ci).astype(np.int64)[:, None], 1)[:, 0]  # noqa: E731
+    med, q25, q75 = q(0.5), q(0.25), q(0.75)
+    # first width from the interquartile range (spots sit above q75 in a block); at least
+    # one quantisation step so integer images with little noise are not clipped to nothing
+    s0 = np.maximum((q75 - q25) / 1.349, step)
+    lo, hi = med - 5.0 * s0 - 0.5 * step, med + 3.0 * s0 + 0.5 * step
+    with np.errstate(invalid="ignore"):
+        keep = (blocks >= lo[:, None]) & (blocks <= hi[:, None])
+        kn = keep.sum(axis=1)
+        vals = np.where(keep, blocks, 0.0).astype(np.float64)
+        mean = vals.sum(axis=1) / np.maximum(kn, 1)
+        var = np.maximum((vals * vals).sum(axis=1) - kn * mean * mean, 0.0) / np.maximum(kn - 1, 1)
+        # noise from differences of horizontal neighbours: a smooth gradient across the block
+        # does not count as noise (independent pixels: Var(a − b) = 2 Var)
+        pair = keep[:, :-1] & keep[:, 1:] & ((np.arange(b * b - 1) % b) != b - 1)[None, :]
+        nd = pair.sum(axis=1)
+        dv = 0.5 * np.where(pair, (blocks[:, 1:] - blocks[:, :-1]).astype(np.float64) ** 2, 0.0).sum(axis=1)
+        var = np.where(nd >= 16, dv / np.maximum(nd, 1), var)
+    # a one-sided 3σ clip of a normal sample lowers its variance by ≈ 1.5 % and its mean by 0.015 σ
+    var = var * 1.015
+    sd = np.sqrt(var)
+    mean = mean + 0.015 * sd
+    return mean, sd, kn, good
+
+
 def estimate_background(image, mask=None, *, block_px: int = 32, exclude=None,
                         dark_mask=None) -> BackgroundEstimate:
     """Smooth (inelastic) background and local noise, robust to the spots.
@@ -687,36 +757,7 @@ def estimate_background(image, mask=None, *, block_px: int = 32, exclude=None,
     step = 1.0 if np.allclose(sample, np.rint(sample)) else 1e-6 * max(float(np.ptp(sample)), 1e-12)
     pad = np.full((gm * b, gn * b), np.nan, dtype=np.float32)
     pad[:m, :n] = np.where(valid, img, np.nan)
-    blocks = pad.reshape(gm, b, gn, b).transpose(0, 2, 1, 3).reshape(gm * gn, b * b)
-    # quartiles (only used to set the clip limits) from every fourth pixel of a block
-    sub = blocks.reshape(-1, b // 2, 2, b)[:, :, 0, ::2].reshape(len(blocks), -1) if b % 2 == 0 and b >= 16 \
-        else blocks
-    srt = np.sort(sub, axis=1)  # NaN last
-    cnt = np.sum(np.isfinite(srt), axis=1)
-    good = np.sum(np.isfinite(blocks), axis=1) >= max(16, b * b // 8)
-    ci = np.clip(cnt - 1, 0, None)
-    q = lambda p: np.take_along_axis(srt, np.rint(p * ci).astype(np.int64)[:, None], 1)[:, 0]  # noqa: E731
-    med, q25, q75 = q(0.5), q(0.25), q(0.75)
-    # first width from the interquartile range (spots sit above q75 in a block); at least
-    # one quantisation step so integer images with little noise are not clipped to nothing
-    s0 = np.maximum((q75 - q25) / 1.349, step)
-    lo, hi = med - 5.0 * s0 - 0.5 * step, med + 3.0 * s0 + 0.5 * step
-    with np.errstate(invalid="ignore"):
-        keep = (blocks >= lo[:, None]) & (blocks <= hi[:, None])
-        kn = keep.sum(axis=1)
-        vals = np.where(keep, blocks, 0.0).astype(np.float64)
-        mean = vals.sum(axis=1) / np.maximum(kn, 1)
-        var = np.maximum((vals * vals).sum(axis=1) - kn * mean * mean, 0.0) / np.maximum(kn - 1, 1)
-        # noise from differences of horizontal neighbours: a smooth gradient across the block
-        # does not count as noise (independent pixels: Var(a − b) = 2 Var)
-        pair = keep[:, :-1] & keep[:, 1:] & ((np.arange(b * b - 1) % b) != b - 1)[None, :]
-        nd = pair.sum(axis=1)
-        dv = 0.5 * np.where(pair, (blocks[:, 1:] - blocks[:, :-1]).astype(np.float64) ** 2, 0.0).sum(axis=1)
-        var = np.where(nd >= 16, dv / np.maximum(nd, 1), var)
-    # a one-sided 3σ clip of a normal sample lowers its variance by ≈ 1.5 % and its mean by 0.015 σ
-    var = var * 1.015
-    sd = np.sqrt(var)
-    mean = mean + 0.015 * sd
+    mean, sd, kn, good = _block_stats(pad, b, step)  # (memory-bound: a second thread does not help)
     good &= kn >= 16
     lev = np.where(good, mean, np.nan).reshape(gm, gn)
     sig = np.where(good, sd, np.nan).reshape(gm, gn)
@@ -881,9 +922,6 @@ def _matched(res: np.ndarray, sigma: float) -> np.ndarray:
     return _by_row_strips(lambda a: ndi.gaussian_filter(a, sigma, truncate=3.0, mode="constant"), res, rad)
 
 
-_POOL = None
-
-
 def _by_row_strips(func, a: np.ndarray, halo: int) -> np.ndarray:
     """func(a) computed as two row strips in two threads (ndimage releases the GIL).
 
@@ -891,16 +929,11 @@ def _by_row_strips(func, a: np.ndarray, halo: int) -> np.ndarray:
     carries that many rows of its neighbour, so the result equals func(a)
     exactly. Small images are done in one call.
     """
-    global _POOL
     m = a.shape[0]
     if m < 256 or a.size < 200_000 or halo >= m // 4:
         return func(a)
-    if _POOL is None:
-        from concurrent.futures import ThreadPoolExecutor
-
-        _POOL = ThreadPoolExecutor(max_workers=2, thread_name_prefix="recinet-filter")
     h = m // 2
-    top = _POOL.submit(func, a[: h + halo])
+    top = _pool().submit(func, a[: h + halo])
     bottom = func(a[h - halo:])
     out = np.empty(a.shape, dtype=bottom.dtype)
     out[h:] = bottom[halo:]
