@@ -529,11 +529,16 @@ def _auto_gun(img: np.ndarray, screen: ScreenMask, margin_px: float) -> ShadowMa
     scr = screen.mask[: small.shape[0] * f: f, : small.shape[1] * f: f][: small.shape[0], : small.shape[1]]
     if scr.sum() < 100:
         return _none_shadow(img.shape, margin_px)
-    # local screen level: a high percentile per coarse block, so dark shadows do not pull it down
+    # local screen level: a high percentile per coarse block, so dark shadows do not pull it down,
+    # of the pixels below the spots (a dense bright pattern would otherwise lift it above the
+    # diffuse background between the spots, which then reads as shadow)
     b = max(8, min(small.shape) // 12)
     gm, gn = -(-small.shape[0] // b), -(-small.shape[1] // b)
+    on = small[scr]
+    med = float(np.median(on))
+    cut = med + 5.0 * max(1.4826 * float(np.median(np.abs(on - med))), 1e-12)
     pad = np.full((gm * b, gn * b), np.nan)
-    pad[: small.shape[0], : small.shape[1]] = np.where(scr, small, np.nan)
+    pad[: small.shape[0], : small.shape[1]] = np.where(scr & (small <= cut), small, np.nan)
     blocks = pad.reshape(gm, b, gn, b).transpose(0, 2, 1, 3).reshape(gm, gn, b * b)
     cnt = np.sum(np.isfinite(blocks), axis=2)
     import warnings
@@ -613,6 +618,8 @@ def _auto_gun(img: np.ndarray, screen: ScreenMask, margin_px: float) -> ShadowMa
         fine = ndi.binary_dilation(np.pad(fine, grow), iterations=grow)[grow:-grow, grow:-grow]
     mask = np.zeros((m, n), bool)
     mask[r0_:r1_, c0_:c1_] = fine
+    if mask.sum() > 0.4 * screen.mask.sum():  # a gun shadow is a disk and an arm, not most of the screen
+        return _none_shadow(img.shape, margin_px)
     centre = (disk_c + 0.5) * f - 0.5
     return ShadowMask(mask, centre, disk_r * f, arm_angle, arm_w, "auto", float(margin_px))
 

@@ -400,3 +400,13 @@ def test_dense_bright_pattern_recall_precision_and_localisation():
     assert n_hit / n_true >= 0.97
     assert 1 - n_false / n_rep >= 0.98
     assert math.sqrt(float(np.mean(ratio2))) <= 1.3
+
+
+def test_dense_bright_pattern_keeps_its_screen():
+    # several hundred bright (5×5) beams on a 512² frame: the diffuse background between the spots
+    # must not be taken for the gun shadow (it once swallowed most of the screen). Truth: the renderer's.
+    im = _frame(3, substrate="Pt(111)", over=([[5, 0], [0, 5]],), energy=200.0, snr=(20.0, 1000.0))
+    m = measure_image(im.image, sigma_px=None)
+    assert m.gun.mask.sum() < 0.2 * m.screen.mask.sum()
+    n_true, n_hit, n_rep, n_false, ratio2 = _score(m.spots.rc, _truth(im), tol=5.0)
+    assert n_true > 200 and n_hit / n_true > 0.97 and n_false <= 0.02 * n_rep
