@@ -15,7 +15,7 @@ at sin θ = λ |g| with λ = √(150.4 / E) Å, so on a distant camera its radiu
   uncertainty (:func:`integrate_spots`);
 * indexes one frame of the series (the camera model, the substrate net and the
   overlayer domains it shows) with :func:`analysis.pipeline.analyze_image`
-  (:func:`index_series_frame`);
+  (:func:`index_series_frame`), or several that vote (:func:`index_series_frames`);
 * tracks every beam through the stack, frames streamed one at a time (a stack on disk is
   read a frame or two ahead on a second thread): predict from the current screen
   geometry, refine locally, integrate, and refit the geometry from all frames so far
@@ -86,6 +86,7 @@ __all__ = [
     "add_iv_parser",
     "SeriesIndexing",
     "index_series_frame",
+    "index_series_frames",
     "FLAG_OFF_SCREEN",
     "FLAG_MASKED",
     "FLAG_SATURATED",
@@ -2213,6 +2214,9 @@ class SeriesIndexing:
     mask : (M, N) ndarray of bool or None
         Pixels that may be used: the screen found on that frame minus the gun shadow.
     warnings : tuple of str
+    votes : tuple of dict
+        When several frames were indexed (:func:`index_series_frames`): each frame's
+        ``frame``, ``energy_eV``, ``reading`` (its label, or the error) and ``confidence``.
     """
 
     frame: int
@@ -2227,6 +2231,7 @@ class SeriesIndexing:
     confidence: float
     mask: np.ndarray | None = None
     warnings: tuple = ()
+    votes: tuple = ()
 
     @property
     def label(self) -> str:
@@ -2244,7 +2249,8 @@ class SeriesIndexing:
             "superstructure": self.label, "kind": self.kind, "wood": self.wood, "matrix_text": self.matrix_text,
             "domains": [np.asarray(m, dtype=np.float64).tolist() for m in self.overlayers],
             "substrate_confidence": self.confidence, "geometry": self.geometry.to_dict(),
-            "substrate_net_A": self.substrate.vectors.tolist(), "warnings": list(self.warnings)})
+            "substrate_net_A": self.substrate.vectors.tolist(), "warnings": list(self.warnings),
+            "votes": [dict(v) for v in self.votes]})
 
 
 def index_series_frame(frame, *, energy_eV: float, substrate: str | Net2D, frame_index: int = 0,
@@ -2320,6 +2326,65 @@ def index_series_frame(frame, *, energy_eV: float, substrate: str | Net2D, frame
                           wood=best.wood, matrix_text=format_matrix(np.asarray(best.matrix, dtype=np.float64)),
                           confidence=float(fit.confidence), mask=valid,
                           warnings=tuple(res.warnings))
+
+
+def index_series_frames(frames, *, substrate: str | Net2D, min_snr: float = 5.0) -> SeriesIndexing:
+    """Index several frames of a series and keep the reading most of them agree on.
+
+    One frame can mislead: at an energy where the integer beams sit in I(V) minima,
+    positions alone may fit another substrate reading (e.g. p(2×2) and
+    (√5×√5)R26.6° on nets of different size). Each frame votes for its reading
+    (superstructure, kind and domain count) with the confidence of its substrate
+    reading; the winner's most confident frame is returned, with every vote.
+
+    Parameters
+    ----------
+    frames : iterable of (frame, energy_eV, frame_index, frame_name)
+    substrate : str or Net2D, keyword-only
+    min_snr : float, keyword-only
+
+    Raises
+    ------
+    SeriesError
+        When no frame could be indexed (the message names each frame's reason).
+
+    Examples
+    --------
+    >>> from analysis.simulate import forward_pattern, render_image
+    >>> geom = ScreenGeometry(258.6, 251.4, 290.0, distortion=0.1, rotation_deg=6.0)
+    >>> ims = [render_image(forward_pattern(parse_substrate("Cu(100)"), [[[1, 1], [-1, 1]]], energy_eV=e,
+    ...                                     geometry=geom), shape=(512, 512), rng=np.random.default_rng(1))
+    ...        for e in (100.0, 130.0)]
+    >>> found = index_series_frames([(im.image, e, i, "") for i, (im, e) in enumerate(zip(ims, (100.0, 130.0)))],
+    ...                             substrate="Cu(100)")
+    >>> print(found.label, [v["reading"] for v in found.votes])
+    c(2×2), commensurate ['c(2×2), commensurate', 'c(2×2), commensurate']
+    """
+    results, votes, errors = [], [], []
+    for frame, energy, index, name in frames:
+        try:
+            r = index_series_frame(frame, energy_eV=energy, substrate=substrate, frame_index=index,
+                                   frame_name=name, min_snr=min_snr)
+        except SeriesError as err:
+            errors.append(str(err))
+            votes.append({"frame": int(index), "energy_eV": float(energy), "reading": f"not indexed: {err}",
+                          "confidence": 0.0})
+            continue
+        results.append(r)
+        votes.append({"frame": r.frame, "energy_eV": r.energy_eV, "reading": r.label, "confidence": r.confidence})
+    if not results:
+        raise SeriesError("No frame could be indexed: " + " ".join(errors))
+    weight: dict[str, float] = {}
+    for r in results:
+        weight[r.label] = weight.get(r.label, 0.0) + max(r.confidence, 1e-3)
+    win = max(weight, key=lambda k: weight[k])
+    best = max((r for r in results if r.label == win), key=lambda r: r.confidence)
+    warnings = list(best.warnings)
+    agree = sum(r.label == win for r in results)
+    if agree < len(votes):
+        others = sorted({v["reading"] for v in votes if v["reading"] != win})
+        warnings.append(f"{agree} of {len(votes)} frames read {win}; the others: " + "; ".join(others) + ".")
+    return replace(best, warnings=tuple(warnings), votes=tuple(votes))
 
 
 def _pair_centre(frame, min_snr: float):
@@ -2400,10 +2465,10 @@ def add_iv_parser(subparsers) -> argparse.ArgumentParser:
                    help="regular expression reading the energy from each file name (first group)")
     p.add_argument("--csv", required=True, help="output CSV: energy_eV, then one column per beam")
     p.add_argument("--json", help="output JSON with curves, flags, calibration and equivalent groups")
-    p.add_argument("--geometry", help="JSON screen geometry (a saved calibration); default: index one frame")
+    p.add_argument("--geometry", help="JSON screen geometry (a saved calibration); default: index frames")
     p.add_argument("--index-frame", type=int, dest="index_frame", metavar="N",
-                   help="frame to index (0-based) when no --geometry is given; default: the frame nearest "
-                        "the middle of the energy range, or nearest 150 eV when the middle is higher")
+                   help="frame to index (0-based) when no --geometry is given; default: up to six frames "
+                        "(the one nearest the middle of the range or 150 eV, and others up to 250 eV) vote")
     p.add_argument("--overlayer", action="append", default=[], metavar="MATRIX",
                    help="superstructure matrix, e.g. '2 0 / 0 2' (repeat for several)")
     p.add_argument("--all-domains", action="store_true", help="add the symmetry-equivalent domains")
@@ -2463,6 +2528,50 @@ def _index_frame_choice(series, energies, first) -> int:
 
         n = sum(1 for _ in iter_frames(series, max_bytes=_STACK_MAX_BYTES))
     return max(n - 1, 0) // 2
+
+
+def _index_frame_choices(series, energies, first, n_frames: int = 5) -> list[int]:
+    """Frames to index and vote over: the usual choice (:func:`_index_frame_choice`) and
+    others spread over the lower part of the range (up to 250 eV), where several rings of
+    beams are seen and spots do not crowd."""
+    k0 = _index_frame_choice(series, energies, first)
+    n = _count_frames(series, energies, first)
+    e = None
+    if isinstance(energies, EnergyTable) and n == len(energies):
+        e = energies.energy_eV
+    elif isinstance(energies, _StartStep) and n:
+        e = energies.start + energies.step * np.arange(n)
+    if e is None:
+        if not n:
+            return [k0]
+        picks = np.rint(np.linspace(0.1, 0.6, n_frames) * (n - 1)).astype(int)
+    else:
+        lo = float(e.min()) + 0.1 * float(np.ptp(e))
+        hi = max(min(float(e.max()), 250.0), lo)
+        picks = [int(np.argmin(np.abs(e - t))) for t in np.linspace(lo, hi, n_frames)]
+    return sorted({k0, *(int(p) for p in picks)})
+
+
+def _seek_frames(series, wanted: list[int], energies, name_pattern: str) -> list[tuple]:
+    """(index, name, frame, energy_eV) of each wanted frame, in one pass over the series."""
+    from .io import iter_frames
+
+    en = _Energies(energies, name_pattern)
+    want = set(wanted)
+    out, i = [], -1
+    frames = iter_frames(series, max_bytes=_STACK_MAX_BYTES)
+    try:
+        for i, (name, frame) in enumerate(frames):
+            e, _ = en.at(i, name)
+            if i in want:
+                out.append((i, name, frame, e))
+                if len(out) == len(want):
+                    break
+    except ImageError as err:
+        raise SeriesError(f"Cannot read frame {i + 1}: {err}") from None
+    finally:
+        frames.close()
+    return out
 
 
 def _seek_frame(series, n: int, energies, name_pattern: str):
@@ -2540,19 +2649,23 @@ def _cmd_iv(args) -> int:
         azimuth = args.azimuth_deg
     else:
         n_idx = args.index_frame
-        if n_idx is None:
-            n_idx = _index_frame_choice(args.series, energies, first)
-        if n_idx == 0:
-            name_i, frame_i, e_i = name0, frame0, e0
-        else:
-            name_i, frame_i, e_i = _seek_frame(args.series, n_idx, energies, args.name_pattern)
         try:
-            found = index_series_frame(frame_i, energy_eV=e_i, substrate=substrate, frame_index=n_idx,
-                                       frame_name=name_i)
+            if n_idx is not None:  # the frame asked for
+                name_i, frame_i, e_i = (name0, frame0, e0) if n_idx == 0 else \
+                    _seek_frame(args.series, n_idx, energies, args.name_pattern)
+                found = index_series_frame(frame_i, energy_eV=e_i, substrate=substrate, frame_index=n_idx,
+                                           frame_name=name_i)
+                del frame_i
+            else:  # several frames vote
+                picks = _seek_frames(args.series, _index_frame_choices(args.series, energies, first), energies,
+                                     args.name_pattern)
+                found = index_series_frames([(f, e, i, nm) for i, nm, f, e in picks], substrate=substrate)
+                del picks
         except SeriesError as err:
             raise SeriesError(f"{err} Give --geometry with a saved calibration, or another frame with "
                               "--index-frame.") from None
-        del frame_i
+        for w in found.warnings:
+            print(f"note: {w}", file=sys.stderr)
         geom, net, azimuth = found.geometry, found.substrate, 0.0
         mask = found.mask if mask is None else mask
         if not mats:

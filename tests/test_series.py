@@ -26,6 +26,7 @@ from analysis.series import (
     write_json,
 )
 from analysis.simulate import GunShadow, forward_pattern, render_image, render_series
+from analysis.superstructure import domains, parse_wood
 
 SUB = parse_substrate("Cu(100)")
 P2X2 = [[[2, 0], [0, 2]]]
@@ -610,8 +611,12 @@ def test_cli_indexes_a_frame_when_no_geometry_is_given(auto_stack, capsys):
     assert "c(2×2)" in capsys.readouterr().out
     meta = json.loads(js.read_text())
     found = meta["settings"]["indexing"]
-    # the middle of 70–187 eV is 128.5 eV: frame 19 (127 eV) or 20 (130 eV)
-    assert found["frame"] in (19, 20) and found["energy_eV"] == AUTO_E[found["frame"]]
+    # several frames vote, among them the middle of 70–187 eV (128.5 eV: frame 19 or 20); the one
+    # kept is a frame that read the winning structure
+    voted = [v["frame"] for v in found["votes"]]
+    assert len(voted) >= 3 and {19, 20} & set(voted) and found["frame"] in voted
+    assert found["energy_eV"] == AUTO_E[found["frame"]]
+    assert all(v["reading"] == "c(2×2), commensurate" for v in found["votes"])
     assert (found["kind"], found["wood"], len(found["domains"])) == ("commensurate", "c(2×2)", 1)
     rows = list(csv.reader(out.read_text().splitlines()))
     # one column per beam with any valid point, headed by its label, in the beam order of the JSON
@@ -685,3 +690,24 @@ def test_index_frame_with_the_gun_off_the_pattern_centre():
     with pytest.raises(SeriesError, match=r"Could not index frame 4 \(f4.tif\) at 130 eV: "):
         index_series_frame(np.random.default_rng(1).poisson(50.0, (96, 96)).astype(float), energy_eV=130.0,
                            substrate="Cu(100)", frame_index=4, frame_name="f4.tif")
+
+
+def test_frames_vote_when_one_frame_misleads():
+    # Cu(100)-p(2×2) (truth: our renderer). In one frame the integer beams are 7× dimmer than the
+    # half-order ones, as near an I(V) minimum; positions then fit (√5×√5)R26.6° on a larger net
+    # as well, and that frame reads it. The other four outvote it, and the answer says so.
+    from analysis.series import index_series_frames
+
+    mats = [d.matrix for d in domains(SUB, parse_wood("p(2x2)", SUB))]
+    geom = ScreenGeometry(259.0, 252.0, 300.0, distortion=0.2, rotation_deg=12.0)
+    frames = []
+    for i, (e, f) in enumerate([(100.0, 2.0), (130.0, 2.0), (145.0, 0.3), (160.0, 2.0), (190.0, 2.0)]):
+        pat = forward_pattern(SUB, mats, energy_eV=e, geometry=geom)
+        rng = np.random.default_rng(i)
+        inten = 3000.0 * rng.uniform(0.5, 1.5, len(pat)) * np.where(pat.integer, f, 1.0)
+        frames.append((render_image(pat, shape=(512, 512), rng=rng, intensities=inten).image, e, i, f"f{i}"))
+    found = index_series_frames(frames, substrate="Cu(100)")
+    assert found.label == "p(2×2), commensurate" and found.frame != 2
+    readings = [v["reading"] for v in found.votes]
+    assert readings.count("p(2×2), commensurate") == 4 and readings[2].startswith("(√5×√5)R26.6°")
+    assert any("4 of 5 frames" in w for w in found.warnings)
