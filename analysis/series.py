@@ -87,6 +87,7 @@ __all__ = [
     "SeriesIndexing",
     "index_series_frame",
     "index_series_frames",
+    "vote_frame_choices",
     "FLAG_OFF_SCREEN",
     "FLAG_MASKED",
     "FLAG_SATURATED",
@@ -2545,11 +2546,31 @@ def _index_frame_choices(series, energies, first, n_frames: int = 5) -> list[int
         if not n:
             return [k0]
         picks = np.rint(np.linspace(0.1, 0.6, n_frames) * (n - 1)).astype(int)
-    else:
-        lo = float(e.min()) + 0.1 * float(np.ptp(e))
-        hi = max(min(float(e.max()), 250.0), lo)
-        picks = [int(np.argmin(np.abs(e - t))) for t in np.linspace(lo, hi, n_frames)]
-    return sorted({k0, *(int(p) for p in picks)})
+        return sorted({k0, *(int(p) for p in picks)})
+    return vote_frame_choices(e, n_frames=n_frames)
+
+
+def vote_frame_choices(energy_eV, *, n_frames: int = 5, e_max_eV: float = 250.0) -> list[int]:
+    """Frames (0-based) to index and vote over (:func:`index_series_frames`), by energy.
+
+    The frame nearest the middle of the range (or nearest 150 eV when the middle is
+    higher), and `n_frames` more spread from 10 % into the range up to `e_max_eV`, where
+    several rings of beams are seen and spots do not crowd.
+
+    Examples
+    --------
+    >>> e = np.arange(50.0, 401.0, 10.0)
+    >>> e[vote_frame_choices(e)].tolist()
+    [80.0, 130.0, 150.0, 170.0, 210.0, 250.0]
+    """
+    e = np.asarray(energy_eV, dtype=np.float64).ravel()
+    if not e.size:
+        return []
+    k0 = int(np.argmin(np.abs(e - min(0.5 * (e.min() + e.max()), _INDEX_EV_MAX))))
+    lo = float(e.min()) + 0.1 * float(np.ptp(e))
+    hi = max(min(float(e.max()), e_max_eV), lo)
+    picks = [int(np.argmin(np.abs(e - t))) for t in np.linspace(lo, hi, n_frames)]
+    return sorted({k0, *picks})
 
 
 def _seek_frames(series, wanted: list[int], energies, name_pattern: str) -> list[tuple]:

@@ -408,3 +408,17 @@ def test_a_frame_that_cannot_be_indexed_says_so(page):
     _, msg = _job(page, meta, mode="step", start=100, step=2)
     assert _text(msg).startswith("Could not index frame 0 (n0.png) at 100 eV: ")
     assert _text(msg).endswith("Try indexing another frame.")
+
+
+def test_blank_frame_to_index_lets_several_frames_vote(page, uploaded):
+    # truth: the renderer's c(2×2) on Cu(100) in every frame; with the frame left blank several
+    # frames are indexed, all agree, and the summary says so
+    meta, table = uploaded
+    summary, message = _job(page, meta, table, frame=None, overlayer="")
+    assert isinstance(summary, dict), _text(message)
+    ix = summary["index"]
+    assert len(ix["votes"]) >= 3 and ix["frame"] in [v["frame"] for v in ix["votes"]]
+    assert {v["reading"] for v in ix["votes"]} == {"c(2×2), commensurate"}
+    assert (ix["wood"], ix["kind"], ix["source"]) == ("c(2×2)", "commensurate", "indexed")
+    panel = _text(page.summary_panel(summary))
+    assert f"{len(ix['votes'])} of {len(ix['votes'])} agree" in panel

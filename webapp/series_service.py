@@ -250,12 +250,12 @@ def _first_pass(raw: bytes, filename: str, pick: int):
         elif frame.shape != shape:  # the same words as track_series, before any indexing is spent
             raise SeriesError(f"Frame {len(names)} ({nm}) is {frame.shape[1]}×{frame.shape[0]} px but frame 0 "
                               f"({names[0]}) is {shape[1]}×{shape[0]} px: all frames must have one size.")
-        if len(names) == pick:
+        if pick is not None and len(names) == pick:
             chosen = frame
         names.append(nm)
     if not names:
         raise SeriesError(f"{_short(filename)}: the file holds no frames.")
-    if chosen is None:
+    if chosen is None and pick is not None:
         raise SeriesError(f"There is no frame {pick} to index: the series has {len(names)} frames "
                           f"(0 to {len(names) - 1}).")
     return names, chosen
@@ -275,9 +275,10 @@ def _run_key(sha: str, params: dict) -> str:
     return hashlib.sha256(blob.encode()).hexdigest()[:32]
 
 
-def _index_frame(value) -> int:
+def _index_frame(value) -> int | None:
+    """The frame number typed, or None (blank: several frames vote)."""
     if value in (None, ""):
-        return 0
+        return None
     try:
         v = float(value)
     except (TypeError, ValueError):
@@ -306,7 +307,7 @@ def _overlayer_matrix(text, hint):
 
 
 def run_series(sha: str, filename: str, *, substrate: str, mode: str = "file", table: dict | None = None,
-               start=None, step=None, pattern: str | None = None, index_frame=0, overlayer: str | None = None,
+               start=None, step=None, pattern: str | None = None, index_frame=None, overlayer: str | None = None,
                progress=None) -> dict:
     """Index one frame, track every beam through the uploaded series, keep the result; return its summary.
 
@@ -319,8 +320,9 @@ def run_series(sha: str, filename: str, *, substrate: str, mode: str = "file", t
     mode : {"file", "step", "names"}, keyword-only
         Energies from `table` (:func:`read_energies`), from `start` + i·`step` (eV), or
         from a number in each frame's name (`pattern`, a regular expression).
-    index_frame : int, keyword-only
-        The frame whose pattern is indexed (geometry, substrate net, overlayer domains).
+    index_frame : int or None, keyword-only
+        The frame whose pattern is indexed (geometry, substrate net, overlayer domains);
+        None: several frames are indexed and vote (:func:`analysis.series.index_series_frames`).
     overlayer : str, keyword-only
         Empty: follow the overlayer domains the indexing found; ``"none"``: substrate beams
         only; a matrix (``"2 0 / 0 2"``) or a Wood notation (``"c(2x2)"``): its domains.
@@ -337,14 +339,14 @@ def run_series(sha: str, filename: str, *, substrate: str, mode: str = "file", t
     """
     from analysis import pipeline
     from analysis.nets import Net2D
-    from analysis.series import beams_from_nets, track_series
+    from analysis.series import beams_from_nets, index_series_frames, track_series, vote_frame_choices
     from analysis.superstructure import domains, format_matrix
 
     from . import service
 
     say = progress or (lambda f, t="": None)
     hint = service.check_substrate(substrate)
-    k = _index_frame(index_frame)
+    asked = k = _index_frame(index_frame)
     typed = _overlayer_matrix(overlayer, hint)
     if mode not in ENERGY_MODES:
         raise SeriesError(f"Unknown energy source {str(mode)[:20]!r}; use {', '.join(ENERGY_MODES)}.")
@@ -352,20 +354,34 @@ def run_series(sha: str, filename: str, *, substrate: str, mode: str = "file", t
     say(0.02, "reading the frames")
     names, chosen = _first_pass(raw, filename, k)
     spec, energies = _energies(mode, table, start, step, pattern, names)
+    votes = []
+    if k is None:  # several frames vote
+        picks = set(vote_frame_choices(energies))
+        say(0.12, f"indexing {len(picks)} frames")
+        cands = [(f, float(energies[i]), i, nm) for i, (nm, f) in enumerate(frames_of(raw, filename)) if i in picks]
+        found = index_series_frames(cands, substrate=hint)
+        del cands
+        k, geometry, net, valid_mask = found.frame, found.geometry, found.substrate, found.mask
+        indexed = list(found.overlayers)
+        kind, wood, matrix = found.kind, found.wood, (found.matrix_text if found.kind != "none" else None)
+        votes = [dict(v) for v in found.votes]
+    else:
+        e_k = float(energies[k])
+        say(0.12, f"indexing frame {k} at {e_k:g} eV")
+        try:
+            one = pipeline.analyze_image(chosen, energy_eV=e_k, substrate=hint)
+        except (FitError, ParameterError, ImageError) as err:
+            raise SeriesError(f"Could not index frame {k} ({names[k]}) at {e_k:g} eV: {err} "
+                              "Try indexing another frame.") from None
+        fit, best = one.index.substrate, one.index.best
+        geometry, net, valid_mask = fit.geometry, Net2D(fit.net.vectors, label=hint.label), one.measurement.valid
+        indexed = [np.asarray(m, dtype=np.float64) for m in best.domains] if best.kind != "none" else []
+        kind, wood, matrix = best.kind, best.wood, (format_matrix(best.matrix) if best.kind != "none" else None)
+        del one
     e_k = float(energies[k])
-    say(0.12, f"indexing frame {k} at {e_k:g} eV")
-    try:
-        found = pipeline.analyze_image(chosen, energy_eV=e_k, substrate=hint)
-    except (FitError, ParameterError, ImageError) as err:
-        raise SeriesError(f"Could not index frame {k} ({names[k]}) at {e_k:g} eV: {err} "
-                          "Try indexing another frame.") from None
-    fit = found.index.substrate
-    best = found.index.best
-    net = Net2D(fit.net.vectors, label=hint.label)
     if typed is None:
-        mats = [np.asarray(m, dtype=np.float64) for m in best.domains] if best.kind != "none" else []
-        shown = {"kind": best.kind, "wood": best.wood,
-                 "matrix": format_matrix(best.matrix) if best.kind != "none" else None, "source": "indexed"}
+        mats = indexed
+        shown = {"kind": kind, "wood": wood, "matrix": matrix, "source": "indexed"}
     elif isinstance(typed, str):
         mats = []
         shown = {"kind": "none", "wood": None, "matrix": None, "source": "typed"}
@@ -373,7 +389,7 @@ def run_series(sha: str, filename: str, *, substrate: str, mode: str = "file", t
         mats = [np.asarray(d.matrix, dtype=np.float64) for d in domains(net, typed)]
         shown = {"kind": "typed", "wood": wood_notation_or_none(net, typed), "matrix": format_matrix(typed),
                  "source": "typed"}
-    beams = beams_from_nets(net, mats, energy_max_eV=float(np.max(energies)), geometry=fit.geometry)
+    beams = beams_from_nets(net, mats, energy_max_eV=float(np.max(energies)), geometry=geometry)
     say(0.2, "following the beams")
     n = len(names)
     previews: list[bytes] = []
@@ -383,11 +399,11 @@ def run_series(sha: str, filename: str, *, substrate: str, mode: str = "file", t
             previews.append(_preview(frame))
             yield nm, frame
 
-    res = track_series(streamed(), beams, fit.geometry, energies=spec, mask=found.measurement.valid,
+    res = track_series(streamed(), beams, geometry, energies=spec, mask=valid_mask,
                        saturation_level=_saturation(raw),
                        progress=lambda i, _n, e: say(0.2 + 0.78 * i / n, f"frame {i} of {n}, {e:g} eV"))
     params = {"mode": mode, "table": table, "start": start, "step": step, "pattern": pattern,
-              "substrate": substrate, "index_frame": k, "overlayer": overlayer}
+              "substrate": substrate, "index_frame": asked, "overlayer": overlayer}
     key = _run_key(sha, params)
     c = _cache()
     c.set(("iv", key), res, expire=_KEEP_S)
@@ -410,7 +426,7 @@ def run_series(sha: str, filename: str, *, substrate: str, mode: str = "file", t
                     "overlap_eV": g.overlap_eV, "range_eV": g.range_eV} for g in groups],
         "calibration": None if cal is None else cal.to_dict(),
         "index": {"frame": k, "name": names[k], "energy_eV": e_k, **shown,
-                  "n_domains": len(mats), "substrate": hint.label or str(substrate)},
+                  "n_domains": len(mats), "substrate": hint.label or str(substrate), "votes": votes},
         "symmetry": res.beams.symmetry,
         "normalised": bool(res.settings.get("normalised_by_current")),
         "default_beams": _default_beams(groups),

@@ -114,7 +114,8 @@ def layout(**_query):
         ]),
         html.Div(className="row", children=[
             html.Label("Index the pattern on frame", htmlFor=ids.SERIES_INDEX_FRAME),
-            dcc.Input(id=ids.SERIES_INDEX_FRAME, type="number", value=0, min=0, step=1, debounce=True),
+            dcc.Input(id=ids.SERIES_INDEX_FRAME, type="number", min=0, step=1, debounce=True,
+                      placeholder="blank: several frames vote"),
         ]),
         html.Div(className="row", children=[
             html.Button("Follow the beams", id=ids.SERIES_RUN, className="primary"),
@@ -290,6 +291,15 @@ def summary_panel(summary: dict):
     rows = [
         ("Series", f"{summary['n_frames']} frames, {min(e):g}–{max(e):g} eV, {summary['width']}×{summary['height']} px"),
         ("Indexed on", f"frame {ix['frame']} at {ix['energy_eV']:g} eV: {ix['substrate']}, {structure}"),
+    ]
+    votes = ix.get("votes") or []
+    if votes:
+        won = next((v["reading"] for v in votes if v.get("frame") == ix["frame"]), None)
+        others = sorted({f"{v['reading']} ({v['energy_eV']:g} eV)" for v in votes if v.get("reading") != won})
+        agree = sum(1 for v in votes if v.get("reading") == won)
+        rows.append(("Frames voting", f"{agree} of {len(votes)} agree"
+                     + (f"; the others read {', '.join(others)}" if others else "")))
+    rows += [
         ("Beams followed", f"{seen} of {len(summary['beams'])} (the rest stay off the screen or flagged)"),
         ("Equivalence", str(summary.get("symmetry") or "–")),
     ]
