@@ -1757,7 +1757,7 @@ class Measurement:
 
 
 def measure_image(image, *, sigma_px: float | None = 2.0, min_snr: float = 5.0, screen=None, gun=None,
-                  center_rc=None, saturation_level=None, block_px: int = 32, **spot_kw) -> Measurement:
+                  center_rc=None, saturation_level=None, block_px: int | None = None, **spot_kw) -> Measurement:
     """Screen → gun shadow → background → spots, in one call.
 
     Parameters
@@ -1774,6 +1774,9 @@ def measure_image(image, *, sigma_px: float | None = 2.0, min_snr: float = 5.0, 
     center_rc : (row, col), optional
         Reference for radial/tangential widths; default the gun-disk centre
         when found, else the screen centre.
+    block_px : int, optional, keyword-only
+        Background block size; default one 16th of the shorter side, 16–32 px (a
+        small frame's diffuse background varies on a shorter scale in pixels).
 
     Returns
     -------
@@ -1811,6 +1814,8 @@ def measure_image(image, *, sigma_px: float | None = 2.0, min_snr: float = 5.0, 
             dark = None
     if center_rc is None:
         center_rc = gsh.center_rc if gsh.center_rc is not None else scr.center_rc
+    if block_px is None:
+        block_px = int(min(max(min(img.shape) // 16, 16), 32))
     bg = estimate_background(img, valid, block_px=block_px, dark_mask=dark)
     s = 2.0 if sigma_px is None else float(sigma_px)
     # detection only: where the spots are and roughly how bright
