@@ -77,6 +77,8 @@ CASES = {
                               {"populations": (1.0, 0.55, 0.3)}),
     "sqrt7-hex-mirror-pair": ("Pt(111)", "(√7×√7)R19.1°", None, 140.0, "(√7×√7)R19.1°", "commensurate",
                               {"shape": (768, 768), "offset": (-12.0, 4.0)}),
+    # the largest rotated cell the issue names: two mirror domains, 166 fractional beams at 60 eV
+    "sqrt19-hex-mirror-pair": ("Pt(111)", "(√19×√19)R23.4°", None, 60.0, "(√19×√19)R23.4°", "commensurate", {}),
     "2sqrt2-square": ("Cu(100)", "(2√2×√2)R45°", None, 120.0, "(2√2×√2)R45°", "commensurate", {}),
     "c4x2-hex": ("Pt(111)", "c(4x2)", None, 110.0, "c(4×2)", "commensurate", {"rotation": -21.0}),
     "7x7-hex": ("Si(111)", "(7x7)", None, 45.0, "p(7×7)", "commensurate", {"distortion": 0.1}),
