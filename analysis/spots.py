@@ -305,28 +305,23 @@ def _frame_screen(img: np.ndarray, margin_px: float) -> ScreenMask:
 
 
 def _auto_screen(img: np.ndarray, margin_px: float) -> ScreenMask:
-    from skimage.filters import threshold_otsu
-
     m, n = img.shape
     f = max(1, int(round(max(m, n) / 256)))
     small = ndi.gaussian_filter(_block_reduce_mean(img, f), 1.0)
-    # Otsu on a copy clipped at the 99th percentile, so bright spots do not pull the split up
-    t = float(threshold_otsu(np.minimum(small, np.percentile(small, 99.0))))
-    dark_px = small < t
-    if dark_px.mean() > 0.9:  # many bright spots: the split fell between spots and screen; clip lower
-        t = float(threshold_otsu(np.minimum(small, np.percentile(small, 90.0))))
-        dark_px = small < t
-    if dark_px.mean() < 0.02 or dark_px.mean() > 0.98:
+    # the levels come from a copy with the spots taken out (a grey opening wider than a spot):
+    # hundreds of bright spots would otherwise fill the histogram between the dark frame and
+    # the diffuse screen, and Otsu would split spots from screen instead of screen from frame
+    w = max(5, int(math.ceil(24.0 / f)) | 1)  # about 24 px of the frame: several σ of a wide spot
+    flat = ndi.grey_opening(small, size=w)
+    levels = _screen_levels(flat)
+    if levels is None:
         return _frame_screen(img, margin_px)
-    lo, hi = float(np.median(small[dark_px])), float(np.median(small[~dark_px]))
-    noise_lo = 1.4826 * float(np.median(np.abs(small[dark_px] - lo))) + 1e-12
-    if (hi - lo) < 6.0 * noise_lo:
-        return _frame_screen(img, margin_px)
+    lo, hi, noise_lo = levels
     # Otsu may split the screen's own radial falloff; the screen is everything clearly
     # above the dark level, so lower the threshold towards it
     t = lo + max(6.0 * noise_lo, 0.1 * (hi - lo))
-    bright = small > t
-    if bright.mean() > 0.95 or bright.mean() < 0.02:
+    bright = flat > t
+    if bright.mean() > 0.99 or bright.mean() < 0.02:
         return _frame_screen(img, margin_px)
     lab, nlab = ndi.label(ndi.binary_opening(bright, iterations=2))
     if nlab == 0:
@@ -340,6 +335,9 @@ def _auto_screen(img: np.ndarray, margin_px: float) -> ScreenMask:
     yc, xc = rr.mean(), cc.mean()
     cov = np.cov(np.vstack([cc - xc, rr - yc]))
     r0 = 2.0 * math.sqrt(math.sqrt(max(np.linalg.det(cov), 1e-12)))  # uniform disk: var = r²/4
+    cut = _cut_circle(hull)
+    if cut is not None:  # the frame cuts the screen: its moments say little, its rim says more
+        yc, xc, r0 = cut
     # refine at full resolution: steepest drop along rays around the rough edge
     yc, xc, r0 = yc * f + (f - 1) / 2, xc * f + (f - 1) / 2, r0 * f
     nray = 360
@@ -381,10 +379,13 @@ def _auto_screen(img: np.ndarray, margin_px: float) -> ScreenMask:
         res = (np.hypot(u / a, v / b) - 1.0) * math.sqrt(a * b)
         mad = 1.4826 * np.median(np.abs(res[sel])) + 0.3
         sel = ok & (np.abs(res) < 3.0 * mad)
-    if fit is None:
-        x0, y0, a, b, ang = xc, yc, r0, r0, 0.0
-    else:
-        x0, y0, a, b, ang = fit
+    # the edge must be seen all round, where the rays cross it inside the frame (a screen
+    # wider than the image shows at most the rim of its dense middle, and not on most rays)
+    rx, ry = xc + np.cos(phi) * r0, yc - np.sin(phi) * r0
+    seen = (rx > 1) & (rx < n - 2) & (ry > 1) & (ry < m - 2)
+    if fit is None or seen.sum() < 20 or (sel & seen).sum() < 0.5 * seen.sum():
+        return _frame_screen(img, margin_px)
+    x0, y0, a, b, ang = fit
     mask = disk_mask((m, n), (y0, x0), 0, axes_px=(max(a - margin_px, 0.5), max(b - margin_px, 0.5)),
                      angle_deg=ang)
     # the screen may run off the frame; that is fine, the mask is clipped by the array
@@ -394,6 +395,79 @@ def _auto_screen(img: np.ndarray, margin_px: float) -> ScreenMask:
     bright_level = float(np.median(img[sub][mask[sub]])) if mask[sub].any() else hi
     return ScreenMask(mask, np.array([y0, x0]), np.array([a, b]), float(ang % 180.0), "auto", dark,
                       bright_level, float(margin_px))
+
+
+def _screen_levels(flat: np.ndarray):
+    """(dark, screen, dark noise) levels of a spot-free coarse frame, or None with no dark side.
+
+    The dark side of a screen edge is the unlit frame: flat (its spread well below the step)
+    and as dark as the darkest pixels. When Otsu splits the screen itself (a dense middle from
+    a fainter rim, with dark corners or no dark side at all), its dark class fails that test;
+    the split is tried once more within the dark class, so a few dark corners are still found.
+    """
+    from skimage.filters import threshold_otsu
+
+    vals = flat.ravel()
+    floor = float(np.percentile(vals, 1.0))
+    sub = vals
+    for _ in range(2):  # a third split would only carve the screen's own falloff
+        if sub.size < 16 or float(np.ptp(sub)) <= 0.0:
+            return None
+        dark = vals < float(threshold_otsu(sub))
+        if not 0.02 <= dark.mean() <= 0.98:
+            return None
+        lo, hi = float(np.median(vals[dark])), float(np.median(vals[~dark]))
+        noise_lo = 1.4826 * float(np.median(np.abs(vals[dark] - lo))) + 1e-12
+        if hi - lo >= 25.0 * noise_lo and lo - floor <= 0.1 * (hi - lo):
+            return lo, hi, noise_lo
+        sub = vals[dark]
+    return None
+
+
+def _border_band(shape, w: int) -> np.ndarray:
+    band = np.ones(shape, bool)
+    band[w:-w, w:-w] = False
+    return band
+
+
+def _cut_circle(hull: np.ndarray):
+    """(row, col, radius) of a circle through the outer rim of `hull` where it lies inside the
+    frame, when `hull` touches the frame border (else None).
+
+    Per degree seen from the centroid only the outermost rim pixel counts, so the sides of a
+    gun arm running off the screen drop out; a few rounds of trimming drop what is left.
+    """
+    if not (hull[0].any() or hull[-1].any() or hull[:, 0].any() or hull[:, -1].any()):
+        return None
+    rr, cc = np.nonzero(hull)
+    yc, xc = rr.mean(), cc.mean()
+    rim = hull & ~ndi.binary_erosion(hull, border_value=1)  # the frame border is no rim
+    rr, cc = np.nonzero(rim)
+    d = np.hypot(rr - yc, cc - xc)
+    k = (np.degrees(np.arctan2(rr - yc, cc - xc)) % 360.0).astype(np.int64) % 360
+    far = np.full(360, -1.0)
+    np.maximum.at(far, k, d)
+    # a degree whose hull reaches the frame border has no rim inside the frame
+    edge = np.zeros(360, bool)
+    br, bc = np.nonzero(hull & _border_band(hull.shape, 2))
+    edge[(np.degrees(np.arctan2(br - yc, bc - xc)) % 360.0).astype(np.int64) % 360] = True
+    keep = (d >= far[k]) & ~edge[k]
+    rr, cc = rr[keep].astype(float), cc[keep].astype(float)
+    use = np.ones(rr.size, bool)
+    fit = None
+    for _ in range(4):
+        if use.sum() < 30:
+            break
+        # x² + y² = 2 a x + 2 b y + c is linear in (a, b, c); the centre is (a, b)
+        sol, *_ = np.linalg.lstsq(np.column_stack([2 * cc[use], 2 * rr[use], np.ones(use.sum())]),
+                                  cc[use] ** 2 + rr[use] ** 2, rcond=None)
+        r2 = sol[2] + sol[0] ** 2 + sol[1] ** 2
+        if r2 <= 0:
+            break
+        fit = (float(sol[1]), float(sol[0]), math.sqrt(r2))
+        res = np.abs(np.hypot(cc - fit[1], rr - fit[0]) - fit[2])
+        use = res < max(2.0, 3.0 * 1.4826 * float(np.median(res[use])))
+    return fit
 
 
 # --------------------------------------------------------------------------- gun shadow
