@@ -18,6 +18,7 @@ background pass with the spots masked out → :func:`find_spots` again.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from dataclasses import dataclass, field
 
@@ -1278,6 +1279,14 @@ def find_spots(image, *, sigma_px: float = 2.0, min_snr: float = 5.0, mask=None,
     s1 = f1 / noise_f
     cand = _maxima(s1, min_snr, valid)
     spots = _fit_pass1(fitter, res, noise, ok_fit, valid, cand, s1, f1, centre, gain, sigma_px, shape, half)
+    if gain is None and len(spots["rc"]):
+        # no variance law from the background: measure it on the first fits, then refit those
+        # with the new weights (detection does not use it; the residual search below does)
+        g = _gain_from_spots(fitter, res, noise, ok_fit, spots, half, min_spots=3)  # a blend or two is outvoted
+        if g is not None:
+            gain, bg = g, dataclasses.replace(bg, gain_adu=g)
+            spots = _refit_weighted(fitter, res, noise, ok_fit, valid, spots, centre, gain, sigma_px, shape,
+                                    half, crowded_too=not second_pass)
     hints = np.full((len(spots["rc"]), 3), np.nan)  # (row, col, amplitude) of a possible companion
     if second_pass and len(spots["rc"]):
         # pass 2: the matched-filter residual after removing every fitted spot. A Gaussian
@@ -1321,11 +1330,9 @@ def find_spots(image, *, sigma_px: float = 2.0, min_snr: float = 5.0, mask=None,
                              min_snr, hints)
     spots = _dedupe(spots, 0.75 * sigma_px)
     if gain is None and len(spots["rc"]):
-        # no variance law from the background: measure it on the fitted spots and measure again
+        # too few clean first fits: measure it on the final (unsplit) spots and measure again
         g = _gain_from_spots(fitter, res, noise, ok_fit, _take(spots, (spots["flags"] & FLAG_SPLIT) == 0), half)
         if g is not None:
-            import dataclasses
-
             return find_spots(img, sigma_px=sigma_px, min_snr=min_snr, mask=valid,
                               background=dataclasses.replace(bg, gain_adu=g), center_rc=centre,
                               saturation_level=sat, split_pairs=split_pairs, second_pass=second_pass)
@@ -1398,8 +1405,36 @@ def _crowded(rc, amp, nz, sigma_px, half) -> np.ndarray:
     return np.unique(pairs[near].ravel())
 
 
-def _gain_from_spots(fitter, res, noise, ok_fit, spots, half):
-    """Variance per unit signal from the fit residuals of bright spots: r² − noise² ≈ g · model."""
+def _refit_weighted(fitter, res, noise, ok_fit, valid, spots, centre, gain, sigma_px, shape, half, *,
+                    crowded_too: bool):
+    """Refit spots from their current solution after the weights changed (a new `gain`).
+
+    Spots alone in their window are refitted in one batch; crowded ones only with
+    `crowded_too` (else the joint refit that follows does it).
+    """
+    spots = {k: v.copy() for k, v in spots.items()}
+    k = len(spots["rc"])
+    ri = np.clip(np.rint(spots["rc"][:, 0]).astype(int), 0, shape[0] - 1)
+    ci = np.clip(np.rint(spots["rc"][:, 1]).astype(int), 0, shape[1] - 1)
+    nz_c = noise[ri, ci]
+    alone = np.ones(k, bool)
+    alone[_crowded(spots["rc"], spots["amp"], nz_c, sigma_px, half)] = False
+    if alone.any():
+        ids = np.flatnonzero(alone)
+        # the model image only needs the spots themselves: nobody else reaches their windows
+        mdl = _render(shape, spots["rc"][ids], spots["amp"][ids], spots["sr"][ids], spots["st"][ids],
+                      spots["u"][ids], half)
+        _refit_batch(fitter, res, noise, ok_fit, valid, spots, ids, nz_c[ids], mdl, gain, sigma_px, shape, half,
+                     1e-3)
+    if crowded_too and not alone.all():
+        spots = _refit_neighbours(fitter, res, noise, ok_fit, valid, spots, centre, gain, sigma_px, shape, half,
+                                  sweeps=60)
+    return spots
+
+
+def _gain_from_spots(fitter, res, noise, ok_fit, spots, half, min_spots: int = 1):
+    """Variance per unit signal from the fit residuals of bright spots: r² − noise² ≈ g · model;
+    None from fewer than `min_spots` usable spots."""
     good = ((spots["flags"] & FLAG_FIT_FAILED) == 0)
     if good.sum() == 0:
         return None
@@ -1414,7 +1449,7 @@ def _gain_from_spots(fitter, res, noise, ok_fit, spots, half):
     num = np.sum(np.where(use, own * r2, 0.0), axis=(1, 2))
     den = np.sum(np.where(use, own * own, 0.0), axis=(1, 2))
     ok = use.sum(axis=(1, 2)) >= 5
-    if not ok.any():
+    if ok.sum() < max(min_spots, 1):
         return None
     per = num[ok] / den[ok]
     g = float(np.median(per) if len(per) >= 3 else np.min(per))
