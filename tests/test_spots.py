@@ -410,3 +410,77 @@ def test_dense_bright_pattern_keeps_its_screen():
     assert m.gun.mask.sum() < 0.2 * m.screen.mask.sum()
     n_true, n_hit, n_rep, n_false, ratio2 = _score(m.spots.rc, _truth(im), tol=5.0)
     assert n_true > 200 and n_hit / n_true > 0.97 and n_false <= 0.02 * n_rep
+
+
+# --------------------------------------------------------------------------- screens among many bright spots
+
+
+def _dense_frame(seed, over, energy, radius_px, sigma, *, screen_radius_px=None, offset_adu=0.0):
+    """A bright 1024² Pt(111) frame: peak SNR per beam log-uniform in 20–400, screen centre
+    within 15 px of the middle; `offset_adu` is added to every pixel after rendering."""
+    rng = np.random.default_rng(seed)
+    geom = ScreenGeometry(511.5 + rng.uniform(-15, 15), 511.5 + rng.uniform(-15, 15), radius_px,
+                          distortion=0.2, rotation_deg=rng.uniform(0, 60))
+    pat = forward_pattern(parse_substrate("Pt(111)"), list(over), energy_eV=energy, geometry=geom)
+    target = np.exp(rng.uniform(np.log(20.0), np.log(400.0), len(pat)))
+    inten = target * 2 * np.pi * (sigma**2 + 1 / 12) * math.sqrt(0.6 * 40.0 + 3.0**2)
+    kw = {} if screen_radius_px is None else {"screen_radius_px": screen_radius_px}
+    im = render_image(pat, rng=rng, spot_sigma_px=sigma, intensities=inten, background_photons=40.0,
+                      read_noise_e=3.0, bit_depth=16, **kw)
+    return im, im.image.astype(np.float64) + offset_adu
+
+
+def test_screen_edge_found_among_hundreds_of_bright_spots():
+    # (7×7) at 150 eV: ~650 bright beams fill the histogram between the unlit frame and the
+    # diffuse screen. Truth: the renderer's screen circle; the frame fallback put ~350 false
+    # spots on the screen edge.
+    im, img = _dense_frame(2, ([[7, 0], [0, 7]],), 150.0, 680.0, 2.0)
+    s = find_screen(img)
+    x, y = im.truth["screen"]["center_px"]
+    assert s.source == "auto"
+    assert np.hypot(s.center_rc[0] - y, s.center_rc[1] - x) < 2.0
+    assert abs(s.radius_px - im.truth["screen"]["radius_px"]) < 2.0
+    m = measure_image(img, screen=s)
+    n_true, n_hit, n_rep, n_false, ratio2 = _score(m.spots.rc, _truth(im), tol=5.0)
+    assert n_true > 400 and n_hit / n_true >= 0.97 and 1 - n_false / n_rep >= 0.98
+
+
+def test_screen_cut_by_the_frame_is_found_from_its_corners():
+    # screen radius 600 px on a 1024² frame: only the corners are unlit (about 6 % of the frame)
+    im, img = _dense_frame(14, ([[10, 0], [0, 10]],), 200.0, 560.0, 2.5, screen_radius_px=600.0)
+    s = find_screen(img)
+    x, y = im.truth["screen"]["center_px"]
+    assert s.source == "auto"
+    assert np.hypot(s.center_rc[0] - y, s.center_rc[1] - x) < 3.0
+    assert abs(s.radius_px - 600.0) < 3.0
+
+
+def test_screen_wider_than_the_frame_falls_back_to_the_whole_frame():
+    # screen radius 1100 px on a 1024² frame: no edge anywhere. The dense middle of the pattern
+    # (≈ 400 px radius) was taken for the screen, losing the spots on its rim.
+    im, img = _dense_frame(14, ([[10, 0], [0, 10]],), 200.0, 560.0, 2.5, screen_radius_px=1100.0)
+    assert find_screen(img).source == "frame"
+    m = measure_image(img, sigma_px=2.5)
+    n_true, n_hit, n_rep, n_false, ratio2 = _score(m.spots.rc, _truth(im), tol=6.0)
+    # no false spots along the image border either
+    assert n_true > 1000 and n_hit / n_true >= 0.97 and 1 - n_false / n_rep >= 0.98
+
+
+def test_gain_measured_from_the_spots_matches_the_true_gain():
+    # a 3000 ADU offset hides the background's variance law (gain_adu is None), so the gain is
+    # measured from the spot residuals. Truth: the renderer's camera (variance per ADU of signal
+    # = gain in ADU per electron); the centres must agree with fits weighted by the true gain.
+    im = _frame(5, snr=(5.0, 300.0))
+    img = im.image.astype(np.float64) + 3000.0
+    valid = im.masks["screen"] & ~im.masks["gun"]
+    bg = estimate_background(img, valid)
+    assert bg.gain_adu is None
+    t = find_spots(img, sigma_px=2.0, mask=valid, background=bg)
+    g_true = im.truth["camera"]["gain_adu_per_e"]
+    ref = find_spots(img, sigma_px=2.0, mask=valid, background=BackgroundEstimate(
+        bg.background, bg.noise, g_true, bg.dark_level, bg.block_px))
+    assert len(t) == len(ref)
+    d, _ = cKDTree(ref.rc).query(t.rc)
+    assert d.max() < 0.05
+    n_true, n_hit, n_rep, n_false, ratio2 = _score(t.rc, _truth(im), tol=5.0)
+    assert n_hit == n_true and n_false == 0 and math.sqrt(float(np.mean(ratio2))) <= 1.3
