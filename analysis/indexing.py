@@ -481,7 +481,7 @@ def _distortion_from_fractions(xy: np.ndarray, energy_eV: float, fit: SubstrateF
     def trial(d):
         g0 = dataclasses.replace(fit.geometry, distortion=float(d))
         g1, _, res, _ = _refine(xy[ii], hk_int, energy_eV, g0, lat, ("center_x_px", "center_y_px", "scale_px",
-                                                                     "rotation_deg"), False)
+                                                                     "rotation_deg"), False, rtol=1e-7)
         hk = pixels_to_momentum(xy, energy_eV, g1) @ np.linalg.inv(lat)
         return float(np.median(_rational_residual(hk[frac], lat))), g1, hk
 
