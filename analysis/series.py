@@ -2512,15 +2512,21 @@ def _count_frames(series, energies, first) -> int | None:
 _INDEX_EV_MAX = 150.0
 
 
-def _index_frame_choice(series, energies, first) -> int:
-    """The frame nearest the middle of the energy range, or nearest 150 eV when the middle
-    is higher; the middle of the series when the energies are known only frame by frame."""
+def _frame_energies(series, energies, first) -> tuple[int | None, np.ndarray | None]:
+    """(frame count, energy of every frame) where known before reading the frames."""
     n = _count_frames(series, energies, first)
     e = None
     if isinstance(energies, EnergyTable) and n == len(energies):
         e = energies.energy_eV
     elif isinstance(energies, _StartStep) and n:
         e = energies.start + energies.step * np.arange(n)
+    return n, e
+
+
+def _index_frame_choice(series, energies, first) -> int:
+    """The frame nearest the middle of the energy range, or nearest 150 eV when the middle
+    is higher; the middle of the series when the energies are known only frame by frame."""
+    n, e = _frame_energies(series, energies, first)
     if e is not None:
         target = min(0.5 * (e.min() + e.max()), _INDEX_EV_MAX)
         return int(np.argmin(np.abs(e - target)))
@@ -2536,12 +2542,7 @@ def _index_frame_choices(series, energies, first, n_frames: int = 5) -> list[int
     others spread over the lower part of the range (up to 250 eV), where several rings of
     beams are seen and spots do not crowd."""
     k0 = _index_frame_choice(series, energies, first)
-    n = _count_frames(series, energies, first)
-    e = None
-    if isinstance(energies, EnergyTable) and n == len(energies):
-        e = energies.energy_eV
-    elif isinstance(energies, _StartStep) and n:
-        e = energies.start + energies.step * np.arange(n)
+    n, e = _frame_energies(series, energies, first)
     if e is None:
         if not n:
             return [k0]
