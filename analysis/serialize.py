@@ -8,7 +8,8 @@ Schema (``"schema": "recinet.analysis"``, ``"version": 1``), keys kept stable:
   indices in the substrate basis, null when the spot is not explained),
   ``h_measured``, ``k_measured``, ``intensity``, ``snr``, ``kind``
   (``integer``/``fractional``/``unexplained``), ``domain`` (index into the
-  domains or null), ``manual``.
+  domains or null), ``manual``, ``trusted`` (false when the centre is cut by a
+  mask edge or its fit failed: such spots do not count in the model scores).
 * ``substrate``: ``net`` (plane-net type), ``a_star_px`` (rows a1*, a2* as
   pixel displacements at the centre: the local derivative of the camera
   model; always a primitive basis), ``a_angstrom``, ``b_angstrom``,
@@ -159,6 +160,7 @@ def result_to_dict(result) -> dict:
     best = idx.best
     hk_model = model_indices(fit.hk, best)
     by = best.explained_by
+    trusted = np.ones(len(result.xy_px), bool) if getattr(result, "trusted", None) is None else result.trusted
     spots = []
     for i, (p, hkm) in enumerate(zip(result.xy_px, fit.hk)):
         explained = bool(np.all(np.isfinite(hk_model[i])))
@@ -171,6 +173,7 @@ def result_to_dict(result) -> dict:
             "h_measured": float(hkm[0]), "k_measured": float(hkm[1]),
             "intensity": _f(result.intensity[i]), "snr": _f(result.snr[i]),
             "kind": kind, "domain": int(by[i]) if by[i] >= 0 else None, "manual": bool(result.manual[i]),
+            "trusted": bool(trusted[i]),
         })
     net = fit.net
     rec = reciprocal(net)

@@ -253,6 +253,18 @@ def test_json_contract_keys_and_conventions():
     assert np.allclose(d["center_px"], im.truth["center_px"], atol=1.0)
 
 
+def test_spots_cut_by_the_gun_shadow_are_not_trusted():
+    # truth: the renderer marks beams partly behind the gun shadow or the screen edge; exactly those
+    # spots carry trusted = false in the JSON (their centres are biased and do not count in scores)
+    sub = parse_substrate("Pt(111)")
+    im, _ = render(sub, all_domain_matrices(sub, "p(2x2)"), energy=96.0)
+    d = result_to_dict(analyze_image(im.image, energy_eV=96.0, substrate="Pt(111)"))
+    xy = np.array([[t["x"], t["y"]] for t in im.truth["spots"]])
+    cut = np.array([t["partly_hidden"] for t in im.truth["spots"]])
+    pairs = [(s["trusted"], bool(cut[np.argmin(np.hypot(*(xy - [s["x"], s["y"]]).T))])) for s in d["spots"]]
+    assert any(c for _, c in pairs) and all(t != c for t, c in pairs)
+
+
 def test_typed_model_counts_explained_spots():
     sub = parse_substrate("Pt(111)")
     im, _ = render(sub, all_domain_matrices(sub, "(√3×√3)R30°"), energy=112.0)

@@ -561,6 +561,9 @@ def _result_children(result, record):
     manual = sum(1 for s in spots if s.get("manual"))
     if manual:
         spot_line += f", {manual} added by hand"
+    cut = sum(1 for s in spots if s.get("trusted") is False)
+    if cut:
+        spot_line += f"; {cut} not counted in the scores (centre cut by a mask edge or fit failed)"
     if sub.get("lattice_source"):
         rows.append(("Lattice from", str(sub["lattice_source"])))
     kind = ov.get("kind") or "–"
