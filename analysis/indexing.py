@@ -1438,8 +1438,9 @@ def _search_and_refit(xy, energy_eV, fit, geometry, kw, rounds: int = 2):
             # spots that became substrate beams no longer count for or against a model: the refit
             # must win without them
             gain = models2[0].score - int((fit2.integer & ~fit.integer).sum()) - models[0].score
-            if gain > 1e-9 and (best is None or gain > best[0]):
+            if gain > 0.05:  # (a refit that only tightens the fit a little is not worth another round)
                 best = (gain, fit2, models2)
+                break  # the first seed that helps is kept (the rational one when it does)
         if best is None:
             break
         _, fit, models = best
@@ -1517,6 +1518,6 @@ def _follow_reading(xy, energy_eV, reading: SubstrateFit, geometry, tol_px, kw):
             best = (fit, models)
         top = best[1][0]
         n_frac = max(int((~fit.integer).sum()), 1)
-        if top.kind != "incommensurate" and top.unexplained + top.absent <= max(1, 0.05 * n_frac):
+        if top.kind != "incommensurate" and top.unexplained + top.absent <= max(2, 0.1 * n_frac):
             break  # (nearly) every spot explained and none missing: other readings cannot do much better
     return best
