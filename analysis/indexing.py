@@ -1414,8 +1414,9 @@ def refine_with_model(xy_px: np.ndarray, energy_eV: float, fit: SubstrateFit, mo
 
 def _search_and_refit(xy, energy_eV, fit, geometry, kw, rounds: int = 2):
     """Overlayer search, then refits of the camera with the best rational model's spots
-    (its nearest rational neighbour when only irrational models came out), kept while
-    they raise the best score."""
+    (its nearest rational neighbour when only irrational models came out; an irrational
+    top model then also refits jointly with its own net), kept while they raise the best
+    score by more than 0.05."""
     models = find_overlayers(fit.hk, fit.integer, fit, **kw)
     for _ in range(rounds):
         if int((~fit.integer).sum()) == 0:
@@ -1430,20 +1431,19 @@ def _search_and_refit(xy, energy_eV, fit, geometry, kw, rounds: int = 2):
                 fit.hk, fit.integer, fit, near, energy_eV=kw["energy_eV"], intensity=kw["intensity"],
                 valid_mask=kw["valid_mask"], tol_px=3 * kw["tol_px"], reliable=kw["reliable"])
         seeds = [seed] + ([top] if top.kind == "incommensurate" and seed is not top else [])
-        best = None
-        for sd in seeds:  # the rational reading first; an irrational top also refits jointly with its net
+        better = None
+        for sd in seeds:  # the first seed that helps is kept (the rational one when it does)
             fit2 = refine_with_model(xy, energy_eV, fit, sd, fit_lattice=geometry is not None,
                                      reliable=kw["reliable"])
             models2 = find_overlayers(fit2.hk, fit2.integer, fit2, **kw)
             # spots that became substrate beams no longer count for or against a model: the refit
-            # must win without them
-            gain = models2[0].score - int((fit2.integer & ~fit.integer).sum()) - models[0].score
-            if gain > 0.05:  # (a refit that only tightens the fit a little is not worth another round)
-                best = (gain, fit2, models2)
-                break  # the first seed that helps is kept (the rational one when it does)
-        if best is None:
+            # must win without them (and a refit that only tightens the fit a little is not worth it)
+            if models2[0].score - int((fit2.integer & ~fit.integer).sum()) - models[0].score > 0.05:
+                better = (fit2, models2)
+                break
+        if better is None:
             break
-        _, fit, models = best
+        fit, models = better
     return fit, models
 
 
