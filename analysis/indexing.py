@@ -915,6 +915,9 @@ def _context(hk, integer, substrate_fit: SubstrateFit, energy_eV, intensity, val
              max_denominator: int = 6, reliable=None) -> _Context:
     hk = np.asarray(hk, dtype=np.float64).reshape(-1, 2)
     reliable = np.ones(len(hk), bool) if reliable is None else np.asarray(reliable, dtype=bool).reshape(len(hk))
+    frac = ~np.asarray(integer, dtype=bool)
+    if int((frac & reliable).sum()) < 2:  # too few trusted fractional spots to judge by: count them all
+        reliable = np.ones(len(hk), bool)
     geom = substrate_fit.geometry
     a_star = substrate_fit.reciprocal_net.vectors
     lam = wavelength_A(energy_eV)

@@ -265,6 +265,20 @@ def test_spots_cut_by_the_gun_shadow_are_not_trusted():
     assert any(c for _, c in pairs) and all(t != c for t, c in pairs)
 
 
+def test_untrusted_spots_still_count_when_no_fractional_spot_is_trusted():
+    # if every fractional spot had a cut centre, leaving them all out would leave nothing to judge:
+    # the search then counts them all (truth: the rendered p(2×2))
+    from analysis.indexing import find_overlayers
+
+    sub = parse_substrate("Pt(111)")
+    im, _ = render(sub, all_domain_matrices(sub, "p(2x2)"), energy=96.0)
+    res = analyze_image(im.image, energy_eV=96.0, substrate="Pt(111)")
+    fit = res.index.substrate
+    models = find_overlayers(fit.hk, fit.integer, fit, energy_eV=96.0, intensity=res.intensity,
+                             valid_mask=res.measurement.valid, reliable=fit.integer.copy())
+    assert models[0].wood == "p(2×2)" and models[0].unexplained == 0
+
+
 def test_typed_model_counts_explained_spots():
     sub = parse_substrate("Pt(111)")
     im, _ = render(sub, all_domain_matrices(sub, "(√3×√3)R30°"), energy=112.0)
