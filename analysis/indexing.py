@@ -25,7 +25,6 @@ from __future__ import annotations
 import dataclasses
 import math
 from dataclasses import dataclass, field
-from fractions import Fraction
 from types import SimpleNamespace
 
 import numpy as np
@@ -767,15 +766,19 @@ class OverlayerModel:
 
 
 def _snap_matrix(m: np.ndarray, tol: float, max_den: int) -> np.ndarray | None:
+    """Each entry replaced by the closest fraction with denominator ≤ `max_den`, or None
+    when one lies farther than `tol` from it (the closest p/q for each q is rint(x q)/q)."""
+    m = np.asarray(m, dtype=np.float64)
     if np.all(np.abs(m - np.rint(m)) <= tol):
         return np.rint(m) + 0.0
-    out = np.empty_like(m)
-    for idx, x in np.ndenumerate(m):
-        f = Fraction(float(x)).limit_denominator(max_den)
-        if abs(float(f) - x) > tol:
-            return None
-        out[idx] = float(f)
-    return out
+    q = np.arange(1, max_den + 1, dtype=np.float64).reshape((-1,) + (1,) * m.ndim)
+    cand = np.rint(m * q) / q
+    err = np.abs(cand - m)
+    k = np.argmin(err, axis=0)  # the smallest denominator among equally close ones
+    best = np.take_along_axis(cand, k[None], 0)[0]
+    if np.any(np.take_along_axis(err, k[None], 0)[0] > tol):
+        return None
+    return best + 0.0
 
 
 def _lattice_points(b_star_hk: np.ndarray, a_star: np.ndarray, g_max: float) -> np.ndarray:

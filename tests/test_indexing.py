@@ -14,6 +14,8 @@ import math
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from analysis.errors import FitError
 from analysis.nets import Net2D, parse_substrate, reciprocal
@@ -336,9 +338,9 @@ def test_joint_camera_and_overlayer_fit_recovers_distortion_from_satellites():
     h = [*h_sub, *np.zeros((6, 2))]
     u = [*np.zeros((6, 2)), *h_sub]  # substrate beams, then the layer's own first-order beams
     for hs in h_sub:  # satellites: substrate beam + (u B0) − (the matching substrate step)
-        for st in steps:
-            h.append(hs - st)
-            u.append(st)
+        for step in steps:
+            h.append(hs - step)
+            u.append(step)
     terms_true = _OverlayerTerms(np.array(h), np.array(u), np.tile(np.eye(2), (len(h), 1, 1)), b0)
     xy, vis = momentum_to_pixels(terms_true.hk(b0) @ a_star, 100.0, truth)
     keep = vis & np.all(np.isfinite(xy), axis=1)
@@ -350,3 +352,24 @@ def test_joint_camera_and_overlayer_fit_recovers_distortion_from_satellites():
     assert geom.distortion == pytest.approx(0.22, abs=1e-4)
     assert geom.scale_px == pytest.approx(640.0, rel=1e-5)
     assert np.abs(res).max() < 1e-4
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.lists(st.floats(-20, 20, allow_nan=False), min_size=4, max_size=4), st.integers(1, 12),
+       st.floats(1e-5, 0.2))
+def test_matrix_snapping_is_the_closest_fraction(entries, max_den, tol):
+    # reference: the standard library's Fraction.limit_denominator (closest fraction, bounded denominator)
+    from fractions import Fraction
+
+    from analysis.indexing import _snap_matrix
+
+    m = np.array(entries).reshape(2, 2)
+    got = _snap_matrix(m, tol, max_den)
+    if np.all(np.abs(m - np.rint(m)) <= tol):
+        assert np.array_equal(got, np.rint(m))
+        return
+    ref = [float(Fraction(x).limit_denominator(max_den)) for x in m.ravel()]
+    if any(abs(r - x) > tol for r, x in zip(ref, m.ravel())):
+        assert got is None
+    else:
+        assert got is not None and np.array_equal(got.ravel(), ref)
