@@ -281,6 +281,37 @@ def test_untrusted_spots_still_count_when_no_fractional_spot_is_trusted():
     assert models[0].wood == "p(2×2)" and models[0].unexplained == 0
 
 
+def _tilted(spec, wood, energy, tilt_deg):
+    """The pattern with the beam off the surface normal by `tilt_deg` (k_in∥ = sin(tilt) / λ)."""
+    from analysis.optics import wavelength_A
+
+    sub = parse_substrate(spec)
+    mats = all_domain_matrices(sub, wood)
+    k = math.sin(math.radians(tilt_deg)) / wavelength_A(energy)
+    geom = ScreenGeometry(517.5, 502.5, 640.0, distortion=0.22, rotation_deg=7.0)
+    pat = forward_pattern(sub, mats, energy_eV=energy, geometry=geom,
+                          k_in_par=[k * math.cos(0.7), k * math.sin(0.7)])
+    gun = dataclasses.replace(GunShadow.scaled(460.0), arm_angle_deg=235.0)
+    return render_image(pat, shape=(1024, 1024), rng=np.random.default_rng(0), gun=gun,
+                        intensities=symmetric_intensities(pat))
+
+
+@pytest.mark.parametrize("spec, wood, energy", [("Pt(111)", "p(2x2)", 110.0), ("Cu(100)", "c(2x2)", 130.0)])
+def test_a_beam_one_degree_off_normal_is_tolerated(spec, wood, energy):
+    # normal incidence is assumed; a small misalignment must not change the answer
+    im = _tilted(spec, wood, energy, 1.0)
+    best = analyze_image(im.image, energy_eV=energy, substrate=spec).index.best
+    assert (best.wood, best.n_domains) == (wood.replace("x", "×"), 1)
+
+
+@pytest.mark.xfail(strict=True, reason="known gap: off-normal incidence is not modelled; at 3° off normal the "
+                   "spots no longer sit where the camera model puts them and c(2×2) is misread")
+def test_a_beam_three_degrees_off_normal():
+    im = _tilted("Cu(100)", "c(2x2)", 130.0, 3.0)
+    best = analyze_image(im.image, energy_eV=130.0, substrate="Cu(100)").index.best
+    assert (best.wood, best.n_domains) == ("c(2×2)", 1)
+
+
 def test_typed_model_counts_explained_spots():
     sub = parse_substrate("Pt(111)")
     im, _ = render(sub, all_domain_matrices(sub, "(√3×√3)R30°"), energy=112.0)
