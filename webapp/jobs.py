@@ -8,7 +8,7 @@ from __future__ import annotations
 
 from .settings import Settings
 
-__all__ = ["make_manager", "progress_reporter"]
+__all__ = ["make_manager", "progress_reporter", "job_controls"]
 
 
 def make_manager(settings: Settings):
@@ -50,3 +50,21 @@ def progress_reporter(set_progress, *, start: float = 0.0, span: float = 100.0):
         frac = min(max(frac, 0.0), 1.0)
         set_progress((str(int(round(start + span * frac))), "100"))
     return report
+
+
+def job_controls(run_id: str, cancel_id: str, progress_id: str) -> dict:
+    """Keyword arguments of a background callback started by `run_id`: a progress bar
+    (`progress_id`, shown only while it runs), the start button disabled and the stop
+    button (`cancel_id`) enabled meanwhile, and a click on stop cancelling it."""
+    from dash import Input, Output
+
+    return {
+        "background": True,
+        "progress": [Output(progress_id, "value"), Output(progress_id, "max")],
+        "running": [
+            (Output(run_id, "disabled"), True, False),
+            (Output(cancel_id, "disabled"), False, True),
+            (Output(progress_id, "style"), {"visibility": "visible"}, {"visibility": "hidden"}),
+        ],
+        "cancel": [Input(cancel_id, "n_clicks")],
+    }

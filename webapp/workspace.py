@@ -25,7 +25,7 @@ from dash.exceptions import PreventUpdate
 from analysis.errors import ParameterError, RecinetError
 
 from . import figures, ids, runtime, service
-from .jobs import progress_reporter
+from .jobs import job_controls, progress_reporter
 
 __all__ = [
     "workspace", "on_upload", "render_pattern", "run_job", "on_graph_event", "show_result",
@@ -760,14 +760,7 @@ callback(
     Input(ids.RUN, "n_clicks"), Input(ids.EDITS, "data"),
     State(ids.IMAGE, "data"), State(ids.ENERGY, "value"), State(ids.SUBSTRATE, "value"), State(ids.SOURCE, "data"),
     State(ids.REFERENCE, "data"), State(ids.REF_ENERGY, "value"), State(ids.CALIBRATION, "value"),
-    background=True,
-    progress=[Output(ids.PROGRESS, "value"), Output(ids.PROGRESS, "max")],
-    running=[
-        (Output(ids.RUN, "disabled"), True, False),
-        (Output(ids.CANCEL, "disabled"), False, True),
-        (Output(ids.PROGRESS, "style"), {"visibility": "visible"}, {"visibility": "hidden"}),
-    ],
-    cancel=[Input(ids.CANCEL, "n_clicks")],
+    **job_controls(ids.RUN, ids.CANCEL, ids.PROGRESS),
     prevent_initial_call=True,
 )(run_job)
 

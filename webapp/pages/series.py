@@ -28,6 +28,7 @@ from dash.exceptions import PreventUpdate
 
 from analysis.errors import RecinetError
 from webapp import figures, ids, runtime, series_service, service
+from webapp.jobs import job_controls
 
 register_page(__name__, path="/series", title="recinet: energy series", name="Energy series")
 
@@ -689,14 +690,7 @@ callback(
     State(ids.SERIES_META, "data"), State(ids.SERIES_ENERGY_TABLE, "data"), State(ids.SERIES_ENERGY_MODE, "value"),
     State(ids.SERIES_START, "value"), State(ids.SERIES_STEP, "value"), State(ids.SERIES_NAME_PATTERN, "value"),
     State(ids.SERIES_SUBSTRATE, "value"), State(ids.SERIES_INDEX_FRAME, "value"), State(ids.SERIES_OVERLAYER, "value"),
-    background=True,
-    progress=[Output(ids.SERIES_PROGRESS, "value"), Output(ids.SERIES_PROGRESS, "max")],
-    running=[
-        (Output(ids.SERIES_RUN, "disabled"), True, False),
-        (Output(ids.SERIES_CANCEL, "disabled"), False, True),
-        (Output(ids.SERIES_PROGRESS, "style"), {"visibility": "visible"}, {"visibility": "hidden"}),
-    ],
-    cancel=[Input(ids.SERIES_CANCEL, "n_clicks")],
+    **job_controls(ids.SERIES_RUN, ids.SERIES_CANCEL, ids.SERIES_PROGRESS),
     prevent_initial_call=True,
 )(run_series_job)
 
