@@ -85,7 +85,7 @@ def display_levels(data: np.ndarray, *, scale: str = "linear", clip_pct=(0.5, 99
     Examples
     --------
     >>> d = np.linspace(0.0, 1.0, 11).reshape(1, 11)
-    >>> display_levels(d, clip_pct=(0, 100)).tolist()[0][:3], display_levels(d, scale="gamma", gamma=1.0, clip_pct=(0, 100))[0, 10]
+    >>> display_levels(d, clip_pct=(0, 100)).tolist()[0][:3], int(display_levels(d, scale="gamma", gamma=1.0, clip_pct=(0, 100))[0, 10])
     ([0, 26, 51], 255)
     """
     lo_pct, hi_pct = float(clip_pct[0]), float(clip_pct[1])
