@@ -21,7 +21,6 @@ import functools
 import hashlib
 import json
 import math
-import os
 import tempfile
 from pathlib import Path
 
@@ -42,20 +41,11 @@ PREVIEW_SIDE = 512  # longer side of the 8-bit frame previews, px
 ENERGY_MODES = ("file", "step", "names")
 _KEEP_S = 3 * 86400  # uploads and runs stay this long in the cache
 
-_STATE = {"cache": None, "pid": None}
-
-
 def _cache():
-    """diskcache in the data folder's job-cache (shared by workers and background jobs)."""
-    import diskcache
+    """diskcache of uploads and runs in the data folder's job-cache (see service.job_cache)."""
+    from . import service
 
-    from .runtime import get_settings
-
-    if _STATE["cache"] is None or _STATE["pid"] != os.getpid():
-        path = get_settings().cache_dir / "series"
-        _STATE["cache"] = diskcache.Cache(str(path), size_limit=4 * 1024**3, eviction_policy="least-recently-used")
-        _STATE["pid"] = os.getpid()
-    return _STATE["cache"]
+    return service.job_cache("series", 4 * 1024**3)
 
 
 def _short(name) -> str:

@@ -217,22 +217,29 @@ def record_key(sha: str, parameters: dict, edits: dict | None) -> str:
     return hashlib.sha256(blob.encode()).hexdigest()
 
 
-_RESULTS = {"cache": None, "pid": None}
+_CACHES: dict = {}  # folder name → (process id, diskcache.Cache)
 
 
-def _results_cache():
-    """diskcache of analysis objects in the data folder (shared by workers; the oldest are evicted)."""
+def job_cache(name: str, size_limit: int):
+    """diskcache in the data folder's job-cache subfolder `name`, opened once per process
+    (shared by workers and background jobs; the least recently used entries are evicted)."""
     import os
 
     import diskcache
 
     from .runtime import get_settings
 
-    if _RESULTS["cache"] is None or _RESULTS["pid"] != os.getpid():
-        path = get_settings().cache_dir / "results"
-        _RESULTS["cache"] = diskcache.Cache(str(path), size_limit=2 * 1024**3, eviction_policy="least-recently-used")
-        _RESULTS["pid"] = os.getpid()
-    return _RESULTS["cache"]
+    pid, cache = _CACHES.get(name, (None, None))
+    if cache is None or pid != os.getpid():
+        cache = diskcache.Cache(str(get_settings().cache_dir / name), size_limit=size_limit,
+                                eviction_policy="least-recently-used")
+        _CACHES[name] = (os.getpid(), cache)
+    return cache
+
+
+def _results_cache():
+    """diskcache of analysis objects in the data folder."""
+    return job_cache("results", 2 * 1024**3)
 
 
 def _pipeline_edits(ed: dict) -> dict:
