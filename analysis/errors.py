@@ -14,6 +14,7 @@ __all__ = [
     "ImageError",
     "FitError",
     "SeriesError",
+    "TimeLimitError",
 ]
 
 
@@ -39,3 +40,7 @@ class FitError(RecinetError, RuntimeError):
 
 class SeriesError(RecinetError, ValueError):
     """An energy series is inconsistent (frame sizes, energies, sidecar files)."""
+
+
+class TimeLimitError(RecinetError, TimeoutError):
+    """Long work ran past its time limit and was stopped."""

@@ -22,6 +22,7 @@ from .nets import Net2D, parse_substrate
 from .optics import ScreenGeometry
 from .spots import FLAG_FIT_FAILED, FLAG_NEAR_EDGE, Measurement, measure_image
 from .superstructure import parse_matrix, parse_wood
+from .timelimit import check_time
 
 __all__ = ["Edits", "AnalysisResult", "analyze_image", "try_model", "check_energy"]
 
@@ -210,7 +211,12 @@ def analyze_image(image, *, energy_eV: float, substrate: str | Net2D, reference=
         With a one-line message for the user.
     """
     t0 = time.perf_counter()
-    say = progress or (lambda f, m: None)
+    user_say = progress or (lambda f, m: None)
+
+    def say(fraction, message):
+        check_time()  # a time limit set by the caller (web job, CLI) stops the work between steps
+        user_say(fraction, message)
+
     e = check_energy(energy_eV)
     hint = parse_substrate(substrate) if isinstance(substrate, str) else substrate
     if not isinstance(hint, Net2D):

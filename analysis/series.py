@@ -57,6 +57,7 @@ from .nets import Net2D, parse_substrate, point_group, reciprocal
 from .optics import H2_OVER_2ME_EV_A2, ScreenGeometry, momentum_to_pixels
 from .rfactor import pairwise_pendry_r, zanazzi_jona_r
 from .superstructure import beam_label
+from .timelimit import check_time
 
 __all__ = [
     "EnergyTable",
@@ -1768,6 +1769,7 @@ def track_series(frames, beams: BeamSet, geometry: ScreenGeometry, *, energies=N
                 pts_xy.append(xy[okpos])
             if fit and ((i + 1) & i) == 0 and i > 0 and pts_e:  # after frames 1, 2, 4, 8, … (0-based 1, 3, 7)
                 geom = _refit(pts_e, pts_g, pts_xy, geom, fit)
+            check_time()  # a caller's time limit stops the extraction between frames
             if progress is not None:
                 progress(i + 1, n_total, e)
     finally:

@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
+import os
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -738,15 +739,32 @@ class BackgroundEstimate:
 
 
 _POOL = None
+_POOL_PID = None
+
+
+def _forget_pool() -> None:
+    """In a forked child the parent's executor has no threads: drop it (a new one is made on use)."""
+    global _POOL, _POOL_PID
+    _POOL, _POOL_PID = None, None
+
+
+if hasattr(os, "register_at_fork"):
+    os.register_at_fork(after_in_child=_forget_pool)
 
 
 def _pool():
-    """A second thread for array work that releases the GIL (numpy, ndimage)."""
-    global _POOL
-    if _POOL is None:
+    """A second thread for array work that releases the GIL (numpy, ndimage).
+
+    Never inherited across a fork (Dash background jobs, gunicorn and Celery workers fork):
+    the child forgets the parent's executor and makes its own; the process id is checked too,
+    for forks that bypass the `os.register_at_fork` hooks.
+    """
+    global _POOL, _POOL_PID
+    if _POOL is None or _POOL_PID != os.getpid():
         from concurrent.futures import ThreadPoolExecutor
 
         _POOL = ThreadPoolExecutor(max_workers=2, thread_name_prefix="recinet-arrays")
+        _POOL_PID = os.getpid()
     return _POOL
 
 

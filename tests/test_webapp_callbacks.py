@@ -269,6 +269,74 @@ def test_try_model_counts_explained_and_unexplained(ws, analysed_demo):
     assert len(model["xy"]) > 0
 
 
+def test_record_key_survives_the_browser_round_trip(webapp_env):
+    from webapp import service
+
+    params = {"energy_eV": 75.0, "substrate": "Cu(100)", "reference_energy_eV": 120.0}
+    edits = {"added": [[10.0, 12.5]], "removed": [], "center": None}
+    # what the browser sends back: JSON numbers lose their ".0", text may carry spaces
+    back = json.loads(json.dumps(params).replace("75.0", "75").replace("120.0", "120"))
+    back["substrate"] = " Cu(100) "
+    assert back["energy_eV"] == 75 and isinstance(back["energy_eV"], int)
+    assert service.record_key("abc", back, json.loads(json.dumps(edits))) == service.record_key("abc", params, edits)
+    assert service.record_key("abc", {**params, "energy_eV": 76.0}, edits) != service.record_key("abc", params, edits)
+
+
+def test_try_model_uses_the_cached_analysis_after_the_round_trip(ws, analysed_demo, monkeypatch):
+    """The browser's copy of the record must find the job's cached analysis, not analyse again
+    in the web server's process (which then leaves state behind for the forked jobs)."""
+    from webapp import service
+
+    image, record, _, _, _ = analysed_demo
+    record = json.loads(json.dumps(record))
+    e = record["parameters"]["energy_eV"]
+    assert float(e).is_integer()
+    record["parameters"]["energy_eV"] = int(e)  # as JavaScript's JSON gives it back
+
+    def no_rerun(*a, **k):
+        raise AssertionError("analysed again: the cache key missed")
+
+    monkeypatch.setattr(service, "analyze", no_rerun)
+    model, note = _call(ws.on_try_model, "model-try.n_clicks", 1, None, "p(2x2)", record, image, "Pt(111)")
+    assert model is not None and model["explained"] > 0
+
+
+def test_stop_clears_the_result_model_and_message(ws):
+    result, model, note = ws.on_stop(1)
+    assert result is None and model is None
+    assert "Stopped" in _text(note) and "Analysed" not in _text(note)
+    from dash.exceptions import PreventUpdate
+
+    with pytest.raises(PreventUpdate):
+        ws.on_stop(None)
+
+
+def test_a_new_image_forgets_the_tried_model(ws):
+    assert ws.on_new_image({"sha": "x"}) == (None, None, None)
+
+
+def test_analysis_job_stops_at_its_time_limit(ws, fresh_store, noisy_png, monkeypatch):
+    """A job that runs past RECINET_JOB_TIME_LIMIT_S ends with a plain message, not a hang."""
+    import time
+
+    from webapp import runtime, service
+
+    import dataclasses
+
+    settings = runtime.get_settings()
+    monkeypatch.setattr(runtime, "get_settings", lambda: dataclasses.replace(settings, job_time_limit_s=0.2))
+
+    def slow(*a, **k):
+        time.sleep(5)
+
+    monkeypatch.setattr(service, "analyze", slow)
+    image = _call(ws.on_upload, "upload.contents", _data_url(noisy_png), None, "x.png", 60, "Cu(100)")[0]
+    t0 = time.monotonic()
+    record, note = _call(ws.run_job, "run.n_clicks", lambda p: None, 1, None, image, 60, "Cu(100)", {"readonly": False})
+    assert time.monotonic() - t0 < 3
+    assert record is ws.no_update and "time limit of 0.2 s" in _text(note)
+
+
 def test_try_model_bad_text_and_singular_matrix(ws, analysed_demo):
     image, record, _, _, _ = analysed_demo
     model, note = _call(ws.on_try_model, "model-try.n_clicks", 1, None, "1 2 / 2 4", record, image, "Pt(111)")

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 import threading
 
 from .settings import Settings, load_settings
@@ -12,6 +13,16 @@ __all__ = ["get_settings", "get_store", "reset"]
 _lock = threading.Lock()
 _settings: Settings | None = None
 _store: Store | None = None
+
+
+def _after_fork_in_child() -> None:
+    """A forked job must not inherit a lock held by another thread of the parent."""
+    global _lock
+    _lock = threading.Lock()
+
+
+if hasattr(os, "register_at_fork"):
+    os.register_at_fork(after_in_child=_after_fork_in_child)
 
 
 def get_settings() -> Settings:

@@ -213,8 +213,31 @@ def record_key(sha: str, parameters: dict, edits: dict | None) -> str:
     """A stable key for one (image, parameters, edits): the cache name of its analysis object."""
     import hashlib
 
-    blob = json.dumps([sha, parameters or {}, clean_edits(edits)], sort_keys=True, default=str)
+    blob = json.dumps(_normalised([sha, parameters or {}, clean_edits(edits)]), sort_keys=True, default=str)
     return hashlib.sha256(blob.encode()).hexdigest()
+
+
+def _normalised(value):
+    """The same inputs as the same value, however they travelled: numbers as floats (75 from the
+    browser's JSON and 75.0 from Python are one energy), text stripped, tuples as lists.
+
+    >>> _normalised({"energy_eV": 75, "substrate": " Cu(100) ", "c": (1, True, None)})
+    {'energy_eV': 75.0, 'substrate': 'Cu(100)', 'c': [1.0, True, None]}
+    """
+    if isinstance(value, bool) or value is None:
+        return value
+    if isinstance(value, (int, float)):
+        return float(value)
+    if isinstance(value, str):
+        return value.strip()
+    if isinstance(value, dict):
+        return {str(k).strip(): _normalised(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_normalised(v) for v in value]
+    try:  # numpy scalars
+        return float(value)
+    except (TypeError, ValueError):
+        return str(value)
 
 
 _CACHES: dict = {}  # folder name → (process id, diskcache.Cache)

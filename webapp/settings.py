@@ -7,6 +7,7 @@ RECINET_DATABASE_URL   SQLAlchemy URL, e.g. ``postgresql+psycopg://user@host/db`
 RECINET_ACCESS_KEY     when set, every page and API asks for this group key
 RECINET_MAX_UPLOAD_MB  largest accepted upload in MB of 10⁶ bytes (default 64)
 RECINET_CELERY_BROKER  Redis URL; when set, long work runs on Celery workers
+RECINET_JOB_TIME_LIMIT_S  longest a background job (an analysis, a series) may run (default 300 s)
 """
 
 from __future__ import annotations
@@ -28,6 +29,7 @@ class Settings:
     access_key: str | None
     max_upload_bytes: int
     celery_broker: str | None
+    job_time_limit_s: float = 300.0
 
     @property
     def max_request_bytes(self) -> int:
@@ -50,6 +52,13 @@ def load_settings(env: dict | None = None) -> Settings:
         raise ParameterError(f"RECINET_MAX_UPLOAD_MB must be a number of MB, got {raw_mb!r}.") from None
     if not (0 < mb <= 1024):
         raise ParameterError(f"RECINET_MAX_UPLOAD_MB must lie in (0, 1024], got {raw_mb!r}.")
+    raw_limit = env.get("RECINET_JOB_TIME_LIMIT_S") or "300"
+    try:
+        limit = float(raw_limit)
+    except ValueError:
+        raise ParameterError(f"RECINET_JOB_TIME_LIMIT_S must be a number of seconds, got {raw_limit!r}.") from None
+    if not (5 <= limit <= 86400):
+        raise ParameterError(f"RECINET_JOB_TIME_LIMIT_S must lie in [5, 86400] s, got {raw_limit!r}.")
     return Settings(
         data_dir=data_dir,
         database_url=url,
@@ -57,4 +66,5 @@ def load_settings(env: dict | None = None) -> Settings:
         access_key=env.get("RECINET_ACCESS_KEY") or None,
         max_upload_bytes=int(mb * 1_000_000),
         celery_broker=env.get("RECINET_CELERY_BROKER") or None,
+        job_time_limit_s=limit,
     )

@@ -23,12 +23,13 @@ from dash import Input, Output, State, callback, ctx, dcc, html, no_update
 from dash.exceptions import PreventUpdate
 
 from analysis.errors import ParameterError, RecinetError
+from analysis.timelimit import time_limit
 
 from . import figures, ids, runtime, service
 from .jobs import job_controls, progress_reporter
 
 __all__ = [
-    "workspace", "on_upload", "render_pattern", "run_job", "on_graph_event", "show_result",
+    "workspace", "on_upload", "render_pattern", "run_job", "on_stop", "on_new_image", "on_graph_event", "show_result",
     "on_try_model", "on_save", "on_export", "display_image", "on_reference",
 ]
 
@@ -457,16 +458,29 @@ def run_job(set_progress, n_clicks, edits, image, energy, substrate, source, ref
         if cal is not None:
             params["calibration_from"] = calibration_token
         set_progress(("5", "100"))
-        result = service.analyze(data, energy_eV=e, substrate=substrate.strip(), edits=ed, reference=ref,
-                                 reference_energy_eV=ref_e, calibration=cal,
-                                 progress=progress_reporter(set_progress, start=5, span=93),
-                                 cache_key=service.record_key(image["sha"], params, ed))
+        with time_limit(runtime.get_settings().job_time_limit_s, "the analysis"):
+            result = service.analyze(data, energy_eV=e, substrate=substrate.strip(), edits=ed, reference=ref,
+                                     reference_energy_eV=ref_e, calibration=cal,
+                                     progress=progress_reporter(set_progress, start=5, span=93),
+                                     cache_key=service.record_key(image["sha"], params, ed))
         set_progress(("100", "100"))
     except Exception as err:  # noqa: BLE001
         return no_update, _note(_fail(err))
     record = {"sha": image["sha"], "parameters": params, "edits": ed, "result": result}
     n = len(result.get("spots") or [])
     return record, _note(f"Analysed: {n} spots.", "ok")
+
+
+def on_stop(n_clicks):
+    """Stop pressed: the page forgets what the stopped run would have replaced -> (result, model, message)."""
+    if not n_clicks:
+        raise PreventUpdate
+    return None, None, _note("Stopped: nothing was analysed. Press Analyse to start again.", "warn")
+
+
+def on_new_image(image):
+    """A new image forgets the model tried on the last one -> (model, model note, message)."""
+    return None, None, None
 
 
 # --------------------------------------------------------------------------- result panel
@@ -763,6 +777,20 @@ callback(
     **job_controls(ids.RUN, ids.CANCEL, ids.PROGRESS),
     prevent_initial_call=True,
 )(run_job)
+
+callback(
+    Output(ids.RESULT, "data", allow_duplicate=True), Output(ids.MODEL, "data", allow_duplicate=True),
+    Output(ids.MESSAGE, "children", allow_duplicate=True),
+    Input(ids.CANCEL, "n_clicks"),
+    prevent_initial_call=True,
+)(on_stop)
+
+callback(
+    Output(ids.MODEL, "data", allow_duplicate=True), Output(ids.MODEL_NOTE, "children", allow_duplicate=True),
+    Output(ids.MESSAGE, "children", allow_duplicate=True),
+    Input(ids.IMAGE, "data"),
+    prevent_initial_call=True,
+)(on_new_image)
 
 callback(
     Output(ids.RESULT_PANEL, "children"), Output(ids.CANDIDATE_PICK, "options"), Output(ids.CANDIDATES, "children"),

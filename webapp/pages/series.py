@@ -27,6 +27,7 @@ from dash import (Input, Output, State, callback, clientside_callback, ctx, dcc,
 from dash.exceptions import PreventUpdate
 
 from analysis.errors import RecinetError
+from analysis.timelimit import time_limit
 from webapp import figures, ids, runtime, series_service, service
 from webapp.jobs import job_controls
 
@@ -250,10 +251,11 @@ def run_series_job(set_progress, n_clicks, meta, table, mode, start, step, patte
 
     try:
         say(0.01)
-        summary = series_service.run_series(meta["sha"], meta.get("filename") or "series",
-                                            substrate=(substrate or "").strip(), mode=mode or "file",
-                                            table=table, start=start, step=step, pattern=pattern,
-                                            index_frame=index_frame, overlayer=overlayer, progress=say)
+        with time_limit(runtime.get_settings().job_time_limit_s, "the series"):
+            summary = series_service.run_series(meta["sha"], meta.get("filename") or "series",
+                                                substrate=(substrate or "").strip(), mode=mode or "file",
+                                                table=table, start=start, step=step, pattern=pattern,
+                                                index_frame=index_frame, overlayer=overlayer, progress=say)
     except Exception as err:  # noqa: BLE001
         return no_update, _note(_fail(err))
     n_beams = sum(1 for b in summary["beams"] if b["n_valid"])
