@@ -51,13 +51,13 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import FitError, ImageError, ParameterError, RecinetError, SeriesError
-from .jsonsafe import json_safe
-from .nets import Net2D, parse_substrate, point_group, reciprocal
-from .optics import H2_OVER_2ME_EV_A2, ScreenGeometry, momentum_to_pixels
-from .rfactor import pairwise_pendry_r, zanazzi_jona_r
-from .superstructure import beam_label
-from .timelimit import check_time
+from ..errors import FitError, ImageError, ParameterError, RecinetError, SeriesError
+from ..jsonsafe import json_safe
+from ..nets import Net2D, parse_substrate, point_group, reciprocal
+from ..optics import H2_OVER_2ME_EV_A2, ScreenGeometry, momentum_to_pixels
+from ..rfactor import pairwise_pendry_r, zanazzi_jona_r
+from ..superstructure import beam_label
+from ..timelimit import check_time
 
 __all__ = [
     "EnergyTable",
@@ -654,11 +654,11 @@ def beams_from_nets(substrate: Net2D, overlayers: Sequence = (), *, energy_max_e
     >>> print(len(b), b.labels[:2], len(set(b.group.tolist())))
     9 ('(0,0)', '(0,1)') 3
     """
-    from .simulate import forward_pattern
+    from ..simulate import forward_pattern
 
     mats = [np.asarray(m, dtype=np.float64) for m in overlayers]
     if all_domains and mats:
-        from .superstructure import domains
+        from ..superstructure import domains
 
         mats = [d.matrix for m in mats for d in domains(substrate, m)]
     pat = forward_pattern(substrate, mats, energy_eV=float(energy_max_eV), geometry=geometry,
@@ -1451,7 +1451,7 @@ _STACK_MAX_BYTES = 16_000_000_000  # a multi-page file streamed from disk
 def _as_frames(frames) -> Iterator[tuple[str, np.ndarray]]:
     """(name, array) pairs from a path (through analysis.io) or from an iterable."""
     if isinstance(frames, (str, os.PathLike, bytes, bytearray)):
-        from .io import iter_frames
+        from ..io import iter_frames
 
         # A stack on disk is decoded page by page, so its file size is not held in memory:
         # only the per-frame pixel limit of analysis.io applies to it.
@@ -2297,9 +2297,9 @@ def index_series_frame(frame, *, energy_eV: float, substrate: str | Net2D, frame
     >>> print(found.label, round(found.geometry.scale_px, 1))
     c(2×2), commensurate 290.0
     """
-    from .pipeline import Edits, analyze_image
+    from ..pipeline import Edits, analyze_image
 
-    from .io import load_image
+    from ..io import load_image
 
     where = f"frame {frame_index}" + (f" ({frame_name})" if frame_name else "")
     try:
@@ -2322,7 +2322,7 @@ def index_series_frame(frame, *, energy_eV: float, substrate: str | Net2D, frame
     valid = np.array(res.measurement.valid, dtype=bool)
     for a in (*mats, valid):
         a.flags.writeable = False
-    from .superstructure import format_matrix
+    from ..superstructure import format_matrix
 
     return SeriesIndexing(frame=int(frame_index), frame_name=str(frame_name), energy_eV=e, geometry=fit.geometry,
                           substrate=Net2D(fit.net.vectors, label=hint.label), overlayers=mats, kind=best.kind,
@@ -2392,8 +2392,8 @@ def index_series_frames(frames, *, substrate: str | Net2D, min_snr: float = 5.0)
 
 def _pair_centre(frame, min_snr: float):
     """(x, y) centre of the symmetric spot pairs found by a vote over all pairs, or None."""
-    from .calibration import estimate_center_from_pairs
-    from .spots import measure_image
+    from ..calibration import estimate_center_from_pairs
+    from ..spots import measure_image
 
     try:
         spots = measure_image(frame, sigma_px=None, min_snr=min_snr).spots
@@ -2500,7 +2500,7 @@ def _count_frames(series, energies, first) -> int | None:
         return len(energies)
     p = Path(series)
     if p.is_dir():
-        from .io import IMAGE_SUFFIXES
+        from ..io import IMAGE_SUFFIXES
 
         return sum(1 for f in p.iterdir() if f.is_file() and not f.name.startswith(".")
                    and f.suffix.lower() in IMAGE_SUFFIXES) or None
@@ -2533,7 +2533,7 @@ def _index_frame_choice(series, energies, first) -> int:
         target = min(0.5 * (e.min() + e.max()), _INDEX_EV_MAX)
         return int(np.argmin(np.abs(e - target)))
     if n is None:  # e.g. a zip with energies in the file names: count the frames once
-        from .io import iter_frames
+        from ..io import iter_frames
 
         n = sum(1 for _ in iter_frames(series, max_bytes=_STACK_MAX_BYTES))
     return max(n - 1, 0) // 2
@@ -2578,7 +2578,7 @@ def vote_frame_choices(energy_eV, *, n_frames: int = 5, e_max_eV: float = 250.0)
 
 def _seek_frames(series, wanted: list[int], energies, name_pattern: str) -> list[tuple]:
     """(index, name, frame, energy_eV) of each wanted frame, in one pass over the series."""
-    from .io import iter_frames
+    from ..io import iter_frames
 
     en = _Energies(energies, name_pattern)
     want = set(wanted)
@@ -2600,7 +2600,7 @@ def _seek_frames(series, wanted: list[int], energies, name_pattern: str) -> list
 
 def _seek_frame(series, n: int, energies, name_pattern: str):
     """(name, frame, energy_eV) of frame `n`, checking the energies of the frames before it."""
-    from .io import iter_frames
+    from ..io import iter_frames
 
     en = _Energies(energies, name_pattern)
     i = -1
@@ -2618,7 +2618,7 @@ def _seek_frame(series, n: int, energies, name_pattern: str):
 
 
 def _cmd_iv(args) -> int:
-    from .io import iter_frames, load_image
+    from ..io import iter_frames, load_image
 
     substrate = parse_substrate(args.substrate)
     if args.energies and args.start_eV is not None:
@@ -2636,7 +2636,7 @@ def _cmd_iv(args) -> int:
         energies = _StartStep(args.start_eV, args.step_eV)
     mats = []
     if args.overlayer:
-        from .superstructure import parse_matrix
+        from ..superstructure import parse_matrix
 
         mats = [parse_matrix(t) for t in args.overlayer]
     for out in (args.csv, args.json, args.save_calibration):
