@@ -30,12 +30,12 @@ from types import SimpleNamespace
 import numpy as np
 from scipy.spatial import cKDTree
 
-from .calibration import estimate_center_from_pairs
-from .errors import FitError, NetError
-from .nets import Net2D, classify_net, point_group, reciprocal, reduce_net
-from .optics import (ScreenGeometry, local_jacobian, momentum_to_pixels, pixels_to_momentum, project,
+from ..calibration import estimate_center_from_pairs
+from ..errors import FitError, NetError
+from ..nets import Net2D, classify_net, point_group, reciprocal, reduce_net
+from ..optics import (ScreenGeometry, local_jacobian, momentum_to_pixels, pixels_to_momentum, project,
                      project_derivatives, wavelength_A)
-from .superstructure import (
+from ..superstructure import (
     classify_superstructure,
     coverage,
     hermite_normal_form,
