@@ -4,6 +4,7 @@ The code is being split into one module per family; this package re-exports the
 public names, so ``from analysis.series import track_series`` keeps working.
 """
 
+from .beams import BeamSet, beam_label, beams_from_nets, symmetry_ops
 from .energies import (
     DEFAULT_NAME_PATTERN,
     EnergyTable,
@@ -21,7 +22,6 @@ from .track import (
     FLAG_OFF_SCREEN,
     FLAG_SATURATED,
     BeamGroup,
-    BeamSet,
     IVResult,
     SeriesCalibration,
     SeriesIndexing,
@@ -29,8 +29,6 @@ from .track import (
     _index_frame_choice,  # noqa: F401
     add_iv_parser,
     average_equivalent,
-    beam_label,
-    beams_from_nets,
     csv_text,
     fit_series_geometry,
     index_series_frame,
@@ -39,7 +37,6 @@ from .track import (
     iv_table,
     result_to_dict,
     smooth_curve,
-    symmetry_ops,
     track_series,
     vote_frame_choices,
     write_csv,
