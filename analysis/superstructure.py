@@ -675,9 +675,12 @@ def parse_wood(text: str, substrate: Net2D) -> np.ndarray:
     Accepts unicode and ASCII forms: ``(√3×√3)R30°``, ``(sqrt3xsqrt3)R30``,
     ``c(4x2)``, ``p(2x1)``, ``(2√2×√2)R45°``, ``(r7xr7)R19.1``. The rotation is
     counter-clockwise. For ``c(m×n)`` the primitive cell ((C1 + C2)/2, C2) of the
-    centred cell is returned. The trade rounds angles to 0.1°, so the matrix is
-    snapped to the nearest integer (or small-fraction) matrix when that matrix
-    has the same sides and, rounded to 0.1°, the same angle.
+    centred cell is returned. The text keeps the angle rounded (to its last
+    written digit) and without its sense, so the matrix is the simplest
+    commensurate one (integer first, then entries in 1/q up to q = 12) whose cell
+    has the written sides and, within that rounding, the written angle in either
+    sense; with no such matrix, the exact (incommensurate) cell. When two lattices
+    that are not domains of one another fit the text, `AmbiguousWoodWarning` names both.
 
     Raises
     ------
@@ -700,29 +703,118 @@ def parse_wood(text: str, substrate: Net2D) -> np.ndarray:
     m, n = _parse_length(mt.group("m")), _parse_length(mt.group("n"))
     if m <= 0 or n <= 0:
         raise NetError(f"Wood notation {text!r} has a zero side.")
-    phi = math.radians(float(mt.group("rot") or 0.0))
+    rot = mt.group("rot") or "0"
+    centred = (mt.group("prefix") or "").lower() == "c"
+    return _commensurate_reading(substrate, m, n, float(rot), centred=centred, text=text,
+                                 angle_tol_deg=_half_last_digit(rot) + 1e-9,
+                                 side_rtol=max(_side_rtol(mt.group("m"), m), _side_rtol(mt.group("n"), n)))
+
+
+class AmbiguousWoodWarning(UserWarning):
+    """Two different lattices (not symmetry domains of one) fit a Wood notation's rounded text."""
+
+
+def _half_last_digit(number_text: str) -> float:
+    """Half a unit of the last written digit: '30' → 0.5, '19.1' → 0.05, '26.57' → 0.005."""
+    digits = number_text.split(".")[1] if "." in number_text else ""
+    return 0.5 * 10.0 ** (-len(digits))
+
+
+def _side_rtol(length_text: str, value: float) -> float:
+    """Relative rounding of a written side: exact for integers, fractions and roots; half the
+    last digit of a decimal ('3.61' → 0.005 / 3.61)."""
+    t = length_text.replace(" ", "")
+    if "." not in t:
+        return 1e-9
+    return _half_last_digit(re.findall(r"\d+\.\d+", t)[0]) / max(value, 1e-9) + 1e-9
+
+
+def _wood_cell_matrix(substrate: Net2D, m: float, n: float, phi_deg: float, centred: bool) -> np.ndarray:
+    """The (real) matrix of the Wood cell: b1 = m R(φ) a1, b2 = n R(φ) a2, rotation counter-clockwise."""
+    phi = math.radians(phi_deg)
     c, s = math.cos(phi), math.sin(phi)
-    rot_t = np.array([[c, s], [-s, c]])  # rows rotate counter-clockwise
-    cell = np.diag([m, n]) @ substrate.vectors @ rot_t
-    if (mt.group("prefix") or "").lower() == "c":
+    cell = np.diag([m, n]) @ substrate.vectors @ np.array([[c, s], [-s, c]])  # rows rotate CCW
+    if centred:
         cell = np.array([(cell[0] + cell[1]) / 2.0, cell[1]])
-    mat = cell @ np.linalg.inv(substrate.vectors)
-    return _snap_to_rounded_angle(mat, substrate, m, n, math.degrees(phi))
+    return cell @ np.linalg.inv(substrate.vectors)
 
 
-def _snap_to_rounded_angle(mat: np.ndarray, substrate: Net2D, m: float, n: float, phi_deg: float) -> np.ndarray:
-    """Nearest small-fraction matrix whose cell keeps sides m, n and angle φ to 0.05°."""
-    cand = np.array([[float(Fraction(float(x)).limit_denominator(12)) for x in row] for row in mat])
-    if np.max(np.abs(cand - mat)) > 0.05 * max(1.0, m, n):
-        return _snap(mat, 1e-9)
-    cell = cand @ substrate.vectors
-    sides = np.linalg.norm(cell, axis=1) / np.array([substrate.a, substrate.b])
-    a1 = substrate.vectors[0]
-    ang = math.degrees(math.atan2(cell[0, 1], cell[0, 0]) - math.atan2(a1[1], a1[0]))
-    dang = (ang - phi_deg + 180.0) % 360.0 - 180.0
-    if np.allclose(sides, [m, n], rtol=2e-3) and abs(dang) <= 0.051:
-        return cand
-    return _snap(mat, 1e-9)
+def _fits_text(substrate: Net2D, mat: np.ndarray, m: float, n: float, phi_deg: float, centred: bool,
+               angle_tol_deg: float, side_rtol: float) -> bool:
+    """Does the cell of `mat` read as the text: sides m, n and both vectors turned by φ within rounding?"""
+    if centred:  # back from the primitive ((C1 + C2)/2, C2) to the centred cell (C1, C2)
+        mat = np.array([2.0 * mat[0] - mat[1], mat[1]])
+    cell = mat @ substrate.vectors
+    want = np.array([m, n]) * np.array([substrate.a, substrate.b])
+    sides = np.linalg.norm(cell, axis=1)
+    if not np.all(np.abs(sides - want) <= side_rtol * want + 1e-9):
+        return False
+    turn = np.degrees(np.arctan2(cell[:, 1], cell[:, 0]) - np.arctan2(substrate.vectors[:, 1], substrate.vectors[:, 0]))
+    miss = (turn - phi_deg + 180.0) % 360.0 - 180.0
+    return bool(np.all(np.abs(miss) <= angle_tol_deg))
+
+
+def _commensurate_reading(substrate: Net2D, m: float, n: float, phi_deg: float, *, centred: bool, text: str,
+                          angle_tol_deg: float, side_rtol: float, max_denominator: int = 12) -> np.ndarray:
+    """The matrix a Wood text means on `substrate`: the simplest commensurate lattice it allows.
+
+    The text keeps the angle rounded and only its size, so both senses of rotation are tried
+    (their lattices are mirror domains where the substrate has a mirror through a1). For each,
+    matrices with entries in 1/q (q = 1, 2, ... `max_denominator`) near the exact Wood cell are
+    tried, the smallest q first; a candidate must reproduce the sides and the rotation of both
+    cell vectors within the text's rounding. The reading with the smallest q wins (the written
+    sense first on a tie); when the two senses give lattices that are not symmetry domains of
+    one another, `AmbiguousWoodWarning` says so. No fit: the exact (incommensurate) cell.
+    """
+    found = []
+    for sense in (1.0, -1.0):
+        exact = _wood_cell_matrix(substrate, m, n, sense * phi_deg, centred)
+        for q in range(1, max_denominator + 1):
+            base = np.rint(exact * q)
+            hit = None
+            for step in _NEIGHBOUR_STEPS:  # the rounded angle may push an entry past the half
+                cand = (base + step) / q
+                if abs(np.linalg.det(cand)) > 1e-9 and _fits_text(substrate, cand, m, n, sense * phi_deg, centred,
+                                                                  angle_tol_deg, side_rtol):
+                    if hit is None or np.abs(cand - exact).max() < np.abs(hit - exact).max():
+                        hit = cand
+            if hit is not None:
+                found.append((q, -sense, hit))
+                break
+    if not found:
+        return _snap(_wood_cell_matrix(substrate, m, n, phi_deg, centred), 1e-9)
+    if len(found) == 2 and found[0][0] == found[1][0]:  # a tie: the reading this text names back first
+        said = (centred, m, n, abs(phi_deg))
+        found = [(q, -_names_back(substrate, mat, said), sense, mat) for q, sense, mat in found]
+    else:
+        found = [(q, 0, sense, mat) for q, sense, mat in found]
+    found.sort(key=lambda f: f[:3])
+    best = found[0][1:] and found[0][3]
+    if len(found) == 2 and found[1][0] == found[0][0] and found[1][1] == found[0][1]:
+        other = found[1][3]
+        if not any(same_lattice(other, d.matrix, tol=1e-6) for d in domains(substrate, best)):
+            import warnings
+
+            warnings.warn(f"Wood notation {text!r} fits two lattices on this substrate, "
+                          f"{format_matrix(best)} and {format_matrix(other)}; the first is used.",
+                          AmbiguousWoodWarning, stacklevel=3)
+    return best
+
+
+def _names_back(substrate: Net2D, mat: np.ndarray, said: tuple) -> bool:
+    """Does `wood_notation` name the lattice of `mat` with the same prefix, sides and |angle|?"""
+    text = wood_notation(substrate, mat).text
+    mt = _WOOD_RE.match(text or "")
+    if not mt:
+        return False
+    centred, m, n, phi = said
+    return ((mt.group("prefix") or "").lower() == "c") == centred and \
+        math.isclose(_parse_length(mt.group("m")), m, rel_tol=1e-3) and \
+        math.isclose(_parse_length(mt.group("n")), n, rel_tol=1e-3) and \
+        abs(abs(float(mt.group("rot") or 0)) - phi) < 0.051
+
+
+_NEIGHBOUR_STEPS = np.array(np.meshgrid(*[[0, -1, 1]] * 4, indexing="ij")).reshape(4, -1).T.reshape(-1, 2, 2)
 
 
 def nice_matrix(substrate: Net2D, matrix) -> np.ndarray:

@@ -6,6 +6,14 @@ import os
 import secrets
 
 import pytest
+from hypothesis import settings as _hypothesis_settings
+
+# Property tests: random draws locally (new examples keep turning up), the same draws in CI
+# (`.ci/run` sets HYPOTHESIS_PROFILE=ci) so a run cannot pass or fail by luck. Every failing
+# example hypothesis has found is pinned with @example beside its test.
+_hypothesis_settings.register_profile("ci", derandomize=True, print_blob=True)
+_hypothesis_settings.register_profile("dev")
+_hypothesis_settings.load_profile(os.environ.get("HYPOTHESIS_PROFILE", "dev"))
 
 
 def _pg_database(base_url: str):

@@ -16,7 +16,7 @@ import math
 
 import numpy as np
 import pytest
-from hypothesis import assume, given, settings
+from hypothesis import assume, example, given, settings
 from hypothesis import strategies as st
 from numpy.testing import assert_allclose
 
@@ -266,13 +266,26 @@ def test_equivalent_matrices_give_the_same_answers(m, u, sub):
 
 @settings(max_examples=60, deadline=None)
 @given(m=_int_matrix(), sub=st.sampled_from([HEX, SQUARE, RECT, CRECT]))
+# found by hypothesis: (5×3)R70.5° on bcc(110), whose rounded angle read literally is no lattice
+@example(m=np.array([[3.0, -3.0], [3.0, 2.0]]), sub=CRECT)
+# (6×3)R70.5° on bcc(110) names two lattices that are not domains of one another (turned by
+# ±70.5° from a1, which is no mirror line of that net): the reader must say so
+@example(m=np.array([[3.0, 2.0], [-3.0, 4.0]]), sub=CRECT)
 def test_wood_to_matrix_to_wood_round_trip(m, sub):
+    import warnings
+
+    from analysis.superstructure import AmbiguousWoodWarning
+
     w = wood_notation(sub, m)
     if w.text is None or "." in w.text.split("R")[0]:
         return  # no Wood form, or sides written as rounded decimals (approximate by nature)
-    back = parse_wood(w.text, sub)
-    # the text keeps |φ|, so the parsed lattice is the input or its mirror domain
-    assert any(same_lattice(back, d.matrix, tol=1e-6) for d in domains(sub, m))
+    with warnings.catch_warnings(record=True) as said:
+        warnings.simplefilter("always")
+        back = parse_wood(w.text, sub)
+    # the text keeps |φ|, so the parsed lattice is the input or its mirror domain, unless the
+    # reader warned that the text fits two lattices
+    ambiguous = any(issubclass(x.category, AmbiguousWoodWarning) for x in said)
+    assert ambiguous or any(same_lattice(back, d.matrix, tol=1e-6) for d in domains(sub, m))
     assert wood_notation(sub, back).text == w.text
 
 
@@ -287,3 +300,20 @@ def test_domains_are_closed_under_the_point_group(m, sub):
             assert any(same_lattice(d.matrix @ op.matrix, e.matrix) for e in ds)
     # orbit-stabiliser: the count divides the group order
     assert len(point_group(sub)) % len(ds) == 0
+
+
+def test_wood_text_that_fits_two_lattices_says_so():
+    import warnings
+
+    from analysis.superstructure import AmbiguousWoodWarning
+
+    # worked by hand: on the bcc(110) rhombus (γ = 109.47°), −a2 lies 70.53° clockwise of a1,
+    # so (5×3)R70.5° is b1 = −5 a2, b2 = 3 a1 + 2 a2; read literally (70.5° counter-clockwise)
+    # it would be no lattice at all
+    assert np.array_equal(parse_wood("(5×3)R70.5°", CRECT), [[0, -5], [3, 2]])
+    with pytest.warns(AmbiguousWoodWarning, match="fits two lattices"):
+        parse_wood("(6×3)R70.5°", CRECT)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # the usual cases are not ambiguous
+        assert np.array_equal(parse_wood("(√3×√3)R30°", HEX), [[2, 1], [-1, 1]])
+        assert np.array_equal(parse_wood("(√7×√7)R19.1°", HEX), [[3, 1], [-1, 2]])
