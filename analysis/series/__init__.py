@@ -13,7 +13,7 @@ from .energies import (
     energies_from_start_step,
     read_energy_file,
 )
-from .track import (
+from .integrate import (
     BLOCKING_FLAGS,
     FLAG_CROWDED,
     FLAG_MASKED,
@@ -21,11 +21,14 @@ from .track import (
     FLAG_NOT_REFINED,
     FLAG_OFF_SCREEN,
     FLAG_SATURATED,
+    SpotIntegrals,
+    integrate_spots,
+)
+from .track import (
     BeamGroup,
     IVResult,
     SeriesCalibration,
     SeriesIndexing,
-    SpotIntegrals,
     _index_frame_choice,  # noqa: F401
     add_iv_parser,
     average_equivalent,
@@ -33,7 +36,6 @@ from .track import (
     fit_series_geometry,
     index_series_frame,
     index_series_frames,
-    integrate_spots,
     iv_table,
     result_to_dict,
     smooth_curve,
