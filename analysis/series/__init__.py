@@ -13,6 +13,7 @@ from .energies import (
     energies_from_start_step,
     read_energy_file,
 )
+from .geometry import SeriesCalibration, fit_series_geometry
 from .integrate import (
     BLOCKING_FLAGS,
     FLAG_CROWDED,
@@ -27,13 +28,11 @@ from .integrate import (
 from .track import (
     BeamGroup,
     IVResult,
-    SeriesCalibration,
     SeriesIndexing,
     _index_frame_choice,  # noqa: F401
     add_iv_parser,
     average_equivalent,
     csv_text,
-    fit_series_geometry,
     index_series_frame,
     index_series_frames,
     iv_table,
