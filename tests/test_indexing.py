@@ -357,7 +357,7 @@ def test_dim_integer_beams_and_an_off_centre_gun():
 def test_joint_camera_and_overlayer_fit_recovers_distortion_from_satellites():
     # truth: our own camera model; one ring of substrate beams cannot fix R/L, but the layer's beams
     # and the satellites g_sub ± (b* − a*) sit at other radii and do, once b* is fitted with the camera
-    from analysis.indexing import _OverlayerTerms, _refine
+    from analysis.indexing.camera_refit import _OverlayerTerms, _refine
     from analysis.optics import ScreenGeometry, momentum_to_pixels
 
     sub = parse_substrate("hexagonal:2.715")
@@ -392,7 +392,7 @@ def test_matrix_snapping_is_the_closest_fraction(entries, max_den, tol):
     # reference: the standard library's Fraction.limit_denominator (closest fraction, bounded denominator)
     from fractions import Fraction
 
-    from analysis.indexing import _snap_matrix
+    from analysis.indexing.candidates import _snap_matrix
 
     m = np.array(entries).reshape(2, 2)
     got = _snap_matrix(m, tol, max_den)

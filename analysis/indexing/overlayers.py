@@ -1,0 +1,511 @@
+"""Overlayer models for the fractional-order spots: :func:`find_overlayers` (the search),
+:func:`evaluate_model` / :func:`model_from_matrix` (one matrix, e.g. typed by hand),
+the symmetry domains of a matrix, the population test of multi-domain models, and
+:func:`model_indices` (the exact indices of the spots a model explains).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+from dataclasses import dataclass, field
+from typing import TYPE_CHECKING
+
+import numpy as np
+from scipy.spatial import cKDTree
+
+from ..errors import FitError
+from ..nets import Net2D, point_group
+from ..optics import ScreenGeometry, wavelength_A
+from ..superstructure import (
+    _same_lattice_fast,
+    classify_superstructure,
+    coverage,
+    nice_matrix,
+    wood_notation,
+)
+from .candidates import (_candidate_vectors, _explained, _lattice_key, _refine_matrix, _snap_matrix,
+                         _structure_key)
+from .matching import _screen_xy, _seen
+from .score import _irrational_handicap
+
+if TYPE_CHECKING:  # annotations only
+    from .substrate import SubstrateFit
+
+
+@dataclass(frozen=True, eq=False)
+class OverlayerModel:
+    """One superstructure model for the fractional-order spots.
+
+    Attributes
+    ----------
+    matrix : (2, 2) ndarray
+        Real-space matrix of the first domain, substrate basis.
+    domains : list of (2, 2) ndarray
+        Every domain used (the first is `matrix`).
+    domain_ops : list of str
+        The substrate operation that makes each domain.
+    kind : str
+        none / commensurate / coincidence / incommensurate.
+    wood : str or None
+    wood_note : str
+    coverage : float
+        Adsorbates per substrate cell for one per overlayer cell.
+    explained, unexplained, absent : int
+        Fractional spots explained; fractional spots left unexplained;
+        predicted fractional spots absent where they could have been seen.
+    explained_by : (K,) ndarray of int
+        For every input spot, the domain that explains it (−1 none, −2 substrate).
+    score : float
+    """
+
+    matrix: np.ndarray
+    domains: list
+    domain_ops: list
+    kind: str
+    wood: str | None
+    wood_note: str
+    coverage: float
+    explained: int
+    unexplained: int
+    absent: int
+    explained_by: np.ndarray
+    score: float
+    total_domains: int = 1
+    notes: tuple = ()
+    details: dict = field(default_factory=dict)
+
+    @property
+    def n_domains(self) -> int:
+        return len(self.domains)
+
+
+def model_indices(hk: np.ndarray, model: OverlayerModel) -> np.ndarray:
+    """The exact (model) indices of the spots a model explains; NaN elsewhere. (K, 2)."""
+    out = np.full_like(np.asarray(hk, dtype=np.float64), np.nan)
+    by = model.explained_by
+    out[by == -2] = np.rint(hk[by == -2])
+    for d, m in enumerate(model.domains):
+        sel = by == d
+        if sel.any():
+            n = np.rint(hk[sel] @ np.asarray(m).T)
+            pred = n @ np.linalg.inv(m).T
+            ok = np.hypot(*((pred - hk[sel]) @ np.eye(2)).T) < 0.5  # satellites keep NaN below
+            out[np.flatnonzero(sel)[ok]] = pred[ok]
+    return out
+
+
+def _lattice_points(b_star_hk: np.ndarray, a_star: np.ndarray, g_max: float) -> np.ndarray:
+    """Points n @ B (hk units) of the lattice with basis rows B (hk), |g| ≤ g_max. (K, 2) hk."""
+    cart = b_star_hk @ a_star
+    area = abs(np.linalg.det(cart))
+    n1 = int(math.ceil(g_max * np.linalg.norm(cart[1]) / area)) + 1
+    n2 = int(math.ceil(g_max * np.linalg.norm(cart[0]) / area)) + 1
+    if (2 * n1 + 1) * (2 * n2 + 1) > 400_000:
+        raise FitError("The overlayer net is too fine to enumerate on this screen.")
+    a, b = np.meshgrid(np.arange(-n1, n1 + 1), np.arange(-n2, n2 + 1), indexing="ij")
+    n = np.column_stack([a.ravel(), b.ravel()]).astype(np.float64)
+    hk = n @ b_star_hk
+    g = hk @ a_star
+    return hk[np.hypot(g[:, 0], g[:, 1]) <= g_max]
+
+
+def _domain_matrices(m: np.ndarray, ops) -> tuple[list[np.ndarray], list[str]]:
+    """Distinct domains M W (W in the substrate group), right-handed like M, with the op names."""
+    w = np.array([op.matrix for op in ops], dtype=np.float64)
+    mw = np.einsum("ij,gjk->gik", m, w)
+    flip = np.linalg.det(mw) * np.linalg.det(m) < 0
+    mw[flip] = mw[flip][:, ::-1]
+    # same lattice: mw_i mw_j⁻¹ is an integer matrix of determinant ±1
+    t = np.einsum("aij,bjk->abik", mw, np.linalg.inv(mw))
+    r = np.rint(t)
+    same = np.all(np.abs(t - r) <= 1e-6, axis=(2, 3)) & \
+        (np.abs(np.abs(r[..., 0, 0] * r[..., 1, 1] - r[..., 0, 1] * r[..., 1, 0]) - 1) < 0.5)
+    keep = [g for g in range(len(w)) if not same[g, :g].any()]
+    return [mw[g].copy() for g in keep], [ops[g].name for g in keep]
+
+
+@dataclass(frozen=True, eq=False)
+class _Context:
+    """What every model is scored against (computed once per pattern)."""
+
+    hk: np.ndarray
+    integer: np.ndarray
+    a_star: np.ndarray
+    geom: ScreenGeometry
+    energy_eV: float
+    tol_g: float
+    ops: list
+    tree: cKDTree
+    r_max: float
+    g_max: float
+    valid_mask: np.ndarray | None
+    intensity: np.ndarray | None
+    substrate: Net2D
+    max_denominator: int = 6
+    reliable: np.ndarray | None = None  # (K,) spots whose centres are trusted (None: all)
+
+
+def _context(hk, integer, substrate_fit: SubstrateFit, energy_eV, intensity, valid_mask, tol_px,
+             max_denominator: int = 6, reliable=None) -> _Context:
+    hk = np.asarray(hk, dtype=np.float64).reshape(-1, 2)
+    reliable = np.ones(len(hk), bool) if reliable is None else np.asarray(reliable, dtype=bool).reshape(len(hk))
+    frac = ~np.asarray(integer, dtype=bool)
+    if int((frac & reliable).sum()) < 2:  # too few trusted fractional spots to judge by: count them all
+        reliable = np.ones(len(hk), bool)
+    geom = substrate_fit.geometry
+    a_star = substrate_fit.reciprocal_net.vectors
+    lam = wavelength_A(energy_eV)
+    center = np.array(geom.center_px)
+    obs_xy = _screen_xy(hk @ a_star, energy_eV, geom)
+    r_obs = np.hypot(obs_xy[:, 0] - center[0], obs_xy[:, 1] - center[1])
+    r_max = float(np.nanmax(r_obs)) * 1.02 if len(r_obs) else 0.0
+    sub = Net2D(substrate_fit.net.vectors)
+    return _Context(hk=hk, integer=np.asarray(integer, dtype=bool), a_star=a_star, geom=geom,
+                    energy_eV=float(energy_eV), tol_g=tol_px / (geom.scale_px * lam),
+                    ops=point_group(sub, tol=2e-3), tree=cKDTree(hk @ a_star), r_max=r_max,
+                    g_max=math.sin(math.radians(min(geom.acceptance_deg, 80.0))) / lam,
+                    valid_mask=valid_mask, intensity=None if intensity is None else np.asarray(intensity, float),
+                    substrate=sub, max_denominator=int(max_denominator), reliable=reliable)
+
+
+def _score(ctx: _Context, matrix, *, all_domains: bool, satellites: bool, absent: bool = True) -> dict:
+    """Explained / unexplained / absent counts and the score of one matrix with its domains.
+
+    With ``absent=False`` the (costly) count of missing beams is left for
+    :func:`_with_absent`; ``score`` is then an upper bound.
+    """
+    m = np.asarray(matrix, dtype=np.float64)
+    if np.linalg.det(m) < 0:  # report bases with the substrate's handedness (det M > 0)
+        m = m[::-1].copy()
+    hk, a_star, tol_g = ctx.hk, ctx.a_star, ctx.tol_g
+    frac = ~ctx.integer
+    mats, names = _domain_matrices(m, ctx.ops)
+    ms = np.array(mats)
+    bs = np.linalg.inv(ms).transpose(0, 2, 1)  # reciprocal bases (D, 2, 2), hk units
+    # distance of every spot to each domain's net: hk ≈ rint(hk Mᵀ) B
+    near = np.einsum("dkj,dji->dki", np.rint(np.einsum("ki,dji->dkj", hk, ms)), bs)
+    dd = (hk[None] - near) @ a_star
+    dist = np.hypot(dd[..., 0], dd[..., 1])  # (D, K) Å⁻¹
+    expl = (dist <= tol_g) & frac[None, :]
+    primary = expl.copy()
+    if satellites:  # a substrate beam plus a first-order beam of the layer (± b1*, b2*, b1* ± b2*)
+        v = np.stack([bs[:, 0], bs[:, 1], bs[:, 0] + bs[:, 1], bs[:, 0] - bs[:, 1]], axis=1)
+        v = np.concatenate([v, -v], axis=1)  # (D, 8, 2)
+        sh = hk[None, None] - v[:, :, None, :]
+        dd = (sh - np.rint(sh)) @ a_star
+        dist = np.minimum(dist, np.hypot(dd[..., 0], dd[..., 1]).min(axis=1))
+        expl = (dist <= tol_g) & frac[None, :]
+    if all_domains:
+        chosen = list(range(len(mats)))
+    else:  # greedy: the smallest set of domains that explains the spots (a domain earns its
+        # place by beams of its own; satellites only count for domains already chosen)
+        chosen, covered = [], np.zeros(len(hk), bool)
+        while True:
+            gains = [int((primary[i] & ~covered).sum()) if i not in chosen else -1 for i in range(len(mats))]
+            best = int(np.argmax(gains))
+            if gains[best] < (1 if not chosen else 2):
+                break
+            chosen.append(best)
+            covered |= primary[best]
+        chosen = chosen or [0]
+    by = np.full(len(hk), -1)
+    by[ctx.integer] = -2
+    for rank in range(len(chosen) - 1, -1, -1):
+        by[expl[chosen[rank]]] = rank
+    covered = expl[chosen].any(axis=0) & frac
+    e = int(covered.sum())
+    e_sat = e - int((primary[chosen].any(axis=0) & frac).sum())
+    u = int(frac.sum()) - e
+    # the score counts spots with trusted centres only (not cut by a mask edge, fit converged):
+    # a biased centre must not decide between models
+    rel = ctx.reliable
+    e_r = int((covered & rel).sum())
+    e_sat_r = e_r - int((primary[chosen].any(axis=0) & frac & rel).sum())
+    u_r = int((frac & rel).sum()) - e_r
+    det = abs(float(np.linalg.det(mats[chosen[0]])))
+    bound = (e_r - 0.25 * e_sat_r) - u_r - 1.0 * (len(chosen) - 1) - 0.5 * abs(math.log2(det))
+    if e_r:  # the tighter fit wins a tie: mean squared miss of the explained spots, in tolerances
+        miss = dist[chosen].min(axis=0)[covered & rel] / tol_g
+        bound -= float(np.mean(miss**2))
+    if e_sat and ctx.intensity is not None:  # a layer's own beams outshine its multiple-scattering satellites
+        own = primary[chosen].any(axis=0) & frac & rel
+        sat_only = covered & rel & ~own
+        if own.any() and sat_only.any():
+            li = np.log(np.clip(ctx.intensity, 1e-9, None))
+            bound += math.tanh(float(np.median(li[own]) - np.median(li[sat_only])))
+    sc = {"mats": [mats[i] for i in chosen], "names": [names[i] for i in chosen], "all_mats": mats, "e": e,
+          "u": u, "absent": None, "by": by, "score": float(bound), "bound": float(bound), "total": len(mats),
+          "satellites": e_sat, "satellites_allowed": bool(satellites)}
+    return _with_absent(ctx, sc) if absent else sc
+
+
+def _with_absent(ctx: _Context, sc: dict) -> dict:
+    """Count predicted fractional beams missing where they could be seen; finish the score."""
+    if sc["absent"] is not None:
+        return sc
+    absent = 0
+    center = np.array(ctx.geom.center_px)
+    a_star = ctx.a_star
+    pts = [_lattice_points(np.linalg.inv(m).T, a_star, ctx.g_max) for m in sc["mats"]]
+    pts = np.concatenate(pts) if pts else np.zeros((0, 2))  # every domain at once
+    pts = pts[np.any(np.abs(pts - np.rint(pts)) > 1e-6, axis=1)]
+    if len(pts):
+        seen = _seen(_screen_xy(pts @ a_star, ctx.energy_eV, ctx.geom), ctx.valid_mask, center, ctx.r_max, 0.0)
+        if seen.any():
+            d, _ = ctx.tree.query(pts[seen] @ a_star, distance_upper_bound=ctx.tol_g)
+            absent = int(np.sum(~np.isfinite(d)))
+    return {**sc, "absent": absent, "score": float(sc["bound"] - 0.5 * absent)}
+
+
+def _describe(ctx: _Context, sc: dict, *, kind_tol: float) -> OverlayerModel:
+    """Turn a scored matrix into a model with kind, Wood notation and coverage."""
+    m = sc["mats"][0]
+    # a continuous fit names only the coincidences the search itself would have snapped to;
+    # closer high-order ones are listed as its approximants
+    kind = classify_superstructure(ctx.substrate, m, tol=kind_tol,
+                                   max_denominator=ctx.max_denominator if sc["satellites_allowed"] else 12)
+    if kind.kind in ("commensurate", "coincidence", "none"):  # exact, and in a readable basis
+        snapped = [_snap_matrix(d, kind_tol, 12) for d in sc["mats"]]
+        mats = [nice_matrix(ctx.substrate, d if q is None else q) for d, q in zip(sc["mats"], snapped)]
+        m = mats[0]
+    else:
+        mats = sc["mats"]
+    w = wood_notation(ctx.substrate, m, tol=1e-6 if kind.kind != "incommensurate" else 2e-3)
+    ratio = None
+    if ctx.intensity is not None and len(mats) > 1:
+        ratio = _population_test(ctx.hk, sc["by"], ctx.intensity, ctx.ops)
+    notes = []
+    if sc["satellites"]:
+        notes.append(f"{sc['satellites']} spots explained as multiple-scattering satellites")
+    return OverlayerModel(matrix=m, domains=mats, domain_ops=sc["names"], kind=kind.kind, wood=w.text,
+                          wood_note=w.note, coverage=coverage(m), explained=sc["e"], unexplained=sc["u"],
+                          absent=sc["absent"], explained_by=sc["by"], score=sc["score"], total_domains=sc["total"],
+                          notes=tuple(notes),
+                          details={"intensity_ratio": ratio, "kind": kind, "wood_notation": w, "tol_g": ctx.tol_g})
+
+
+def evaluate_model(hk: np.ndarray, integer: np.ndarray, substrate_fit: SubstrateFit, matrix, *,
+                   energy_eV: float, intensity: np.ndarray | None = None, valid_mask: np.ndarray | None = None,
+                   tol_px: float = 2.5, all_domains: bool = False, satellites: bool = False,
+                   kind_tol: float = 1e-6, reliable: np.ndarray | None = None) -> OverlayerModel:
+    """Score one superstructure matrix (with its symmetry domains) against the spots.
+
+    Parameters
+    ----------
+    hk : (K, 2) ndarray
+        Fractional indices of all spots (substrate basis).
+    integer : (K,) ndarray of bool
+        Spots taken as substrate beams.
+    substrate_fit : SubstrateFit
+    matrix : (2, 2) array_like
+        Real-space matrix of one domain.
+    all_domains : bool
+        Use every symmetry domain (a model typed by hand); otherwise the
+        smallest set of domains that explains the spots (greedy).
+    satellites : bool
+        Also accept first-order multiple-scattering spots (substrate beam ±
+        an overlayer beam), for incommensurate overlayers.
+    kind_tol : float
+        Absolute tolerance on the matrix entries for integer / rational.
+    reliable : (K,) ndarray of bool, optional
+        Spots whose centres are trusted; only they count in the score
+        (the counts reported cover every spot).
+    """
+    ctx = _context(hk, integer, substrate_fit, energy_eV, intensity, valid_mask, tol_px, reliable=reliable)
+    sc = _score(ctx, matrix, all_domains=all_domains, satellites=satellites)
+    return _describe(ctx, sc, kind_tol=kind_tol)
+
+
+_INTENSITY_SCATTER = 0.1  # relative scatter of equivalent beams' intensities taken as noise
+
+
+def _population_test(hk: np.ndarray, by: np.ndarray, intensity: np.ndarray, ops) -> float | None:
+    """Variance ratio of log intensities within symmetry classes, without / with per-domain populations.
+
+    Classes are orbits of beam indices under the full substrate group. A ratio
+    well above 1 says the domains are unequally populated, which a
+    single-domain model cannot produce.
+    """
+    sel = by >= 0
+    if sel.sum() < 6:
+        return None
+    li = np.log(np.clip(intensity[sel], 1e-9, None))
+    inv_t = np.array([np.linalg.inv(op.matrix).T for op in ops])
+    # class key: the lexicographically largest image of the beam index under the group
+    img = np.round(np.einsum("si,gij->sgj", hk[sel], inv_t), 3) + 0.0  # (S, G, 2)
+    k0 = img[:, :, 0].max(axis=1)
+    k1 = np.where(img[:, :, 0] == k0[:, None], img[:, :, 1], -np.inf).max(axis=1)
+    _, cls = np.unique(np.column_stack([k0, k1]), axis=0, return_inverse=True)
+    cls = cls.ravel()
+    dom = by[sel]
+
+    def resid_var(cols):
+        x = np.column_stack(cols)
+        beta, *_ = np.linalg.lstsq(x, li, rcond=None)
+        r = li - x @ beta
+        return float(r @ r) / max(len(li) - np.linalg.matrix_rank(x), 1)
+
+    c_cols = [(cls == c).astype(float) for c in np.unique(cls)]
+    d_cols = [(dom == d).astype(float) for d in np.unique(dom)[1:]]
+    if len(li) - np.linalg.matrix_rank(np.column_stack(c_cols + d_cols)) < 4:
+        return None  # too few spots per class to tell
+    v0 = resid_var(c_cols)
+    v1 = resid_var(c_cols + d_cols) if d_cols else v0
+    # measured spot intensities scatter by ~10 % between equivalent beams (common practice for
+    # LEED: screen and camera non-uniformity), so differences of a few per cent between domains
+    # are no evidence of unequal populations, however precise the counts
+    floor = _INTENSITY_SCATTER**2
+    return float((v0 + floor) / (v1 + floor))
+
+
+def model_from_matrix(hk, integer, substrate_fit, matrix, *, energy_eV, **kw) -> OverlayerModel:
+    """A model typed by hand: every symmetry domain of `matrix` (see :func:`evaluate_model`)."""
+    return evaluate_model(hk, integer, substrate_fit, matrix, energy_eV=energy_eV, all_domains=True, **kw)
+
+
+def find_overlayers(hk: np.ndarray, integer: np.ndarray, substrate_fit: SubstrateFit, *, energy_eV: float,
+                    intensity: np.ndarray | None = None, valid_mask: np.ndarray | None = None,
+                    tol_px: float = 2.5, max_det: float = 64.0, max_denominator: int = 6,
+                    n_results: int = 5, reliable: np.ndarray | None = None) -> list[OverlayerModel]:
+    """Search superstructure matrices that explain the fractional-order spots.
+
+    Candidates come from pairs of short observed beam vectors (and their
+    differences, to recover beams hidden by the gun); each pair is a
+    reciprocal basis B*, refined by least squares on the spots it explains,
+    turned into M = (B*⁻¹)ᵀ and snapped to an integer matrix
+    (commensurate) or one with denominators ≤ `max_denominator` (coincidence)
+    when the spots allow; the unsnapped fit competes as an incommensurate
+    model (with multiple-scattering satellites allowed). Each is scored with
+    its domains (see :mod:`.score`); the best few are described.
+
+    Returns
+    -------
+    list of OverlayerModel
+        Best first. A clean surface gives one model, the identity, kind ``none``.
+    """
+    ctx = _context(hk, integer, substrate_fit, energy_eV, intensity, valid_mask, tol_px, max_denominator, reliable)
+    if int((~ctx.integer).sum()) == 0:
+        return [_describe(ctx, _score(ctx, np.eye(2), all_domains=False, satellites=False), kind_tol=1e-6)]
+    n_frac = int((~ctx.integer).sum())
+    a_star, tol_g = ctx.a_star, ctx.tol_g
+    vecs = _candidate_vectors(ctx.hk, ctx.integer, a_star, tol_g, ctx.intensity)
+    g_ref = float(np.min(np.linalg.norm(a_star, axis=1)))
+    seen: set = set()
+    scored: list[tuple[dict, float]] = []
+    for i in range(len(vecs)):
+        for j in range(i + 1, len(vecs)):
+            b = np.array([vecs[i], vecs[j]])
+            det_b = abs(np.linalg.det(b))
+            if det_b < 1.0 / max_det - 1e-9:
+                continue
+            cart = b @ a_star
+            if det_b * abs(np.linalg.det(a_star)) / (np.linalg.norm(cart[0]) * np.linalg.norm(cart[1])) < 0.15:
+                continue  # nearly parallel
+            m0 = np.linalg.inv(b).T
+            if int((_explained(ctx.hk, m0, a_star, 2 * tol_g) & ~ctx.integer).sum()) < 2:
+                continue  # this pair spans no net the spots lie on
+            m = _refine_matrix(ctx.hk, m0, a_star, tol_g)
+            if abs(np.linalg.det(m)) > max_det + 1e-6:
+                continue
+            # the tolerance on M follows from the spot tolerance through |M|²
+            m_tol = max(0.02, 0.5 * tol_g / g_ref * float(np.max(np.abs(m))) ** 2 / math.sqrt(n_frac))
+            snapped = _snap_matrix(m, min(m_tol, 0.12), 1)
+            if snapped is None:
+                snapped = _snap_matrix(m, min(m_tol, 0.05), max_denominator)
+            options = [(snapped, 1e-6, False)] if snapped is not None and abs(np.linalg.det(snapped)) > 1e-9 else []
+            if not options or _snap_matrix(m, 2e-3, 12) is None:
+                options.append((m, 2e-3, True))  # the continuous fit competes too (incommensurate)
+            for c, ktol, sat in options:
+                key = _structure_key(c, exact=not sat)
+                if key in seen:
+                    continue
+                seen.add(key)
+                if int((_explained(ctx.hk, c, a_star, tol_g) & ~ctx.integer).sum()) < 2 and not sat:
+                    continue
+                sc = _score(ctx, c, all_domains=False, satellites=sat, absent=False)
+                if not sat:  # every domain of this structure is now known
+                    seen.update(_structure_key(d, exact=True) for d in sc["all_mats"])
+                scored.append((sc, ktol))
+    # the bare substrate always competes: a few stray spots do not make a superstructure
+    scored.append((_score(ctx, np.eye(2), all_domains=False, satellites=False, absent=False), 1e-6))
+    # branch and bound: finish the scores best bound first, until no bound can enter the list;
+    # irrational fits are ranked with the handicap _prefer_simple gives them
+    def rank(sc, key="score"):
+        return sc[key] - (_irrational_handicap(sc["e"], len(sc["mats"])) if sc["satellites_allowed"] else 0.0)
+
+    scored.sort(key=lambda t: -rank(t[0], "bound"))
+    done: list[tuple[dict, float]] = []
+    for sc, kt in scored:
+        if len(done) >= 2 * n_results and rank(sc, "bound") < sorted(rank(d) for d, _ in done)[-2 * n_results]:
+            break
+        done.append((_with_absent(ctx, sc), kt))
+    done.sort(key=lambda t: -rank(t[0]))
+    scored = []
+    for sc, kt in done:  # irrational fits of one lattice (other bases, other starts) count once
+        if sc["satellites_allowed"] and any(
+                o["satellites_allowed"] and len(o["mats"]) == len(sc["mats"]) and
+                any(_same_lattice_fast(sc["mats"][0], x, 0.02) for x in o["all_mats"]) for o, _ in scored):
+            continue
+        scored.append((sc, kt))
+    models = _prefer_simple([_describe(ctx, sc, kind_tol=kt) for sc, kt in scored[: n_results + 1]])
+    models.sort(key=lambda mm: -mm.score)
+    out, keys = [], []
+    for mm in models:
+        key = (mm.wood, mm.n_domains, mm.kind) if mm.wood else (mm.n_domains, mm.kind, _lattice_key(mm.matrix))
+        if key in keys:
+            continue
+        if mm.kind == "incommensurate":  # an unsnapped copy of a rational model listed already
+            near = _snap_matrix(np.asarray(mm.matrix, float), 0.02, 12)
+            if near is not None and any(o.kind != "incommensurate" and o.n_domains == mm.n_domains and
+                                        _same_lattice_fast(near, np.asarray(o.matrix, float), 1e-6) for o in out):
+                continue
+        keys.append(key)
+        out.append(mm)
+    out = out[:n_results]
+    return [_lead_with_plainest_domain(ctx, out[0])] + out[1:] if out else out
+
+
+def _lead_with_plainest_domain(ctx: _Context, mm: OverlayerModel) -> OverlayerModel:
+    """Put first the domain whose Wood cell reads most plainly (m ≥ n, least rotation).
+
+    Domains related by a substrate mirror name the same structure, e.g. (2×1)
+    and (1×2) on a centred rectangular net; the report names it by the plainer one.
+    """
+    if mm.n_domains < 2 or mm.kind == "incommensurate":
+        return mm
+    woods = [wood_notation(ctx.substrate, d) for d in mm.domains]
+
+    def key(w):
+        if w.text is None:
+            return (1, 0.0, 0.0)
+        return (0, float(w.n > w.m + 1e-9), abs(w.angle_deg), -w.angle_deg)
+
+    k = min(range(len(woods)), key=lambda i: key(woods[i]))
+    if k == 0:
+        return mm
+    order = [k] + [i for i in range(mm.n_domains) if i != k]
+    by = mm.explained_by.copy()
+    remap = {old: new for new, old in enumerate(order)}
+    by = np.array([remap.get(int(b), int(b)) if b >= 0 else int(b) for b in by])
+    w = woods[k]
+    return dataclasses.replace(mm, matrix=mm.domains[k], domains=[mm.domains[i] for i in order],
+                               domain_ops=[mm.domain_ops[i] for i in order], wood=w.text, wood_note=w.note,
+                               explained_by=by, details={**mm.details, "wood_notation": w})
+
+
+def _prefer_simple(models: list[OverlayerModel]) -> list[OverlayerModel]:
+    """Adjust scores: an irrational matrix must explain clearly more than a rational one;
+    a multi-domain model gains when the intensities say the domains are unequally
+    populated (which a single-domain model cannot produce)."""
+    out = []
+    for mm in models:
+        s = mm.score
+        if mm.kind == "incommensurate":
+            s -= _irrational_handicap(mm.explained, mm.n_domains)
+        ratio = mm.details.get("intensity_ratio")
+        # only where positions cannot tell (rational models, no satellites); repays the domain penalty, no more
+        if mm.n_domains > 1 and ratio is not None and mm.kind != "incommensurate":
+            s += mm.n_domains * math.tanh(max(math.log(ratio) - math.log(2.0), 0.0))
+        out.append(dataclasses.replace(mm, score=float(s)))
+    return out

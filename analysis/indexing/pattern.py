@@ -1,0 +1,129 @@
+"""A whole pattern: :func:`index_pattern` follows the best substrate reading (trying
+camera readings when the distortion R/L is open) to its overlayer models, refitting the
+camera with the best rational model's spots while that raises the best score;
+:class:`IndexResult` holds the readings and the models.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from ..nets import Net2D
+from ..optics import ScreenGeometry
+from .camera_refit import (_distortion_from_fractions, _distortion_open, _with_distortion, refine_with_model)
+from .candidates import _snap_matrix
+from .overlayers import OverlayerModel, evaluate_model, find_overlayers
+from .substrate import _DISTORTION_PRIOR, _SCALE_PRIOR_SIGMA, SubstrateFit, fit_substrate
+
+
+def _search_and_refit(xy, energy_eV, fit, geometry, kw, rounds: int = 2):
+    """Overlayer search, then refits of the camera with the best rational model's spots
+    (its nearest rational neighbour when only irrational models came out; an irrational
+    top model then also refits jointly with its own net), kept while they raise the best
+    score by more than 0.05."""
+    models = find_overlayers(fit.hk, fit.integer, fit, **kw)
+    for _ in range(rounds):
+        if int((~fit.integer).sum()) == 0:
+            break
+        top = models[0]
+        if top.kind != "incommensurate" and top.unexplained == 0 and top.absent == 0:
+            break
+        seed = next((m for m in models if m.kind != "incommensurate"), None)
+        if seed is None:
+            near = _snap_matrix(np.asarray(top.matrix, float), 0.05, 6)
+            seed = top if near is None else evaluate_model(
+                fit.hk, fit.integer, fit, near, energy_eV=kw["energy_eV"], intensity=kw["intensity"],
+                valid_mask=kw["valid_mask"], tol_px=3 * kw["tol_px"], reliable=kw["reliable"])
+        seeds = [seed] + ([top] if top.kind == "incommensurate" and seed is not top else [])
+        better = None
+        for sd in seeds:  # the first seed that helps is kept (the rational one when it does)
+            fit2 = refine_with_model(xy, energy_eV, fit, sd, fit_lattice=geometry is not None,
+                                     reliable=kw["reliable"])
+            models2 = find_overlayers(fit2.hk, fit2.integer, fit2, **kw)
+            # spots that became substrate beams no longer count for or against a model: the refit
+            # must win without them (and a refit that only tightens the fit a little is not worth it)
+            if models2[0].score - int((fit2.integer & ~fit.integer).sum()) - models[0].score > 0.05:
+                better = (fit2, models2)
+                break
+        if better is None:
+            break
+        fit, models = better
+    return fit, models
+
+
+@dataclass(frozen=True, eq=False)
+class IndexResult:
+    """Substrate readings and overlayer models for one pattern.
+
+    Attributes
+    ----------
+    substrate : SubstrateFit
+        The reading used (best).
+    substrate_candidates : list of SubstrateFit
+        All readings, best first, with confidences.
+    models : list of OverlayerModel
+        Overlayer models on the best reading, best first.
+    """
+
+    substrate: SubstrateFit
+    substrate_candidates: list
+    models: list
+
+    @property
+    def best(self) -> OverlayerModel:
+        return self.models[0]
+
+
+def index_pattern(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity: np.ndarray | None = None,
+                  geometry: ScreenGeometry | None = None, center_px=None, center_guess=None,
+                  screen_radius_px: float | None = None, screen_prior_sigma: float = _SCALE_PRIOR_SIGMA,
+                  valid_mask: np.ndarray | None = None,
+                  tol_px: float = 2.5, n_results: int = 5, min_confidence: float = 0.15,
+                  max_readings: int = 1, reliable: np.ndarray | None = None) -> IndexResult:
+    """Index a whole pattern: substrate readings, overlayer models, joint refits.
+
+    The best substrate reading is followed to its best overlayer model (the
+    others stay listed with their confidence). With ``max_readings > 1`` the
+    next readings with confidence ≥ `min_confidence` are followed too, and the
+    one with the best ``substrate score − ½ (unexplained + absent) − ½ (domains − 1)``
+    is kept (off by default: stray spots then favour wrong readings too easily).
+    For each reading the camera model is refitted with the spots the best
+    rational model explains while that raises the best score.
+    """
+    xy = np.asarray(xy_px, dtype=np.float64).reshape(-1, 2)
+    fits = fit_substrate(xy, energy_eV, hint, intensity=intensity, geometry=geometry, center_px=center_px,
+                         center_guess=center_guess, screen_radius_px=screen_radius_px,
+                         screen_prior_sigma=screen_prior_sigma, valid_mask=valid_mask, tol_px=tol_px)
+    kw = dict(energy_eV=energy_eV, intensity=intensity, valid_mask=valid_mask, tol_px=tol_px, n_results=n_results,
+              reliable=None if reliable is None else np.asarray(reliable, dtype=bool).reshape(len(xy)))
+    readings = [f for f in fits[:max_readings] if f is fits[0] or f.confidence >= min_confidence]
+    followed = []
+    for reading in readings:
+        fit, models = _follow_reading(xy, energy_eV, reading, geometry, tol_px, kw)
+        top = models[0]
+        key = reading.score - 0.5 * (top.unexplained + top.absent) - 0.5 * (top.n_domains - 1)
+        followed.append((key, fit, models, reading))
+    key, fit, models, reading = max(followed, key=lambda t: t[0])
+    cands = [fit] + [f for f in fits if f is not reading]
+    return IndexResult(substrate=fit, substrate_candidates=cands, models=models)
+
+
+def _follow_reading(xy, energy_eV, reading: SubstrateFit, geometry, tol_px, kw):
+    """Best overlayer models for one substrate reading (trying camera readings when R/L is open)."""
+    variants = [reading]
+    if geometry is None and _distortion_open(reading):  # the spots leave R/L open: try readings,
+        alt = _distortion_from_fractions(xy, energy_eV, reading, tol_px)  # the likeliest first
+        variants = ([alt] if alt is not reading else []) + [reading, _with_distortion(
+            xy, energy_eV, reading, _DISTORTION_PRIOR, f"distortion R/L held at the typical {_DISTORTION_PRIOR}")]
+    best = None
+    for fit in variants:
+        fit, models = _search_and_refit(xy, energy_eV, fit, geometry, kw)
+        if best is None or models[0].score > best[1][0].score:
+            best = (fit, models)
+        top = best[1][0]
+        n_frac = max(int((~fit.integer).sum()), 1)
+        if top.kind != "incommensurate" and top.unexplained + top.absent <= max(2, 0.1 * n_frac):
+            break  # (nearly) every spot explained and none missing: other readings cannot do much better
+    return best
