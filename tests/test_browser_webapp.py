@@ -206,3 +206,52 @@ def test_saved_analysis_in_the_list_and_read_only_view(page, live_server, webapp
     _wait_image(page)
     assert page.inner_text("#wood") == "p(2×2)" and page.get_attribute("#matrix", "data-matrix") == "(2 0 / 0 2)"
     _shot(page, "read-only.png")
+
+
+def test_analyse_try_a_model_pick_a_candidate_then_analyse_another_image(page, live_server):
+    """Every step finishes: trying a model and picking a candidate must leave nothing behind
+    that a later background job (a forked process) would wait on forever."""
+    _needs_pipeline()
+    _demo_or_skip("pt111_PX-7_oxygen_p2x2.png")
+    _demo_or_skip("cu100_CX-3_c2x2.png")
+    _analyse_demo(page, live_server, "pt111_PX-7_oxygen_p2x2.png")
+    page.fill("#model-text", "2 0 / 0 2")
+    page.click("#model-try")
+    page.wait_for_selector("#model-counts", timeout=WAIT_MS)
+    options = page.locator("#candidate-pick input[type=radio]")
+    assert options.count() >= 2
+    options.nth(1).check()
+    page.wait_for_function("document.querySelector('#candidate-pick input:checked') !== null")
+    # another image: the tried model is forgotten and a new analysis finishes in time
+    page.click("#demo-pick")
+    page.get_by_text("cu100 CX-3 c2x2", exact=True).click()
+    page.wait_for_function("document.querySelector('#model-counts') === null", timeout=30_000)
+    page.wait_for_function("document.querySelector('#candidate-pick input:checked') === null", timeout=30_000)
+    page.wait_for_function("document.querySelector('#message').innerText.trim() === ''", timeout=30_000)
+    page.click("#run")
+    page.wait_for_function("document.querySelector('#message').innerText.includes('Analysed')", timeout=WAIT_MS)
+    truth = _demo_truth("cu100_CX-3_c2x2.png")
+    page.wait_for_selector("#wood", timeout=WAIT_MS)
+    assert page.inner_text("#wood").strip() == truth["scenario"]["wood_notation"]
+    _shot(page, "after-try-and-pick.png")
+    # a second analysis of the same image after a model was tried also finishes
+    page.fill("#model-text", "c(2x2)")
+    page.click("#model-try")
+    page.wait_for_selector("#model-counts", timeout=WAIT_MS)
+    page.fill("#energy", str(truth["energy_eV"] + 1))
+    page.click("#run")
+    page.wait_for_function(f"document.querySelector('#message').innerText.includes('Analysed')", timeout=WAIT_MS)
+
+
+def test_stop_clears_the_message_and_result(page, live_server):
+    _needs_pipeline()
+    _demo_or_skip("pt111_PX-7_oxygen_p2x2.png")
+    _analyse_demo(page, live_server, "pt111_PX-7_oxygen_p2x2.png")
+    assert "Analysed" in page.inner_text("#message")
+    page.fill("#energy", "97")
+    page.click("#run")
+    page.wait_for_selector("#cancel:not([disabled])", timeout=30_000)
+    page.click("#cancel")
+    page.wait_for_function("document.querySelector('#message').innerText.includes('Stopped')", timeout=30_000)
+    assert "Analysed" not in page.inner_text("#message")
+    page.wait_for_function("document.querySelector('#wood') === null", timeout=30_000)

@@ -29,7 +29,7 @@ from . import figures, ids, runtime, service
 from .jobs import job_controls, progress_reporter
 
 __all__ = [
-    "workspace", "on_upload", "render_pattern", "run_job", "on_stop", "on_new_image", "on_graph_event", "show_result",
+    "workspace", "on_upload", "render_pattern", "run_job", "on_stop", "on_new_image", "on_new_result", "on_graph_event", "show_result",
     "on_try_model", "on_save", "on_export", "display_image", "on_reference",
 ]
 
@@ -483,6 +483,11 @@ def on_new_image(image):
     return None, None, None
 
 
+def on_new_result(result):
+    """A new result (or none) forgets the candidate picked among the last one's -> pick."""
+    return None
+
+
 # --------------------------------------------------------------------------- result panel
 
 def _fmt_pm(value, err, unit="", digits=3):
@@ -791,6 +796,12 @@ callback(
     Input(ids.IMAGE, "data"),
     prevent_initial_call=True,
 )(on_new_image)
+
+callback(
+    Output(ids.CANDIDATE_PICK, "value", allow_duplicate=True),
+    Input(ids.RESULT, "data"),
+    prevent_initial_call=True,
+)(on_new_result)
 
 callback(
     Output(ids.RESULT_PANEL, "children"), Output(ids.CANDIDATE_PICK, "options"), Output(ids.CANDIDATES, "children"),
