@@ -7,11 +7,20 @@ input; it never leaves a partial output file.
 from __future__ import annotations
 
 import argparse
+import json
 import sys
+import time
+from collections.abc import Callable
+from dataclasses import replace
+from pathlib import Path
+from typing import TYPE_CHECKING
 
-from .errors import ParameterError, RecinetError
+from .errors import ImageError, ParameterError, RecinetError, SeriesError
 
-__all__ = ["main", "build_parser"]
+if TYPE_CHECKING:
+    from .optics import ScreenGeometry
+
+__all__ = ["main", "build_parser", "add_iv_parser"]
 
 
 def _cmd_net(args) -> int:
@@ -60,7 +69,6 @@ def _summary(d: dict) -> str:
 
 
 def _write_json_atomic(path: str, data: dict) -> None:
-    import json
     import os
 
     tmp = f"{path}.tmp-{os.getpid()}"
@@ -98,6 +106,213 @@ def _cmd_serve(args) -> int:
     return 0
 
 
+def _progress_bar(stream) -> Callable[[int, int | None, float], None]:
+    t0 = time.perf_counter()
+
+    def show(i: int, n: int | None, e: float) -> None:
+        width = 30
+        if n:
+            done = int(width * i / n)
+            bar = "#" * done + "." * (width - done)
+            text = f"\r[{bar}] {i}/{n} frames  {e:7.1f} eV  {time.perf_counter() - t0:5.1f} s"
+        else:
+            text = f"\r{i} frames  {e:7.1f} eV  {time.perf_counter() - t0:5.1f} s"
+        stream.write(text)
+        stream.flush()
+
+    return show
+
+
+def _read_geometry(path) -> ScreenGeometry:
+    from .optics import ScreenGeometry
+
+    p = Path(path)
+    try:
+        d = json.loads(p.read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise SeriesError(f"Geometry file {p.name} not found ({p}).") from None
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise SeriesError(f"Geometry file {p.name} is not readable JSON ({type(exc).__name__}).") from None
+    if isinstance(d, dict) and isinstance(d.get("geometry"), dict):
+        d = d["geometry"]
+    if not isinstance(d, dict):
+        raise SeriesError(f"Geometry file {p.name} must hold a JSON object of screen-geometry fields.")
+    try:
+        return ScreenGeometry.from_dict(d)
+    except (TypeError, ValueError) as exc:
+        raise SeriesError(f"Geometry file {p.name}: {exc}") from None
+
+
+def add_iv_parser(subparsers) -> argparse.ArgumentParser:
+    """Add the ``iv`` command to an argparse sub-parser collection; returns its parser."""
+    from .series.energies import DEFAULT_NAME_PATTERN
+
+    p = subparsers.add_parser(
+        "iv", help="I(V) curves from an energy series (multi-page TIFF, folder or zip)",
+        description="Track every beam through an energy series and write its I(V) curve.",
+        formatter_class=argparse.ArgumentDefaultsHelpFormatter)
+    p.add_argument("series", help="multi-page TIFF, folder of images, or zip of images")
+    p.add_argument("--substrate", required=True, help="substrate, e.g. 'Cu(100)' or 'hexagonal:2.775'")
+    p.add_argument("--energies", help="CSV or JSON file with the energy of every frame "
+                                      "(columns energy_eV or energy; optional frame, current)")
+    p.add_argument("--start-eV", type=float, dest="start_eV", help="energy of the first frame (with --step-eV)")
+    p.add_argument("--step-eV", type=float, dest="step_eV", help="energy step between frames")
+    p.add_argument("--name-pattern", default=DEFAULT_NAME_PATTERN,
+                   help="regular expression reading the energy from each file name (first group)")
+    p.add_argument("--csv", required=True, help="output CSV: energy_eV, then one column per beam")
+    p.add_argument("--json", help="output JSON with curves, flags, calibration and equivalent groups")
+    p.add_argument("--geometry", help="JSON screen geometry (a saved calibration); default: index frames")
+    p.add_argument("--index-frame", type=int, dest="index_frame", metavar="N",
+                   help="frame to index (0-based) when no --geometry is given; default: up to six frames "
+                        "(the one nearest the middle of the range or 150 eV, and others up to 250 eV) vote")
+    p.add_argument("--overlayer", action="append", default=[], metavar="MATRIX",
+                   help="superstructure matrix, e.g. '2 0 / 0 2' (repeat for several)")
+    p.add_argument("--all-domains", action="store_true", help="add the symmetry-equivalent domains")
+    p.add_argument("--azimuth-deg", type=float, default=0.0, dest="azimuth_deg",
+                   help="sample azimuth when --geometry is given")
+    p.add_argument("--symmetry", default="auto", help="equivalence group: auto, full, p3m1, p31m, p1…p6")
+    p.add_argument("--average", action="store_true", help="one CSV column per group of equivalent beams")
+    p.add_argument("--smooth-eV", type=float, default=0.0, dest="smooth_eV", help="Gaussian smoothing FWHM")
+    p.add_argument("--v0i-eV", type=float, default=4.0, dest="v0i_eV", help="V0i for the Pendry R-factor")
+    p.add_argument("--radius-px", type=float, dest="radius_px", help="aperture radius (default from spot size)")
+    p.add_argument("--background", choices=("annulus", "plane"), default="annulus")
+    p.add_argument("--method", choices=("aperture", "profile"), default="aperture")
+    p.add_argument("--gain", type=float, default=1.0, help="frame units per detected count (uncertainties)")
+    p.add_argument("--mask", help="image file: non-zero pixels may be used (default: screen minus gun shadow "
+                                  "found in frame 0)")
+    p.add_argument("--save-calibration", dest="save_calibration", help="write the fitted screen geometry (JSON)")
+    p.add_argument("--no-current", action="store_true", help="do not divide by the beam current")
+    p.set_defaults(func=_cmd_iv)
+    return p
+
+
+def _cmd_iv(args) -> int:
+    import numpy as np
+
+    from .io import iter_frames, load_image
+    from .jsonsafe import json_safe
+    from .nets import parse_substrate
+    from .series import beams_from_nets, csv_text, index_series_frame, index_series_frames, result_to_dict, track_series
+    from .series.energies import EnergyTable, _Energies, _StartStep, read_energy_file
+    from .series.track import _STACK_MAX_BYTES, _atomic_write, _index_frame_choices, _seek_frame, _seek_frames
+
+    substrate = parse_substrate(args.substrate)
+    if args.energies and args.start_eV is not None:
+        raise SeriesError("Give either --energies or --start-eV/--step-eV, not both.")
+    if (args.start_eV is None) != (args.step_eV is None):
+        raise SeriesError("--start-eV and --step-eV go together.")
+    if args.index_frame is not None and args.geometry:
+        raise SeriesError("Give either --geometry or --index-frame, not both.")
+    if args.index_frame is not None and args.index_frame < 0:
+        raise SeriesError(f"--index-frame must be 0 or more, got {args.index_frame}.")
+    energies = None
+    if args.energies:
+        energies = read_energy_file(args.energies)
+    elif args.start_eV is not None:
+        energies = _StartStep(args.start_eV, args.step_eV)
+    mats = []
+    if args.overlayer:
+        from .superstructure import parse_matrix
+
+        mats = [parse_matrix(t) for t in args.overlayer]
+    for out in (args.csv, args.json, args.save_calibration):
+        if out and not Path(out).resolve().parent.is_dir():
+            raise SeriesError(f"Output folder of {out} does not exist.")
+    first = None  # frame 0's stored depth (saturation level) and the page count of a stack
+    if not Path(args.series).is_dir():
+        try:
+            first = load_image(args.series, max_bytes=_STACK_MAX_BYTES)
+        except ImageError:
+            first = None  # a zip, or unreadable: iter_frames names the problem below
+    frames = iter_frames(args.series, max_bytes=_STACK_MAX_BYTES)
+    try:
+        name0, frame0 = next(frames)
+    except StopIteration:
+        raise SeriesError(f"{args.series}: the series holds no frames.") from None
+    except ImageError as err:
+        raise SeriesError(f"Cannot read frame 0: {err}") from None
+    saturation = first.saturation_level if first is not None else None
+    e0 = _Energies(energies, args.name_pattern).at(0, name0)[0]
+    if isinstance(energies, EnergyTable):
+        e_max = float(np.max(energies.energy_eV))
+    elif isinstance(energies, _StartStep) and energies.step < 0:
+        e_max = energies.start
+    else:
+        e_max = 1000.0  # the count is not known yet: follow every beam that could enter
+    mask = None
+    if args.mask:
+        mask = load_image(args.mask, _allow_constant=True).data > 0
+    found = None
+    if args.geometry:
+        geom = _read_geometry(args.geometry)
+        net = substrate
+        azimuth = args.azimuth_deg
+    else:
+        n_idx = args.index_frame
+        try:
+            if n_idx is not None:  # the frame asked for
+                name_i, frame_i, e_i = (name0, frame0, e0) if n_idx == 0 else \
+                    _seek_frame(args.series, n_idx, energies, args.name_pattern)
+                found = index_series_frame(frame_i, energy_eV=e_i, substrate=substrate, frame_index=n_idx,
+                                           frame_name=name_i)
+                del frame_i
+            else:  # several frames vote
+                picks = _seek_frames(args.series, _index_frame_choices(args.series, energies, first), energies,
+                                     args.name_pattern)
+                found = index_series_frames([(f, e, i, nm) for i, nm, f, e in picks], substrate=substrate)
+                del picks
+        except SeriesError as err:
+            raise SeriesError(f"{err} Give --geometry with a saved calibration, or another frame with "
+                              "--index-frame.") from None
+        for w in found.warnings:
+            print(f"note: {w}", file=sys.stderr)
+        geom, net, azimuth = found.geometry, found.substrate, 0.0
+        mask = found.mask if mask is None else mask
+        if not mats:
+            mats = list(found.overlayers)
+    beams = beams_from_nets(net, mats, energy_max_eV=max(e_max, e0), geometry=geom, azimuth_deg=azimuth,
+                            all_domains=args.all_domains, symmetry=args.symmetry)
+
+    def all_frames():
+        yield name0, frame0
+        yield from frames
+
+    bar = _progress_bar(sys.stderr) if sys.stderr.isatty() else None
+    n_known = len(energies) if isinstance(energies, EnergyTable) else None
+    try:
+        res = track_series(all_frames(), beams, geom, energies=energies, name_pattern=args.name_pattern,
+                           mask=mask, radius_px=args.radius_px, background=args.background, method=args.method,
+                           gain=args.gain, saturation_level=saturation, normalise_current=not args.no_current,
+                           progress=None if bar is None else (lambda i, n, e: bar(i, n or n_known, e)),
+                           prefetch=True)
+    finally:
+        if bar is not None:
+            sys.stderr.write("\n")
+    if found is not None:
+        res = replace(res, settings={**res.settings, "indexing": found.to_dict()})
+    texts = [(args.csv, csv_text(res, averaged=args.average, smooth_eV=args.smooth_eV, v0i_eV=args.v0i_eV))]
+    if args.json:
+        texts.append((args.json, json.dumps(result_to_dict(res, v0i_eV=args.v0i_eV, smooth_eV=args.smooth_eV),
+                                            indent=1, allow_nan=False)))
+    if args.save_calibration:
+        if res.calibration is None:
+            raise SeriesError("No calibration could be fitted from the series (too few refined beams).")
+        texts.append((args.save_calibration, json.dumps(json_safe(res.calibration.to_dict()), indent=1)))
+    for path, text in texts:
+        _atomic_write(path, text)
+    n_beams = int(np.sum(res.valid.any(axis=0)))
+    cal = res.calibration
+    msg = f"{res.energy_eV.size} frames, {n_beams} beams -> {args.csv}"
+    if found is not None:
+        msg += f"; indexed frame {found.frame} ({found.energy_eV:g} eV): {found.label}"
+    if cal is not None:
+        g = cal.geometry
+        msg += (f"; centre ({g.center_x_px:.2f}, {g.center_y_px:.2f}) px, scale {cal.scale_px_sqrt_eV_A:.1f} "
+                f"px·√eV·Å, distortion {g.distortion:.3f}, rms {cal.rms_px:.2f} px")
+    print(msg)
+    return 0
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="recinet", description="Analyse LEED patterns: spots, nets, superstructures, I(V).")
     sub = p.add_subparsers(dest="command", required=True)
@@ -126,7 +341,6 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--debug", action="store_true")
     s.set_defaults(func=_cmd_serve)
 
-    from .series import add_iv_parser
     add_iv_parser(sub)
     return p
 

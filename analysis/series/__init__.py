@@ -4,6 +4,7 @@ The code is being split into one module per family; this package re-exports the
 public names, so ``from analysis.series import track_series`` keeps working.
 """
 
+from ..cli import add_iv_parser  # the `recinet iv` parser lives with the other commands
 from .beams import BeamSet, beam_label, beams_from_nets, symmetry_ops
 from .energies import (
     DEFAULT_NAME_PATTERN,
@@ -30,7 +31,6 @@ from .track import (
     IVResult,
     SeriesIndexing,
     _index_frame_choice,  # noqa: F401
-    add_iv_parser,
     average_equivalent,
     csv_text,
     index_series_frame,
