@@ -14,6 +14,7 @@ from .energies import (
     energies_from_start_step,
     read_energy_file,
 )
+from .export import csv_text, iv_table, result_to_dict, write_csv, write_json
 from .geometry import SeriesCalibration, fit_series_geometry
 from .integrate import (
     BLOCKING_FLAGS,
@@ -32,16 +33,11 @@ from .track import (
     SeriesIndexing,
     _index_frame_choice,  # noqa: F401
     average_equivalent,
-    csv_text,
     index_series_frame,
     index_series_frames,
-    iv_table,
-    result_to_dict,
     smooth_curve,
     track_series,
     vote_frame_choices,
-    write_csv,
-    write_json,
 )
 
 __all__ = [
