@@ -6,6 +6,7 @@ public names, so ``from analysis.series import track_series`` keeps working.
 
 from ..cli import add_iv_parser  # the `recinet iv` parser lives with the other commands
 from .beams import BeamSet, beam_label, beams_from_nets, symmetry_ops
+from .curves import BeamGroup, average_equivalent, smooth_curve
 from .energies import (
     DEFAULT_NAME_PATTERN,
     EnergyTable,
@@ -28,14 +29,11 @@ from .integrate import (
     integrate_spots,
 )
 from .track import (
-    BeamGroup,
     IVResult,
     SeriesIndexing,
     _index_frame_choice,  # noqa: F401
-    average_equivalent,
     index_series_frame,
     index_series_frames,
-    smooth_curve,
     track_series,
     vote_frame_choices,
 )
