@@ -10,13 +10,13 @@ import numpy as np
 from .fit import (
     FLAG_FIT_FAILED,
     FLAG_NEAR_EDGE,
+    _PROFILE,
     _add_windows,
     _concat,
     _fit_candidates,
     _from_fit,
-    _gauss_windows,
     _render,
-    _render_patches,
+    _spot_windows,
     _spots_dict,
     _take,
     _unit_radial,
@@ -52,7 +52,7 @@ def _crowded(rc, amp, nz, sigma_px, half) -> np.ndarray:
 
     if len(rc) < 2:
         return np.zeros(0, int)
-    reach = sigma_px * np.sqrt(2.0 * np.log(np.maximum(np.asarray(amp) / (0.1 * np.maximum(nz, 1e-12)), 1.0)))
+    reach = _PROFILE.reach_px(sigma_px, np.asarray(amp) / (0.1 * np.maximum(nz, 1e-12)))
     reach = np.minimum(reach, 12.0 * sigma_px)
     pairs = cKDTree(rc).query_pairs(float(half * 1.5 + reach.max()) + 1.0, output_type="ndarray")
     if len(pairs) == 0:
@@ -173,7 +173,7 @@ def _refit_batch(fitter, res, noise, ok_fit, valid, spots, ids, nz_c, mdl, gain,
     """Refit spots `ids` (no two overlapping) against the current model image `mdl`, write the
     results into `spots` and redraw them in `mdl`; True where a spot changed."""
     sub = _take(spots, ids)
-    own = _render_patches(fitter, sub, half)
+    own = _spot_windows(sub, half)
     r0, c0, inside, (rp, nz, okp, vp, mp), _ = fitter.patches([res, noise, ok_fit, valid, mdl], sub["rc"])
     data = rp - mp + own
     okp = okp & inside
@@ -193,14 +193,14 @@ def _refit_batch(fitter, res, noise, ok_fit, valid, spots, ids, nz_c, mdl, gain,
     for key in spots:
         spots[key][ids] = new[key]
     moved = np.hypot(*(new["rc"] - sub["rc"]).T)
-    # largest change of each model: amplitude, shift (max slope 0.61 A/σ) and width (max 0.74 A Δlog σ)
+    # largest change of each model: amplitude, shift (max slope A/σ) and width (max A Δlog σ)
     dmodel = np.abs(new["amp"] - sub["amp"]) + np.maximum(new["amp"], sub["amp"]) * (
-        0.61 * moved / np.minimum(np.minimum(new["sr"], new["st"]), np.minimum(sub["sr"], sub["st"]))
-        + 0.74 * np.maximum(np.abs(np.log(new["sr"] / sub["sr"])), np.abs(np.log(new["st"] / sub["st"]))))
+        _PROFILE.max_slope * moved / np.minimum(np.minimum(new["sr"], new["st"]), np.minimum(sub["sr"], sub["st"]))
+        + _PROFILE.max_log_width_slope * np.maximum(np.abs(np.log(new["sr"] / sub["sr"])), np.abs(np.log(new["st"] / sub["st"]))))
     changed = (moved >= tol_px) | (dmodel > 0.02 * nz_c) | (new["flags"] != sub["flags"])
     if changed.any():
         o = _take(sub, changed)
         n = _take(new, changed)
-        _add_windows(mdl, o["rc"], -_gauss_windows(o["rc"], o["amp"], o["sr"], o["st"], o["u"], half))
-        _add_windows(mdl, n["rc"], _gauss_windows(n["rc"], n["amp"], n["sr"], n["st"], n["u"], half))
+        _add_windows(mdl, o["rc"], -_spot_windows(o, half))
+        _add_windows(mdl, n["rc"], _spot_windows(n, half))
     return changed

@@ -13,6 +13,9 @@ import math
 
 import numpy as np
 
+from ..profiles import GAUSSIAN
+
+_PROFILE = GAUSSIAN  # the profile fitted to every spot
 
 FLAG_SATURATED = 1  # a pixel near the centre is at full scale (it is left out of the fit)
 FLAG_NEAR_EDGE = 2  # a masked pixel lies within 3 σ of the centre
@@ -24,17 +27,19 @@ _FLAG_BLEND = 128  # internal: residual peak beside the spot (cleared before the
 
 
 class _Fitter:
-    """Vectorised Levenberg–Marquardt fit of elliptical Gaussians with a local offset.
+    """Vectorised Levenberg–Marquardt fit of a spot profile with a local offset.
 
-    Model (per spot, axes along the radial direction u and across it):
+    Model (per spot, axes along the radial direction u and across it): the profile
+    plus an offset b, e.g. for :data:`analysis.profiles.GAUSSIAN`
         A exp(−ρ²/2σ_r² − τ²/2σ_t²) + b,  ρ = (p − p0)·u,  τ = (p − p0)·u⊥.
     Pixel weights are 1/variance with variance = noise² + gain · model (IRLS).
     """
 
-    def __init__(self, half: int):
+    def __init__(self, half: int, profile=_PROFILE):
         self.half = half
-        o = np.arange(-half, half + 1, dtype=np.float64)
-        self.dr, self.dc = np.meshgrid(o, o, indexing="ij")
+        self.profile = profile
+        self.n_par = profile.n_params + 1  # the profile's parameters, then the offset b
+        self.dr, self.dc = fitter_grid(half)  # (W, W) row and column offsets in the window
 
     def patches(self, arrays, centres):
         """Gather (K, W, W) windows of each array around rounded `centres` (clamped at the edges)."""
@@ -48,15 +53,17 @@ class _Fitter:
         return r0, c0, inside, out, (rr, cc)
 
     def fit(self, data, noise2, w_ok, p, u, gain, *, n_iter=20, sigma_bounds=(0.4, 12.0), restart=False):
-        """data, noise2, w_ok: (K, W, W); p: (K, 6) [A, dr0, dc0, log sr, log st, b] (offsets in window).
+        """data, noise2, w_ok: (K, W, W); p: (K, P + 1) the profile's parameters with the centre
+        as offsets in the window, then the offset b (Gaussian: [A, dr0, dc0, log sr, log st, b]).
 
-        Returns (p, covariance (K, 6, 6), reduced χ², model (K, W, W)). Spots leave the
+        Returns (p, covariance (K, P + 1, P + 1), reduced χ², model (K, W, W)). Spots leave the
         iteration as soon as their centre moves by less than 10⁻³ px, after three
         iterations; with `restart` (`p` is a previous solution) after one, and a lightly
         damped step below 10⁻³ px ends the fit even when it does not lower χ² (at the
         minimum, rounding and the reweighting reject such steps).
         """
-        k = len(p)
+        k, n = len(p), self.n_par
+        cen, wid = self.profile.centre_params, self.profile.log_width_params
         p = np.array(p, dtype=np.float64)
         lo, hi = math.log(sigma_bounds[0]), math.log(sigma_bounds[1])
         lam = np.full(k, 1e-2)
@@ -72,26 +79,26 @@ class _Fitter:
             w = self._weights(mdl, pa, n2, ok, gain)
             chi2 = np.sum(w * (d - mdl) ** 2, axis=(1, 2))
             ka = len(act)
-            jf = self._jac(aux, uu).reshape(ka, 6, -1)  # (K, 6, pixels)
+            jf = self._jac(aux, uu).reshape(ka, n, -1)  # (K, P + 1, pixels)
             jtw = jf * w.reshape(ka, 1, -1)
             hmat = np.matmul(jtw, jf.transpose(0, 2, 1))
             grad = np.matmul(jtw, (d - mdl).reshape(ka, -1, 1))[:, :, 0]
             diag = np.einsum("kii->ki", hmat)
-            hd = hmat + (lam[act, None] * np.maximum(diag, 1e-12))[:, :, None] * np.eye(6)[None]
-            hd = hd + 1e-12 * np.eye(6)[None]
+            hd = hmat + (lam[act, None] * np.maximum(diag, 1e-12))[:, :, None] * np.eye(n)[None]
+            hd = hd + 1e-12 * np.eye(n)[None]
             try:
                 step = np.linalg.solve(hd, grad[:, :, None])[:, :, 0]
             except np.linalg.LinAlgError:
                 step = np.stack([np.linalg.lstsq(h, g, rcond=None)[0] for h, g in zip(hd, grad)])
-            step[:, 1:3] = np.clip(step[:, 1:3], -1.5, 1.5)
-            step[:, 3:5] = np.clip(step[:, 3:5], -0.5, 0.5)
+            step[:, cen] = np.clip(step[:, cen], -1.5, 1.5)
+            step[:, wid] = np.clip(step[:, wid], -0.5, 0.5)
             pn = pa + step
-            pn[:, 3:5] = np.clip(pn[:, 3:5], lo, hi)
+            pn[:, wid] = np.clip(pn[:, wid], lo, hi)
             mdl_n, aux_n = self._model(pn, uu)
             chi2_n = np.sum(w * (d - mdl_n) ** 2, axis=(1, 2))
             better = np.isfinite(chi2_n) & (chi2_n <= chi2)
             p[act] = np.where(better[:, None], pn, pa)
-            small = np.abs(step[:, 1:3]).max(axis=1) < 1e-3
+            small = np.abs(step[:, cen]).max(axis=1) < 1e-3
             flat = small & ~better & (lam[act] < 1.0) if restart else np.zeros(len(act), bool)
             lam[act] = np.where(better, np.maximum(lam[act] / 5, 1e-7), lam[act] * 10)
             b3 = better[:, None, None]
@@ -104,43 +111,31 @@ class _Fitter:
         # covariance at the solution
         mdl, aux = self._model(p, u)
         w = self._weights(mdl, p, noise2, w_ok, gain)
-        jf = self._jac(aux, u).reshape(k, 6, -1)
+        jf = self._jac(aux, u).reshape(k, n, -1)
         hmat = np.matmul(jf * w.reshape(k, 1, -1), jf.transpose(0, 2, 1))
         try:
-            cov = np.linalg.inv(hmat + 1e-12 * np.eye(6)[None])
+            cov = np.linalg.inv(hmat + 1e-12 * np.eye(n)[None])
         except np.linalg.LinAlgError:
-            cov = np.full((k, 6, 6), np.nan)
+            cov = np.full((k, n, n), np.nan)
         chi2 = np.sum(w * (data - mdl) ** 2, axis=(1, 2))
-        npix = np.maximum(w_ok.reshape(k, -1).sum(axis=1) - 6, 1)
+        npix = np.maximum(w_ok.reshape(k, -1).sum(axis=1) - n, 1)
         return p, cov, chi2 / npix, mdl
 
     def _model(self, p, u):
-        a, r0, c0, lsr, lst, b = (p[:, i, None, None] for i in range(6))
-        ur, uc = u[:, 0, None, None], u[:, 1, None, None]
-        x, y = self.dr[None] - r0, self.dc[None] - c0
-        rho, tau = x * ur + y * uc, -x * uc + y * ur
-        isr2, ist2 = np.exp(-2 * lsr), np.exp(-2 * lst)
-        e = np.exp(-0.5 * (rho * rho * isr2 + tau * tau * ist2))
-        return a * e + b, (a, e, rho, tau, isr2, ist2)
+        """(K, W, W) profile plus offset, and the profile's state for :meth:`_jac`."""
+        val, state = self.profile.evaluate(p, u, self.dr, self.dc)
+        return val + p[:, -1, None, None], state
 
     @staticmethod
     def _weights(mdl, p, noise2, ok, gain):
-        v = noise2 + gain * np.clip(mdl - p[:, 5, None, None], 0, None) if gain else noise2
+        v = noise2 + gain * np.clip(mdl - p[:, -1, None, None], 0, None) if gain else noise2
         return np.where(ok, 1.0 / v, 0.0)
 
-    @staticmethod
-    def _jac(aux, u):
-        a, e, rho, tau, isr2, ist2 = aux
-        ur, uc = u[:, 0, None, None], u[:, 1, None, None]
-        ae = a * e
-        gr, gt = ae * rho * isr2, ae * tau * ist2
-        jac = np.empty((e.shape[0], 6) + e.shape[1:])  # (K, 6, W, W): one contiguous plane per parameter
-        jac[:, 0] = e
-        np.subtract(gr * ur, gt * uc, out=jac[:, 1])
-        np.add(gr * uc, gt * ur, out=jac[:, 2])
-        np.multiply(gr, rho, out=jac[:, 3])
-        np.multiply(gt, tau, out=jac[:, 4])
-        jac[:, 5] = 1.0
+    def _jac(self, state, u):
+        k = len(u)
+        jac = np.empty((k, self.n_par) + self.dr.shape)  # (K, P + 1, W, W): one contiguous plane per parameter
+        self.profile.derivatives(state, u, out=jac[:, :-1])
+        jac[:, -1] = 1.0
         return jac
 
 
@@ -212,9 +207,14 @@ _GRIDS: dict = {}
 
 
 def fitter_grid(h):
+    """(row, col) offsets of a (2 h + 1)² window from its centre, two (W, W) float64 arrays
+    (shared, read-only)."""
     if h not in _GRIDS:
         o = np.arange(-h, h + 1, dtype=np.float64)
-        _GRIDS[h] = np.meshgrid(o, o, indexing="ij")
+        grid = np.meshgrid(o, o, indexing="ij")
+        for g in grid:
+            g.flags.writeable = False
+        _GRIDS[h] = grid
     return _GRIDS[h]
 
 
@@ -243,19 +243,25 @@ def _gain_from_spots(fitter, res, noise, ok_fit, spots, half, min_spots: int = 1
 
 
 def _render(shape, rc, amp, sr, st, u, half) -> np.ndarray:
-    """Sum of the fitted Gaussians (no offsets) as an image, each on a square window of
-    half-width `half` around its rounded centre, or less where the Gaussian is below
-    10⁻⁹ of its peak beyond."""
+    """Sum of the fitted profiles (no offsets) as an image, each on a square window of
+    half-width `half` around its rounded centre, or less where the profile is below
+    10⁻⁹ of its peak beyond (one very wide spot need not make every window wide)."""
     out = np.zeros(shape)
     if len(rc) == 0:
         return out
-    # exp(−6.5²/2) < 10⁻⁹: one very wide spot need not make every window wide
-    h_own = np.minimum(half, np.ceil(6.5 * np.maximum(sr, st))).astype(np.int64)
+    h_own = np.minimum(half, _PROFILE.window_half_px(sr, st))
     for h in np.unique(h_own):
         g = np.flatnonzero(h_own == h)
         h = int(h)
-        _add_windows(out, rc[g], _gauss_windows(rc[g], amp[g], sr[g], st[g], u[g], h))
+        _add_windows(out, rc[g], _PROFILE.window(rc[g], amp[g], sr[g], st[g], u[g], h))
     return out
+
+
+def _spot_windows(spots, half, *, centre_rc=None):
+    """(K, W, W) model of each spot (no offset) on (2 `half` + 1)² windows centred at the
+    integer `centre_rc` (K, 2), default the rounded centres."""
+    return _PROFILE.window(spots["rc"], spots["amp"], spots["sr"], spots["st"], spots["u"], half,
+                           centre_rc=centre_rc)
 
 
 def _add_windows(out, rc, val):
@@ -272,48 +278,6 @@ def _add_windows(out, rc, val):
         ra, rb, ca, cb = max(a, 0), min(a + w, m), max(b, 0), min(b + w, n)
         if ra < rb and ca < cb:
             out[ra:rb, ca:cb] += val[k, ra - a:rb - a, ca - b:cb - b]
-
-
-def _gauss_windows(rc, amp, sr, st, u, half):
-    """(K, W, W) values of the spots' Gaussians on (2 half + 1)² windows around the rounded
-    centres (axes σr along u and σt across it)."""
-    o = np.arange(-half, half + 1)
-    x = (np.rint(rc[:, 0]) - rc[:, 0])[:, None] + o[None, :]  # (K, W) row offsets from the centre
-    y = (np.rint(rc[:, 1]) - rc[:, 1])[:, None] + o[None, :]
-    # ρ²/σr² + τ²/σt² = a x² + 2 b x y + c y² with ρ = x ur + y uc, τ = −x uc + y ur
-    ur, uc = u[:, 0], u[:, 1]
-    ir2, it2 = 1.0 / np.square(sr), 1.0 / np.square(st)
-    a = ur * ur * ir2 + uc * uc * it2
-    b = ur * uc * (ir2 - it2)
-    c = uc * uc * ir2 + ur * ur * it2
-    arg = (-b[:, None] * x)[:, :, None] * y[:, None, :]
-    arg += (-0.5 * a[:, None] * x * x)[:, :, None]
-    arg += (-0.5 * c[:, None] * y * y)[:, None, :]
-    val = np.exp(arg, out=arg)
-    val *= np.asarray(amp, dtype=np.float64)[:, None, None]
-    return val
-
-
-def _render_at(fitter, sub, r0, c0):
-    """(K, W, W) model of each spot (no offset) on windows centred at integer (r0, c0)."""
-    x = fitter.dr[None] - (sub["rc"][:, 0] - r0)[:, None, None]
-    y = fitter.dc[None] - (sub["rc"][:, 1] - c0)[:, None, None]
-    ur, uc = sub["u"][:, 0, None, None], sub["u"][:, 1, None, None]
-    rho, tau = x * ur + y * uc, -x * uc + y * ur
-    return sub["amp"][:, None, None] * np.exp(-0.5 * (rho**2 / sub["sr"][:, None, None] ** 2
-                                                      + tau**2 / sub["st"][:, None, None] ** 2))
-
-
-def _render_patches(fitter, sub, half):
-    """(K, W, W) model of each spot on its own window (no offset)."""
-    rc = sub["rc"]
-    r0, c0 = np.rint(rc[:, 0]), np.rint(rc[:, 1])
-    x = fitter.dr[None] - (rc[:, 0] - r0)[:, None, None]
-    y = fitter.dc[None] - (rc[:, 1] - c0)[:, None, None]
-    ur, uc = sub["u"][:, 0, None, None], sub["u"][:, 1, None, None]
-    rho, tau = x * ur + y * uc, -x * uc + y * ur
-    return sub["amp"][:, None, None] * np.exp(-0.5 * (rho**2 / sub["sr"][:, None, None] ** 2
-                                                      + tau**2 / sub["st"][:, None, None] ** 2))
 
 
 def _split_pairs(fitter, res, noise, ok_fit, valid, spots, centre, gain, sigma_px, shape, half, min_snr,
@@ -342,7 +306,7 @@ def _split_pairs(fitter, res, noise, ok_fit, valid, spots, centre, gain, sigma_p
     win = np.where(shift[:, None], 0.5 * (sub["rc"] + np.where(has[:, None], hint[:, :2], 0.0)), sub["rc"])
     mdl = _render(shape, spots["rc"], spots["amp"], spots["sr"], spots["st"], spots["u"], half)
     r0, c0, inside, (data, nz, okp, vp, mp), _ = fitter.patches([res - mdl, noise, ok_fit, valid, mdl], win)
-    own = _render_at(fitter, sub, r0, c0)
+    own = _spot_windows(sub, half, centre_rc=np.column_stack([r0, c0]))
     data = data + own
     okp = okp & inside
     nz2 = nz**2 + (gain * np.clip(mp - own, 0.0, None) if gain else 0.0)
@@ -394,18 +358,17 @@ def _split_pairs(fitter, res, noise, ok_fit, valid, spots, centre, gain, sigma_p
 
 
 def _fit_pair(fitter, data, noise2, okp, q, gain, n_iter=30):
-    """LM fit of two round Gaussians of common width plus offset: q = [A1, r1, c1, A2, r2, c2, log s, b]."""
-    dr, dc = fitter.dr[None], fitter.dc[None]
+    """LM fit of two round profiles of common width plus offset: q = [A1, r1, c1, A2, r2, c2, log s, b]."""
+    prof = fitter.profile
     k = len(q)
     lam = np.full(k, 1e-2)
+    axis = np.tile([1.0, 0.0], (2 * k, 1))  # a round profile: any axis
 
     def model(q):
-        a1, r1, c1, a2, r2, c2, ls, b = (q[:, i, None, None] for i in range(8))
-        is2 = np.exp(-2 * ls)
-        x1, y1, x2, y2 = dr - r1, dc - c1, dr - r2, dc - c2
-        e1 = np.exp(-0.5 * (x1 * x1 + y1 * y1) * is2)
-        e2 = np.exp(-0.5 * (x2 * x2 + y2 * y2) * is2)
-        return a1 * e1 + a2 * e2 + b, (a1, a2, e1, e2, x1, y1, x2, y2, is2)
+        # the two members as 2K rows of profile parameters (A, r, c, log σ_r = log σ_t = log s)
+        p = np.concatenate([q[:, [0, 1, 2, 6, 6]], q[:, [3, 4, 5, 6, 6]]])
+        val, state = prof.evaluate(p, axis, fitter.dr, fitter.dc)
+        return val[:k] + val[k:] + q[:, 7, None, None], state
 
     def weights(mdl, q):
         v = noise2 + (gain * np.clip(mdl - q[:, 7, None, None], 0, None) if gain else 0.0)
@@ -415,10 +378,10 @@ def _fit_pair(fitter, data, noise2, okp, q, gain, n_iter=30):
     w = weights(mdl, q)
     chi2 = np.sum(w * (data - mdl) ** 2, axis=(1, 2))
     for _ in range(n_iter):
-        mdl, (a1, a2, e1, e2, x1, y1, x2, y2, is2) = model(q)
-        jac = np.stack([e1, a1 * e1 * x1 * is2, a1 * e1 * y1 * is2, e2, a2 * e2 * x2 * is2, a2 * e2 * y2 * is2,
-                        (a1 * e1 * (x1 * x1 + y1 * y1) + a2 * e2 * (x2 * x2 + y2 * y2)) * is2,
-                        np.ones_like(e1)], axis=-1).reshape(k, -1, 8)
+        mdl, state = model(q)
+        d1, d2 = np.split(prof.derivatives(state, axis), 2)  # (K, 5, W, W) each
+        jac = np.stack([d1[:, 0], d1[:, 1], d1[:, 2], d2[:, 0], d2[:, 1], d2[:, 2],
+                        d1[:, 3] + d1[:, 4] + d2[:, 3] + d2[:, 4], np.ones_like(mdl)], axis=-1).reshape(k, -1, 8)
         ww = w.reshape(k, -1)
         res = (data - mdl).reshape(k, -1)
         jtw = jac * ww[:, :, None]

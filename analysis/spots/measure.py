@@ -16,9 +16,10 @@ from ..errors import ImageError, ParameterError
 from ._common import _as_float_image, _check_mask, _saturation_of
 from .background import BackgroundEstimate, estimate_background
 from .crowded import _fit_pass1, _refit_neighbours, _refit_weighted
-from .detect import _detect, _gauss_kernel_norm, _matched, _maxima
+from .detect import _detect, _gauss_kernel_norm, _matched, _maxima, _residual_snr
 from .fit import (
     _FLAG_BLEND,
+    _PROFILE,
     FLAG_FIT_FAILED,
     FLAG_NAMES,
     FLAG_SATURATED,
@@ -34,9 +35,6 @@ from .fit import (
 )
 from .gun_shadow import ShadowMask, find_gun_shadow
 from .screen import ScreenMask, disk_mask, find_screen
-
-
-_FWHM = 2.0 * math.sqrt(2.0 * math.log(2.0))
 
 
 @dataclass(frozen=True, eq=False)
@@ -211,21 +209,10 @@ def find_spots(image, *, sigma_px: float = 2.0, min_snr: float = 5.0, mask=None,
                                     half, crowded_too=not second_pass)
     hints = np.full((len(spots["rc"]), 3), np.nan)  # (row, col, amplitude) of a possible companion
     if second_pass and len(spots["rc"]):
-        # pass 2: the matched-filter residual after removing every fitted spot. A Gaussian
-        # filtered by a Gaussian is a Gaussian, so the filtered models are drawn directly.
+        # pass 2: the matched-filter residual after removing every fitted spot
         good = (spots["flags"] & FLAG_FIT_FAILED) == 0
         sub = _take(spots, good)
-        sr2, st2 = np.hypot(sub["sr"], sigma_px), np.hypot(sub["st"], sigma_px)
-        hf = max(half, int(math.ceil(3.5 * float(np.max(np.maximum(sr2, st2), initial=sigma_px)))))
-        fm = _render(shape, sub["rc"], sub["amp"] * sub["sr"] * sub["st"] / (sr2 * st2), sr2, st2, sub["u"], hf)
-        # model errors (≈ 3 % of the model) and the spot's own shot noise add variance
-        sq = sub["sr"] / math.sqrt(2), sub["st"] / math.sqrt(2)
-        sq2, tq2 = np.hypot(sq[0], sigma_px), np.hypot(sq[1], sigma_px)
-        fm2 = _render(shape, sub["rc"], (0.03 * sub["amp"]) ** 2 * sq[0] * sq[1] / (sq2 * tq2), sq2, tq2,
-                      sub["u"], hf)
-        extra = fm2 + (gain * np.clip(fm, 0, None) if gain else 0.0)
-        noise2_f = (knorm * np.sqrt(noise**2 + extra)).astype(np.float32)
-        s2 = (f1 - fm) / noise2_f
+        s2, fm = _residual_snr(f1, sub, noise, gain, knorm, sigma_px, half)
         cand2 = _maxima(s2, min_snr, valid)
         if len(cand2):
             from scipy.spatial import cKDTree
@@ -284,9 +271,9 @@ def _table(spots, img, bg, sat, valid, centre, sigma_px) -> SpotTable:
     miss = ~np.all(np.isfinite(sig), axis=1)
     if miss.any():
         sig[miss] = (np.sqrt(sr * st) / np.maximum(amp / nz, 1e-3))[miss, None] * np.ones((1, 2))
-    return SpotTable(rc=rc, sigma_rc=sig, intensity=2 * math.pi * amp * sr * st, amplitude=amp,
-                     peak_snr=amp / np.maximum(nz, 1e-12), snr=spots["snr"], fwhm_radial_px=_FWHM * sr,
-                     fwhm_tangential_px=_FWHM * st, background=bg.background[ri, ci] + spots["off"],
+    return SpotTable(rc=rc, sigma_rc=sig, intensity=_PROFILE.volume(amp, sr, st), amplitude=amp,
+                     peak_snr=amp / np.maximum(nz, 1e-12), snr=spots["snr"], fwhm_radial_px=_PROFILE.fwhm(sr),
+                     fwhm_tangential_px=_PROFILE.fwhm(st), background=bg.background[ri, ci] + spots["off"],
                      flags=flags, center_rc=np.asarray(centre, float))
 
 
@@ -395,7 +382,7 @@ def measure_image(image, *, sigma_px: float | None = 2.0, min_snr: float = 5.0, 
     excl = np.zeros(img.shape, bool)
     if len(rc1):
         nz = bg.noise[rc1[:, 0].astype(int), rc1[:, 1].astype(int)]
-        rad = s * np.sqrt(2.0 * np.log(np.maximum(2.0 * amp1 / np.maximum(nz, 1e-9), 1.0))) + 1.0
+        rad = _PROFILE.reach_px(s, 2.0 * amp1 / np.maximum(nz, 1e-9)) + 1.0
         excl = _disks(img.shape, rc1, np.clip(rad, 2.5 * s, 12 * s))
     bg2 = estimate_background(img, valid, block_px=block_px, exclude=excl, dark_mask=dark) \
         if (valid & ~excl).sum() > 64 else bg
