@@ -26,12 +26,12 @@ import numpy as np
 from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 from scipy.spatial import cKDTree
-from scipy.special import erf
 
 from .errors import NetError, ParameterError
 from .jsonsafe import json_safe
 from .nets import Net2D, reciprocal
 from .optics import ScreenGeometry, momentum_to_pixels, wavelength_A
+from .profiles import GAUSSIAN
 from .superstructure import beam_label
 
 __all__ = [
@@ -395,20 +395,10 @@ def default_intensities(pattern: Pattern, rng: np.random.Generator, *, photons: 
     return base * factor * np.where(pattern.integer, 1.0, overlayer_factor)
 
 
-def _pixel_weights(centre: np.ndarray, sigma: np.ndarray, half: int) -> tuple[np.ndarray, np.ndarray]:
-    """1-D pixel integrals of unit Gaussians: indices (K, w) and weights (K, w).
-
-    Weight of pixel c is ∫_{c−½}^{c+½} N(t; centre, σ) dt (exact, via erf).
-    """
-    idx = np.rint(centre)[:, None].astype(np.int64) + np.arange(-half, half + 1)[None, :]
-    z = 1.0 / (math.sqrt(2.0) * sigma[:, None])
-    w = 0.5 * (erf((idx + 0.5 - centre[:, None]) * z) - erf((idx - 0.5 - centre[:, None]) * z))
-    return idx, w
-
-
 def _spots_image(xy: np.ndarray, sigma: np.ndarray, photons: np.ndarray, trans: np.ndarray
                  ) -> tuple[np.ndarray, np.ndarray]:
-    """Expected photons per pixel from Gaussian spots integrated over pixels.
+    """Expected photons per pixel from spots (:data:`analysis.profiles.GAUSSIAN`, round)
+    integrated exactly over pixels.
 
     Parameters
     ----------
@@ -433,9 +423,7 @@ def _spots_image(xy: np.ndarray, sigma: np.ndarray, photons: np.ndarray, trans: 
     step = max(1, 2_000_000 // (2 * half + 1) ** 2)
     for s in range(0, len(xy), step):  # chunks keep the (K, w, w) block small
         sl = slice(s, s + step)
-        ci, wx = _pixel_weights(xy[sl, 0], sigma[sl], half)
-        ri, wy = _pixel_weights(xy[sl, 1], sigma[sl], half)
-        val = photons[sl, None, None] * wy[:, :, None] * wx[:, None, :]
+        ri, ci, val = GAUSSIAN.pixel_integrals(xy[sl, ::-1], sigma[sl], photons[sl], half)
         r = np.broadcast_to(ri[:, :, None], val.shape)
         c = np.broadcast_to(ci[:, None, :], val.shape)
         ok = (r >= 0) & (r < rows) & (c >= 0) & (c < cols)
