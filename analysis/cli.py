@@ -195,7 +195,8 @@ def _cmd_iv(args) -> int:
     from .series import beams_from_nets, csv_text, index_series_frame, index_series_frames, result_to_dict, track_series
     from .series.energies import EnergyTable, _Energies, _StartStep, read_energy_file
     from .series.export import _atomic_write
-    from .series.track import _STACK_MAX_BYTES, _index_frame_choices, _seek_frame, _seek_frames
+    from .series.index_frames import _index_frame_choices, _seek_frame, _seek_frames
+    from .series.track import _STACK_MAX_BYTES
 
     substrate = parse_substrate(args.substrate)
     if args.energies and args.start_eV is not None:

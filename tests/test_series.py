@@ -645,7 +645,7 @@ def test_cli_indexes_a_frame_when_no_geometry_is_given(auto_stack, capsys):
 
 
 def test_index_frame_choice_prefers_moderate_energies(tmp_path):
-    from analysis.series import _index_frame_choice
+    from analysis.series.index_frames import _index_frame_choice
 
     wide = np.arange(40.0, 490.0, 1.5)  # middle 264 eV: crowded, so the frame nearest 150 eV
     assert wide[_index_frame_choice(tmp_path / "scan.tif", EnergyTable(wide), None)] == 149.5
