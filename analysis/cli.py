@@ -16,6 +16,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING
 
 from .errors import ImageError, ParameterError, RecinetError, SeriesError
+from .files import write_text_atomic
 
 if TYPE_CHECKING:
     from .optics import ScreenGeometry
@@ -68,15 +69,6 @@ def _summary(d: dict) -> str:
     return "\n".join(lines)
 
 
-def _write_json_atomic(path: str, data: dict) -> None:
-    import os
-
-    tmp = f"{path}.tmp-{os.getpid()}"
-    with open(tmp, "w", encoding="utf-8") as fh:
-        json.dump(data, fh, indent=1, ensure_ascii=False, allow_nan=False)
-    os.replace(tmp, path)
-
-
 def _cmd_analyze(args) -> int:
     from .calibration import Calibration
     from .io import load_image
@@ -93,7 +85,7 @@ def _cmd_analyze(args) -> int:
                            sigma_px=args.spot_sigma, min_snr=args.min_snr, tol_px=args.tolerance)
     d = result_to_dict(result)
     if args.json:
-        _write_json_atomic(args.json, d)
+        write_text_atomic(args.json, json.dumps(d, indent=1, ensure_ascii=False, allow_nan=False))
     if not args.quiet:
         print(_summary(d))
     return 0

@@ -12,13 +12,12 @@ from __future__ import annotations
 import csv
 import io as _stdio
 import json
-import os
-import tempfile
 from pathlib import Path
 
 import numpy as np
 
 from ..errors import SeriesError
+from ..files import write_text_atomic
 from ..jsonsafe import json_safe
 from .integrate import BLOCKING_FLAGS, FLAG_NAMES
 from .curves import average_equivalent, smooth_curve
@@ -76,24 +75,17 @@ def iv_table(result: IVResult, *, averaged: bool = False, smooth_eV: float = 0.0
 
 
 def _atomic_write(path, text: str) -> None:
-    """Write `text` to `path` through a temporary file, so no partial file is ever left."""
+    """Write `text` to `path` through a temporary file, so no partial file is ever left.
+
+    The file is readable by its owner only (mode 0o600).
+    """
     p = Path(path)
     if p.is_dir():
         raise SeriesError(f"Output {p} is a folder, not a file name.")
     parent = p.parent if str(p.parent) else Path(".")
     if not parent.is_dir():
         raise SeriesError(f"Output folder {parent} does not exist.")
-    fd, tmp = tempfile.mkstemp(prefix=f".{p.name}.", suffix=".part", dir=parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
-            fh.write(text)
-        os.replace(tmp, p)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
+    write_text_atomic(p, text, mode=0o600)
 
 
 def csv_text(result: IVResult, **kw) -> str:
