@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -484,3 +485,29 @@ def test_gain_measured_from_the_spots_matches_the_true_gain():
     assert d.max() < 0.05
     n_true, n_hit, n_rep, n_false, ratio2 = _score(t.rc, _truth(im), tol=5.0)
     assert n_hit == n_true and n_false == 0 and math.sqrt(float(np.mean(ratio2))) <= 1.3
+
+
+
+VALIDATION = Path(__file__).resolve().parents[2] / "shared" / "validation" / "cases"
+
+
+@pytest.mark.skipif(not VALIDATION.is_dir(), reason="the validation set (../shared/validation) is not here")
+def test_every_screen_of_the_validation_set_is_found():
+    """Images drawn by a generator written apart from recinet, truth from its truth.json: dim 8-bit
+    screens whose rim is only ~8 counts above a frame of 1–3 counts, 16-bit ones, references."""
+    import json
+
+    from analysis.io import load_image
+
+    misses = []
+    for case in sorted(p.parent for p in VALIDATION.glob("*/truth.json")):
+        truth = json.loads((case / "truth.json").read_text())
+        g = truth["geometry"]
+        for name in (truth["image"], "reference.png"):
+            if not (case / name).exists():
+                continue
+            s = find_screen(load_image(case / name))
+            err = math.hypot(s.center_rc[1] - g["screen_center_px"][0], s.center_rc[0] - g["screen_center_px"][1])
+            if s.source != "auto" or err > 1.0 or abs(s.radius_px - g["screen_radius_px"]) > 1.5:
+                misses.append((case.name, name, s.source, round(err, 1)))
+    assert not misses

@@ -270,7 +270,9 @@ def _screen_levels(flat: np.ndarray):
             return None
         lo, hi = float(np.median(vals[dark])), float(np.median(vals[~dark]))
         noise_lo = 1.4826 * float(np.median(np.abs(vals[dark] - lo))) + 1e-12
-        if hi - lo >= 25.0 * noise_lo and lo - floor <= 0.1 * (hi - lo):
+        # a step of ten times the dark side's spread is no falloff of the screen's own (there the
+        # "dark" class spreads over most of the step); a dim 8-bit rim may be only ~20 × above it
+        if hi - lo >= 10.0 * noise_lo and lo - floor <= 0.1 * (hi - lo):
             return lo, hi, noise_lo
         sub = vals[dark]
     return None
