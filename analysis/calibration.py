@@ -32,6 +32,7 @@ from scipy.optimize import least_squares
 from scipy.spatial import cKDTree
 
 from .errors import FitError, ParameterError
+from .lattice import lattice_points, screen_g_max
 from .nets import Net2D, reciprocal
 from .optics import H2_OVER_2ME_EV_A2, ScreenGeometry, momentum_to_pixels, wavelength_A
 
@@ -517,8 +518,10 @@ def calibrate_from_reference(xy_px, substrate: Net2D, energy_eV: float, *, cente
     c = estimate_center_from_pairs(p).center_xy if center_xy is None else np.asarray(center_xy, float)
     astar = reciprocal(substrate).vectors
     lam = wavelength_A(energy_eV, relativistic=relativistic)
-    rng_ = np.arange(-max_order, max_order + 1)
-    hk_all = np.array([[h, k] for h in rng_ for k in rng_ if (h, k) != (0, 0)], float)
+    # the beams up to order `max_order` on the screen (a hair beyond its edge: the test below decides)
+    hk_all = lattice_points(np.eye(2), screen_g_max(energy_eV, acceptance_deg, relativistic=relativistic) + 1e-9,
+                            metric=astar)
+    hk_all = hk_all[np.all(np.abs(hk_all) <= max_order, axis=1) & np.any(hk_all != 0, axis=1)]
     kk = hk_all @ astar
     st = lam * np.hypot(kk[:, 0], kk[:, 1])
     keep = st < math.sin(math.radians(acceptance_deg))

@@ -34,7 +34,8 @@ from .errors import ParameterError
 from .jsonsafe import json_safe
 from .indexing import OverlayerModel, model_indices
 from .nets import Net2D, classify_net, reciprocal
-from .optics import momentum_to_pixels, wavelength_A
+from .lattice import lattice_points, screen_g_max
+from .optics import momentum_to_pixels
 from .superstructure import beam_label, format_matrix, overlayer_net
 
 __all__ = ["SCHEMA", "VERSION", "result_to_dict", "model_to_dict", "check_result_dict", "predicted_spots"]
@@ -60,18 +61,14 @@ def predicted_spots(fit, model: OverlayerModel | None, energy_eV: float) -> dict
     """
     lat = fit.reciprocal_net.vectors
     geom = fit.geometry
-    g_max = math.sin(math.radians(geom.acceptance_deg)) / wavelength_A(energy_eV)
+    # a hair beyond the screen's edge: the camera model's own visibility test decides below
+    g_max = screen_g_max(energy_eV, geom.acceptance_deg) + 1e-9
 
     def points(b_star_hk):
-        cart = b_star_hk @ lat
-        area = abs(np.linalg.det(cart))
-        n1 = int(math.ceil(g_max * np.linalg.norm(cart[1]) / area)) + 1
-        n2 = int(math.ceil(g_max * np.linalg.norm(cart[0]) / area)) + 1
-        if (2 * n1 + 1) * (2 * n2 + 1) > 200_000:
+        try:
+            return lattice_points(b_star_hk, g_max, metric=lat, max_points=200_000)
+        except ParameterError:  # a net far finer than the screen: nothing useful to draw
             return np.zeros((0, 2))
-        a, b = np.meshgrid(np.arange(-n1, n1 + 1), np.arange(-n2, n2 + 1), indexing="ij")
-        hk = np.column_stack([a.ravel(), b.ravel()]).astype(float) @ b_star_hk
-        return hk
 
     def rows(hk, fractional_only):
         if fractional_only:

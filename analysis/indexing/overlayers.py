@@ -14,7 +14,8 @@ from typing import TYPE_CHECKING
 import numpy as np
 from scipy.spatial import cKDTree
 
-from ..errors import FitError
+from ..errors import FitError, ParameterError
+from ..lattice import lattice_points, screen_g_max
 from ..nets import Net2D, point_group
 from ..optics import ScreenGeometry, wavelength_A
 from ..superstructure import (
@@ -95,21 +96,6 @@ def model_indices(hk: np.ndarray, model: OverlayerModel) -> np.ndarray:
     return out
 
 
-def _lattice_points(b_star_hk: np.ndarray, a_star: np.ndarray, g_max: float) -> np.ndarray:
-    """Points n @ B (hk units) of the lattice with basis rows B (hk), |g| ≤ g_max. (K, 2) hk."""
-    cart = b_star_hk @ a_star
-    area = abs(np.linalg.det(cart))
-    n1 = int(math.ceil(g_max * np.linalg.norm(cart[1]) / area)) + 1
-    n2 = int(math.ceil(g_max * np.linalg.norm(cart[0]) / area)) + 1
-    if (2 * n1 + 1) * (2 * n2 + 1) > 400_000:
-        raise FitError("The overlayer net is too fine to enumerate on this screen.")
-    a, b = np.meshgrid(np.arange(-n1, n1 + 1), np.arange(-n2, n2 + 1), indexing="ij")
-    n = np.column_stack([a.ravel(), b.ravel()]).astype(np.float64)
-    hk = n @ b_star_hk
-    g = hk @ a_star
-    return hk[np.hypot(g[:, 0], g[:, 1]) <= g_max]
-
-
 def _domain_matrices(m: np.ndarray, ops) -> tuple[list[np.ndarray], list[str]]:
     """Distinct domains M W (W in the substrate group), right-handed like M, with the op names."""
     w = np.array([op.matrix for op in ops], dtype=np.float64)
@@ -164,7 +150,7 @@ def _context(hk, integer, substrate_fit: SubstrateFit, energy_eV, intensity, val
     return _Context(hk=hk, integer=np.asarray(integer, dtype=bool), a_star=a_star, geom=geom,
                     energy_eV=float(energy_eV), tol_g=tol_px / (geom.scale_px * lam),
                     ops=point_group(sub, tol=2e-3), tree=cKDTree(hk @ a_star), r_max=r_max,
-                    g_max=math.sin(math.radians(min(geom.acceptance_deg, 80.0))) / lam,
+                    g_max=screen_g_max(energy_eV, min(geom.acceptance_deg, 80.0)),
                     valid_mask=valid_mask, intensity=None if intensity is None else np.asarray(intensity, float),
                     substrate=sub, max_denominator=int(max_denominator), reliable=reliable)
 
@@ -247,7 +233,10 @@ def _with_absent(ctx: _Context, sc: dict) -> dict:
     absent = 0
     center = np.array(ctx.geom.center_px)
     a_star = ctx.a_star
-    pts = [_lattice_points(np.linalg.inv(m).T, a_star, ctx.g_max) for m in sc["mats"]]
+    try:
+        pts = [lattice_points(np.linalg.inv(m).T, ctx.g_max, metric=a_star) for m in sc["mats"]]
+    except ParameterError:
+        raise FitError("The overlayer net is too fine to enumerate on this screen.") from None
     pts = np.concatenate(pts) if pts else np.zeros((0, 2))  # every domain at once
     pts = pts[np.any(np.abs(pts - np.rint(pts)) > 1e-6, axis=1)]
     if len(pts):

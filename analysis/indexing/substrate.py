@@ -18,6 +18,7 @@ from scipy.spatial import cKDTree
 
 from ..calibration import estimate_center_from_pairs
 from ..errors import FitError
+from ..lattice import lattice_points, screen_g_max
 from ..nets import Net2D, classify_net, reciprocal
 from ..optics import ScreenGeometry, local_jacobian, pixels_to_momentum, wavelength_A
 from ..superstructure import same_lattice
@@ -81,17 +82,6 @@ class SubstrateFit:
     confidence: float = 1.0
     completeness: float = 0.0
     notes: tuple = ()
-
-
-def _int_points(a_star: np.ndarray, g_max: float) -> np.ndarray:
-    """Integer (h, k) with |h a1* + k a2*| ≤ g_max, (K, 2) float."""
-    area = abs(np.linalg.det(a_star))
-    hmax = int(math.ceil(g_max * np.linalg.norm(a_star[1]) / area)) + 1
-    kmax = int(math.ceil(g_max * np.linalg.norm(a_star[0]) / area)) + 1
-    h, k = np.meshgrid(np.arange(-hmax, hmax + 1), np.arange(-kmax, kmax + 1), indexing="ij")
-    hk = np.column_stack([h.ravel(), k.ravel()]).astype(np.float64)
-    g = hk @ a_star
-    return hk[np.hypot(g[:, 0], g[:, 1]) <= g_max]
 
 
 def _scale_prior(screen_radius_px: float | None) -> float | None:
@@ -262,8 +252,7 @@ def _try_substrate(xy, tree, inten, energy_eV, a_star, e, v, center, geometry, l
                                    rotation_deg=rot, acceptance_deg=89.0)
         # keep the calibration's scale unless the spot says it is off by a lot (then no match)
         free_geo = ("center_x_px", "center_y_px", "rotation_deg")
-    g_max = math.sin(math.radians(85.0)) / lam
-    hk_all = _int_points(a_star, g_max)
+    hk_all = lattice_points(np.eye(2), screen_g_max(energy_eV, 85.0), metric=a_star)  # integer (h, k)
     g_all = hk_all @ a_star
     vlen = float(np.hypot(*v))
     nn = _nn_spacing(tree)  # dense patterns need tight matching from the start
