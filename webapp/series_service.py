@@ -27,6 +27,7 @@ from pathlib import Path
 import numpy as np
 
 from analysis.errors import FitError, ImageError, ParameterError, RecinetError, SeriesError
+from analysis.jsonsafe import json_safe
 
 __all__ = [
     "MAX_FRAMES", "MAX_FRAME_PIXELS", "MAX_SIDECAR_BYTES", "PREVIEW_SIDE", "ENERGY_MODES",
@@ -408,7 +409,7 @@ def run_series(sha: str, filename: str, *, substrate: str, mode: str = "file", t
         raise SeriesError("No beam could be followed in any frame: check the substrate, the energies and "
                           "the frame indexed.")
     cal = res.calibration
-    return _json_safe({
+    return json_safe({
         "key": key, "sha": sha, "filename": _short(filename), "n_frames": int(res.energy_eV.size),
         "energy_eV": res.energy_eV.tolist(), "frame_names": list(res.frame_names), "width": w, "height": h,
         "factor": preview_factor(w, h), "beams": beams_out,
@@ -444,20 +445,6 @@ def _default_beams(groups) -> list[str]:
         if best is None or score > best[0]:
             best = (score, g)
     return [] if best is None else list(best[1].members[:6])
-
-
-def _json_safe(x):
-    if isinstance(x, dict):
-        return {str(k): _json_safe(v) for k, v in x.items()}
-    if isinstance(x, (list, tuple)):
-        return [_json_safe(v) for v in x]
-    if isinstance(x, (np.floating, float)):
-        return float(x) if math.isfinite(x) else None
-    if isinstance(x, np.integer):
-        return int(x)
-    if isinstance(x, np.ndarray):
-        return _json_safe(x.tolist())
-    return x
 
 
 # --------------------------------------------------------------------------- reading a run back
