@@ -1,17 +1,12 @@
 """Following every beam through an energy series: predict, refine, integrate, refit.
 
-:func:`track_series` streams the frames one at a time (a stack on disk is read a frame
-or two ahead on a second thread, :class:`_Prefetch`). In each frame the beams are
-predicted from the current screen geometry, refined locally (a peak search, then a
-background-subtracted centroid), integrated (:mod:`analysis.series.integrate`), and
-the geometry is refitted from all frames so far (:mod:`analysis.series.geometry`).
-The result, :class:`IVResult`, holds every beam's intensity, uncertainty, position and
-flags in every frame.
-
-Conventions: pixel arrays are (row, col) inside; positions at the API are (x, y) pixels
-as in :mod:`analysis.optics` (x right, y down, the centre of the top-left pixel at
-(0, 0)). Parallel momenta are Å⁻¹ without 2π. Intensities are in the frames' own units
-(ADU) summed over pixels, divided by the beam current when one is given.
+:func:`track_series` streams the frames one at a time; a stack on disk is read a frame
+or two ahead on a second thread (:class:`_Prefetch`). Each frame's beams are predicted
+from the current screen geometry, refined locally by a peak search and a
+background-subtracted centroid (:func:`_refine`), integrated there, and the geometry is
+refitted from all frames so far. :class:`IVResult` holds the intensity, uncertainty,
+position and flags of every beam in every frame. Pixel arrays are (row, col) inside;
+positions at the API are (x, y) pixels as in :mod:`analysis.optics`.
 """
 
 from __future__ import annotations
