@@ -1,4 +1,4 @@
-"""Writing output files whole or not at all (one helper for every writer of the core)."""
+"""Writing output files whole or not at all: a temporary file beside the target, then one rename."""
 
 from __future__ import annotations
 

@@ -19,8 +19,8 @@ import numpy as np
 from ..errors import SeriesError
 from ..files import write_text_atomic
 from ..jsonsafe import json_safe
-from .integrate import BLOCKING_FLAGS, FLAG_NAMES
 from .curves import average_equivalent, smooth_curve
+from .integrate import BLOCKING_FLAGS, FLAG_NAMES
 from .track import IVResult
 
 __all__ = ["iv_table", "csv_text", "write_csv", "result_to_dict", "write_json"]
