@@ -10,6 +10,10 @@ Schema (``"schema": "recinet.analysis"``, ``"version": 1``), keys kept stable:
   (``integer``/``fractional``/``unexplained``), ``domain`` (index into the
   domains or null), ``manual``, ``trusted`` (false when the centre is cut by a
   mask edge or its fit failed: such spots do not count in the model scores).
+  Every entry is an accepted detection: one that can be a diffraction spot.
+* ``rejected_spots``: detections that cannot be diffraction spots (hot pixels,
+  cosmic rays, background structure), each with ``x``, ``y``, ``intensity``,
+  ``snr``, its widths and the ``reason``.
 * ``substrate``: ``net`` (plane-net type), ``a_star_px`` (rows a1*, a2* as
   pixel displacements at the centre: the local derivative of the camera
   model; always a primitive basis), ``a_angstrom``, ``b_angstrom``,
@@ -211,6 +215,10 @@ def result_to_dict(result) -> dict:
         "screen": meas.screen.to_dict(),
         "gun": meas.gun.to_dict(),
         "spot_sigma_px": float(meas.sigma_px),
+        "rejected_spots": [{"x": r["x"], "y": r["y"], "intensity": _f(r["intensity"]), "snr": _f(r["snr"]),
+                            "fwhm_radial_px": _f(r["fwhm_radial_px"]),
+                            "fwhm_tangential_px": _f(r["fwhm_tangential_px"]), "reason": r["reason"]}
+                           for r in meas.rejected_records()],
         "predicted": predicted_spots(fit, best, result.energy_eV),
         "edits": result.edits.to_dict(),
         "warnings": list(result.warnings),

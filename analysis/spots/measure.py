@@ -33,6 +33,7 @@ from .fit import (
     _split_pairs,
     _take,
 )
+from .accept import MIN_LOCAL_SNR, REJECT_FLAT, judge_spots, local_snr, split_table
 from .gun_shadow import ShadowMask, find_gun_shadow
 from .screen import ScreenMask, disk_mask, find_screen
 
@@ -299,15 +300,25 @@ class Measurement:
     background: BackgroundEstimate
     valid: np.ndarray
     sigma_px: float
+    rejected: SpotTable | None = None
+    rejected_reasons: tuple = ()
+
+    def rejected_records(self) -> list[dict]:
+        """The detections that are no spots, each with its `reason`."""
+        if self.rejected is None:
+            return []
+        return [dict(r, reason=str(why)) for r, why in zip(self.rejected.to_records(), self.rejected_reasons)]
 
     def to_dict(self) -> dict:
-        return {"spots": self.spots.to_records(), "screen": self.screen.to_dict(), "gun": self.gun.to_dict(),
+        return {"spots": self.spots.to_records(), "rejected_spots": self.rejected_records(),
+                "screen": self.screen.to_dict(), "gun": self.gun.to_dict(),
                 "sigma_px": float(self.sigma_px),
                 "gain_adu": self.background.gain_adu, "dark_level": self.background.dark_level}
 
 
 def measure_image(image, *, sigma_px: float | None = 2.0, min_snr: float = 5.0, screen=None, gun=None,
-                  center_rc=None, saturation_level=None, block_px: int | None = None, **spot_kw) -> Measurement:
+                  center_rc=None, saturation_level=None, block_px: int | None = None, accept: bool = True,
+                  **spot_kw) -> Measurement:
     """Screen → gun shadow → background → spots, in one call.
 
     Parameters
@@ -327,6 +338,10 @@ def measure_image(image, *, sigma_px: float | None = 2.0, min_snr: float = 5.0, 
     block_px : int, optional, keyword-only
         Background block size; default one 16th of the shorter side, 16–32 px (a
         small frame's diffuse background varies on a shorter scale in pixels).
+    accept : bool, keyword-only
+        Keep only detections that can be diffraction spots (default): as wide as the
+        spots, spot-shaped, standing out of their own surroundings (`spots.accept`).
+        The others go to ``Measurement.rejected`` with their reasons.
 
     Returns
     -------
@@ -388,7 +403,15 @@ def measure_image(image, *, sigma_px: float | None = 2.0, min_snr: float = 5.0, 
         if (valid & ~excl).sum() > 64 else bg
     spots = find_spots(img, sigma_px=s, min_snr=min_snr, mask=valid, background=bg2, center_rc=center_rc,
                        saturation_level=sat, **spot_kw)
-    return Measurement(spots, scr, gsh, bg2, valid, s)
+    if not accept or not len(spots):
+        return Measurement(spots, scr, gsh, bg2, valid, s)
+    # keep what can be a diffraction spot: the spots' own width and shape, standing out of its ring
+    reasons = judge_spots(spots, s)
+    contrast = local_snr(img, valid, bg2.noise, spots.rc, s)
+    reasons[(reasons == "") & (contrast < MIN_LOCAL_SNR)] = REJECT_FLAT  # NaN (too little valid): kept
+    keep = reasons == ""
+    kept, rejected = split_table(spots, keep)
+    return Measurement(kept, scr, gsh, bg2, valid, s, rejected, tuple(reasons[~keep]))
 
 
 def _sigma_from_bright(res, bg, valid, unsaturated, rc, snr, s0, centre_rc, n_max: int = 40):

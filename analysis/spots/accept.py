@@ -1,0 +1,147 @@
+"""Which detections can be diffraction spots: the shape test.
+
+A diffraction spot on the screen is imaged through the same optics as every other spot, so
+its width is the instrument's point-spread width (broadened, never narrowed, by disorder and
+small domains). A detection much narrower than that is no spot: a hot pixel, a cosmic-ray hit,
+a one-pixel compression artefact. One much wider, or one whose fit found no peak at all, is
+background structure (glare, the rim of a shadow, a ripple of the diffuse background).
+
+`judge_spots` returns, for each row of a `SpotTable`, either an empty reason (kept) or the
+reason it is rejected; `split_table` separates the two.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from .fit import FLAG_FIT_FAILED, FLAG_SATURATED
+
+__all__ = ["REJECT_NARROW", "REJECT_WIDE", "REJECT_NO_PEAK", "REJECT_FLAT", "judge_spots", "local_snr",
+           "split_table"]
+
+REJECT_NARROW = "narrower than the spots (hot pixel or cosmic ray)"
+REJECT_WIDE = "wider than a spot (background structure)"
+REJECT_NO_PEAK = "no spot-shaped peak (the fit failed)"
+REJECT_FLAT = "does not stand out of its own surroundings (background structure)"
+
+# Local contrast: the light inside 1.5 σ over a plane fitted to the ring 3–5 σ around it, in
+# units of its noise. A spot at the detection limit (matched-filter SNR 5) gives about 4 ± 1
+# here; a ripple of the diffuse background, as wide as its ring, gives about 0.
+MIN_LOCAL_SNR = 3.0
+
+# A Gaussian spot of σ < 0.7 px puts more than a third of its light into one pixel: it cannot
+# be told from a hot pixel, and no LEED camera is set up to undersample its spots that much.
+MIN_SIGMA_PX = 0.7
+
+
+def judge_spots(table, sigma_px: float, *, narrow: float = 0.5, wide: float = 3.5) -> np.ndarray:
+    """The reason each detection is not a spot ('' when it is one).
+
+    Parameters
+    ----------
+    table : SpotTable
+        Detections with fitted widths (`fwhm_radial_px`, `fwhm_tangential_px`) and flags.
+    sigma_px : float
+        The spots' measured Gaussian σ (px), from the bright isolated spots.
+    narrow, wide : float, keyword-only
+        A detection whose geometric-mean σ is below `narrow` × `sigma_px` (or below
+        `MIN_SIGMA_PX`), or above `wide` × `sigma_px`, is rejected. A real spot's fitted
+        width scatters by some 15 % at SNR 5 and tails widen bright spots; 0.5 and 3.5 leave
+        room for both.
+
+    Returns
+    -------
+    reasons : (K,) ndarray of object (str)
+
+    Examples
+    --------
+    >>> from types import SimpleNamespace
+    >>> t = SimpleNamespace(fwhm_radial_px=np.array([4.7, 0.9, 30.0]), fwhm_tangential_px=np.array([4.7, 0.9, 25.0]),
+    ...                     flags=np.zeros(3, np.uint8), peak_snr=np.array([20.0, 300.0, 6.0]))
+    >>> [r.split(" (")[0] for r in judge_spots(t, 2.0)]
+    ['', 'narrower than the spots', 'wider than a spot']
+    """
+    s = float(sigma_px)
+    if not (math.isfinite(s) and s > 0):
+        raise ValueError(f"sigma_px must be a positive number of pixels, got {sigma_px!r}")
+    fwhm = np.sqrt(np.asarray(table.fwhm_radial_px, float) * np.asarray(table.fwhm_tangential_px, float))
+    sig = fwhm / (2.0 * math.sqrt(2.0 * math.log(2.0)))
+    flags = np.asarray(table.flags)
+    fitted = (flags & FLAG_FIT_FAILED) == 0
+    saturated = (flags & FLAG_SATURATED) != 0  # its core is left out of the fit: the width is the wings'
+    reasons = np.full(len(sig), "", dtype=object)
+    too_narrow = fitted & ~saturated & (sig < max(narrow * s, MIN_SIGMA_PX))
+    reasons[too_narrow] = REJECT_NARROW
+    reasons[fitted & (sig > wide * s)] = REJECT_WIDE
+    reasons[~fitted] = REJECT_NO_PEAK
+    return reasons
+
+
+def local_snr(image: np.ndarray, valid: np.ndarray, noise: np.ndarray, rc: np.ndarray, sigma_px: float) -> np.ndarray:
+    """Significance of each spot against its own surroundings (NaN where too little is valid).
+
+    Parameters
+    ----------
+    image : (M, N) ndarray of float
+        The frame (ADU), background included: only differences to the ring are used.
+    valid : (M, N) ndarray of bool
+        Pixels on the screen, off the gun shadow, finite.
+    noise : (M, N) ndarray of float
+        Noise per pixel (ADU, 1 σ).
+    rc : (K, 2) ndarray of float
+        Spot centres (row, col), px.
+    sigma_px : float
+        The spots' Gaussian σ, px.
+
+    Returns
+    -------
+    (K,) ndarray of float64
+        (sum of image − ring plane inside 1.5 σ) / its standard deviation.
+
+    Examples
+    --------
+    >>> yy, xx = np.mgrid[:41, :41]
+    >>> flat = 100.0 + 0.5 * xx  # a sloping background...
+    >>> spot = flat + 50.0 * np.exp(-((yy - 20) ** 2 + (xx - 20) ** 2) / (2 * 2.0 ** 2))
+    >>> ok, n = np.ones((41, 41), bool), np.full((41, 41), 5.0)
+    >>> bool(local_snr(spot, ok, n, np.array([[20.0, 20.0]]), 2.0)[0] > 20)
+    True
+    >>> bool(abs(local_snr(flat, ok, n, np.array([[20.0, 20.0]]), 2.0)[0]) < 1e-6)  # ...is no spot
+    True
+    """
+    s = float(sigma_px)
+    r_in, r1, r2 = 1.5 * s, 3.0 * s, 5.0 * s
+    h = int(math.ceil(r2)) + 1
+    m, n = image.shape
+    out = np.full(len(rc), np.nan)
+    for i, (r, c) in enumerate(np.asarray(rc, float)):
+        ir, ic = int(round(r)), int(round(c))
+        r0, r_1, c0, c_1 = max(ir - h, 0), min(ir + h + 1, m), max(ic - h, 0), min(ic + h + 1, n)
+        if r0 >= r_1 or c0 >= c_1:
+            continue
+        dy, dx = np.mgrid[r0:r_1, c0:c_1]
+        dy, dx = dy - r, dx - c
+        d = np.hypot(dy, dx)
+        v = valid[r0:r_1, c0:c_1]
+        ap, ring = (d <= r_in) & v, (d >= r1) & (d <= r2) & v
+        if ap.sum() < 3 or ring.sum() < 10:
+            continue
+        win = image[r0:r_1, c0:c_1]
+        nz = float(np.median(noise[r0:r_1, c0:c_1][ap]))
+        design = np.c_[np.ones(int(ring.sum())), dy[ring], dx[ring]]
+        coef = np.linalg.lstsq(design, win[ring], rcond=None)[0]
+        low = win[ring] - design @ coef < 3.0 * nz  # a neighbour's light in the ring is left out
+        if 10 <= low.sum() < low.size:
+            coef = np.linalg.lstsq(design[low], win[ring][low], rcond=None)[0]
+        excess = float(np.sum(win[ap] - (coef[0] + coef[1] * dy[ap] + coef[2] * dx[ap])))
+        k, q = int(ap.sum()), int(ring.sum())
+        out[i] = excess / max(nz * math.sqrt(k * (1.0 + k / q)), 1e-12)
+    return out
+
+
+def split_table(table, keep: np.ndarray):
+    """(kept, rejected) SpotTables: the rows of `table` where `keep` is True, and the others."""
+    keep = np.asarray(keep, bool)
+    return table.select(keep), table.select(~keep)
