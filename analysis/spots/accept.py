@@ -18,7 +18,7 @@ import numpy as np
 
 from .fit import FLAG_FIT_FAILED, FLAG_SATURATED
 
-__all__ = ["REJECT_NARROW", "REJECT_WIDE", "REJECT_NO_PEAK", "REJECT_FLAT", "judge_spots", "local_snr",
+__all__ = ["MIN_SIGMA_PX", "MIN_LOCAL_SNR", "REJECT_NARROW", "REJECT_WIDE", "REJECT_NO_PEAK", "REJECT_FLAT", "judge_spots", "local_snr",
            "split_table"]
 
 REJECT_NARROW = "narrower than the spots (hot pixel or cosmic ray)"

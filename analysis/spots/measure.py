@@ -33,7 +33,7 @@ from .fit import (
     _split_pairs,
     _take,
 )
-from .accept import MIN_LOCAL_SNR, REJECT_FLAT, judge_spots, local_snr, split_table
+from .accept import MIN_LOCAL_SNR, MIN_SIGMA_PX, REJECT_FLAT, judge_spots, local_snr, split_table
 from .gun_shadow import ShadowMask, find_gun_shadow
 from .screen import ScreenMask, disk_mask, find_screen
 
@@ -418,7 +418,8 @@ def _sigma_from_bright(res, bg, valid, unsaturated, rc, snr, s0, centre_rc, n_ma
     """Median Gaussian σ (px) of up to `n_max` bright, isolated spots; None when fewer than 3 fit.
 
     Spots closer than 6 σ₀ to another detection are left out (their fits pull
-    on each other); the window is the one :func:`find_spots` uses for σ₀.
+    on each other), and so are fits narrower than a spot can be (hot pixels); the
+    window is the one :func:`find_spots` uses for σ₀.
     """
     if len(rc) < 3:
         return None
@@ -434,10 +435,13 @@ def _sigma_from_bright(res, bg, valid, unsaturated, rc, snr, s0, centre_rc, n_ma
     fit = _fit_candidates(_Fitter(half), res, np.maximum(bg.noise, 1e-6), ok_fit, valid, rc[pick].astype(float),
                           np.zeros(res.shape, np.float32), centre_rc, bg.gain_adu, s0)
     noise_at = bg.noise[rc[pick, 0], rc[pick, 1]]
-    good = (fit["flags"] == 0) & (fit["amp"] > 10.0 * np.maximum(noise_at, 1e-9))
+    width = np.sqrt(fit["sr"] * fit["st"])
+    # hot pixels and cosmic rays are often the brightest detections of a sparse frame: a fit
+    # narrower than MIN_SIGMA_PX is one of them, never a diffraction spot (spots.accept)
+    good = (fit["flags"] == 0) & (fit["amp"] > 10.0 * np.maximum(noise_at, 1e-9)) & (width >= MIN_SIGMA_PX)
     if good.sum() < 3:
         return None
-    return float(min(max(np.median(np.sqrt(fit["sr"][good] * fit["st"][good])), 0.5), 20.0))
+    return float(min(max(np.median(width[good]), 0.5), 20.0))
 
 
 def _disks(shape, rc, rad) -> np.ndarray:
