@@ -404,3 +404,29 @@ def test_matrix_snapping_is_the_closest_fraction(entries, max_den, tol):
         assert got is None
     else:
         assert got is not None and np.array_equal(got.ravel(), ref)
+
+
+def test_score_terms_add_up_to_every_score():
+    # three unequally populated (2×1) domains bring the population gain, and irrational rivals
+    # with satellites the handicap: every term of the table is exercised
+    spec, structure, _, energy, _, _, kw = CASES["2x1-hex-three-domains"]
+    sub = parse_substrate(spec)
+    im, _ = render(sub, all_domain_matrices(sub, structure), energy=energy, **kw)
+    res = analyze_image(im.image, energy_eV=energy, substrate=spec)
+    models = res.index.models
+    assert models[0].score_terms["populations"] > 0
+    assert any(m.score_terms["irrational"] > 0 and m.score_terms["satellites"] > 0 for m in models)
+    for m in models:
+        assert m.score_terms.total == m.score
+    for f in res.index.substrate_candidates:
+        assert f.score_terms.total == f.score
+    typed = try_model(res, "2 0 / 0 2")
+    assert typed.score_terms.total == typed.score
+    assert typed.score_terms["irrational"] == typed.score_terms["populations"] == 0.0
+
+
+def test_score_formulas_in_the_docs_are_the_code():
+    from analysis.indexing import score
+
+    for table in (score.OVERLAYER_TERMS, score.SUBSTRATE_TERMS):
+        assert score.formula(table) in score.__doc__

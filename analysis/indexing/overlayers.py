@@ -28,7 +28,7 @@ from ..superstructure import (
 from .candidates import (_candidate_vectors, _explained, _lattice_key, _refine_matrix, _snap_matrix,
                          _structure_key)
 from .matching import _screen_xy, _seen
-from .score import _irrational_handicap
+from .score import ScoreBreakdown, irrational_handicap, overlayer_breakdown, population_gain
 
 if TYPE_CHECKING:  # annotations only
     from .substrate import SubstrateFit
@@ -58,6 +58,9 @@ class OverlayerModel:
     explained_by : (K,) ndarray of int
         For every input spot, the domain that explains it (−1 none, −2 substrate).
     score : float
+        The overlayer score (:mod:`.score`), ``score_terms.total``.
+    score_terms : ScoreBreakdown
+        The score's named terms (:data:`.score.OVERLAYER_TERMS`) for this model.
     """
 
     matrix: np.ndarray
@@ -75,6 +78,7 @@ class OverlayerModel:
     total_domains: int = 1
     notes: tuple = ()
     details: dict = field(default_factory=dict)
+    score_terms: ScoreBreakdown | None = None
 
     @property
     def n_domains(self) -> int:
@@ -210,18 +214,19 @@ def _score(ctx: _Context, matrix, *, all_domains: bool, satellites: bool, absent
     e_sat_r = e_r - int((primary[chosen].any(axis=0) & frac & rel).sum())
     u_r = int((frac & rel).sum()) - e_r
     det = abs(float(np.linalg.det(mats[chosen[0]])))
-    bound = (e_r - 0.25 * e_sat_r) - u_r - 1.0 * (len(chosen) - 1) - 0.5 * abs(math.log2(det))
-    if e_r:  # the tighter fit wins a tie: mean squared miss of the explained spots, in tolerances
-        miss = dist[chosen].min(axis=0)[covered & rel] / tol_g
-        bound -= float(np.mean(miss**2))
+    # the tighter fit wins a tie: the miss of each explained spot, in tolerances
+    miss = dist[chosen].min(axis=0)[covered & rel] / tol_g
+    own_li = sat_li = None
     if e_sat and ctx.intensity is not None:  # a layer's own beams outshine its multiple-scattering satellites
         own = primary[chosen].any(axis=0) & frac & rel
         sat_only = covered & rel & ~own
-        if own.any() and sat_only.any():
-            li = np.log(np.clip(ctx.intensity, 1e-9, None))
-            bound += math.tanh(float(np.median(li[own]) - np.median(li[sat_only])))
+        li = np.log(np.clip(ctx.intensity, 1e-9, None))
+        own_li, sat_li = li[own], li[sat_only]
+    terms = overlayer_breakdown(explained=e_r, satellites=e_sat_r, unexplained=u_r, n_domains=len(chosen),
+                                det=det, miss=miss, own_log_i=own_li, satellite_log_i=sat_li)
+    bound = terms.total  # A not counted yet: an upper bound of the score
     sc = {"mats": [mats[i] for i in chosen], "names": [names[i] for i in chosen], "all_mats": mats, "e": e,
-          "u": u, "absent": None, "by": by, "score": float(bound), "bound": float(bound), "total": len(mats),
+          "u": u, "absent": None, "by": by, "score": bound, "bound": bound, "terms": terms, "total": len(mats),
           "satellites": e_sat, "satellites_allowed": bool(satellites)}
     return _with_absent(ctx, sc) if absent else sc
 
@@ -244,7 +249,8 @@ def _with_absent(ctx: _Context, sc: dict) -> dict:
         if seen.any():
             d, _ = ctx.tree.query(pts[seen] @ a_star, distance_upper_bound=ctx.tol_g)
             absent = int(np.sum(~np.isfinite(d)))
-    return {**sc, "absent": absent, "score": float(sc["bound"] - 0.5 * absent)}
+    terms = sc["terms"].replace(absent=absent)
+    return {**sc, "absent": absent, "score": terms.total, "terms": terms}
 
 
 def _describe(ctx: _Context, sc: dict, *, kind_tol: float) -> OverlayerModel:
@@ -270,7 +276,7 @@ def _describe(ctx: _Context, sc: dict, *, kind_tol: float) -> OverlayerModel:
     return OverlayerModel(matrix=m, domains=mats, domain_ops=sc["names"], kind=kind.kind, wood=w.text,
                           wood_note=w.note, coverage=coverage(m), explained=sc["e"], unexplained=sc["u"],
                           absent=sc["absent"], explained_by=sc["by"], score=sc["score"], total_domains=sc["total"],
-                          notes=tuple(notes),
+                          notes=tuple(notes), score_terms=sc["terms"],
                           details={"intensity_ratio": ratio, "kind": kind, "wood_notation": w, "tol_g": ctx.tol_g})
 
 
@@ -421,7 +427,7 @@ def find_overlayers(hk: np.ndarray, integer: np.ndarray, substrate_fit: Substrat
     # branch and bound: finish the scores best bound first, until no bound can enter the list;
     # irrational fits are ranked with the handicap _prefer_simple gives them
     def rank(sc, key="score"):
-        return sc[key] - (_irrational_handicap(sc["e"], len(sc["mats"])) if sc["satellites_allowed"] else 0.0)
+        return sc[key] - (irrational_handicap(sc["e"], len(sc["mats"])) if sc["satellites_allowed"] else 0.0)
 
     scored.sort(key=lambda t: -rank(t[0], "bound"))
     done: list[tuple[dict, float]] = []
@@ -489,12 +495,12 @@ def _prefer_simple(models: list[OverlayerModel]) -> list[OverlayerModel]:
     populated (which a single-domain model cannot produce)."""
     out = []
     for mm in models:
-        s = mm.score
-        if mm.kind == "incommensurate":
-            s -= _irrational_handicap(mm.explained, mm.n_domains)
+        h = irrational_handicap(mm.explained, mm.n_domains) if mm.kind == "incommensurate" else 0.0
         ratio = mm.details.get("intensity_ratio")
         # only where positions cannot tell (rational models, no satellites); repays the domain penalty, no more
+        p = 0.0
         if mm.n_domains > 1 and ratio is not None and mm.kind != "incommensurate":
-            s += mm.n_domains * math.tanh(max(math.log(ratio) - math.log(2.0), 0.0))
-        out.append(dataclasses.replace(mm, score=float(s)))
+            p = population_gain(ratio, mm.n_domains)
+        terms = mm.score_terms.replace(irrational=h, populations=p)
+        out.append(dataclasses.replace(mm, score=terms.total, score_terms=terms))
     return out

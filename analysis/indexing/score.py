@@ -1,21 +1,250 @@
-"""The overlayer score (stated, used for ranking)::
+"""The two scores of the indexing, each a weighted sum of named terms held in one table.
 
-    score = E − U − 0.5·A − 1.0·(D − 1) − 0.5·|log2 det M|  (+ intensity term)
+Overlayer score (:data:`OVERLAYER_TERMS`; ranks the models for the fractional-order spots)::
 
-E: fractional spots explained, U: fractional spots unexplained, A: predicted
-fractional spots absent inside the region where spots could be seen, D: domains
-used. When two models predict the same spots (e.g. p(2×2) and three (2×1)
-domains on a hexagonal net), only intensities can tell them apart: a multi-
-domain model gains when letting each domain have its own population makes
-the intensities of symmetry-equivalent beams agree clearly better (variance
-ratio test); otherwise the simpler model wins and both are listed.
+    score = E − ¼·S − U − (D − 1) − ½·|log₂ det M| − mean((miss/tol)²) + tanh(ΔlogI) − ½·A − H + P
+
+E     fractional spots the model explains; S of them only as multiple-scattering
+      satellites (so a satellite-only spot counts ¾); U fractional spots left
+      unexplained. E, S and U count the spots with trusted centres (not cut by a
+      mask edge, fit converged), or every spot when fewer than two fractional
+      spots are trusted.
+D     domains used; M the matrix of the first.
+miss  distance of each explained trusted spot to the nearest beam of its model
+      (satellites included), in units of the matching tolerance.
+ΔlogI median log intensity of the layer's own beams minus that of its
+      satellite-only spots (0 without satellites or intensities).
+A     predicted fractional beams absent where a spot could have been seen.
+H     irrational handicap 1.5 + 0.05·E′ + 2·(D − 1) of an incommensurate model
+      (E′: every spot explained, trusted or not): four free parameters can absorb a
+      small camera error, and each further irrational domain is a new free orientation.
+P     population gain D·tanh(max(ln r − ln 2, 0)) of a rational multi-domain model,
+      r the variance ratio of the population test (symmetry-equivalent beams agree
+      clearly better when each domain has its own population): it can win back the
+      domain penalty where positions cannot tell two models apart.
+
+The overlayer search ranks candidates by ``score − H`` for continuous fits
+(satellites allowed) and, before A is counted, by the bound without ½·A; a model
+typed by hand has H = P = 0.
+
+Substrate score (:data:`SUBSTRATE_TERMS`; ranks the readings of the substrate)::
+
+    score = 4·C + 2·X + tanh(ΔlogI) − ½·z² − rms/tol
+
+C     completeness: predicted integer beams inside the seen region that were found.
+X     indexable fraction: spots on integer or simple fractional (denominator ≤ 8) positions.
+ΔlogI median log intensity of the integer spots minus the log of the 90th
+      percentile of the others (0 when every spot is integer).
+z     ln(scale / prior) / σ for the screen-size prior on the camera scale (0 without a prior).
+rms   RMS of the fit's pixel residuals (per coordinate); tol the matching tolerance, px.
+
+A total is the terms added one after another in table order (0.0 + w₁·v₁ + w₂·v₂ + …),
+so a breakdown's :attr:`ScoreBreakdown.total` is the score itself, to the last bit.
 """
 
 from __future__ import annotations
 
+import math
+from dataclasses import dataclass
 
-def _irrational_handicap(explained: int, n_domains: int) -> float:
-    """Score handicap of an irrational (incommensurate) model: four free parameters can absorb
-    a small camera error, so it must explain clearly more than a rational cell, and each
-    further irrational domain is a new free orientation."""
+import numpy as np
+
+from ..errors import ParameterError
+
+__all__ = ["Term", "OVERLAYER_TERMS", "SUBSTRATE_TERMS", "ScoreBreakdown", "formula", "overlayer_breakdown",
+           "substrate_breakdown", "irrational_handicap", "population_gain"]
+
+
+@dataclass(frozen=True)
+class Term:
+    """One named term of a score: it adds ``weight · value``.
+
+    Attributes
+    ----------
+    name : str
+        Key of the term in a :class:`ScoreBreakdown`.
+    weight : float
+    symbol : str
+        How the formula writes the value.
+    meaning : str
+        One line.
+    """
+
+    name: str
+    weight: float
+    symbol: str
+    meaning: str
+
+
+OVERLAYER_TERMS = (
+    Term("explained", 1.0, "E", "fractional spots explained (trusted spots)"),
+    Term("satellites", -0.25, "S", "of those, spots explained only as satellites: they count ¾"),
+    Term("unexplained", -1.0, "U", "fractional spots left unexplained (trusted spots)"),
+    Term("extra_domains", -1.0, "(D − 1)", "domains used beyond the first"),
+    Term("cell_size", -0.5, "|log₂ det M|", "the cell's area away from the substrate's, in octaves"),
+    Term("miss", -1.0, "mean((miss/tol)²)", "mean squared miss of the explained spots, in tolerances"),
+    Term("satellite_contrast", 1.0, "tanh(ΔlogI)", "the layer's own beams outshine its satellites"),
+    Term("absent", -0.5, "A", "predicted fractional beams absent where a spot could be seen"),
+    Term("irrational", -1.0, "H", "handicap of an incommensurate model, 1.5 + 0.05·E′ + 2·(D − 1)"),
+    Term("populations", 1.0, "P", "gain of unequal domain populations, D·tanh(max(ln r − ln 2, 0))"),
+)
+
+SUBSTRATE_TERMS = (
+    Term("completeness", 4.0, "C", "predicted integer beams in the seen region that were found"),
+    Term("indexable", 2.0, "X", "spots on integer or simple fractional positions"),
+    Term("brightness", 1.0, "tanh(ΔlogI)", "integer beams outshine the brightest of the other spots"),
+    Term("scale_prior", -0.5, "z²", "camera scale away from the screen-size prior, in its widths"),
+    Term("residual", -1.0, "rms/tol", "RMS pixel residual of the fit, in tolerances"),
+)
+
+_FRACTIONS = {0.25: "¼", 0.5: "½", 0.75: "¾"}
+
+
+def formula(terms: tuple) -> str:
+    """The score as the docstrings write it, from a table of terms.
+
+    Examples
+    --------
+    >>> print(formula(SUBSTRATE_TERMS))
+    score = 4·C + 2·X + tanh(ΔlogI) − ½·z² − rms/tol
+    """
+    out = []
+    for t in terms:
+        w = abs(t.weight)
+        coef = "" if w == 1.0 else f"{_FRACTIONS.get(w, f'{w:g}')}·"
+        sign = "−" if t.weight < 0 else "+"
+        out.append(f"{coef}{t.symbol}" if not out and sign == "+" else f"{sign} {coef}{t.symbol}")
+    return "score = " + " ".join(out)
+
+
+@dataclass(frozen=True, eq=False)
+class ScoreBreakdown:
+    """The values of a score's named terms for one candidate.
+
+    Attributes
+    ----------
+    terms : tuple of Term
+        The table (:data:`OVERLAYER_TERMS` or :data:`SUBSTRATE_TERMS`).
+    values : tuple of float
+        One value per term, in table order (0 for a term that does not apply).
+
+    Examples
+    --------
+    >>> b = ScoreBreakdown.of(OVERLAYER_TERMS, explained=6, unexplained=1, absent=2)
+    >>> print(b.total, b["absent"], b.contributions()["absent"])
+    4.0 2.0 -1.0
+    """
+
+    terms: tuple
+    values: tuple
+
+    @classmethod
+    def of(cls, terms: tuple, **values) -> "ScoreBreakdown":
+        """A breakdown from the values by term name; missing terms are 0."""
+        names = [t.name for t in terms]
+        unknown = sorted(set(values) - set(names))
+        if unknown:
+            raise ParameterError(f"Unknown score terms {unknown}; the table has {names}.")
+        return cls(tuple(terms), tuple(float(values.get(n, 0.0)) for n in names))
+
+    def __getitem__(self, name: str) -> float:
+        for t, v in zip(self.terms, self.values):
+            if t.name == name:
+                return v
+        raise KeyError(name)
+
+    @property
+    def total(self) -> float:
+        """Σ weight · value, added in table order (the score)."""
+        s = 0.0
+        for t, v in zip(self.terms, self.values):
+            s += t.weight * v
+        return float(s)
+
+    def contributions(self) -> dict:
+        """Each term's share of the score (weight · value), by name."""
+        return {t.name: t.weight * v + 0.0 for t, v in zip(self.terms, self.values)}  # + 0.0: no −0
+
+    def replace(self, **values) -> "ScoreBreakdown":
+        """The same breakdown with some values changed."""
+        return ScoreBreakdown.of(self.terms, **{**dict(zip((t.name for t in self.terms), self.values)), **values})
+
+    def to_dict(self) -> dict:
+        """JSON-safe: ``{name: {"value", "weight", "contribution"}}`` in table order, and ``"total"``."""
+        share = self.contributions()
+        d = {t.name: {"value": v, "weight": t.weight, "contribution": share[t.name]}
+             for t, v in zip(self.terms, self.values)}
+        return {"terms": d, "total": self.total}
+
+
+def overlayer_breakdown(*, explained: int, satellites: int, unexplained: int, n_domains: int, det: float,
+                        miss: np.ndarray | None = None, own_log_i: np.ndarray | None = None,
+                        satellite_log_i: np.ndarray | None = None) -> ScoreBreakdown:
+    """The overlayer terms known before the absent beams are counted (A, H and P are 0).
+
+    Parameters
+    ----------
+    explained, satellites, unexplained : int
+        E, S and U over the trusted spots.
+    n_domains : int
+    det : float
+        |det M| of the first domain.
+    miss : (K,) ndarray of float, optional
+        Miss of each explained trusted spot, in tolerances.
+    own_log_i, satellite_log_i : ndarray of float, optional
+        Log intensities of the layer's own beams and of its satellite-only spots.
+
+    Examples
+    --------
+    >>> b = overlayer_breakdown(explained=8, satellites=0, unexplained=0, n_domains=2, det=4.0,
+    ...                         miss=np.array([0.5, 0.5]))
+    >>> print(b.total, b.contributions()["cell_size"])
+    5.75 -1.0
+    """
+    values = dict(explained=explained, satellites=satellites, unexplained=unexplained,
+                  extra_domains=n_domains - 1, cell_size=abs(math.log2(det)))
+    if miss is not None and len(miss):
+        values["miss"] = float(np.mean(miss**2))
+    if own_log_i is not None and satellite_log_i is not None and len(own_log_i) and len(satellite_log_i):
+        values["satellite_contrast"] = math.tanh(float(np.median(own_log_i) - np.median(satellite_log_i)))
+    return ScoreBreakdown.of(OVERLAYER_TERMS, **values)
+
+
+def substrate_breakdown(*, completeness: float, indexable: float, brightness_log_ratio: float,
+                        z: float | None, residual_rms_px: float, tol_px: float) -> ScoreBreakdown:
+    """The substrate terms of one reading (``z`` None: no scale prior).
+
+    Examples
+    --------
+    >>> b = substrate_breakdown(completeness=1.0, indexable=1.0, brightness_log_ratio=0.0, z=1.0,
+    ...                         residual_rms_px=0.5, tol_px=2.5)
+    >>> print(round(b.total, 6))
+    5.3
+    """
+    values = dict(completeness=completeness, indexable=indexable, brightness=math.tanh(brightness_log_ratio),
+                  residual=residual_rms_px / tol_px)
+    if z is not None:
+        values["scale_prior"] = z * z
+    return ScoreBreakdown.of(SUBSTRATE_TERMS, **values)
+
+
+def irrational_handicap(explained: int, n_domains: int) -> float:
+    """H of an irrational (incommensurate) model that explains `explained` spots with `n_domains` domains.
+
+    Examples
+    --------
+    >>> print(irrational_handicap(10, 1), irrational_handicap(10, 2))
+    2.0 4.0
+    """
     return 1.5 + 0.05 * explained + 2.0 * (n_domains - 1)
+
+
+def population_gain(ratio: float, n_domains: int) -> float:
+    """P of a rational multi-domain model whose population test gave the variance ratio `ratio`.
+
+    Examples
+    --------
+    >>> print(population_gain(2.0, 3), round(population_gain(20.0, 2), 4))
+    0.0 1.9604
+    """
+    return n_domains * math.tanh(max(math.log(ratio) - math.log(2.0), 0.0))

@@ -24,6 +24,7 @@ from ..optics import ScreenGeometry, local_jacobian, pixels_to_momentum, wavelen
 from ..superstructure import same_lattice
 from .camera_refit import _refine
 from .matching import _is_rational, _match, _nn_spacing, _screen_xy, _seen
+from .score import ScoreBreakdown, substrate_breakdown
 
 
 _ACCEPTANCE_PRIOR_DEG = 52.0  # screen half-angle, common practice (≈ 50–55°)
@@ -63,9 +64,12 @@ class SubstrateFit:
         ``"hint"`` (lattice constants assumed from the substrate given),
         ``"calibration"`` (camera scale known; lattice constants measured).
     score, confidence : float
-        Ranking score and its share among the candidates (0..1).
+        Ranking score (:mod:`.score`) and its share among the candidates (0..1).
     completeness : float
         Fraction of the predicted integer beams inside the seen region that were found.
+    score_terms : ScoreBreakdown
+        The score's named terms (:data:`.score.SUBSTRATE_TERMS`); ``score_terms.total``
+        is `score`.
     """
 
     geometry: ScreenGeometry
@@ -82,6 +86,7 @@ class SubstrateFit:
     confidence: float = 1.0
     completeness: float = 0.0
     notes: tuple = ()
+    score_terms: ScoreBreakdown | None = None
 
 
 def _scale_prior(screen_radius_px: float | None) -> float | None:
@@ -309,11 +314,9 @@ def _try_substrate(xy, tree, inten, energy_eV, a_star, e, v, center, geometry, l
         d_logi = float(np.median(np.log(inten[integer])) - np.log(np.percentile(inten[~integer], 90)))
     else:
         indexable, d_logi = 1.0, 0.0
-    score = 4.0 * completeness + 2.0 * indexable + math.tanh(d_logi)
-    if prior is not None:
-        z = math.log(geom.scale_px / prior) / prior_sigma
-        score -= 0.5 * z * z
-    score -= float(np.sqrt(np.mean(res**2))) / tol_px  # prefer the tighter fit
+    z = None if prior is None else math.log(geom.scale_px / prior) / prior_sigma
+    terms = substrate_breakdown(completeness=completeness, indexable=indexable, brightness_log_ratio=d_logi, z=z,
+                                residual_rms_px=float(np.sqrt(np.mean(res**2))), tol_px=tol_px)  # tighter fit wins
     rec = Net2D(lattice)
     net = Net2D(np.linalg.inv(lattice).T, label=hint.label)
     jac = local_jacobian(energy_eV, geom)
@@ -326,7 +329,8 @@ def _try_substrate(xy, tree, inten, energy_eV, a_star, e, v, center, geometry, l
                         reciprocal_net=rec, net=net, net_type=classify_net(net, tol=2e-3), a_star_px=a_star_px,
                         hk=hk, integer=integer, residual_px=float(np.sqrt(np.mean(np.sum(res**2, axis=1)))),
                         sigma=sig, scale_source="calibration" if geometry is not None else "hint",
-                        score=float(score), completeness=float(completeness), notes=tuple(notes))
+                        score=terms.total, completeness=float(completeness), notes=tuple(notes),
+                        score_terms=terms)
 
 
 def fractional_indices(xy_px: np.ndarray, energy_eV: float, fit: SubstrateFit) -> np.ndarray:
