@@ -572,8 +572,12 @@ def calibrate_from_reference(xy_px, substrate: Net2D, energy_eV: float, *, cente
         if len(pairs) < 3:
             break
         sp, bm = np.array(pairs).T
+        g_used = np.hypot(kk[bm, 0], kk[bm, 1])
+        # spots on one ring (one |g|, one scattering angle) fix r(θ) at that angle only: the
+        # distortion would trade freely against the scale, so it stays at its start value
+        one_ring = float(g_used.max()) < 1.1 * float(g_used.min())
         nfix = set(fix) | ({"ellipticity"} if len(pairs) < 8 else set()) | \
-            ({"distortion"} if len(pairs) < 6 else set())
+            ({"distortion"} if len(pairs) < 6 or one_ring else set())
         fit = fit_geometry(p[sp], kk[bm], energy_eV, initial=dataclasses.replace(geom, acceptance_deg=acceptance_deg),
                            fix=tuple(nfix), relativistic=relativistic, acceptance_deg=acceptance_deg)
         geom = dataclasses.replace(fit.geometry, acceptance_deg=90.0)

@@ -18,8 +18,8 @@ from .calibration import Calibration, calibrate_from_reference
 from .errors import FitError, ImageError, ParameterError
 from .indexing import IndexResult, index_pattern, model_from_matrix
 from .io import LoadedImage, load_image
-from .nets import Net2D, parse_substrate
-from .optics import ScreenGeometry
+from .nets import Net2D, parse_substrate, reciprocal
+from .optics import ScreenGeometry, local_jacobian
 from .spots import FLAG_FIT_FAILED, FLAG_NEAR_EDGE, Measurement, measure_image
 from .superstructure import parse_matrix, parse_wood
 from .timelimit import check_time
@@ -232,6 +232,7 @@ def analyze_image(image, *, energy_eV: float, substrate: str | Net2D, reference=
         raise FitError(f"Only {len(xy)} spots found (signal-to-noise ≥ {min_snr:g}); an ordered surface shows "
                        f"at least the first-order substrate spots. Check the energy, exposure and screen.")
     geometry, source, ref_geom, warnings = None, "none", None, []
+    azimuth = ref_centre = None
     if calibration is not None:
         geometry = calibration.geometry if isinstance(calibration, Calibration) else calibration
         if not isinstance(geometry, ScreenGeometry):
@@ -247,15 +248,29 @@ def analyze_image(image, *, energy_eV: float, substrate: str | Net2D, reference=
             raise ImageError(f"The reference image is {ref_img.shape[1]}×{ref_img.shape[0]} px but the image is "
                              f"{img.shape[1]}×{img.shape[0]} px; use one from the same camera.")
         ref_meas = measure_image(ref_img, sigma_px=sigma_px, min_snr=min_snr)
-        gfit, _ = calibrate_from_reference(ref_meas.spots.xy, hint, re_)
-        geometry = ref_geom = gfit.geometry
-        source = "reference"
+        try:
+            gfit, _ = calibrate_from_reference(ref_meas.spots.xy, hint, re_)
+        except FitError as err:  # a reference that cannot be used never stops the analysis
+            warnings.append(f"The reference image was not used: {err}")
+        else:
+            ref_geom = gfit.geometry
+            # the reference says where the substrate's beams are: the analysed image keeps that azimuth
+            azimuth = reciprocal(hint).vectors @ local_jacobian(e, ref_geom).T
+            if "distortion" in gfit.free:
+                geometry, source = ref_geom, "reference"
+            else:
+                warnings.append("The reference image shows one ring of substrate beams: it fixes the centre and "
+                                "the azimuth of the net; the camera scale and distortion come from this image, "
+                                "and the lattice constants from the substrate given.")
+                ref_centre = ref_geom.center_px
         timings["reference"] = time.perf_counter() - t0
     say(0.5, "fitting the substrate net and searching overlayers")
     screen = meas.screen
     center_guess = None
     if meas.gun.center_rc is not None:
         center_guess = (float(meas.gun.center_rc[1]), float(meas.gun.center_rc[0]))
+    if ref_centre is not None:
+        center_guess = tuple(float(v) for v in ref_centre)
     # the screen's radius sets a scale prior; when no screen edge was found, the image frame's
     # half-size stands in for it with a wider prior (screens usually fill most of the frame)
     framed = screen.source == "frame"
@@ -263,7 +278,7 @@ def analyze_image(image, *, energy_eV: float, substrate: str | Net2D, reference=
                         center_guess=center_guess,
                         screen_radius_px=(0.45 * min(img.shape) if framed else screen.radius_px),
                         screen_prior_sigma=0.3 if framed else 0.15,
-                        valid_mask=meas.valid, tol_px=tol_px, reliable=trusted)
+                        valid_mask=meas.valid, tol_px=tol_px, reliable=trusted, azimuth_a_star_px=azimuth)
     timings["total"] = time.perf_counter() - t0
     if idx.substrate.confidence < 0.8:
         warnings.append(f"The substrate reading is uncertain ({idx.substrate.confidence:.0%}); "
