@@ -34,6 +34,7 @@ __all__ = [
     "rotate_net",
     "reduce_net",
     "classify_net",
+    "symmetrized",
     "conventional_cell",
     "point_group",
     "point_group_name",
@@ -419,6 +420,34 @@ def _point_group(net: Net2D, *, tol: float = 2e-4) -> list[SymmetryOp]:
         ops.append(SymmetryOp(w_in, q, kind, float(ang)))
     ops.sort(key=lambda s: (s.kind != "rotation", round(s.angle_deg, 6)))
     return ops
+
+
+def symmetrized(net: Net2D, *, tol: float = 2e-3) -> Net2D:
+    """The net of full symmetry nearest to a measured one, in the same basis.
+
+    A net measured from an image misses its type's exact metric by the measurement
+    error (a square net at 89.97°, |b|/|a| = 1.0004). The metric G = V Vᵀ is averaged
+    over the point group that holds within `tol` (W G Wᵀ for each op W), so the result
+    has that group exactly; a1 keeps its direction and the basis its handedness.
+    Structure answers that need exact symmetry (Wood notation, domains) use it.
+
+    Examples
+    --------
+    >>> n = symmetrized(Net2D.from_parameters(2.556, 2.557, 89.97))
+    >>> round(n.a, 4), round(n.b, 4), round(n.gamma_deg, 6), classify_net(n, tol=1e-9)
+    (2.5565, 2.5565, 90.0, 'square')
+    """
+    v = np.asarray(net.vectors, dtype=np.float64)
+    ops = point_group(net, tol=tol)
+    g = v @ v.T
+    g = sum(op.matrix @ g @ op.matrix.T for op in ops) / len(ops)
+    a, b = math.sqrt(g[0, 0]), math.sqrt(g[1, 1])
+    cos_g = float(np.clip(g[0, 1] / (a * b), -1.0, 1.0))
+    u = v[0] / np.hypot(*v[0])
+    side = 1.0 if (v[0, 0] * v[1, 1] - v[0, 1] * v[1, 0]) >= 0 else -1.0
+    perp = side * np.array([-u[1], u[0]])
+    out = np.array([a * u, b * (cos_g * u + math.sqrt(max(1.0 - cos_g * cos_g, 0.0)) * perp)])
+    return Net2D(out, label=net.label)
 
 
 def point_group_name(net: Net2D, *, tol: float = 2e-4) -> str:
