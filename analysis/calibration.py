@@ -10,7 +10,8 @@
 * :func:`calibrate_from_reference` — the same from a clean, known substrate:
   it indexes the reference spots itself (integer beams only), then fits.
 * :class:`Calibration` — a fitted geometry with its uncertainties, saved to and
-  loaded from schema-versioned JSON and reused for later images.
+  loaded from schema-versioned JSON and reused for later images (it lives in
+  :mod:`analysis.calibration_file`; this module re-exports it).
 
 Positions at this module's interface are (x, y) pixels (x right, y down, the
 centre of the top-left pixel at (0, 0)), as in :mod:`analysis.optics`.
@@ -20,21 +21,18 @@ Momenta are crystallographic, Å⁻¹ without 2π.
 from __future__ import annotations
 
 import dataclasses
-import datetime as _dt
-import json
 import math
-import os
 from dataclasses import dataclass, field
-from pathlib import Path
 
 import numpy as np
 from scipy.optimize import least_squares
 from scipy.spatial import cKDTree
 
+from .calibration_file import CALIBRATION_SCHEMA, CALIBRATION_VERSION, Calibration
 from .errors import FitError, ParameterError
 from .lattice import lattice_points, screen_g_max
 from .nets import Net2D, reciprocal
-from .optics import H2_OVER_2ME_EV_A2, ScreenGeometry, momentum_to_pixels, wavelength_A
+from .optics import ScreenGeometry, momentum_to_pixels, wavelength_A
 
 __all__ = [
     "CenterEstimate",
@@ -48,8 +46,6 @@ __all__ = [
     "GEOMETRY_PARAMETERS",
 ]
 
-CALIBRATION_SCHEMA = "recinet.calibration"
-CALIBRATION_VERSION = 1
 GEOMETRY_PARAMETERS = ("center_x_px", "center_y_px", "scale_px", "distortion", "rotation_deg", "ellipticity",
                        "ellipse_deg")
 
@@ -592,143 +588,3 @@ def calibrate_from_reference(xy_px, substrate: Net2D, energy_eV: float, *, cente
         raise FitError(f"The reference spots do not index as {substrate!r} at {energy_eV} eV: {n_ok} of {len(p)} "
                        f"indexed, RMS {fit.rms_px:.2g} px; check the substrate and energy.")
     return fit, assign
-
-
-# --------------------------------------------------------------------------- calibration file
-
-
-@dataclass(frozen=True, eq=False)
-class Calibration:
-    """A fitted screen geometry, reusable for later images from the same optics.
-
-    Attributes
-    ----------
-    geometry : ScreenGeometry
-    uncertainty : dict of str to float
-        1-σ of each geometry field (see :data:`GEOMETRY_PARAMETERS`).
-    energies_eV : tuple of float
-        Energies of the calibration spots.
-    n_spots : int
-    rms_px : float
-        RMS residual of the fit per coordinate.
-    image_shape : (rows, cols) or None
-    substrate : str
-        Label of the reference surface, if any.
-    note : str
-    created : str
-        ISO 8601 UTC time stamp.
-    """
-
-    geometry: ScreenGeometry
-    uncertainty: dict = field(default_factory=dict)
-    energies_eV: tuple = ()
-    n_spots: int = 0
-    rms_px: float = float("nan")
-    image_shape: tuple | None = None
-    substrate: str = ""
-    note: str = ""
-    created: str = ""
-
-    @classmethod
-    def from_fit(cls, fit: GeometryFit, **meta) -> "Calibration":
-        """Calibration from a :class:`GeometryFit` (extra fields as keywords)."""
-        meta.setdefault("created", _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0).isoformat())
-        return cls(geometry=fit.geometry, uncertainty=dict(fit.uncertainty), energies_eV=tuple(fit.energies_eV),
-                   n_spots=fit.n_spots, rms_px=float(fit.rms_px), **meta)
-
-    @property
-    def scale_px_sqrt_eV(self) -> float:
-        """Image distance per unit parallel momentum times √E near the centre:
-        r ≈ this × |k| / √E (px · √eV · Å), since λ = √(h²/2mₑe / E)."""
-        return float(self.geometry.scale_px * math.sqrt(H2_OVER_2ME_EV_A2))
-
-    def pixels_per_inv_A(self, energy_eV: float) -> float:
-        """Image pixels per Å⁻¹ (no 2π) near the centre at `energy_eV`."""
-        return float(self.geometry.scale_px * wavelength_A(energy_eV))
-
-    def to_dict(self) -> dict:
-        def num(v):
-            return None if v is None or (isinstance(v, float) and not math.isfinite(v)) else float(v)
-
-        return {
-            "schema": CALIBRATION_SCHEMA,
-            "version": CALIBRATION_VERSION,
-            "geometry": self.geometry.to_dict(),
-            "uncertainty": {k: num(v) for k, v in self.uncertainty.items()},
-            "energies_eV": [float(v) for v in self.energies_eV],
-            "n_spots": int(self.n_spots),
-            "rms_px": num(self.rms_px),
-            "image_shape": None if self.image_shape is None else [int(v) for v in self.image_shape],
-            "substrate": self.substrate,
-            "note": self.note,
-            "created": self.created,
-            "pixel_convention": "x right, y down, centre of the top-left pixel at (0, 0)",
-            "momentum_convention": "crystallographic, 1/Å without 2π",
-        }
-
-    @classmethod
-    def from_dict(cls, d, *, source: str = "calibration") -> "Calibration":
-        """Inverse of :meth:`to_dict`; raises ParameterError naming what is wrong."""
-        if not isinstance(d, dict):
-            raise ParameterError(f"{source}: expected a JSON object, got {type(d).__name__}.")
-        if d.get("schema") != CALIBRATION_SCHEMA:
-            raise ParameterError(f"{source}: not a recinet calibration (schema {d.get('schema')!r}, "
-                                 f"expected {CALIBRATION_SCHEMA!r}).")
-        ver = d.get("version")
-        if not isinstance(ver, int) or ver < 1:
-            raise ParameterError(f"{source}: bad calibration version {ver!r}.")
-        if ver > CALIBRATION_VERSION:
-            raise ParameterError(f"{source}: calibration version {ver} is newer than this program "
-                                 f"(reads up to {CALIBRATION_VERSION}); update recinet.")
-        if "geometry" not in d or not isinstance(d["geometry"], dict):
-            raise ParameterError(f"{source}: the 'geometry' object is missing.")
-        g = d["geometry"]
-        missing = {"center_x_px", "center_y_px", "scale_px"} - set(g)
-        if missing:
-            raise ParameterError(f"{source}: geometry lacks {sorted(missing)}.")
-        try:
-            geom = ScreenGeometry.from_dict(g)
-        except (TypeError, ValueError) as exc:
-            raise ParameterError(f"{source}: invalid geometry ({exc}).") from None
-        try:
-            unc = {str(k): (float("nan") if v is None else float(v)) for k, v in (d.get("uncertainty") or {}).items()}
-            shape = d.get("image_shape")
-            return cls(geometry=geom, uncertainty=unc,
-                       energies_eV=tuple(float(v) for v in d.get("energies_eV", ())),
-                       n_spots=int(d.get("n_spots", 0)),
-                       rms_px=float("nan") if d.get("rms_px") is None else float(d["rms_px"]),
-                       image_shape=None if shape is None else tuple(int(v) for v in shape),
-                       substrate=str(d.get("substrate", "")), note=str(d.get("note", "")),
-                       created=str(d.get("created", "")))
-        except (TypeError, ValueError) as exc:
-            raise ParameterError(f"{source}: invalid calibration field ({exc}).") from None
-
-    def save_json(self, path) -> Path:
-        """Write the calibration as indented JSON; returns the path."""
-        p = Path(path)
-        text = json.dumps(self.to_dict(), indent=2, allow_nan=False)
-        tmp = p.with_name(p.name + ".tmp")
-        tmp.write_text(text + "\n", encoding="utf-8")
-        os.replace(tmp, p)
-        return p
-
-    @classmethod
-    def load_json(cls, path) -> "Calibration":
-        """Read a file written by :meth:`save_json`.
-
-        Raises
-        ------
-        ParameterError
-            Missing file, not JSON, another schema, a newer version, or bad fields.
-        """
-        p = Path(path)
-        if not p.is_file():
-            raise ParameterError(f"{p.name}: calibration file not found ({p}).")
-        if p.stat().st_size > 10_000_000:
-            raise ParameterError(f"{p.name}: too large for a calibration file.")
-        try:
-            d = json.loads(p.read_text(encoding="utf-8"))
-        except (UnicodeDecodeError, json.JSONDecodeError) as exc:
-            raise ParameterError(f"{p.name}: not a JSON calibration file ({exc.__class__.__name__}: "
-                                 f"{str(exc).splitlines()[0]}).") from None
-        return cls.from_dict(d, source=p.name)
