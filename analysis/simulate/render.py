@@ -143,16 +143,20 @@ def default_intensities(pattern: Pattern, rng: np.random.Generator, *, photons: 
     return base * factor * np.where(pattern.integer, 1.0, overlayer_factor)
 
 
-def _spots_image(xy: np.ndarray, sigma: np.ndarray, photons: np.ndarray, trans: np.ndarray
-                 ) -> tuple[np.ndarray, np.ndarray]:
-    """Expected photons per pixel from spots (:data:`analysis.profiles.GAUSSIAN`, round)
-    integrated exactly over pixels.
+def _spots_image(xy: np.ndarray, sigma: np.ndarray, photons: np.ndarray, trans: np.ndarray, *,
+                 shape_fn=GAUSSIAN) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Expected photons per pixel from spots integrated over pixels.
 
     Parameters
     ----------
     xy : (K, 2) spot centres (x, y) px; sigma, photons : (K,)
     trans : (rows, cols) ndarray of float64
-        Screen × gun transmission in [0, 1], applied to the spots.
+        Transmission in [0, 1] applied to the spots (screen × gun, and whatever
+        else darkens the screen).
+    shape_fn : object with ``pixel_integrals(rc, sigma, amount, half)``, keyword-only
+        The spot shape; default :data:`analysis.profiles.GAUSSIAN` (round, exact
+        error-function integrals). An optional ``half_px(sigma_max)`` gives the
+        window half-width (default 6 σ).
 
     Returns
     -------
@@ -160,26 +164,31 @@ def _spots_image(xy: np.ndarray, sigma: np.ndarray, photons: np.ndarray, trans: 
         Spot photons per pixel after the transmission.
     seen : (K,) ndarray of float64
         Photons of each spot that land on the image and pass the transmission.
+    peak : (K,) ndarray of float64
+        Brightest pixel of each spot alone (photons), after the transmission.
     """
     rows, cols = trans.shape
     out = np.zeros(rows * cols)
     seen = np.zeros(len(xy))
+    peak = np.zeros(len(xy))
     if len(xy) == 0:
-        return out.reshape(rows, cols), seen
+        return out.reshape(rows, cols), seen, peak
     t_flat = trans.ravel()
-    half = int(math.ceil(6.0 * float(sigma.max())))
+    half_fn = getattr(shape_fn, "half_px", None)
+    half = int(math.ceil(6.0 * float(sigma.max()))) if half_fn is None else int(half_fn(float(sigma.max())))
     step = max(1, 2_000_000 // (2 * half + 1) ** 2)
     for s in range(0, len(xy), step):  # chunks keep the (K, w, w) block small
         sl = slice(s, s + step)
-        ri, ci, val = GAUSSIAN.pixel_integrals(xy[sl, ::-1], sigma[sl], photons[sl], half)
+        ri, ci, val = shape_fn.pixel_integrals(xy[sl, ::-1], sigma[sl], photons[sl], half)
         r = np.broadcast_to(ri[:, :, None], val.shape)
         c = np.broadcast_to(ci[:, None, :], val.shape)
         ok = (r >= 0) & (r < rows) & (c >= 0) & (c < cols)
         flat = np.where(ok, r * cols + c, 0)
         val = np.where(ok, val * t_flat[flat], 0.0)
         seen[sl] = val.sum(axis=(1, 2))
+        peak[sl] = val.max(axis=(1, 2))
         out += np.bincount(flat.ravel(), weights=val.ravel(), minlength=rows * cols)
-    return out.reshape(rows, cols), seen
+    return out.reshape(rows, cols), seen, peak
 
 
 def _per_spot(value, k: int, name: str) -> np.ndarray:
@@ -279,6 +288,49 @@ def render_image(pattern: Pattern, *, shape=(1024, 1024), rng: np.random.Generat
         raise ParameterError(f"`rng` must be a numpy.random.Generator, got {type(rng).__name__}.")
     if bit_depth not in (8, 16):
         raise ParameterError(f"`bit_depth` must be 8 or 16, got {bit_depth!r}.")
+    if not (read_noise_e >= 0 and math.isfinite(read_noise_e)):
+        raise ParameterError(f"`read_noise_e` must be ≥ 0, got {read_noise_e}.")
+    scene = _scene(pattern, shape=shape, rng=rng, spot_sigma_px=spot_sigma_px, intensities=intensities,
+                   screen_radius_px=screen_radius_px, screen_center_px=screen_center_px, gun=gun,
+                   background_photons=background_photons, background_gradient=background_gradient)
+    gain, offset = _camera_levels(bit_depth, gain, offset_adu)
+    image, gain = _expose(scene.mu, rng, gain=gain, offset=offset, read_noise_e=read_noise_e, bit_depth=bit_depth,
+                          saturate=saturate, noise=noise)
+    camera = {"bit_depth": bit_depth, "gain_adu_per_e": gain, "offset_adu": offset,
+              "read_noise_e": read_noise_e, "noise": bool(noise), "shape": list(scene.mu.shape)}
+    return SyntheticImage(image=image, truth=_truth(pattern, scene, image, camera), masks=scene.masks)
+
+
+@dataclass(frozen=True, eq=False)
+class _Scene:
+    """The light on the camera before the sensor: what :func:`render_image` exposes.
+
+    mu : (rows, cols) expected photons per pixel; trans : (rows, cols) transmission
+    applied to it; sigma, photons, seen, peak : (K,) per spot (see :func:`_spots_image`);
+    masks : {"screen", "gun"}; the screen centre (x, y) and radius, the gun, and the
+    arguments of :func:`_background`.
+    """
+
+    mu: np.ndarray
+    trans: np.ndarray
+    sigma: np.ndarray
+    photons: np.ndarray
+    seen: np.ndarray
+    peak: np.ndarray
+    masks: dict
+    screen_center: tuple
+    screen_radius: float
+    gun: GunShadow | None
+    bg_args: tuple
+
+
+def _scene(pattern: Pattern, *, shape, rng, spot_sigma_px, intensities, screen_radius_px, screen_center_px, gun,
+           background_photons, background_gradient, transmission=None, shape_fn=GAUSSIAN) -> _Scene:
+    """Checked arguments → expected photons per pixel: (spots + background) × transmission.
+
+    `transmission` (rows, cols), optional, further darkens the screen (dust, channel
+    plate); `shape_fn` draws the spots (see :func:`_spots_image`).
+    """
     try:
         rows, cols = (int(v) for v in shape)
     except (TypeError, ValueError):
@@ -293,9 +345,8 @@ def render_image(pattern: Pattern, *, shape=(1024, 1024), rng: np.random.Generat
     photons = default_intensities(pattern, rng) if intensities is None else np.asarray(intensities, dtype=np.float64)
     if photons.shape != (k,) or not np.all(np.isfinite(photons) & (photons >= 0)):
         raise ParameterError(f"`intensities` must be {k} non-negative photon counts, got shape {photons.shape}.")
-    for name, val in (("background_photons", background_photons), ("read_noise_e", read_noise_e)):
-        if not (val >= 0 and math.isfinite(val)):
-            raise ParameterError(f"`{name}` must be ≥ 0, got {val}.")
+    if not (background_photons >= 0 and math.isfinite(background_photons)):
+        raise ParameterError(f"`background_photons` must be ≥ 0, got {background_photons}.")
     geom = pattern.geometry
     centre = geom.center_px
     s_centre = centre if screen_center_px is None else (float(screen_center_px[0]), float(screen_center_px[1]))
@@ -305,10 +356,6 @@ def render_image(pattern: Pattern, *, shape=(1024, 1024), rng: np.random.Generat
     gun = GunShadow.scaled(s_radius) if gun is _DEFAULT else gun
     if gun is not None and not isinstance(gun, GunShadow):
         raise ParameterError(f"`gun` must be a GunShadow or None, got {type(gun).__name__}.")
-    gain = (4.0 if bit_depth == 16 else 0.25) if gain is None else float(gain)
-    offset = (100.0 if bit_depth == 16 else 4.0) if offset_adu is None else float(offset_adu)
-    if not (gain > 0 and math.isfinite(gain)) or not (offset >= 0 and math.isfinite(offset)):
-        raise ParameterError(f"`gain` must be > 0 and `offset_adu` ≥ 0, got {gain} and {offset}.")
 
     y = np.arange(rows, dtype=np.float64)[:, None]
     x = np.arange(cols, dtype=np.float64)[None, :]
@@ -318,10 +365,29 @@ def render_image(pattern: Pattern, *, shape=(1024, 1024), rng: np.random.Generat
     if gun is not None:
         gun_sd = gun.signed_distance(x, y, centre)
         trans = trans * np.clip(gun_sd + 0.5, 0.0, 1.0)
+    if transmission is not None:
+        trans = trans * transmission
     bg_args = (centre, s_radius, background_photons, background_gradient)
     bg = _background(x, y, *bg_args)
-    spots_mu, seen = _spots_image(pattern.xy_px, sigma, photons, trans)
+    spots_mu, seen, peak = _spots_image(pattern.xy_px, sigma, photons, trans, shape_fn=shape_fn)
     mu = spots_mu + bg * trans
+    masks = {"screen": screen_sd > 0, "gun": (gun_sd < 0) if gun_sd is not None else np.zeros((rows, cols), bool)}
+    return _Scene(mu=mu, trans=trans, sigma=sigma, photons=photons, seen=seen, peak=peak, masks=masks,
+                  screen_center=s_centre, screen_radius=s_radius, gun=gun, bg_args=bg_args)
+
+
+def _camera_levels(bit_depth: int, gain, offset_adu) -> tuple[float, float]:
+    """Gain (ADU per electron) and dark offset (ADU), defaults by bit depth, checked."""
+    gain = (4.0 if bit_depth == 16 else 0.25) if gain is None else float(gain)
+    offset = (100.0 if bit_depth == 16 else 4.0) if offset_adu is None else float(offset_adu)
+    if not (gain > 0 and math.isfinite(gain)) or not (offset >= 0 and math.isfinite(offset)):
+        raise ParameterError(f"`gain` must be > 0 and `offset_adu` ≥ 0, got {gain} and {offset}.")
+    return gain, offset
+
+
+def _expose(mu: np.ndarray, rng, *, gain: float, offset: float, read_noise_e: float, bit_depth: int,
+            saturate: bool, noise: bool) -> tuple[np.ndarray, float]:
+    """Shot and read noise, gain, offset, rounding and clipping: (image, gain used)."""
     full = float(2**bit_depth - 1)
     if not saturate:
         gain = min(gain, 0.98 * (full - offset) / max(float(mu.max()) + 5 * read_noise_e + 1e-9, 1e-9))
@@ -332,22 +398,27 @@ def render_image(pattern: Pattern, *, shape=(1024, 1024), rng: np.random.Generat
     else:
         electrons = mu
     adu = np.clip(np.rint(offset + gain * electrons), 0.0, full)
-    image = adu.astype(np.uint8 if bit_depth == 8 else np.uint16)
+    return adu.astype(np.uint8 if bit_depth == 8 else np.uint16), gain
 
-    masks = {"screen": screen_sd > 0, "gun": (gun_sd < 0) if gun_sd is not None else np.zeros((rows, cols), bool)}
-    spots = _spot_truth(pattern, sigma, photons, seen, s_centre, s_radius, gun, image, full,
-                        _background(pattern.xy_px[:, 0], pattern.xy_px[:, 1], *bg_args))
+
+def _truth(pattern: Pattern, scene: _Scene, image: np.ndarray, camera: dict) -> dict:
+    """The JSON-safe truth of a frame (see :func:`render_image`)."""
+    geom = pattern.geometry
+    centre = geom.center_px
+    full = float(2 ** camera["bit_depth"] - 1)
+    bg_at = _background(pattern.xy_px[:, 0], pattern.xy_px[:, 1], *scene.bg_args)
+    spots = _spot_truth(pattern, scene.sigma, scene.photons, scene.seen, scene.screen_center, scene.screen_radius,
+                        scene.gun, image, full, bg_at)
     truth = {
         "center_px": [centre[0], centre[1]],
         "energy_eV": pattern.energy_eV,
         "geometry": geom.to_dict(),
         "azimuth_deg": pattern.azimuth_deg,
         "k_in_par_invA": pattern.k_in_par,
-        "screen": {"center_px": list(s_centre), "radius_px": s_radius},
-        "gun": None if gun is None else gun.to_dict(centre),
-        "camera": {"bit_depth": bit_depth, "gain_adu_per_e": gain, "offset_adu": offset,
-                   "read_noise_e": read_noise_e, "noise": bool(noise), "shape": [rows, cols]},
-        "background": {"photons_per_px_at_center": background_photons, "gradient": list(background_gradient)},
+        "screen": {"center_px": list(scene.screen_center), "radius_px": scene.screen_radius},
+        "gun": None if scene.gun is None else scene.gun.to_dict(centre),
+        "camera": camera,
+        "background": {"photons_per_px_at_center": scene.bg_args[2], "gradient": list(scene.bg_args[3])},
         "substrate_vectors_A": pattern.substrate.vectors,
         "substrate_label": pattern.substrate.label,
         "overlayer_matrices": pattern.overlayers,
@@ -355,7 +426,7 @@ def render_image(pattern: Pattern, *, shape=(1024, 1024), rng: np.random.Generat
         "pixel_convention": "x right, y down, centre of the top-left pixel at (0, 0)",
         "spots": spots,
     }
-    return SyntheticImage(image=image, truth=json_safe(truth), masks=masks)
+    return json_safe(truth)
 
 
 def _spot_truth(pattern, sigma, photons, seen, s_centre, s_radius, gun, image, full, bg_at) -> list[dict]:
