@@ -27,20 +27,24 @@ Schema (``"schema": "recinet.analysis"``, ``"version": 1``), keys kept stable:
 * ``candidates``: the ranked models (same fields and their ``score``).
 * ``geometry``: the fitted camera model; ``predicted``: pixel positions of
   the substrate beams and of each domain's beams, for overlays.
+
+This module formats: every number comes with the result objects (the indexing and
+pipeline layers compute them), none is computed here.
 """
 
 from __future__ import annotations
 
 import math
+from typing import TYPE_CHECKING
+
 import numpy as np
 
 from .errors import ParameterError
 from .jsonsafe import json_safe
-from .indexing import OverlayerModel, model_indices
-from .nets import Net2D, classify_net, reciprocal
-from .lattice import lattice_points, screen_g_max
-from .optics import momentum_to_pixels
-from .superstructure import beam_label, format_matrix, overlayer_net
+from .superstructure import beam_label, format_matrix
+
+if TYPE_CHECKING:  # annotations only
+    from .indexing import OverlayerModel, PredictedBeams
 
 __all__ = ["SCHEMA", "VERSION", "result_to_dict", "model_to_dict", "check_result_dict", "predicted_spots"]
 
@@ -55,48 +59,32 @@ def _f(x) -> float | None:
     return x if math.isfinite(x) else None
 
 
-def predicted_spots(fit, model: OverlayerModel | None, energy_eV: float) -> dict:
+def predicted_spots(beams: PredictedBeams) -> dict:
     """Pixel positions of the substrate beams and of each domain's fractional beams on the screen.
+
+    Parameters
+    ----------
+    beams : PredictedBeams
+        From :attr:`analysis.indexing.IndexResult.predicted` or
+        :func:`analysis.indexing.predicted_beams`.
 
     Returns
     -------
     dict
         ``{"substrate": [{"x", "y", "h", "k"}...], "domains": [[...], ...]}``.
     """
-    lat = fit.reciprocal_net.vectors
-    geom = fit.geometry
-    # a hair beyond the screen's edge: the camera model's own visibility test decides below
-    g_max = screen_g_max(energy_eV, geom.acceptance_deg) + 1e-9
 
-    def points(b_star_hk):
-        try:
-            return lattice_points(b_star_hk, g_max, metric=lat, max_points=200_000)
-        except ParameterError:  # a net far finer than the screen: nothing useful to draw
-            return np.zeros((0, 2))
+    def rows(hk, xy):
+        return [{"x": float(p[0]), "y": float(p[1]), "h": float(q[0]), "k": float(q[1])} for p, q in zip(xy, hk)]
 
-    def rows(hk, fractional_only):
-        if fractional_only:
-            hk = hk[np.any(np.abs(hk - np.rint(hk)) > 1e-6, axis=1)]
-        xy, vis = momentum_to_pixels(hk @ lat, energy_eV, geom)
-        ok = vis & np.all(np.isfinite(xy), axis=1)
-        return [{"x": float(p[0]), "y": float(p[1]), "h": float(q[0]), "k": float(q[1])}
-                for p, q in zip(xy[ok], hk[ok])]
-
-    out = {"substrate": rows(points(np.eye(2)), False), "domains": []}
-    if model is not None and model.kind != "none":
-        for m in model.domains:
-            out["domains"].append(rows(points(np.linalg.inv(np.asarray(m, float)).T), True))
-    return out
+    return {"substrate": rows(beams.substrate_hk, beams.substrate_xy),
+            "domains": [rows(hk, xy) for hk, xy in beams.domains]}
 
 
-def model_to_dict(model: OverlayerModel, substrate: Net2D) -> dict:
+def model_to_dict(model: OverlayerModel) -> dict:
     """One overlayer model as a JSON-safe dict (see the module docstring)."""
     m = np.asarray(model.matrix, dtype=np.float64)
-    over = overlayer_net(substrate, m)
-    a1 = substrate.vectors[0]
-    b1 = over.vectors[0]
-    ang = math.degrees(math.atan2(b1[1], b1[0]) - math.atan2(a1[1], a1[0]))
-    ang = (ang + 180.0) % 360.0 - 180.0
+    over = model.net
     wn = model.details.get("wood_notation")
     kind = model.details.get("kind")
     d = {
@@ -111,9 +99,8 @@ def model_to_dict(model: OverlayerModel, substrate: Net2D) -> dict:
         "wood_note": model.wood_note or ("" if model.wood else "No Wood notation exists; use the matrix."),
         "wood_primitive": getattr(wn, "primitive", None),
         "coverage": _f(model.coverage),
-        "net": {"a_angstrom": over.a, "b_angstrom": over.b, "gamma_deg": over.gamma_deg,
-                "type": classify_net(over, tol=2e-3)},
-        "angle_to_substrate_deg": ang,
+        "net": {"a_angstrom": over.a, "b_angstrom": over.b, "gamma_deg": over.gamma_deg, "type": model.net_type},
+        "angle_to_substrate_deg": model.angle_to_substrate_deg,
         "explained": model.explained,
         "unexplained_count": model.unexplained,
         "absent": model.absent,
@@ -130,28 +117,8 @@ def model_to_dict(model: OverlayerModel, substrate: Net2D) -> dict:
     if kind is not None:
         d["point_on_line"] = bool(getattr(kind, "point_on_line", False))
     if model.kind == "incommensurate":
-        d["moire_period_angstrom"] = _moire_period(m, substrate)
+        d["moire_period_angstrom"] = model.moire_period_A
     return d
-
-
-def _moire_period(m: np.ndarray, substrate: Net2D) -> float | None:
-    """Period (Å) of the beat between overlayer and substrate nets: the real-space net of
-    the shortest differences b*_i − a*_j of their reciprocal vectors (a moiré)."""
-    a_star = reciprocal(substrate).vectors
-    b_star = np.linalg.inv(m).T @ a_star
-    vecs = [b - a for b in (b_star[0], b_star[1], b_star[0] + b_star[1], b_star[0] - b_star[1])
-            for a in (a_star[0], a_star[1], a_star[0] + a_star[1], a_star[0] - a_star[1], -a_star[0], -a_star[1])]
-    vecs = sorted(vecs, key=lambda v: float(np.hypot(*v)))
-    first = vecs[0]
-    second = next((v for v in vecs[1:] if abs(first[0] * v[1] - first[1] * v[0]) > 1e-6 * np.hypot(*first) * np.hypot(*v)),
-                  None)
-    if second is None or np.hypot(*first) < 1e-9:
-        return None
-    try:
-        moire = Net2D(np.linalg.inv(np.array([first, second])).T)
-    except ValueError:
-        return None
-    return float(min(moire.a, moire.b))
 
 
 def result_to_dict(result) -> dict:
@@ -159,7 +126,7 @@ def result_to_dict(result) -> dict:
     idx = result.index
     fit = idx.substrate
     best = idx.best
-    hk_model = model_indices(fit.hk, best)
+    hk_model = idx.best_indices
     by = best.explained_by
     trusted = np.ones(len(result.xy_px), bool) if getattr(result, "trusted", None) is None else result.trusted
     spots = []
@@ -177,7 +144,7 @@ def result_to_dict(result) -> dict:
             "trusted": bool(trusted[i]),
         })
     net = fit.net
-    rec = reciprocal(net)
+    a_star, b_star, gamma_star = fit.reciprocal_constants
     sig = fit.sigma or {}
     sub = {
         "net": fit.net_type,
@@ -186,7 +153,7 @@ def result_to_dict(result) -> dict:
         "sigma": {"a_angstrom": _f(sig.get("a_A")), "b_angstrom": _f(sig.get("b_A")),
                   "gamma_deg": _f(sig.get("gamma_deg")), "center_x_px": _f(sig.get("center_x_px")),
                   "center_y_px": _f(sig.get("center_y_px")), "scale_px": _f(sig.get("scale_px"))},
-        "a_star_invA": rec.a, "b_star_invA": rec.b, "gamma_star_deg": rec.gamma_deg,
+        "a_star_invA": a_star, "b_star_invA": b_star, "gamma_star_deg": gamma_star,
         "reciprocal_invA": fit.reciprocal_net.vectors.tolist(),
         "reciprocal_convention": "crystallographic, a_i·a*_j = δ_ij, no 2π",
         "lattice_source": "measured" if fit.scale_source == "calibration" else "substrate given",
@@ -208,8 +175,8 @@ def result_to_dict(result) -> dict:
         "spots": spots,
         "substrate": sub,
         "substrate_alternatives": alt_sub,
-        "overlayer": model_to_dict(best, net),
-        "candidates": [model_to_dict(m, net) for m in idx.models],
+        "overlayer": model_to_dict(best),
+        "candidates": [model_to_dict(m) for m in idx.models],
         "geometry": fit.geometry.to_dict(),
         "calibration_source": result.calibration_source,
         "screen": meas.screen.to_dict(),
@@ -219,7 +186,7 @@ def result_to_dict(result) -> dict:
                             "fwhm_radial_px": _f(r["fwhm_radial_px"]),
                             "fwhm_tangential_px": _f(r["fwhm_tangential_px"]), "reason": r["reason"]}
                            for r in meas.rejected_records()],
-        "predicted": predicted_spots(fit, best, result.energy_eV),
+        "predicted": predicted_spots(idx.predicted),
         "edits": result.edits.to_dict(),
         "warnings": list(result.warnings),
         "timings_s": {k: float(v) for k, v in result.timings_s.items()},

@@ -119,7 +119,7 @@ def test_superstructure_found_from_the_image(name):
 def assert_same_fractional_spots(res, im, tol_px=2.0):
     """The model's predicted fractional beams sit where the renderer put them, and vice versa
     (compared in the image, so the choice of substrate basis does not matter)."""
-    pred = predicted_spots(res.index.substrate, res.index.best, res.energy_eV)
+    pred = predicted_spots(res.index.predicted)
     p = np.array([[q["x"], q["y"]] for dom in pred["domains"] for q in dom]).reshape(-1, 2)
     t = np.array([[s["x"], s["y"]] for s in im.truth["spots"] if not s["integer"] and not s["hidden"]])
     valid = res.measurement.valid
@@ -242,6 +242,9 @@ def test_json_contract_keys_and_conventions():
     assert set(d["overlayer"]) >= {"kind", "matrix", "domains", "wood", "coverage"}
     assert d["overlayer"]["wood"] == "p(2×2)" and d["overlayer"]["coverage"] == pytest.approx(0.25)
     assert d["overlayer"]["domains"][0] == d["overlayer"]["matrix"]
+    # the overlayer's own net (it comes with the model): p(2×2) on a hexagonal net is hexagonal, 2a
+    assert d["overlayer"]["net"]["type"] == "hexagonal"
+    assert d["overlayer"]["net"]["a_angstrom"] == pytest.approx(2 * sub.a)
     # a_star_px: the camera model's derivative at the centre applied to the reciprocal basis;
     # |a*| in px = scale · λ · |a*| (distant-camera limit of r = s sin θ)
     lam = 12.2643 / math.sqrt(96.0)  # Å, √(150.41/E) (CODATA via scipy, see test_optics)
@@ -430,3 +433,19 @@ def test_score_formulas_in_the_docs_are_the_code():
 
     for table in (score.OVERLAYER_TERMS, score.SUBSTRATE_TERMS):
         assert score.formula(table) in score.__doc__
+
+
+def test_serialize_formats_and_computes_nothing():
+    # every number of the JSON comes with the result objects: at run time serialize imports
+    # only the exception, the JSON cleaner and the text formatters
+    import ast
+    from pathlib import Path
+
+    import analysis.serialize as ser
+
+    tree = ast.parse(Path(ser.__file__).read_text(encoding="utf-8"))
+    imported = {(node.module, a.name) for node in tree.body if isinstance(node, ast.ImportFrom)
+                for a in node.names}
+    assert imported == {("__future__", "annotations"), ("typing", "TYPE_CHECKING"), ("errors", "ParameterError"),
+                        ("jsonsafe", "json_safe"), ("superstructure", "beam_label"),
+                        ("superstructure", "format_matrix")}

@@ -356,6 +356,7 @@ def try_model(text: str, record: dict) -> dict:
     ``xy`` are the beams every domain of the model predicts, on the camera model.
     """
     from analysis import pipeline, serialize
+    from analysis.indexing import predicted_beams
 
     if not isinstance(text, str) or not text.strip():
         raise NetError("Type a matrix like '2 1 / -1 1' or a Wood notation like '(√3×√3)R30°'.")
@@ -364,8 +365,8 @@ def try_model(text: str, record: dict) -> dict:
     obj = result_object(record)
     model = pipeline.try_model(obj, text.strip())
     fit = obj.index.substrate
-    d = serialize.model_to_dict(model, fit.net)
-    pred = serialize.predicted_spots(fit, model, obj.energy_eV)
+    d = serialize.model_to_dict(model)
+    pred = serialize.predicted_spots(predicted_beams(fit, model, obj.energy_eV))
     xy = [q for dom in pred["domains"] for q in _xy_of(dom)]
     return {"label": f"{d['matrix_text']}  {d['wood'] or 'no Wood notation'}", "matrices": d["domains"],
             "xy": xy, "explained": int(d["explained"]), "unexplained": int(d["unexplained_count"]),
@@ -375,12 +376,13 @@ def try_model(text: str, record: dict) -> dict:
 def candidate_predictions(record: dict, pick: int) -> list[list]:
     """Predicted beams (x, y, h, k dicts) of each domain of ranked candidate `pick`."""
     from analysis import serialize
+    from analysis.indexing import predicted_beams
 
     obj = result_object(record)
     models = obj.index.models
     if not (0 <= int(pick) < len(models)):
         raise ParameterError(f"There is no candidate {int(pick) + 1}.")
-    return serialize.predicted_spots(obj.index.substrate, models[int(pick)], obj.energy_eV)["domains"]
+    return serialize.predicted_spots(predicted_beams(obj.index.substrate, models[int(pick)], obj.energy_eV))["domains"]
 
 
 # --------------------------------------------------------------------------- export / import

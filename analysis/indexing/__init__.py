@@ -11,7 +11,8 @@ candidates    candidate overlayer bases: beam vectors to pair, refinement, snapp
 score         the substrate and overlayer scores: named terms, one table each
 overlayers    :class:`OverlayerModel`, :func:`find_overlayers`, :func:`evaluate_model`,
               :func:`model_from_matrix`, domains, :func:`model_indices`
-pattern       :class:`IndexResult`, :func:`index_pattern` (the whole pattern)
+pattern       :class:`IndexResult`, :func:`index_pattern` (the whole pattern),
+              :class:`PredictedBeams`, :func:`predicted_beams`
 matching      predicted beams against observed spots (shared by the above)
 
 Conventions
@@ -25,7 +26,7 @@ a substrate point-group operation W acts on beam indices as ``hk @ inv(W).T``.
 
 from .camera_refit import refine_with_model
 from .overlayers import OverlayerModel, evaluate_model, find_overlayers, model_from_matrix, model_indices
-from .pattern import IndexResult, index_pattern
+from .pattern import IndexResult, PredictedBeams, index_pattern, predicted_beams
 from .substrate import SubstrateFit, fit_substrate, fractional_indices
 
 __all__ = [
@@ -40,4 +41,6 @@ __all__ = [
     "refine_with_model",
     "IndexResult",
     "index_pattern",
+    "PredictedBeams",
+    "predicted_beams",
 ]

@@ -16,13 +16,14 @@ from scipy.spatial import cKDTree
 
 from ..errors import FitError, ParameterError
 from ..lattice import lattice_points, screen_g_max
-from ..nets import Net2D, point_group
+from ..nets import Net2D, classify_net, point_group, reciprocal
 from ..optics import ScreenGeometry, wavelength_A
 from ..superstructure import (
     _same_lattice_fast,
     classify_superstructure,
     coverage,
     nice_matrix,
+    overlayer_net,
     wood_notation,
 )
 from .candidates import (_candidate_vectors, _explained, _lattice_key, _refine_matrix, _snap_matrix,
@@ -61,6 +62,15 @@ class OverlayerModel:
         The overlayer score (:mod:`.score`), ``score_terms.total``.
     score_terms : ScoreBreakdown
         The score's named terms (:data:`.score.OVERLAYER_TERMS`) for this model.
+    net : Net2D
+        The overlayer's real-space net, ``matrix @ substrate`` (Å).
+    net_type : str
+        Its plane-net type.
+    angle_to_substrate_deg : float
+        Angle from a1 to b1, degrees in [−180, 180).
+    moire_period_A : float or None
+        Incommensurate models: the period of the beat between overlayer and
+        substrate nets (Å); None otherwise.
     """
 
     matrix: np.ndarray
@@ -79,10 +89,46 @@ class OverlayerModel:
     notes: tuple = ()
     details: dict = field(default_factory=dict)
     score_terms: ScoreBreakdown | None = None
+    net: Net2D | None = None
+    net_type: str | None = None
+    angle_to_substrate_deg: float | None = None
+    moire_period_A: float | None = None
 
     @property
     def n_domains(self) -> int:
         return len(self.domains)
+
+
+def _net_facts(substrate: Net2D, matrix, kind: str) -> dict:
+    """The fields of :class:`OverlayerModel` that follow from its matrix on the `substrate` net."""
+    m = np.asarray(matrix, dtype=np.float64)
+    over = overlayer_net(substrate, m)
+    a1 = substrate.vectors[0]
+    b1 = over.vectors[0]
+    ang = math.degrees(math.atan2(b1[1], b1[0]) - math.atan2(a1[1], a1[0]))
+    return {"net": over, "net_type": classify_net(over, tol=2e-3),
+            "angle_to_substrate_deg": (ang + 180.0) % 360.0 - 180.0,
+            "moire_period_A": _moire_period(m, substrate) if kind == "incommensurate" else None}
+
+
+def _moire_period(m: np.ndarray, substrate: Net2D) -> float | None:
+    """Period (Å) of the beat between overlayer and substrate nets: the real-space net of
+    the shortest differences b*_i − a*_j of their reciprocal vectors (a moiré)."""
+    a_star = reciprocal(substrate).vectors
+    b_star = np.linalg.inv(m).T @ a_star
+    vecs = [b - a for b in (b_star[0], b_star[1], b_star[0] + b_star[1], b_star[0] - b_star[1])
+            for a in (a_star[0], a_star[1], a_star[0] + a_star[1], a_star[0] - a_star[1], -a_star[0], -a_star[1])]
+    vecs = sorted(vecs, key=lambda v: float(np.hypot(*v)))
+    first = vecs[0]
+    second = next((v for v in vecs[1:] if abs(first[0] * v[1] - first[1] * v[0]) > 1e-6 * np.hypot(*first) * np.hypot(*v)),
+                  None)
+    if second is None or np.hypot(*first) < 1e-9:
+        return None
+    try:
+        moire = Net2D(np.linalg.inv(np.array([first, second])).T)
+    except ValueError:
+        return None
+    return float(min(moire.a, moire.b))
 
 
 def model_indices(hk: np.ndarray, model: OverlayerModel) -> np.ndarray:
@@ -134,6 +180,7 @@ class _Context:
     substrate: Net2D
     max_denominator: int = 6
     reliable: np.ndarray | None = None  # (K,) spots whose centres are trusted (None: all)
+    net: Net2D | None = None  # the substrate net as read (the fit's): models state their own net on it
 
 
 def _context(hk, integer, substrate_fit: SubstrateFit, energy_eV, intensity, valid_mask, tol_px,
@@ -156,7 +203,8 @@ def _context(hk, integer, substrate_fit: SubstrateFit, energy_eV, intensity, val
                     ops=point_group(sub, tol=2e-3), tree=cKDTree(hk @ a_star), r_max=r_max,
                     g_max=screen_g_max(energy_eV, min(geom.acceptance_deg, 80.0)),
                     valid_mask=valid_mask, intensity=None if intensity is None else np.asarray(intensity, float),
-                    substrate=sub, max_denominator=int(max_denominator), reliable=reliable)
+                    substrate=sub, max_denominator=int(max_denominator), reliable=reliable,
+                    net=substrate_fit.net)
 
 
 def _score(ctx: _Context, matrix, *, all_domains: bool, satellites: bool, absent: bool = True) -> dict:
@@ -277,7 +325,8 @@ def _describe(ctx: _Context, sc: dict, *, kind_tol: float) -> OverlayerModel:
                           wood_note=w.note, coverage=coverage(m), explained=sc["e"], unexplained=sc["u"],
                           absent=sc["absent"], explained_by=sc["by"], score=sc["score"], total_domains=sc["total"],
                           notes=tuple(notes), score_terms=sc["terms"],
-                          details={"intensity_ratio": ratio, "kind": kind, "wood_notation": w, "tol_g": ctx.tol_g})
+                          details={"intensity_ratio": ratio, "kind": kind, "wood_notation": w, "tol_g": ctx.tol_g},
+                          **_net_facts(ctx.net, m, kind.kind))
 
 
 def evaluate_model(hk: np.ndarray, integer: np.ndarray, substrate_fit: SubstrateFit, matrix, *,
@@ -486,7 +535,8 @@ def _lead_with_plainest_domain(ctx: _Context, mm: OverlayerModel) -> OverlayerMo
     w = woods[k]
     return dataclasses.replace(mm, matrix=mm.domains[k], domains=[mm.domains[i] for i in order],
                                domain_ops=[mm.domain_ops[i] for i in order], wood=w.text, wood_note=w.note,
-                               explained_by=by, details={**mm.details, "wood_notation": w})
+                               explained_by=by, details={**mm.details, "wood_notation": w},
+                               **_net_facts(ctx.net, mm.domains[k], mm.kind))
 
 
 def _prefer_simple(models: list[OverlayerModel]) -> list[OverlayerModel]:

@@ -1,21 +1,25 @@
 """A whole pattern: :func:`index_pattern` follows the best substrate reading (trying
 camera readings when the distortion R/L is open) to its overlayer models, refitting the
 camera with the best rational model's spots while that raises the best score;
-:class:`IndexResult` holds the readings and the models.
+:class:`IndexResult` holds the readings and the models, with what follows from them
+(the exact indices of the spots, the beams predicted on the screen: :func:`predicted_beams`).
 """
 
 from __future__ import annotations
 
 import dataclasses
+import functools
 from dataclasses import dataclass
 
 import numpy as np
 
+from ..errors import ParameterError
+from ..lattice import lattice_points, screen_g_max
 from ..nets import Net2D
-from ..optics import ScreenGeometry
+from ..optics import ScreenGeometry, momentum_to_pixels
 from .camera_refit import (_distortion_from_fractions, _distortion_open, _with_distortion, refine_with_model)
 from .candidates import _snap_matrix
-from .overlayers import OverlayerModel, evaluate_model, find_overlayers
+from .overlayers import OverlayerModel, evaluate_model, find_overlayers, model_indices
 from .substrate import _DISTORTION_PRIOR, _SCALE_PRIOR_SIGMA, SubstrateFit, fit_substrate
 
 
@@ -66,15 +70,76 @@ class IndexResult:
         All readings, best first, with confidences.
     models : list of OverlayerModel
         Overlayer models on the best reading, best first.
+    energy_eV : float
+        The beam energy the pattern was indexed at.
     """
 
     substrate: SubstrateFit
     substrate_candidates: list
     models: list
+    energy_eV: float | None = None
 
     @property
     def best(self) -> OverlayerModel:
         return self.models[0]
+
+    @functools.cached_property
+    def best_indices(self) -> np.ndarray:
+        """(K, 2) exact indices of the spots the best model explains, NaN elsewhere (:func:`model_indices`)."""
+        return model_indices(self.substrate.hk, self.best)
+
+    @functools.cached_property
+    def predicted(self) -> PredictedBeams:
+        """The beams of the reading and of the best model's domains on the screen (:func:`predicted_beams`)."""
+        return predicted_beams(self.substrate, self.best, self.energy_eV)
+
+
+@dataclass(frozen=True, eq=False)
+class PredictedBeams:
+    """Where a substrate reading and an overlayer model put their beams on the screen.
+
+    Attributes
+    ----------
+    substrate_hk, substrate_xy : (K, 2) ndarray of float64
+        The integer beams (h, k) that reach the screen and their (x, y) pixel positions.
+    domains : tuple of ((N, 2) ndarray, (N, 2) ndarray)
+        For each domain of the model (none for a model of kind ``"none"``): its
+        fractional beams (h, k) in the substrate basis and their (x, y) pixels.
+    """
+
+    substrate_hk: np.ndarray
+    substrate_xy: np.ndarray
+    domains: tuple = ()
+
+
+def predicted_beams(fit: SubstrateFit, model: OverlayerModel | None, energy_eV: float) -> PredictedBeams:
+    """The beams a substrate reading and a model on it put on the screen at `energy_eV`.
+
+    Each net is enumerated inside the screen's momentum radius (:mod:`analysis.lattice`),
+    in lexicographic order of its integer coordinates; a net far finer than the
+    screen (more than 200 000 candidates) gives no beams.
+    """
+    lat = fit.reciprocal_net.vectors
+    geom = fit.geometry
+    # a hair beyond the screen's edge: the camera model's own visibility test decides below
+    g_max = screen_g_max(energy_eV, geom.acceptance_deg) + 1e-9
+
+    def on_screen(b_star_hk, fractional_only):
+        try:
+            hk = lattice_points(b_star_hk, g_max, metric=lat, max_points=200_000)
+        except ParameterError:  # nothing useful to draw
+            hk = np.zeros((0, 2))
+        if fractional_only:
+            hk = hk[np.any(np.abs(hk - np.rint(hk)) > 1e-6, axis=1)]
+        xy, vis = momentum_to_pixels(hk @ lat, energy_eV, geom)
+        ok = vis & np.all(np.isfinite(xy), axis=1)
+        return hk[ok], xy[ok]
+
+    sub_hk, sub_xy = on_screen(np.eye(2), False)
+    doms = ()
+    if model is not None and model.kind != "none":
+        doms = tuple(on_screen(np.linalg.inv(np.asarray(m, float)).T, True) for m in model.domains)
+    return PredictedBeams(substrate_hk=sub_hk, substrate_xy=sub_xy, domains=doms)
 
 
 def index_pattern(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity: np.ndarray | None = None,
@@ -122,7 +187,7 @@ def index_pattern(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity
         followed.append((key, fit, models, reading))
     key, fit, models, reading = max(followed, key=lambda t: t[0])
     cands = [fit] + [f for f in fits if f is not reading]
-    return IndexResult(substrate=fit, substrate_candidates=cands, models=models)
+    return IndexResult(substrate=fit, substrate_candidates=cands, models=models, energy_eV=float(energy_eV))
 
 
 def along_reference(a_star_px, reference_a_star_px, *, tol_deg: float = 3.0, len_rtol: float = 0.15) -> bool:

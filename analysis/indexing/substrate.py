@@ -88,6 +88,12 @@ class SubstrateFit:
     notes: tuple = ()
     score_terms: ScoreBreakdown | None = None
 
+    @property
+    def reciprocal_constants(self) -> tuple[float, float, float]:
+        """a*, b* (Å⁻¹, no 2π) and γ* (degrees) of the reciprocal of `net`."""
+        rec = reciprocal(self.net)
+        return rec.a, rec.b, rec.gamma_deg
+
 
 def _scale_prior(screen_radius_px: float | None) -> float | None:
     if screen_radius_px is None or not (screen_radius_px > 0):
