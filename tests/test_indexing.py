@@ -429,10 +429,14 @@ def test_score_terms_add_up_to_every_score():
 
 
 def test_score_formulas_in_the_docs_are_the_code():
+    from pathlib import Path
+
     from analysis.indexing import score
 
+    developers = (Path(__file__).resolve().parents[1] / "DEVELOPERS.md").read_text(encoding="utf-8")
     for table in (score.OVERLAYER_TERMS, score.SUBSTRATE_TERMS):
         assert score.formula(table) in score.__doc__
+        assert score.formula(table) in developers
 
 
 def test_serialize_formats_and_computes_nothing():
