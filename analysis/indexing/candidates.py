@@ -1,12 +1,15 @@
-"""Candidate overlayer bases: the observed beam vectors worth pairing, the least-squares
-refinement of a pair's net on the spots it explains, the snapping of a matrix to
-simple fractions, and hashable names of lattices (to try each structure once).
+"""Candidate overlayer bases: the observed beam vectors worth pairing, the matrices their
+pairs propose (:func:`_candidate_matrices`: each pair's net refined by least squares on
+the spots it explains, then snapped to simple fractions), and hashable names of lattices
+(to try each structure once).
 
 Indices ``hk`` are in the substrate reciprocal basis ``a_star`` (rows a1*, a2*, Å⁻¹,
 no 2π); a real-space matrix M has the reciprocal basis (M⁻¹)ᵀ in hk units.
 """
 
 from __future__ import annotations
+
+import math
 
 import numpy as np
 
@@ -111,6 +114,54 @@ def _candidate_vectors(hk: np.ndarray, integer: np.ndarray, a_star: np.ndarray, 
     kept = [v @ a_star for v in primary + ints]
     extra = _dedupe_vectors(diffs, a_star, tol_g, n_diff, kept)
     return np.array(primary + ints + extra).reshape(-1, 2)
+
+
+def _candidate_matrices(hk: np.ndarray, integer: np.ndarray, a_star: np.ndarray, tol_g: float,
+                        intensity: np.ndarray | None, *, max_det: float, max_denominator: int):
+    """Overlayer matrices proposed by pairs of observed beam vectors, in search order.
+
+    Each pair of :func:`_candidate_vectors` that spans a net two or more fractional spots
+    lie on is a reciprocal basis B*; it is refined on the spots it explains
+    (:func:`_refine_matrix`), turned into M = (B*⁻¹)ᵀ and snapped to an integer matrix or
+    one with denominators ≤ `max_denominator` when the spots allow (the tolerance on M
+    follows from the spot tolerance through |M|²); the unsnapped fit is proposed too
+    unless it is within 2·10⁻³ of simple fractions.
+
+    Yields
+    ------
+    (matrix, kind_tol, continuous) : ((2, 2) ndarray, float, bool)
+        The matrix, the tolerance that names its kind, and whether it is the unsnapped
+        (continuous) fit, which competes as an incommensurate model with satellites.
+    """
+    n_frac = int((~integer).sum())
+    vecs = _candidate_vectors(hk, integer, a_star, tol_g, intensity)
+    g_ref = float(np.min(np.linalg.norm(a_star, axis=1)))
+    for i in range(len(vecs)):
+        for j in range(i + 1, len(vecs)):
+            b = np.array([vecs[i], vecs[j]])
+            det_b = abs(np.linalg.det(b))
+            if det_b < 1.0 / max_det - 1e-9:
+                continue
+            cart = b @ a_star
+            if det_b * abs(np.linalg.det(a_star)) / (np.linalg.norm(cart[0]) * np.linalg.norm(cart[1])) < 0.15:
+                continue  # nearly parallel
+            m0 = np.linalg.inv(b).T
+            if int((_explained(hk, m0, a_star, 2 * tol_g) & ~integer).sum()) < 2:
+                continue  # this pair spans no net the spots lie on
+            m = _refine_matrix(hk, m0, a_star, tol_g)
+            if abs(np.linalg.det(m)) > max_det + 1e-6:
+                continue
+            # the tolerance on M follows from the spot tolerance through |M|²
+            m_tol = max(0.02, 0.5 * tol_g / g_ref * float(np.max(np.abs(m))) ** 2 / math.sqrt(n_frac))
+            snapped = _snap_matrix(m, min(m_tol, 0.12), 1)
+            if snapped is None:
+                snapped = _snap_matrix(m, min(m_tol, 0.05), max_denominator)
+            if snapped is not None and abs(np.linalg.det(snapped)) > 1e-9:
+                yield snapped, 1e-6, False
+                if _snap_matrix(m, 2e-3, 12) is None:
+                    yield m, 2e-3, True  # the continuous fit competes too (incommensurate)
+            else:
+                yield m, 2e-3, True
 
 
 def _structure_key(m: np.ndarray, *, exact: bool) -> tuple:

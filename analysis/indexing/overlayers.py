@@ -26,8 +26,7 @@ from ..superstructure import (
     overlayer_net,
     wood_notation,
 )
-from .candidates import (_candidate_vectors, _explained, _lattice_key, _refine_matrix, _snap_matrix,
-                         _structure_key)
+from .candidates import _candidate_matrices, _explained, _lattice_key, _snap_matrix, _structure_key
 from .matching import _screen_xy, _seen
 from .score import ScoreBreakdown, irrational_handicap, overlayer_breakdown, population_gain
 
@@ -431,46 +430,21 @@ def find_overlayers(hk: np.ndarray, integer: np.ndarray, substrate_fit: Substrat
     ctx = _context(hk, integer, substrate_fit, energy_eV, intensity, valid_mask, tol_px, max_denominator, reliable)
     if int((~ctx.integer).sum()) == 0:
         return [_describe(ctx, _score(ctx, np.eye(2), all_domains=False, satellites=False), kind_tol=1e-6)]
-    n_frac = int((~ctx.integer).sum())
     a_star, tol_g = ctx.a_star, ctx.tol_g
-    vecs = _candidate_vectors(ctx.hk, ctx.integer, a_star, tol_g, ctx.intensity)
-    g_ref = float(np.min(np.linalg.norm(a_star, axis=1)))
     seen: set = set()
     scored: list[tuple[dict, float]] = []
-    for i in range(len(vecs)):
-        for j in range(i + 1, len(vecs)):
-            b = np.array([vecs[i], vecs[j]])
-            det_b = abs(np.linalg.det(b))
-            if det_b < 1.0 / max_det - 1e-9:
-                continue
-            cart = b @ a_star
-            if det_b * abs(np.linalg.det(a_star)) / (np.linalg.norm(cart[0]) * np.linalg.norm(cart[1])) < 0.15:
-                continue  # nearly parallel
-            m0 = np.linalg.inv(b).T
-            if int((_explained(ctx.hk, m0, a_star, 2 * tol_g) & ~ctx.integer).sum()) < 2:
-                continue  # this pair spans no net the spots lie on
-            m = _refine_matrix(ctx.hk, m0, a_star, tol_g)
-            if abs(np.linalg.det(m)) > max_det + 1e-6:
-                continue
-            # the tolerance on M follows from the spot tolerance through |M|²
-            m_tol = max(0.02, 0.5 * tol_g / g_ref * float(np.max(np.abs(m))) ** 2 / math.sqrt(n_frac))
-            snapped = _snap_matrix(m, min(m_tol, 0.12), 1)
-            if snapped is None:
-                snapped = _snap_matrix(m, min(m_tol, 0.05), max_denominator)
-            options = [(snapped, 1e-6, False)] if snapped is not None and abs(np.linalg.det(snapped)) > 1e-9 else []
-            if not options or _snap_matrix(m, 2e-3, 12) is None:
-                options.append((m, 2e-3, True))  # the continuous fit competes too (incommensurate)
-            for c, ktol, sat in options:
-                key = _structure_key(c, exact=not sat)
-                if key in seen:
-                    continue
-                seen.add(key)
-                if int((_explained(ctx.hk, c, a_star, tol_g) & ~ctx.integer).sum()) < 2 and not sat:
-                    continue
-                sc = _score(ctx, c, all_domains=False, satellites=sat, absent=False)
-                if not sat:  # every domain of this structure is now known
-                    seen.update(_structure_key(d, exact=True) for d in sc["all_mats"])
-                scored.append((sc, ktol))
+    for c, ktol, sat in _candidate_matrices(ctx.hk, ctx.integer, a_star, tol_g, ctx.intensity, max_det=max_det,
+                                            max_denominator=max_denominator):
+        key = _structure_key(c, exact=not sat)
+        if key in seen:
+            continue
+        seen.add(key)
+        if int((_explained(ctx.hk, c, a_star, tol_g) & ~ctx.integer).sum()) < 2 and not sat:
+            continue
+        sc = _score(ctx, c, all_domains=False, satellites=sat, absent=False)
+        if not sat:  # every domain of this structure is now known
+            seen.update(_structure_key(d, exact=True) for d in sc["all_mats"])
+        scored.append((sc, ktol))
     # the bare substrate always competes: a few stray spots do not make a superstructure
     scored.append((_score(ctx, np.eye(2), all_domains=False, satellites=False, absent=False), 1e-6))
     # branch and bound: finish the scores best bound first, until no bound can enter the list;
