@@ -113,7 +113,8 @@ def to_luminance(arr: np.ndarray, *, name: str = "image") -> np.ndarray:
     if a.ndim != 2:
         raise ImageError(f"{name}: not a 2-D image (array shape {tuple(np.shape(arr))}).")
     if min(a.shape) < 2:
-        raise ImageError(f"{name}: not a 2-D image (size {a.shape[1]}×{a.shape[0]} px).")
+        raise ImageError(f"{name}: the image is too small ({a.shape[1]}×{a.shape[0]} px); the smallest "
+                         f"accepted size is 2×2 px.")
     return np.asarray(a, dtype=np.float64)
 
 
