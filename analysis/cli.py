@@ -1,7 +1,8 @@
-"""Command line: ``recinet analyze | iv | serve | net | demo``.
+"""Command line: ``recinet analyze | calibrate | iv | serve | net``.
 
-Every command prints a one-line message on stderr and exits non-zero on bad
-input; it never leaves a partial output file.
+Every command prints a one-line message on stderr and exits with status 2 on
+bad input; it checks its output folders before any work and never leaves a
+partial output file.
 """
 
 from __future__ import annotations
@@ -15,13 +16,40 @@ from dataclasses import replace
 from pathlib import Path
 from typing import TYPE_CHECKING
 
-from .errors import ImageError, ParameterError, RecinetError, SeriesError
+from .errors import FitError, ImageError, ParameterError, RecinetError, SeriesError
 from .files import write_text_atomic
 
 if TYPE_CHECKING:
     from .optics import ScreenGeometry
 
 __all__ = ["main", "build_parser", "add_iv_parser"]
+
+
+def _version() -> str:
+    """The installed package's version (its metadata), else the source tree's."""
+    from importlib.metadata import PackageNotFoundError, version
+
+    try:
+        return version("recinet")
+    except PackageNotFoundError:
+        from . import __version__
+
+        return __version__
+
+
+def _check_output(path, option: str) -> Path:
+    """The output file `path` of `option`, once its folder is known to exist and be writable."""
+    import os
+
+    p = Path(path)
+    folder = p.resolve().parent
+    if not folder.is_dir():
+        raise ParameterError(f"{option}: the folder {folder} does not exist.")
+    if not os.access(folder, os.W_OK | os.X_OK):
+        raise ParameterError(f"{option}: the folder {folder} is not writable.")
+    if p.is_dir():
+        raise ParameterError(f"{option}: {p} is a folder; give a file name.")
+    return p
 
 
 def _cmd_net(args) -> int:
@@ -77,13 +105,24 @@ def _cmd_analyze(args) -> int:
 
     if (args.reference is None) != (args.reference_energy is None):
         raise ParameterError("--reference and --reference-energy go together.")
+    if args.json:
+        _check_output(args.json, "--json")
     image = load_image(args.image)
     ref = load_image(args.reference) if args.reference else None
     cal = Calibration.load_json(args.calibration) if args.calibration else None
-    result = analyze_image(image, energy_eV=args.energy, substrate=args.substrate, reference=ref,
-                           reference_energy_eV=args.reference_energy, calibration=cal,
-                           sigma_px=args.spot_sigma, min_snr=args.min_snr, tol_px=args.tolerance)
+    try:
+        result = analyze_image(image, energy_eV=args.energy, substrate=args.substrate, reference=ref,
+                               reference_energy_eV=args.reference_energy, calibration=cal,
+                               sigma_px=args.spot_sigma, min_snr=args.min_snr, tol_px=args.tolerance)
+    except FitError as err:
+        if cal is None or cal.distortion_measured:
+            raise
+        raise FitError(f"{err} The calibration {Path(args.calibration).name} did not measure the distortion "
+                       f"(its reference showed one ring of beams), which may be why.") from None
     d = result_to_dict(result)
+    if cal is not None and not cal.distortion_measured:
+        d["warnings"].append(_UNMEASURED_DISTORTION.format(name=Path(args.calibration).name,
+                                                           d=cal.geometry.distortion))
     if args.json:
         write_text_atomic(args.json, json.dumps(d, indent=1, ensure_ascii=False, allow_nan=False))
     if not args.quiet:
@@ -91,7 +130,75 @@ def _cmd_analyze(args) -> int:
     return 0
 
 
+_UNMEASURED_DISTORTION = (
+    "The calibration {name} did not measure the distortion (its reference showed one ring of beams; R/L held "
+    "at {d:.3f}): its scale holds at that ring's exit angle only, so lattice constants measured from spots at "
+    "other angles carry a systematic error. Calibrate on a reference showing two or more rings.")
+
+
+def _cmd_calibrate(args) -> int:
+    import numpy as np
+
+    from .calibration import Calibration, calibrate_from_reference
+    from .io import load_image
+    from .nets import parse_substrate, reciprocal
+    from .pipeline import check_energy
+    from .spots import measure_image
+
+    out = _check_output(args.out, "--out")
+    energy = check_energy(args.energy)
+    net = parse_substrate(args.substrate)
+    image = load_image(args.reference)
+    meas = measure_image(image, sigma_px=args.spot_sigma, min_snr=args.min_snr)
+    fit, hk = calibrate_from_reference(meas.spots.xy, net, energy)
+    used = hk[np.isfinite(hk[:, 0])]
+    g = np.linalg.norm(used @ reciprocal(net).vectors, axis=1)
+    rings = int(np.unique(np.round(g / g.min(), 4)).size)
+    cal = Calibration.from_fit(fit, image_shape=tuple(int(v) for v in image.shape), n_rings=rings,
+                               substrate=net.label or args.substrate,
+                               note=f"recinet calibrate {Path(args.reference).name} at {energy:g} eV")
+    cal.save_json(out)
+    geo, unc = cal.geometry, cal.uncertainty
+    if cal.distortion_measured:
+        dist = f"distortion {geo.distortion:.4f} ± {unc.get('distortion', float('nan')):.4f}"
+    else:
+        dist = f"distortion {geo.distortion:.4f} not measured (one ring of beams: held fixed)"
+    print(f"calibration: centre ({geo.center_x_px:.2f}, {geo.center_y_px:.2f}) ± "
+          f"({unc.get('center_x_px', float('nan')):.2f}, {unc.get('center_y_px', float('nan')):.2f}) px, "
+          f"scale {geo.scale_px:.2f} ± {unc.get('scale_px', float('nan')):.2f} px, {dist}, "
+          f"rms {cal.rms_px:.3f} px, {cal.n_spots} beams in {rings} ring{'s' * (rings != 1)} "
+          f"({cal.substrate} at {energy:g} eV) -> {out}")
+    return 0
+
+
+def _check_port(host: str, port: int) -> None:
+    """Refuse a port the web server could not listen on (the same address family and socket options)."""
+    import errno
+    import os
+    import socket
+
+    if os.environ.get("WERKZEUG_RUN_MAIN") == "true":  # the reloader's child inherits the bound socket
+        return
+    if not 0 <= port <= 65535:
+        raise ParameterError(f"--port must be 0 to 65535, got {port}.")
+    family = socket.AF_INET6 if ":" in host else socket.AF_INET
+    try:
+        addr = socket.getaddrinfo(host, port, family, socket.SOCK_STREAM, socket.IPPROTO_TCP)[0][4]
+    except (socket.gaierror, UnicodeError) as exc:
+        raise ParameterError(f"--host {host!r} is not an address of this machine ({exc}).") from None
+    with socket.socket(family, socket.SOCK_STREAM) as s:
+        s.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
+        try:
+            s.bind(addr)
+        except OSError as exc:
+            if exc.errno == errno.EADDRINUSE:
+                raise ParameterError(f"Port {port} on {host} is already in use; stop the program using it or "
+                                     f"choose another with --port.") from None
+            raise ParameterError(f"Cannot listen on {host}:{port} ({exc.strerror or exc}).") from None
+
+
 def _cmd_serve(args) -> int:
+    _check_port(args.host, args.port)  # before the web layer prints that it is serving
     from webapp.app import run  # the web layer is imported only here
 
     run(host=args.host, port=args.port, debug=args.debug)
@@ -172,17 +279,35 @@ def add_iv_parser(subparsers) -> argparse.ArgumentParser:
     p.add_argument("--gain", type=float, default=1.0, help="frame units per detected count (uncertainties)")
     p.add_argument("--mask", help="image file: non-zero pixels may be used (default: screen minus gun shadow "
                                   "found in frame 0)")
-    p.add_argument("--save-calibration", dest="save_calibration", help="write the fitted screen geometry (JSON)")
+    p.add_argument("--save-calibration", dest="save_calibration",
+                   help="write the fitted screen geometry as a calibration file (the JSON `recinet calibrate` writes)")
     p.add_argument("--no-current", action="store_true", help="do not divide by the beam current")
     p.set_defaults(func=_cmd_iv)
     return p
+
+
+def _series_calibration_file(series_cal, energies_eV, frame_shape, substrate, source: str):
+    """The screen geometry fitted over a series as a :class:`~analysis.calibration.Calibration` (one file format
+    for every calibration: `recinet analyze --calibration` and `recinet iv --geometry` read it)."""
+    import datetime as dt
+
+    import numpy as np
+
+    from .calibration import Calibration
+
+    return Calibration(geometry=series_cal.geometry, uncertainty=dict(series_cal.uncertainty),
+                       energies_eV=tuple(float(v) for v in np.unique(np.asarray(energies_eV, float))),
+                       n_spots=int(series_cal.n_points), rms_px=float(series_cal.rms_px),
+                       image_shape=tuple(int(v) for v in frame_shape), substrate=substrate.label or "",
+                       note=f"recinet iv {source}: beams of {series_cal.n_frames} frames",
+                       created=dt.datetime.now(dt.timezone.utc).replace(microsecond=0).isoformat(),
+                       distortion_measured="distortion" in series_cal.uncertainty)
 
 
 def _cmd_iv(args) -> int:
     import numpy as np
 
     from .io import iter_frames, load_image
-    from .jsonsafe import json_safe
     from .nets import parse_substrate
     from .series import beams_from_nets, csv_text, index_series_frame, index_series_frames, result_to_dict, track_series
     from .series.energies import EnergyTable, _Energies, _StartStep, read_energy_file
@@ -209,9 +334,12 @@ def _cmd_iv(args) -> int:
         from .superstructure import parse_matrix
 
         mats = [parse_matrix(t) for t in args.overlayer]
-    for out in (args.csv, args.json, args.save_calibration):
-        if out and not Path(out).resolve().parent.is_dir():
-            raise SeriesError(f"Output folder of {out} does not exist.")
+    for out, option in ((args.csv, "--csv"), (args.json, "--json"), (args.save_calibration, "--save-calibration")):
+        if out:
+            try:
+                _check_output(out, option)
+            except ParameterError as err:
+                raise SeriesError(str(err)) from None
     first = None  # frame 0's stored depth (saturation level) and the page count of a stack
     if not Path(args.series).is_dir():
         try:
@@ -291,7 +419,10 @@ def _cmd_iv(args) -> int:
     if args.save_calibration:
         if res.calibration is None:
             raise SeriesError("No calibration could be fitted from the series (too few refined beams).")
-        texts.append((args.save_calibration, json.dumps(json_safe(res.calibration.to_dict()), indent=1)))
+        cal_file = _series_calibration_file(res.calibration, res.energy_eV, frame0.shape, substrate,
+                                            Path(args.series).name)
+        texts.append((args.save_calibration, json.dumps(cal_file.to_dict(), indent=2, allow_nan=False,
+                                                        ensure_ascii=False)))
     for path, text in texts:
         _atomic_write(path, text)
     n_beams = int(np.sum(res.valid.any(axis=0)))
@@ -309,6 +440,7 @@ def _cmd_iv(args) -> int:
 
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="recinet", description="Analyse LEED patterns: spots, nets, superstructures, I(V).")
+    p.add_argument("--version", action="version", version=f"recinet {_version()}")
     sub = p.add_subparsers(dest="command", required=True)
 
     n = sub.add_parser("net", help="describe a substrate net (e.g. 'Pt(111)', 'square:2.55')")
@@ -328,6 +460,17 @@ def build_parser() -> argparse.ArgumentParser:
     a.add_argument("--tolerance", type=float, default=2.5, help="spot matching tolerance, px")
     a.add_argument("--quiet", action="store_true", help="no summary on stdout")
     a.set_defaults(func=_cmd_analyze)
+
+    c = sub.add_parser("calibrate", help="camera calibration from an image of a clean, known substrate",
+                       description="Fit the camera model (centre, scale, distortion, rotation, ellipticity) to the "
+                                   "beams of a clean substrate and write it for `recinet analyze --calibration`.")
+    c.add_argument("reference", help="camera image of the clean substrate (PNG, TIFF, JPEG, BMP)")
+    c.add_argument("--energy", type=float, required=True, help="beam energy of the reference image, eV")
+    c.add_argument("--substrate", required=True, help="the clean substrate, e.g. 'Cu(100)' or 'square:2.556'")
+    c.add_argument("--out", required=True, help="write the calibration here (JSON)")
+    c.add_argument("--spot-sigma", type=float, default=None, help="spot σ in px (default: measured)")
+    c.add_argument("--min-snr", type=float, default=5.0, help="detection threshold in units of local noise")
+    c.set_defaults(func=_cmd_calibrate)
 
     s = sub.add_parser("serve", help="start the web app (http://127.0.0.1:8050)")
     s.add_argument("--host", default="127.0.0.1")
