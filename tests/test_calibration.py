@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import dataclasses
+import functools
 import json
 import math
 
@@ -13,13 +14,17 @@ from numpy.testing import assert_allclose
 from analysis.calibration import (
     CALIBRATION_SCHEMA,
     Calibration,
+    _geometry_from_internal,
+    _internal_from_geometry,
     calibrate_from_reference,
     estimate_center_from_pairs,
     fit_geometry,
 )
 from analysis.errors import FitError, ParameterError
-from analysis.nets import parse_substrate, reciprocal
-from analysis.optics import H2_OVER_2ME_EV_A2, ScreenGeometry, momentum_to_pixels
+from analysis.nets import Net2D, parse_substrate, reciprocal
+from analysis.optics import H2_OVER_2ME_EV_A2, ScreenGeometry, momentum_to_pixels, pixels_to_momentum
+from analysis.pipeline import analyze_image
+from analysis.serialize import result_to_dict
 from analysis.simulate import forward_pattern, render_image
 from analysis.spots import measure_image
 
@@ -220,3 +225,124 @@ def test_bad_calibration_files(tmp_path, content, message):
 def test_missing_calibration_file(tmp_path):
     with pytest.raises(ParameterError, match="calibration file not found"):
         Calibration.load_json(tmp_path / "none.json")
+
+
+def test_calibration_records_whether_the_distortion_was_measured(tmp_path):
+    p = _beams("Cu(100)", 150.0)
+    two = fit_geometry(p.xy_px, p.g_par, 150.0)
+    p = _beams("Cu(100)", 60.0)
+    first = np.isclose(np.abs(p.hk).sum(axis=1), 1)  # the four (1,0) beams: one ring
+    one = fit_geometry(p.xy_px[first], p.g_par[first], 60.0, fix=("ellipticity",))
+    for fit, measured in ((two, True), (one, False)):
+        cal = Calibration.from_fit(fit)
+        assert cal.distortion_measured is measured
+        d = json.loads(cal.save_json(tmp_path / "c.json").read_text())
+        assert d["distortion_measured"] is measured
+        assert Calibration.load_json(tmp_path / "c.json").distortion_measured is measured
+    # files written before the field existed read as measured
+    d.pop("distortion_measured")
+    assert Calibration.from_dict(d).distortion_measured is True
+    d["distortion_measured"] = "no"
+    with pytest.raises(ParameterError, match="'distortion_measured' must be true or false"):
+        Calibration.from_dict(d)
+
+
+# --------------------------------------------------------------------------- another crystal
+
+# Room-temperature fcc lattice constants recalled from memory (the values solid-state
+# textbooks tabulate): Cu a = 3.615 Å, Ni a = 3.524 Å. ASE's ase.data.reference_states
+# gives 3.61 and 3.52 (checked to its two decimals below). fcc(100) surface net: a/√2.
+CU_A, NI_A = 3.615, 3.524
+CAMERA = ScreenGeometry(510.3, 498.7, 600.0, distortion=0.25, rotation_deg=12.0)  # one camera for every image
+NI_ENERGY = 140.0
+
+
+def test_fcc_constants_agree_with_ase():
+    from ase.data import atomic_numbers, reference_states
+
+    for element, a in (("Cu", CU_A), ("Ni", NI_A)):
+        ref = reference_states[atomic_numbers[element]]
+        assert ref["symmetry"] == "fcc" and abs(ref["a"] - a) < 0.006
+
+
+def _fcc100(a_A: float) -> Net2D:
+    return Net2D(a_A / math.sqrt(2) * np.eye(2))
+
+
+@functools.lru_cache(maxsize=None)
+def _cu_reference(energy_eV: float):
+    """Calibration fit on a rendered clean Cu(100) image at `energy_eV`."""
+    p = forward_pattern(_fcc100(CU_A), energy_eV=energy_eV, geometry=CAMERA)
+    im = render_image(p, shape=(1024, 1024), rng=np.random.default_rng(int(energy_eV)))
+    m = measure_image(im.image, sigma_px=None)
+    return calibrate_from_reference(m.spots.xy, _fcc100(CU_A), energy_eV)
+
+
+@pytest.fixture(scope="module")
+def ni_image():
+    # the Ni sample sits turned by 7° on its holder; same camera, another energy
+    p = forward_pattern(_fcc100(NI_A), energy_eV=NI_ENERGY, geometry=CAMERA, azimuth_deg=7.0)
+    return render_image(p, shape=(1024, 1024), rng=np.random.default_rng(11)).image
+
+
+def _calibration_sigma_A(fit, xy_px, hk, energy_eV) -> float:
+    """1-σ of a square net's constant from the calibration's own uncertainty.
+
+    The constant is refitted from the image's integer spots (least squares on their
+    momenta) with the camera scale, distortion and ellipticity moved by their covariance
+    (centre and rotation are fitted on the image itself, so theirs does not enter).
+    """
+
+    def a_of(q):
+        g = pixels_to_momentum(xy_px, energy_eV, _geometry_from_internal(q, 90.0))
+        a_star, *_ = np.linalg.lstsq(hk, g, rcond=None)
+        return float(np.mean(np.linalg.norm(np.linalg.inv(a_star).T, axis=1)))
+
+    q = _internal_from_geometry(fit.geometry)
+    free = [2, 3, 5, 6]  # scale, distortion R/L, ellipticity (e1, e2)
+    jac = np.zeros(len(free))
+    for n, i in enumerate(free):
+        h = 1e-4 * q[i] if i == 2 else 1e-5
+        up, down = q.copy(), q.copy()
+        up[i] += h
+        down[i] -= h
+        jac[n] = (a_of(up) - a_of(down)) / (2 * h)
+    return math.sqrt(float(jac @ fit.covariance[np.ix_(free, free)] @ jac))
+
+
+def _measured(image, cal):
+    res = analyze_image(image, energy_eV=NI_ENERGY, substrate=f"square:{1.03 * NI_A / math.sqrt(2):.5f}",
+                        calibration=cal)
+    return res, result_to_dict(res)["substrate"]
+
+
+@pytest.mark.parametrize("ref_energy", [120.0, 170.0, 230.0])
+def test_a_calibration_measures_another_crystals_lattice_constant(tmp_path, ni_image, ref_energy):
+    fit, hk = _cu_reference(ref_energy)
+    g = np.linalg.norm(hk[np.isfinite(hk[:, 0])] @ reciprocal(_fcc100(CU_A)).vectors, axis=1)
+    assert np.unique(np.round(g, 6)).size >= 2 and "distortion" in fit.free  # two or more rings
+    cal = Calibration.load_json(Calibration.from_fit(fit, substrate="Cu(100)").save_json(tmp_path / "cal.json"))
+    # the substrate is named with a constant 3 % too large: only the calibration can put it right
+    res, sub = _measured(ni_image, cal)
+    true = NI_A / math.sqrt(2)
+    assert sub["lattice_source"] == "measured"
+    for key in ("a_angstrom", "b_angstrom"):
+        assert abs(sub[key] / true - 1) < 0.005
+    sigma = sub["sigma"]["a_angstrom"]
+    assert sigma is not None and 0 < sigma < 0.01 * true
+    # the error is within 3σ once the calibration's own uncertainty is counted beside the reported σ
+    # (the reported σ alone leaves it out: see the strict xfail below)
+    s = res.index.substrate
+    sigma_cal = _calibration_sigma_A(fit, res.xy_px[s.integer], np.rint(s.hk[s.integer]), NI_ENERGY)
+    assert abs(sub["a_angstrom"] - true) < 3 * math.hypot(sigma, sigma_cal)
+
+
+@pytest.mark.xfail(strict=True, reason="gap: the σ of a lattice constant measured through a calibration leaves out "
+                                       "the calibration's own uncertainty (indexing.fit_substrate holds the camera "
+                                       "scale, distortion and ellipticity fixed, and pipeline.analyze_image passes "
+                                       "on only Calibration.geometry)")
+def test_measured_constant_sigma_includes_the_calibrations_uncertainty(ni_image):
+    cal = Calibration.from_fit(_cu_reference(120.0)[0])
+    loose = dataclasses.replace(cal, uncertainty={k: 10.0 * v for k, v in cal.uncertainty.items()})
+    sigma = [_measured(ni_image, c)[1]["sigma"]["a_angstrom"] for c in (cal, loose)]
+    assert sigma[1] > 1.5 * sigma[0]
