@@ -20,9 +20,16 @@ pattern   :class:`Pattern`, :func:`forward_pattern`, :func:`hk_label`
 render    :func:`render_image`, :class:`SyntheticImage`, :class:`GunShadow`,
           :func:`default_intensities`, :func:`acceptance_radius_px`
 series    :class:`LayerIV`, :func:`render_series`
+spot_shapes  :class:`SpotShape` (tailed and elongated spots for the renderer)
+realism      camera artefacts on arrays: channel-plate texture, dust, glare, exposure
+             with blooming, hot pixels, cosmic rays, colour JPEG
+viewing      keystone homography and warping, crops, off-normal incidence, reframing
+photograph   :func:`photograph` (the renderer plus chosen artefacts, exact truth),
+             :data:`EFFECTS`, :func:`score_spots`
 """
 
 from .pattern import Pattern, forward_pattern, hk_label
+from .photograph import EFFECTS, Photograph, photograph, score_spots
 from .render import GunShadow, SyntheticImage, acceptance_radius_px, default_intensities, render_image
 from .series import LayerIV, render_series
 
@@ -37,5 +44,9 @@ __all__ = [
     "render_series",
     "acceptance_radius_px",
     "hk_label",
+    "EFFECTS",
+    "Photograph",
+    "photograph",
+    "score_spots",
 ]
 
