@@ -243,14 +243,14 @@ def analyze_image(image, *, energy_eV: float, substrate: str | Net2D, reference=
             raise ParameterError("A reference image needs its energy (reference energy in eV).")
         re_ = check_energy(reference_energy_eV, "reference energy")
         say(0.3, "calibrating the camera on the reference image")
-        ref_img = _as_image(reference)
-        if ref_img.shape != img.shape:
-            raise ImageError(f"The reference image is {ref_img.shape[1]}×{ref_img.shape[0]} px but the image is "
-                             f"{img.shape[1]}×{img.shape[0]} px; use one from the same camera.")
-        ref_meas = measure_image(ref_img, sigma_px=sigma_px, min_snr=min_snr)
-        try:
+        try:  # a reference that cannot be used never stops the analysis: it goes on without it
+            ref_img = _as_image(reference)
+            if ref_img.shape != img.shape:
+                raise ImageError(f"it is {ref_img.shape[1]}×{ref_img.shape[0]} px but the image is "
+                                 f"{img.shape[1]}×{img.shape[0]} px; use one from the same camera.")
+            ref_meas = measure_image(ref_img, sigma_px=sigma_px, min_snr=min_snr)
             gfit, _ = calibrate_from_reference(ref_meas.spots.xy, hint, re_)
-        except FitError as err:  # a reference that cannot be used never stops the analysis
+        except (ImageError, FitError) as err:
             warnings.append(f"The reference image was not used: {err}")
         else:
             ref_geom = gfit.geometry

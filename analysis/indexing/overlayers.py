@@ -16,7 +16,7 @@ from scipy.spatial import cKDTree
 
 from ..errors import FitError, ParameterError
 from ..lattice import lattice_points, screen_g_max
-from ..nets import Net2D, classify_net, point_group, reciprocal
+from ..nets import Net2D, classify_net, point_group, reciprocal, symmetrized
 from ..optics import ScreenGeometry, wavelength_A
 from ..superstructure import (
     _same_lattice_fast,
@@ -196,7 +196,9 @@ def _context(hk, integer, substrate_fit: SubstrateFit, energy_eV, intensity, val
     obs_xy = _screen_xy(hk @ a_star, energy_eV, geom)
     r_obs = np.hypot(obs_xy[:, 0] - center[0], obs_xy[:, 1] - center[1])
     r_max = float(np.nanmax(r_obs)) * 1.02 if len(r_obs) else 0.0
-    sub = Net2D(substrate_fit.net.vectors)
+    # Wood notation, kind and domains need the substrate's exact symmetry: a net measured from an
+    # image (a reference calibration) misses it by its error, so the nearest symmetric net is used
+    sub = symmetrized(Net2D(substrate_fit.net.vectors), tol=2e-3)
     return _Context(hk=hk, integer=np.asarray(integer, dtype=bool), a_star=a_star, geom=geom,
                     energy_eV=float(energy_eV), tol_g=tol_px / (geom.scale_px * lam),
                     ops=point_group(sub, tol=2e-3), tree=cKDTree(hk @ a_star), r_max=r_max,

@@ -20,7 +20,7 @@ from ..optics import ScreenGeometry, momentum_to_pixels
 from .camera_refit import (_distortion_from_fractions, _distortion_open, _with_distortion, refine_with_model)
 from .candidates import _snap_matrix
 from .overlayers import OverlayerModel, evaluate_model, find_overlayers, model_indices
-from .substrate import _DISTORTION_PRIOR, _SCALE_PRIOR_SIGMA, SubstrateFit, fit_substrate
+from .substrate import _DISTORTION_PRIOR, along_reference, _SCALE_PRIOR_SIGMA, SubstrateFit, fit_substrate
 
 
 def _search_and_refit(xy, energy_eV, fit, geometry, kw, rounds: int = 2):
@@ -168,14 +168,8 @@ def index_pattern(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity
     xy = np.asarray(xy_px, dtype=np.float64).reshape(-1, 2)
     fits = fit_substrate(xy, energy_eV, hint, intensity=intensity, geometry=geometry, center_px=center_px,
                          center_guess=center_guess, screen_radius_px=screen_radius_px,
-                         screen_prior_sigma=screen_prior_sigma, valid_mask=valid_mask, tol_px=tol_px)
-    if azimuth_a_star_px is not None:
-        agree = [f for f in fits if along_reference(f.a_star_px, azimuth_a_star_px)]
-        if agree:
-            fits = agree
-        else:
-            fits = [dataclasses.replace(fits[0], notes=tuple(fits[0].notes) + (
-                "no reading lies along the reference image's substrate beams",))] + fits[1:]
+                         screen_prior_sigma=screen_prior_sigma, valid_mask=valid_mask, tol_px=tol_px,
+                         reference_a_star_px=azimuth_a_star_px)
     kw = dict(energy_eV=energy_eV, intensity=intensity, valid_mask=valid_mask, tol_px=tol_px, n_results=n_results,
               reliable=None if reliable is None else np.asarray(reliable, dtype=bool).reshape(len(xy)))
     readings = [f for f in fits[:max_readings] if f is fits[0] or f.confidence >= min_confidence]
@@ -188,31 +182,6 @@ def index_pattern(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity
     key, fit, models, reading = max(followed, key=lambda t: t[0])
     cands = [fit] + [f for f in fits if f is not reading]
     return IndexResult(substrate=fit, substrate_candidates=cands, models=models, energy_eV=float(energy_eV))
-
-
-def along_reference(a_star_px, reference_a_star_px, *, tol_deg: float = 3.0, len_rtol: float = 0.15) -> bool:
-    """Whether both rows of `a_star_px` point along beams of the reference basis.
-
-    A row agrees when one of the reference's short vectors (±a1*, ±a2*, ±(a1* ± a2*)) has
-    its length within `len_rtol` and its direction within `tol_deg`.
-
-    >>> ref = np.array([[100.0, 0.0], [-50.0, 86.6]])  # hexagonal, 120°
-    >>> turn = lambda deg: np.array([[np.cos(np.radians(deg)), np.sin(np.radians(deg))],
-    ...                              [-np.sin(np.radians(deg)), np.cos(np.radians(deg))]])
-    >>> along_reference(ref @ turn(60.0), ref), along_reference(ref @ turn(38.2), ref)
-    (True, False)
-    """
-    ref = np.asarray(reference_a_star_px, dtype=np.float64)
-    short = np.array([ref[0], ref[1], ref[0] + ref[1], ref[0] - ref[1]])
-    short = np.vstack([short, -short])
-    ang_ref = np.arctan2(short[:, 1], short[:, 0])
-    len_ref = np.hypot(short[:, 0], short[:, 1])
-    for row in np.asarray(a_star_px, dtype=np.float64):
-        ln = float(np.hypot(*row))
-        d = np.abs((np.arctan2(row[1], row[0]) - ang_ref + np.pi) % (2 * np.pi) - np.pi)
-        if not np.any((d <= np.radians(tol_deg)) & (np.abs(len_ref / ln - 1.0) <= len_rtol)):
-            return False
-    return True
 
 
 def _follow_reading(xy, energy_eV, reading: SubstrateFit, geometry, tol_px, kw):

@@ -117,7 +117,8 @@ def fit_substrate(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity
                   geometry: ScreenGeometry | None = None, center_px=None, center_guess=None,
                   screen_radius_px: float | None = None, screen_prior_sigma: float = _SCALE_PRIOR_SIGMA,
                   valid_mask: np.ndarray | None = None, fit_lattice: bool | None = None,
-                  tol_px: float = 2.5, n_candidates: int = 12, max_results: int = 3) -> list[SubstrateFit]:
+                  tol_px: float = 2.5, n_candidates: int = 12, max_results: int = 3,
+                  reference_a_star_px=None) -> list[SubstrateFit]:
     """Find the substrate reciprocal net among the spots, ranked.
 
     Parameters
@@ -148,6 +149,12 @@ def fit_substrate(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity
         Fit a*, b*, γ* freely (default: True when `geometry` is given).
     tol_px : float
         Final matching tolerance, pixels.
+    reference_a_star_px : (2, 2) array_like, optional
+        The substrate's reciprocal basis in pixels as a reference image showed it.
+        The spots nearest to its first-order beams start readings first (a dense
+        pattern's nearest and brightest spots may all be fractional), and only
+        readings along its beams are kept (:func:`along_reference`); when none is,
+        all are kept and the best one's notes say so.
 
     Returns
     -------
@@ -190,7 +197,15 @@ def fit_substrate(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity
     order = [i for i in np.argsort(r) if r[i] > 3 * tol_px]
     near = order[:n_candidates]
     bright = sorted(order, key=lambda i: -inten[i])[:n_candidates]
-    cands = list(dict.fromkeys(near + bright))
+    expected = []
+    if reference_a_star_px is not None and len(order):
+        a = np.asarray(reference_a_star_px, dtype=np.float64)
+        short = np.array([a[0], a[1], a[0] + a[1], a[0] - a[1]])
+        for q in center + np.vstack([short, -short]):
+            d, j = tree.query(q)
+            if np.isfinite(d) and d <= 0.1 * float(np.hypot(q[0] - center[0], q[1] - center[1])) and r[j] > 3 * tol_px:
+                expected.append(int(j))
+    cands = list(dict.fromkeys(expected + near + bright))
     fits: list[SubstrateFit] = []
     tried_inv: list[np.ndarray] = []  # inverses of the start bases tried
     for a_star in _hint_variants(hint):
@@ -209,11 +224,43 @@ def fit_substrate(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity
     if not fits:
         raise FitError(f"No reading of the {classify_net(hint)} substrate net "
                        f"({hint.label or 'given'}) fits the {len(xy)} spots.")
+    if reference_a_star_px is not None:
+        agree = [f for f in fits if along_reference(f.a_star_px, reference_a_star_px)]
+        if agree:
+            fits = agree
+        else:
+            fits = [dataclasses.replace(f, notes=tuple(f.notes) + (
+                "no reading lies along the reference image's substrate beams",)) for f in fits]
     fits.sort(key=lambda f: -f.score)
     scores = np.array([f.score for f in fits])
     conf = np.exp(scores - scores.max())
     conf /= conf.sum()
     return [dataclasses.replace(f, confidence=float(c)) for f, c in zip(fits, conf)][:max_results]
+
+
+def along_reference(a_star_px, reference_a_star_px, *, tol_deg: float = 3.0, len_rtol: float = 0.15) -> bool:
+    """Whether both rows of `a_star_px` point along beams of the reference basis.
+
+    A row agrees when one of the reference's short vectors (±a1*, ±a2*, ±(a1* ± a2*)) has
+    its length within `len_rtol` and its direction within `tol_deg`.
+
+    >>> ref = np.array([[100.0, 0.0], [-50.0, 86.6]])  # hexagonal, 120°
+    >>> turn = lambda deg: np.array([[np.cos(np.radians(deg)), np.sin(np.radians(deg))],
+    ...                              [-np.sin(np.radians(deg)), np.cos(np.radians(deg))]])
+    >>> along_reference(ref @ turn(60.0), ref), along_reference(ref @ turn(38.2), ref)
+    (True, False)
+    """
+    ref = np.asarray(reference_a_star_px, dtype=np.float64)
+    short = np.array([ref[0], ref[1], ref[0] + ref[1], ref[0] - ref[1]])
+    short = np.vstack([short, -short])
+    ang_ref = np.arctan2(short[:, 1], short[:, 0])
+    len_ref = np.hypot(short[:, 0], short[:, 1])
+    for row in np.asarray(a_star_px, dtype=np.float64):
+        ln = float(np.hypot(*row))
+        d = np.abs((np.arctan2(row[1], row[0]) - ang_ref + np.pi) % (2 * np.pi) - np.pi)
+        if not np.any((d <= np.radians(tol_deg)) & (np.abs(len_ref / ln - 1.0) <= len_rtol)):
+            return False
+    return True
 
 
 def _any_same_lattice(m: np.ndarray, inverses: np.ndarray, tol: float) -> bool:
@@ -281,7 +328,9 @@ def _try_substrate(xy, tree, inten, energy_eV, a_star, e, v, center, geometry, l
     for n_stage, (tol, rad, free) in enumerate(stages):
         pred = _screen_xy(hk_all @ lattice, energy_eV, geom)
         rr = np.hypot(pred[:, 0] - geom.center_x_px, pred[:, 1] - geom.center_y_px)
-        if n_stage in (1, 2):  # an unfitted distortion moves outer rings most (outwards in the model):
+        # an unfitted distortion moves outer rings most (outwards in the model); a calibrated
+        # camera knows it, and there the nearest spot is the beam, not the brightest one near it
+        if n_stage in (1, 2) and geometry is None:
             pred = np.where((rr <= min(rad, 1.15 * r_max))[:, None], pred, np.nan)
             tol = np.maximum(0.12 * rr, tol)  # look wider, and take the brightest spot there
             pi, oj = _match(pred, tree, tol, brightness=inten)
