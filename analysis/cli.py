@@ -12,7 +12,6 @@ import json
 import sys
 import time
 from collections.abc import Callable
-from dataclasses import replace
 from pathlib import Path
 from typing import TYPE_CHECKING
 
@@ -262,8 +261,8 @@ def add_iv_parser(subparsers) -> argparse.ArgumentParser:
     p.add_argument("--json", help="output JSON with curves, flags, calibration and equivalent groups")
     p.add_argument("--geometry", help="JSON screen geometry (a saved calibration); default: index frames")
     p.add_argument("--index-frame", type=int, dest="index_frame", metavar="N",
-                   help="frame to index (0-based) when no --geometry is given; default: up to six frames "
-                        "(the one nearest the middle of the range or 150 eV, and others up to 250 eV) vote")
+                   help="index only this frame (0-based) when no --geometry is given; default: up to seven frames "
+                        "spread over the range (up to 300 eV) are indexed together, with one camera")
     p.add_argument("--overlayer", action="append", default=[], metavar="MATRIX",
                    help="superstructure matrix, e.g. '2 0 / 0 2' (repeat for several)")
     p.add_argument("--all-domains", action="store_true", help="add the symmetry-equivalent domains")
@@ -307,13 +306,11 @@ def _series_calibration_file(series_cal, energies_eV, frame_shape, substrate, so
 def _cmd_iv(args) -> int:
     import numpy as np
 
-    from .io import iter_frames, load_image
     from .nets import parse_substrate
-    from .series import beams_from_nets, csv_text, index_series_frame, index_series_frames, result_to_dict, track_series
-    from .series.energies import EnergyTable, _Energies, _StartStep, read_energy_file
+    from .series import csv_text, result_to_dict
+    from .series.energies import _StartStep, read_energy_file
     from .series.export import _atomic_write
-    from .series.index_frames import _index_frame_choices, _seek_frame, _seek_frames
-    from .series.track import _STACK_MAX_BYTES
+    from .series.pipeline import run_iv
 
     substrate = parse_substrate(args.substrate)
     if args.energies and args.start_eV is not None:
@@ -329,97 +326,60 @@ def _cmd_iv(args) -> int:
         energies = read_energy_file(args.energies)
     elif args.start_eV is not None:
         energies = _StartStep(args.start_eV, args.step_eV)
-    mats = []
+    overlayer = None
     if args.overlayer:
         from .superstructure import parse_matrix
 
-        mats = [parse_matrix(t) for t in args.overlayer]
+        overlayer = [parse_matrix(t) for t in args.overlayer]
     for out, option in ((args.csv, "--csv"), (args.json, "--json"), (args.save_calibration, "--save-calibration")):
         if out:
             try:
                 _check_output(out, option)
             except ParameterError as err:
                 raise SeriesError(str(err)) from None
-    first = None  # frame 0's stored depth (saturation level) and the page count of a stack
+    saturation = None
     if not Path(args.series).is_dir():
+        from .io import load_image
+        from .series.track import _STACK_MAX_BYTES
+
         try:
-            first = load_image(args.series, max_bytes=_STACK_MAX_BYTES)
+            saturation = load_image(args.series, max_bytes=_STACK_MAX_BYTES).saturation_level
         except ImageError:
-            first = None  # a zip, or unreadable: iter_frames names the problem below
-    frames = iter_frames(args.series, max_bytes=_STACK_MAX_BYTES)
-    try:
-        name0, frame0 = next(frames)
-    except StopIteration:
-        raise SeriesError(f"{args.series}: the series holds no frames.") from None
-    except ImageError as err:
-        raise SeriesError(f"Cannot read frame 0: {err}") from None
-    saturation = first.saturation_level if first is not None else None
-    e0 = _Energies(energies, args.name_pattern).at(0, name0)[0]
-    if isinstance(energies, EnergyTable):
-        e_max = float(np.max(energies.energy_eV))
-    elif isinstance(energies, _StartStep) and energies.step < 0:
-        e_max = energies.start
-    else:
-        e_max = 1000.0  # the count is not known yet: follow every beam that could enter
+            saturation = None  # a zip, or unreadable: the run names the problem
     mask = None
     if args.mask:
+        from .io import load_image
+
         mask = load_image(args.mask, _allow_constant=True).data > 0
-    found = None
-    if args.geometry:
-        geom = _read_geometry(args.geometry)
-        net = substrate
-        azimuth = args.azimuth_deg
-    else:
-        n_idx = args.index_frame
-        try:
-            if n_idx is not None:  # the frame asked for
-                name_i, frame_i, e_i = (name0, frame0, e0) if n_idx == 0 else \
-                    _seek_frame(args.series, n_idx, energies, args.name_pattern)
-                found = index_series_frame(frame_i, energy_eV=e_i, substrate=substrate, frame_index=n_idx,
-                                           frame_name=name_i)
-                del frame_i
-            else:  # several frames vote
-                picks = _seek_frames(args.series, _index_frame_choices(args.series, energies, first), energies,
-                                     args.name_pattern)
-                found = index_series_frames([(f, e, i, nm) for i, nm, f, e in picks], substrate=substrate)
-                del picks
-        except SeriesError as err:
+    geom = _read_geometry(args.geometry) if args.geometry else None
+    bar = _progress_bar(sys.stderr) if sys.stderr.isatty() else None
+    try:
+        run = run_iv(args.series, substrate=substrate, energies=energies, overlayer=overlayer, geometry=geom,
+                     azimuth_deg=args.azimuth_deg, index_frame=args.index_frame, name_pattern=args.name_pattern,
+                     mask=mask, all_domains=args.all_domains, symmetry=args.symmetry, radius_px=args.radius_px,
+                     background=args.background, method=args.method, gain=args.gain, saturation_level=saturation,
+                     normalise_current=not args.no_current, progress=bar)
+    except SeriesError as err:
+        if geom is None and ("indexed" in str(err) or "Could not index" in str(err)):
             raise SeriesError(f"{err} Give --geometry with a saved calibration, or another frame with "
                               "--index-frame.") from None
-        for w in found.warnings:
-            print(f"note: {w}", file=sys.stderr)
-        geom, net, azimuth = found.geometry, found.substrate, 0.0
-        mask = found.mask if mask is None else mask
-        if not mats:
-            mats = list(found.overlayers)
-    beams = beams_from_nets(net, mats, energy_max_eV=max(e_max, e0), geometry=geom, azimuth_deg=azimuth,
-                            all_domains=args.all_domains, symmetry=args.symmetry)
-
-    def all_frames():
-        yield name0, frame0
-        yield from frames
-
-    bar = _progress_bar(sys.stderr) if sys.stderr.isatty() else None
-    n_known = len(energies) if isinstance(energies, EnergyTable) else None
-    try:
-        res = track_series(all_frames(), beams, geom, energies=energies, name_pattern=args.name_pattern,
-                           mask=mask, radius_px=args.radius_px, background=args.background, method=args.method,
-                           gain=args.gain, saturation_level=saturation, normalise_current=not args.no_current,
-                           progress=None if bar is None else (lambda i, n, e: bar(i, n or n_known, e)),
-                           prefetch=True)
+        raise
     finally:
         if bar is not None:
             sys.stderr.write("\n")
+    res, found = run.result, run.indexing
     if found is not None:
-        res = replace(res, settings={**res.settings, "indexing": found.to_dict()})
-    texts = [(args.csv, csv_text(res, averaged=args.average, smooth_eV=args.smooth_eV, v0i_eV=args.v0i_eV))]
-    if args.json:
-        texts.append((args.json, json.dumps(result_to_dict(res, v0i_eV=args.v0i_eV, smooth_eV=args.smooth_eV),
-                                            indent=1, allow_nan=False)))
+        for w in found.warnings:
+            print(f"note: {w}", file=sys.stderr)
+    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+        texts = [(args.csv, csv_text(res, averaged=args.average, smooth_eV=args.smooth_eV, v0i_eV=args.v0i_eV))]
+        if args.json:
+            texts.append((args.json, json.dumps(result_to_dict(res, v0i_eV=args.v0i_eV, smooth_eV=args.smooth_eV),
+                                                indent=1, allow_nan=False)))
     if args.save_calibration:
         if res.calibration is None:
             raise SeriesError("No calibration could be fitted from the series (too few refined beams).")
-        cal_file = _series_calibration_file(res.calibration, res.energy_eV, frame0.shape, substrate,
+        cal_file = _series_calibration_file(res.calibration, res.energy_eV, run.frame_shape, substrate,
                                             Path(args.series).name)
         texts.append((args.save_calibration, json.dumps(cal_file.to_dict(), indent=2, allow_nan=False,
                                                         ensure_ascii=False)))
@@ -428,7 +388,11 @@ def _cmd_iv(args) -> int:
     n_beams = int(np.sum(res.valid.any(axis=0)))
     cal = res.calibration
     msg = f"{res.energy_eV.size} frames, {n_beams} beams -> {args.csv}"
-    if found is not None:
+    if found is not None and found.joint is not None:
+        j = found.joint
+        msg += (f"; {len(j['frames'])} frames indexed together: {found.label} ({j['frames_agreeing']} of "
+                f"{j['frames_total']} frames read the same alone)")
+    elif found is not None:
         msg += f"; indexed frame {found.frame} ({found.energy_eV:g} eV): {found.label}"
     if cal is not None:
         g = cal.geometry

@@ -667,10 +667,11 @@ def test_cli_indexing_failure_is_one_line(tmp_path, capsys):
     assert main(base) == 2
     err = capsys.readouterr().err
     assert err.count("\n") == 1
-    assert "Could not index frame 2 (noise.tif#2) at 84 eV: " in err and "Give --geometry" in err
+    # the frames indexed together each name their reason
+    assert "No frame could be indexed: " in err and "frame 2 (84 eV): " in err and "Give --geometry" in err
     assert main(base + ["--index-frame", "9"]) == 2
     err = capsys.readouterr().err
-    assert err.count("\n") == 1 and "--index-frame 9 is beyond the last frame (the series has 6 frames)" in err
+    assert err.count("\n") == 1 and "Frame 9 to index is beyond the last frame (the series has 6 frames" in err
     assert not out.exists()
 
 

@@ -77,7 +77,8 @@ def iv_table(result: IVResult, *, averaged: bool = False, smooth_eV: float = 0.0
 def _atomic_write(path, text: str) -> None:
     """Write `text` to `path` through a temporary file, so no partial file is ever left.
 
-    The file is readable by its owner only (mode 0o600).
+    The file is readable by everyone and written by its owner (mode 0o644 before the umask),
+    as any output file a user shares.
     """
     p = Path(path)
     if p.is_dir():
@@ -85,7 +86,7 @@ def _atomic_write(path, text: str) -> None:
     parent = p.parent if str(p.parent) else Path(".")
     if not parent.is_dir():
         raise SeriesError(f"Output folder {parent} does not exist.")
-    write_text_atomic(p, text, mode=0o600)
+    write_text_atomic(p, text, mode=0o644)
 
 
 def csv_text(result: IVResult, **kw) -> str:

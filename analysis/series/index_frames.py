@@ -58,6 +58,10 @@ class SeriesIndexing:
     votes : tuple of dict
         When several frames were indexed (:func:`index_series_frames`): each frame's
         ``frame``, ``energy_eV``, ``reading`` (its label, or the error) and ``confidence``.
+    joint : dict or None
+        When the frames were indexed together (:func:`analysis.series.joint.index_series_joint`):
+        the frames and spots used, the camera's rms, the readings compared and how many
+        frames read the same on their own (``frames_agreeing`` of ``frames_total``).
     """
 
     frame: int
@@ -73,6 +77,7 @@ class SeriesIndexing:
     mask: np.ndarray | None = None
     warnings: tuple = ()
     votes: tuple = ()
+    joint: dict | None = None
 
     @property
     def label(self) -> str:
@@ -91,7 +96,7 @@ class SeriesIndexing:
             "domains": [np.asarray(m, dtype=np.float64).tolist() for m in self.overlayers],
             "substrate_confidence": self.confidence, "geometry": self.geometry.to_dict(),
             "substrate_net_A": self.substrate.vectors.tolist(), "warnings": list(self.warnings),
-            "votes": [dict(v) for v in self.votes]})
+            "votes": [dict(v) for v in self.votes], "joint": self.joint})
 
 
 def index_series_frame(frame, *, energy_eV: float, substrate: str | Net2D, frame_index: int = 0,
