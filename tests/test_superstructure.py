@@ -317,3 +317,20 @@ def test_wood_text_that_fits_two_lattices_says_so():
         warnings.simplefilter("error")  # the usual cases are not ambiguous
         assert np.array_equal(parse_wood("(√3×√3)R30°", HEX), [[2, 1], [-1, 1]])
         assert np.array_equal(parse_wood("(√7×√7)R19.1°", HEX), [[3, 1], [-1, 2]])
+
+
+def test_wood_names_stay_importable_from_superstructure():
+    import subprocess
+    import sys
+
+    from analysis import superstructure, wood
+
+    for name in wood.__all__:
+        assert getattr(superstructure, name) is getattr(wood, name)
+        assert name in superstructure.__all__ or name == "AmbiguousWoodWarning"
+    with pytest.raises(AttributeError, match="no attribute 'not_a_name'"):
+        superstructure.not_a_name  # noqa: B018
+    # either module may be imported first (wood builds on superstructure, never the reverse at import)
+    for first in ("analysis.wood", "analysis.superstructure"):
+        code = f"import {first}; from analysis.superstructure import parse_wood; import analysis.wood"
+        subprocess.run([sys.executable, "-c", code], check=True)
