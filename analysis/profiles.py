@@ -182,6 +182,19 @@ class GaussianProfile:
         """Integral 2π A σ_r σ_t of the spot over the plane."""
         return 2 * math.pi * amp * sigma_r * sigma_t
 
+    def round_unit_values(self, d2, sigma):
+        """Round unit-volume spot at squared distances `d2` (px²) from its centre:
+        exp(−d²/2σ²) / (2πσ²), σ = `sigma` (px); the template of a profile-fitted intensity.
+
+        Examples
+        --------
+        >>> d2 = np.add.outer(np.arange(-12.0, 13.0) ** 2, np.arange(-12.0, 13.0) ** 2)
+        >>> v = GaussianProfile().round_unit_values(d2, 1.5)
+        >>> print(round(float(v.sum()), 9), bool(v[12, 12] == 1 / (2 * np.pi * 1.5 ** 2)))
+        1.0 True
+        """
+        return np.exp(-d2 / (2.0 * sigma * sigma)) / (2.0 * math.pi * sigma * sigma)
+
     def fwhm(self, sigma):
         """Full width at half maximum along an axis of width `sigma`."""
         return _FWHM * sigma

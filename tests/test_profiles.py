@@ -95,3 +95,15 @@ def test_closed_forms():
     # beyond the window half-width a spot is below 10⁻⁹ of its peak
     h = int(g.window_half_px(np.array([2.0]), np.array([1.0]))[0])
     assert np.exp(-0.5 * (h / 2.0) ** 2) < 1e-9
+
+
+def test_round_unit_values_are_the_unit_volume_round_gaussian_bit_for_bit():
+    d2 = np.random.default_rng(3).uniform(0.0, 60.0, (4, 50))  # px²
+    for sg in (0.7, 1.3, 2.9):
+        # exp(−d²/2σ²)/(2πσ²) written out: the profile-fit template must not drift by a bit
+        want = np.exp(-d2 / (2.0 * sg * sg)) / (2.0 * np.pi * sg * sg)
+        assert np.array_equal(GAUSSIAN.round_unit_values(d2, sg), want)
+    # its volume is one: summed over a fine grid (0.05 px cells) out to 8 σ
+    o = np.arange(-16.0, 16.0 + 1e-9, 0.05)
+    d2 = np.add.outer(o**2, o**2)
+    assert abs(GAUSSIAN.round_unit_values(d2, 2.0).sum() * 0.05**2 - 1.0) < 1e-9

@@ -18,6 +18,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..errors import ImageError, ParameterError
+from ..profiles import GAUSSIAN
 
 __all__ = [
     "SpotIntegrals",
@@ -399,7 +400,7 @@ def _integrate(frame: np.ndarray, rc: np.ndarray, mask: np.ndarray | None, satur
         lo_b, hi_b = mean - 3.0 * sd - 1e-9, mean + 3.0 * sd + 1e-9
         good_bg = in_ann & (data >= lo_b[:, None]) & (data <= hi_b[:, None])
         fit_px = (d2 <= r_out * r_out) & usable & ((d2 <= radius_px * radius_px) | good_bg)
-        gauss = np.exp(-d2 / (2.0 * sg * sg)) / (2.0 * math.pi * sg * sg)
+        gauss = GAUSSIAN.round_unit_values(d2, sg)
         cols = [gauss, np.ones_like(d2)] + ([] if p_dim == 1 else [dc / scale, dr / scale])
         fit_f = fit_px.astype(np.float64)
         wts = fit_f / np.maximum(s2, 1e-12)[:, None]
