@@ -44,6 +44,7 @@ from .realism import (
     to_colour_jpeg,
 )
 from .render import (
+    _check_render_inputs,
     _DEFAULT,
     GunShadow,
     SyntheticImage,
@@ -197,12 +198,7 @@ def photograph(pattern: Pattern, *, rng: np.random.Generator, effects=(), option
     >>> print(ph.image.dtype, ph.image[hp["y"], hp["x"]] == hp["adu"], sorted(ph.truth["effects"]))
     uint16 True ['hot_pixels', 'keystone']
     """
-    if not isinstance(pattern, Pattern):
-        raise ParameterError(f"`pattern` must be a Pattern from forward_pattern, got {type(pattern).__name__}.")
-    if not isinstance(rng, np.random.Generator):
-        raise ParameterError(f"`rng` must be a numpy.random.Generator, got {type(rng).__name__}.")
-    if bit_depth not in (8, 16):
-        raise ParameterError(f"`bit_depth` must be 8 or 16, got {bit_depth!r}.")
+    _check_render_inputs(pattern, rng, bit_depth)
     names, opts = _check(effects, options)
     prm = _draw(names, rng, opts)
     rows, cols = (int(v) for v in shape)

@@ -282,12 +282,7 @@ def render_image(pattern: Pattern, *, shape=(1024, 1024), rng: np.random.Generat
     >>> print(im.image.dtype, im.image.shape, im.truth["spots"][0]["hidden"])
     uint16 (256, 256) True
     """
-    if not isinstance(pattern, Pattern):
-        raise ParameterError(f"`pattern` must be a Pattern from forward_pattern, got {type(pattern).__name__}.")
-    if not isinstance(rng, np.random.Generator):
-        raise ParameterError(f"`rng` must be a numpy.random.Generator, got {type(rng).__name__}.")
-    if bit_depth not in (8, 16):
-        raise ParameterError(f"`bit_depth` must be 8 or 16, got {bit_depth!r}.")
+    _check_render_inputs(pattern, rng, bit_depth)
     if not (read_noise_e >= 0 and math.isfinite(read_noise_e)):
         raise ParameterError(f"`read_noise_e` must be ≥ 0, got {read_noise_e}.")
     scene = _scene(pattern, shape=shape, rng=rng, spot_sigma_px=spot_sigma_px, intensities=intensities,
@@ -454,3 +449,13 @@ def _spot_truth(pattern, sigma, photons, seen, s_centre, s_radius, gun, image, f
             "saturated": bool(inside and not hidden and image[r, c] >= full),
         })
     return out
+
+
+def _check_render_inputs(pattern, rng, bit_depth) -> None:
+    """The checks every renderer makes of its pattern, random source and bit depth."""
+    if not isinstance(pattern, Pattern):
+        raise ParameterError(f"`pattern` must be a Pattern from forward_pattern, got {type(pattern).__name__}.")
+    if not isinstance(rng, np.random.Generator):
+        raise ParameterError(f"`rng` must be a numpy.random.Generator, got {type(rng).__name__}.")
+    if bit_depth not in (8, 16):
+        raise ParameterError(f"`bit_depth` must be 8 or 16, got {bit_depth!r}.")
