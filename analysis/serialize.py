@@ -24,7 +24,9 @@ Schema (``"schema": "recinet.analysis"``, ``"version": 1``), keys kept stable:
   the first is ``matrix``), ``wood`` (text or null), ``coverage`` (one
   adsorbate per overlayer cell), ``net`` (real-space a, b, γ, type),
   ``angle_to_substrate_deg``, counts, ``unexplained`` (spot indices).
-* ``candidates``: the ranked models (same fields and their ``score``).
+* ``candidates``: the ranked models (same fields and their ``score``), each with
+  ``score_terms``: ``{"terms": {name: {"value", "weight", "contribution"}}, "total"}``, the named
+  terms of the score (``analysis/indexing/score.py``) that say why it won or lost.
 * ``geometry``: the fitted camera model; ``predicted``: pixel positions of
   the substrate beams and of each domain's beams, for overlays.
 
@@ -105,6 +107,8 @@ def model_to_dict(model: OverlayerModel) -> dict:
         "unexplained_count": model.unexplained,
         "absent": model.absent,
         "score": _f(model.score),
+        # why a candidate won or lost: each named term of the score (indexing/score.py)
+        "score_terms": model.score_terms.to_dict() if model.score_terms is not None else None,
         "unexplained": [int(i) for i in np.flatnonzero(model.explained_by == -1)],
         "notes": list(model.notes),
     }

@@ -94,3 +94,17 @@ def test_sqrt3_with_one_integer_ring_and_no_reference():
     img, _, _ = _one_ring_pair(hot_pixels=0)
     d = result_to_dict(analyze_image(img.image, energy_eV=60.0, substrate="Pt(111)"))
     assert d["overlayer"]["wood"] == "(√3×√3)R30°"
+
+
+def test_every_candidate_says_why_it_won_or_lost():
+    """The JSON carries each candidate's named score terms; their contributions add up to its score."""
+    img, truth = _demo("cu100_CX-3_c2x2.png")
+    d = result_to_dict(analyze_image(img, energy_eV=truth["energy_eV"], substrate="Cu(100)"))
+    assert len(d["candidates"]) >= 2
+    for c in d["candidates"]:
+        terms = c["score_terms"]["terms"]
+        parts = [v["contribution"] for v in terms.values()]
+        assert {"explained", "unexplained", "extra_domains"} <= set(terms)
+        assert sum(parts) == pytest.approx(c["score"], abs=1e-9)
+        assert c["score_terms"]["total"] == pytest.approx(c["score"], abs=1e-9)
+    assert d["overlayer"]["score_terms"]["total"] == pytest.approx(d["overlayer"]["score"], abs=1e-9)

@@ -549,3 +549,15 @@ def test_reference_image_upload_and_demo(ws, fresh_store, noisy_png):
     assert meta is None and "r.txt: not an image" in _text(note)
     meta, note, energy, contents = _call(ws.on_reference, "ref-demo.value", None, None, None, 70)
     assert meta is None and note is None  # cleared
+
+
+def test_candidate_labels_say_what_cost_each_candidate(ws):
+    c = {"wood": "c(2×2)", "matrix": [[1, 1], [-1, 1]], "kind": "commensurate", "score": 4.5, "explained": 6,
+         "score_terms": {"terms": {"explained": {"value": 6, "weight": 1.0, "contribution": 6.0},
+                                   "unexplained": {"value": 3, "weight": -1.0, "contribution": -3.0},
+                                   "extra_domains": {"value": 1, "weight": -1.0, "contribution": -1.0},
+                                   "miss": {"value": 0.01, "weight": -1.0, "contribution": -0.01}},
+                         "total": 1.99}}
+    label = ws._candidate_label(c, 0)
+    assert "costs: unexplained −3, extra domains −1" in label and "miss" not in label
+    assert "costs" not in ws._candidate_label({"wood": "p(2×2)", "score": 1.0}, 1)

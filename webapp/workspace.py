@@ -628,7 +628,19 @@ def _candidate_label(c: dict, i: int) -> str:
             break
     if isinstance(c.get("explained"), (int, float)):
         parts.append(f"explains {int(c['explained'])}")
+    costs = _score_costs(c)
+    if costs:
+        parts.append("costs: " + ", ".join(costs))
     return "  ".join(parts)
+
+
+def _score_costs(c, most: int = 3) -> list[str]:
+    """The score terms that cost a candidate most, e.g. ``['unexplained −3', 'extra domains −1']``."""
+    terms = ((c.get("score_terms") or {}).get("terms") or {}) if isinstance(c, dict) else {}
+    costs = [(float(t.get("contribution", 0.0)), name) for name, t in terms.items()
+             if isinstance(t, dict) and isinstance(t.get("contribution"), (int, float))]
+    costs = sorted((v, n) for v, n in costs if v <= -0.05)[:most]
+    return [f"{n.replace('_', ' ')} −{abs(v):.2g}" for v, n in costs]
 
 
 def _candidate_options(result):
