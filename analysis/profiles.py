@@ -199,6 +199,10 @@ class GaussianProfile:
         """Full width at half maximum along an axis of width `sigma`."""
         return _FWHM * sigma
 
+    def sigma_of_fwhm(self, fwhm):
+        """The width `sigma` whose full width at half maximum is `fwhm` (inverse of :meth:`fwhm`)."""
+        return fwhm / _FWHM
+
     def filtered(self, amp, sigma_r, sigma_t, sigma_px: float):
         """(A, σ_r, σ_t) of the spot convolved with a unit-sum round Gaussian of σ `sigma_px`
         (the matched filter): a Gaussian again."""

@@ -48,8 +48,8 @@ def time_limit(seconds: float | None, what: str = "the work"):
         raise ParameterError(f"A time limit must be a positive number of seconds, got {seconds!r}.")
     outer = getattr(_local, "deadline", None)
     deadline = time.monotonic() + seconds
-    _local.deadline = deadline if outer is None else min(outer[0], deadline), \
-        _message(seconds, what) if outer is None or deadline < outer[0] else outer[1]
+    # the innermost limit that ends first rules (an outer one that ends sooner stays in force)
+    _local.deadline = outer if outer is not None and outer[0] <= deadline else (deadline, _message(seconds, what))
     hard = (threading.current_thread() is threading.main_thread() and hasattr(signal, "setitimer")
             and signal.getitimer(signal.ITIMER_REAL)[0] == 0.0)
     if hard:

@@ -369,7 +369,7 @@ def _commensurate_reading(substrate: Net2D, m: float, n: float, phi_deg: float, 
     else:
         found = [(q, 0, sense, mat) for q, sense, mat in found]
     found.sort(key=lambda f: f[:3])
-    best = found[0][1:] and found[0][3]
+    best = found[0][3]
     if len(found) == 2 and found[1][0] == found[0][0] and found[1][1] == found[0][1]:
         other = found[1][3]
         if not any(same_lattice(other, d.matrix, tol=1e-6) for d in domains(substrate, best)):

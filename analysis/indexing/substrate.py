@@ -199,9 +199,7 @@ def fit_substrate(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity
     bright = sorted(order, key=lambda i: -inten[i])[:n_candidates]
     expected = []
     if reference_a_star_px is not None and len(order):
-        a = np.asarray(reference_a_star_px, dtype=np.float64)
-        short = np.array([a[0], a[1], a[0] + a[1], a[0] - a[1]])
-        for q in center + np.vstack([short, -short]):
+        for q in center + _short_beams(reference_a_star_px):
             d, j = tree.query(q)
             if np.isfinite(d) and d <= 0.1 * float(np.hypot(q[0] - center[0], q[1] - center[1])) and r[j] > 3 * tol_px:
                 expected.append(int(j))
@@ -238,6 +236,14 @@ def fit_substrate(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity
     return [dataclasses.replace(f, confidence=float(c)) for f, c in zip(fits, conf)][:max_results]
 
 
+def _short_beams(basis: np.ndarray) -> np.ndarray:
+    """(8, 2) ±a1, ±a2, ±(a1 + a2), ±(a1 − a2) of a (2, 2) basis: every first-order beam of
+    the five plane nets is among them."""
+    a = np.asarray(basis, dtype=np.float64)
+    short = np.array([a[0], a[1], a[0] + a[1], a[0] - a[1]])
+    return np.vstack([short, -short])
+
+
 def along_reference(a_star_px, reference_a_star_px, *, tol_deg: float = 3.0, len_rtol: float = 0.15) -> bool:
     """Whether both rows of `a_star_px` point along beams of the reference basis.
 
@@ -251,8 +257,7 @@ def along_reference(a_star_px, reference_a_star_px, *, tol_deg: float = 3.0, len
     (True, False)
     """
     ref = np.asarray(reference_a_star_px, dtype=np.float64)
-    short = np.array([ref[0], ref[1], ref[0] + ref[1], ref[0] - ref[1]])
-    short = np.vstack([short, -short])
+    short = _short_beams(ref)
     ang_ref = np.arctan2(short[:, 1], short[:, 0])
     len_ref = np.hypot(short[:, 0], short[:, 1])
     for row in np.asarray(a_star_px, dtype=np.float64):

@@ -16,6 +16,8 @@ import math
 
 import numpy as np
 
+from ..errors import ParameterError
+from ..profiles import GAUSSIAN
 from .fit import FLAG_FIT_FAILED, FLAG_SATURATED
 
 __all__ = ["MIN_SIGMA_PX", "MIN_LOCAL_SNR", "REJECT_NARROW", "REJECT_WIDE", "REJECT_NO_PEAK", "REJECT_FLAT", "judge_spots", "local_snr",
@@ -65,9 +67,9 @@ def judge_spots(table, sigma_px: float, *, narrow: float = 0.5, wide: float = 3.
     """
     s = float(sigma_px)
     if not (math.isfinite(s) and s > 0):
-        raise ValueError(f"sigma_px must be a positive number of pixels, got {sigma_px!r}")
+        raise ParameterError(f"`sigma_px` must be a positive number of pixels, got {sigma_px!r}.")
     fwhm = np.sqrt(np.asarray(table.fwhm_radial_px, float) * np.asarray(table.fwhm_tangential_px, float))
-    sig = fwhm / (2.0 * math.sqrt(2.0 * math.log(2.0)))
+    sig = GAUSSIAN.sigma_of_fwhm(fwhm)
     flags = np.asarray(table.flags)
     fitted = (flags & FLAG_FIT_FAILED) == 0
     saturated = (flags & FLAG_SATURATED) != 0  # its core is left out of the fit: the width is the wings'
