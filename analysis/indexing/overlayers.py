@@ -208,7 +208,59 @@ def _context(hk, integer, substrate_fit: SubstrateFit, energy_eV, intensity, val
                     net=substrate_fit.net)
 
 
-def _score(ctx: _Context, matrix, *, all_domains: bool, satellites: bool, absent: bool = True) -> dict:
+@dataclass(frozen=True, eq=False)
+class _Scored:
+    """One matrix scored with its domains (what :func:`_describe` turns into a model).
+
+    Attributes
+    ----------
+    domains : list of (2, 2) ndarray of float64
+        The domains chosen (the smallest set that explains the spots, or all), real-space matrices.
+    domain_ops : list of str
+        The substrate operation that makes each chosen domain.
+    all_domains : list of (2, 2) ndarray of float64
+        Every symmetry domain of the matrix, chosen or not.
+    explained, unexplained : int
+        Fractional spots explained / left unexplained (every spot, trusted or not).
+    satellites : int
+        Of the explained, those explained only as multiple-scattering satellites.
+    satellites_allowed : bool
+        Satellites were accepted (a continuous fit, a candidate for an incommensurate model).
+    explained_by : (K,) ndarray of int
+        For every spot, the rank of the chosen domain that explains it (−1 none, −2 substrate).
+    absent : int or None
+        Predicted fractional beams absent where a spot could be seen; None until counted.
+    terms : ScoreBreakdown
+        The overlayer score's named terms (A included once `absent` is counted).
+    bound : float
+        The score before A is counted: an upper bound of `score`.
+    total_domains : int
+        Number of symmetry domains of the matrix (``len(all_domains)``).
+    """
+
+    domains: list
+    domain_ops: list
+    all_domains: list
+    explained: int
+    unexplained: int
+    satellites: int
+    satellites_allowed: bool
+    explained_by: np.ndarray
+    absent: int | None
+    terms: ScoreBreakdown
+    bound: float
+
+    @property
+    def score(self) -> float:
+        """The score so far: ``terms.total`` (equal to `bound` until `absent` is counted)."""
+        return self.terms.total
+
+    @property
+    def total_domains(self) -> int:
+        return len(self.all_domains)
+
+
+def _score(ctx: _Context, matrix, *, all_domains: bool, satellites: bool, absent: bool = True) -> _Scored:
     """Explained / unexplained / absent counts and the score of one matrix with its domains.
 
     With ``absent=False`` the (costly) count of missing beams is left for
@@ -274,21 +326,21 @@ def _score(ctx: _Context, matrix, *, all_domains: bool, satellites: bool, absent
     terms = overlayer_breakdown(explained=e_r, satellites=e_sat_r, unexplained=u_r, n_domains=len(chosen),
                                 det=det, miss=miss, own_log_i=own_li, satellite_log_i=sat_li)
     bound = terms.total  # A not counted yet: an upper bound of the score
-    sc = {"mats": [mats[i] for i in chosen], "names": [names[i] for i in chosen], "all_mats": mats, "e": e,
-          "u": u, "absent": None, "by": by, "score": bound, "bound": bound, "terms": terms, "total": len(mats),
-          "satellites": e_sat, "satellites_allowed": bool(satellites)}
+    sc = _Scored(domains=[mats[i] for i in chosen], domain_ops=[names[i] for i in chosen], all_domains=mats,
+                 explained=e, unexplained=u, satellites=e_sat, satellites_allowed=bool(satellites),
+                 explained_by=by, absent=None, terms=terms, bound=bound)
     return _with_absent(ctx, sc) if absent else sc
 
 
-def _with_absent(ctx: _Context, sc: dict) -> dict:
+def _with_absent(ctx: _Context, sc: _Scored) -> _Scored:
     """Count predicted fractional beams missing where they could be seen; finish the score."""
-    if sc["absent"] is not None:
+    if sc.absent is not None:
         return sc
     absent = 0
     center = np.array(ctx.geom.center_px)
     a_star = ctx.a_star
     try:
-        pts = [lattice_points(np.linalg.inv(m).T, ctx.g_max, metric=a_star) for m in sc["mats"]]
+        pts = [lattice_points(np.linalg.inv(m).T, ctx.g_max, metric=a_star) for m in sc.domains]
     except ParameterError:
         raise FitError("The overlayer net is too fine to enumerate on this screen.") from None
     pts = np.concatenate(pts) if pts else np.zeros((0, 2))  # every domain at once
@@ -298,34 +350,33 @@ def _with_absent(ctx: _Context, sc: dict) -> dict:
         if seen.any():
             d, _ = ctx.tree.query(pts[seen] @ a_star, distance_upper_bound=ctx.tol_g)
             absent = int(np.sum(~np.isfinite(d)))
-    terms = sc["terms"].replace(absent=absent)
-    return {**sc, "absent": absent, "score": terms.total, "terms": terms}
+    return dataclasses.replace(sc, absent=absent, terms=sc.terms.replace(absent=absent))
 
 
-def _describe(ctx: _Context, sc: dict, *, kind_tol: float) -> OverlayerModel:
+def _describe(ctx: _Context, sc: _Scored, *, kind_tol: float) -> OverlayerModel:
     """Turn a scored matrix into a model with kind, Wood notation and coverage."""
-    m = sc["mats"][0]
+    m = sc.domains[0]
     # a continuous fit names only the coincidences the search itself would have snapped to;
     # closer high-order ones are listed as its approximants
     kind = classify_superstructure(ctx.substrate, m, tol=kind_tol,
-                                   max_denominator=ctx.max_denominator if sc["satellites_allowed"] else 12)
+                                   max_denominator=ctx.max_denominator if sc.satellites_allowed else 12)
     if kind.kind in ("commensurate", "coincidence", "none"):  # exact, and in a readable basis
-        snapped = [_snap_matrix(d, kind_tol, 12) for d in sc["mats"]]
-        mats = [nice_matrix(ctx.substrate, d if q is None else q) for d, q in zip(sc["mats"], snapped)]
+        snapped = [_snap_matrix(d, kind_tol, 12) for d in sc.domains]
+        mats = [nice_matrix(ctx.substrate, d if q is None else q) for d, q in zip(sc.domains, snapped)]
         m = mats[0]
     else:
-        mats = sc["mats"]
+        mats = sc.domains
     w = wood_notation(ctx.substrate, m, tol=1e-6 if kind.kind != "incommensurate" else 2e-3)
     ratio = None
     if ctx.intensity is not None and len(mats) > 1:
-        ratio = _population_test(ctx.hk, sc["by"], ctx.intensity, ctx.ops)
+        ratio = _population_test(ctx.hk, sc.explained_by, ctx.intensity, ctx.ops)
     notes = []
-    if sc["satellites"]:
-        notes.append(f"{sc['satellites']} spots explained as multiple-scattering satellites")
-    return OverlayerModel(matrix=m, domains=mats, domain_ops=sc["names"], kind=kind.kind, wood=w.text,
-                          wood_note=w.note, coverage=coverage(m), explained=sc["e"], unexplained=sc["u"],
-                          absent=sc["absent"], explained_by=sc["by"], score=sc["score"], total_domains=sc["total"],
-                          notes=tuple(notes), score_terms=sc["terms"],
+    if sc.satellites:
+        notes.append(f"{sc.satellites} spots explained as multiple-scattering satellites")
+    return OverlayerModel(matrix=m, domains=mats, domain_ops=sc.domain_ops, kind=kind.kind, wood=w.text,
+                          wood_note=w.note, coverage=coverage(m), explained=sc.explained, unexplained=sc.unexplained,
+                          absent=sc.absent, explained_by=sc.explained_by, score=sc.score, total_domains=sc.total_domains,
+                          notes=tuple(notes), score_terms=sc.terms,
                           details={"intensity_ratio": ratio, "kind": kind, "wood_notation": w, "tol_g": ctx.tol_g},
                           **_net_facts(ctx.net, m, kind.kind))
 
@@ -434,7 +485,7 @@ def find_overlayers(hk: np.ndarray, integer: np.ndarray, substrate_fit: Substrat
         return [_describe(ctx, _score(ctx, np.eye(2), all_domains=False, satellites=False), kind_tol=1e-6)]
     a_star, tol_g = ctx.a_star, ctx.tol_g
     seen: set = set()
-    scored: list[tuple[dict, float]] = []
+    scored: list[tuple[_Scored, float]] = []
     for c, ktol, sat in _candidate_matrices(ctx.hk, ctx.integer, a_star, tol_g, ctx.intensity, max_det=max_det,
                                             max_denominator=max_denominator):
         key = _structure_key(c, exact=not sat)
@@ -445,17 +496,17 @@ def find_overlayers(hk: np.ndarray, integer: np.ndarray, substrate_fit: Substrat
             continue
         sc = _score(ctx, c, all_domains=False, satellites=sat, absent=False)
         if not sat:  # every domain of this structure is now known
-            seen.update(_structure_key(d, exact=True) for d in sc["all_mats"])
+            seen.update(_structure_key(d, exact=True) for d in sc.all_domains)
         scored.append((sc, ktol))
     # the bare substrate always competes: a few stray spots do not make a superstructure
     scored.append((_score(ctx, np.eye(2), all_domains=False, satellites=False, absent=False), 1e-6))
     # branch and bound: finish the scores best bound first, until no bound can enter the list;
     # irrational fits are ranked with the handicap _prefer_simple gives them
-    def rank(sc, key="score"):
-        return sc[key] - (irrational_handicap(sc["e"], len(sc["mats"])) if sc["satellites_allowed"] else 0.0)
+    def rank(sc: _Scored, key="score"):
+        return getattr(sc, key) - (irrational_handicap(sc.explained, len(sc.domains)) if sc.satellites_allowed else 0.0)
 
     scored.sort(key=lambda t: -rank(t[0], "bound"))
-    done: list[tuple[dict, float]] = []
+    done: list[tuple[_Scored, float]] = []
     for sc, kt in scored:
         if len(done) >= 2 * n_results and rank(sc, "bound") < sorted(rank(d) for d, _ in done)[-2 * n_results]:
             break
@@ -463,9 +514,9 @@ def find_overlayers(hk: np.ndarray, integer: np.ndarray, substrate_fit: Substrat
     done.sort(key=lambda t: -rank(t[0]))
     scored = []
     for sc, kt in done:  # irrational fits of one lattice (other bases, other starts) count once
-        if sc["satellites_allowed"] and any(
-                o["satellites_allowed"] and len(o["mats"]) == len(sc["mats"]) and
-                any(_same_lattice_fast(sc["mats"][0], x, 0.02) for x in o["all_mats"]) for o, _ in scored):
+        if sc.satellites_allowed and any(
+                o.satellites_allowed and len(o.domains) == len(sc.domains) and
+                any(_same_lattice_fast(sc.domains[0], x, 0.02) for x in o.all_domains) for o, _ in scored):
             continue
         scored.append((sc, kt))
     models = _prefer_simple([_describe(ctx, sc, kind_tol=kt) for sc, kt in scored[: n_results + 1]])
