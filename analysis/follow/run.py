@@ -1,0 +1,483 @@
+"""A parameter series from frames to beams, families, segments and structures.
+
+:class:`LiveSeries` takes frames one at a time (``recinet watch`` and the live page feed
+it as files arrive): the first frame that can be indexed fixes the camera and the
+substrate (frames before it wait and are replayed), every frame's spots reveal new
+fractional beams (kept when seen in two frames, with their symmetry images), every beam
+is followed (:class:`analysis.follow.trace.BeamFollower`), and each frame reports which
+beam families are present and the segment it belongs to; a new segment starts when the
+set of families has changed for `min_frames` frames, and its first clear frame is
+indexed. :func:`analyse_parameter_series` does the same for a whole stack in two passes
+(spots of up to `n_probe` frames spread over the series first, so every beam is followed
+from the first frame), then splits it (:func:`analysis.follow.segments.find_segments`)
+and indexes each segment from its own frames, jointly when `n_index` > 1
+(:func:`analysis.series.joint.index_series_joint`).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from ..errors import ImageError, RecinetError, SeriesError
+from ..nets import Net2D, reciprocal
+from ..optics import ScreenGeometry, pixels_to_momentum
+from ..series.beams import BeamSet
+from ..series.index_frames import SeriesIndexing, index_series_frame
+from ..timelimit import check_time
+from .parameters import DEFAULT_PARAMETER_PATTERN, ParameterTable, parameters_from_names, parameters_from_times, \
+    read_parameter_file
+from .segments import Family, Segment, beam_families, family_presence, find_segments, orbit_hk, snap_fractional
+from .trace import BeamFollower, ParameterTrace
+
+__all__ = ["LiveSeries", "ParameterSeriesResult", "analyse_parameter_series", "resolve_parameters"]
+
+_TOL_HK = 0.04  # a spot within this many substrate units of a beam is that beam
+_MAX_WAITING = 20  # frames held while no frame could be indexed yet
+
+
+@dataclass(frozen=True, eq=False)
+class ParameterSeriesResult:
+    """Everything found in a parameter series.
+
+    Attributes
+    ----------
+    trace : ParameterTrace
+        Every beam's intensity, background, widths and position in every frame; the drift.
+    reference : SeriesIndexing
+        The indexing that fixed the camera and the substrate net.
+    families : tuple of Family
+    family_intensity : (F, n) ndarray of float64
+        Summed intensity of each family per frame.
+    present : (F, n) ndarray of bool
+    segments : tuple of Segment
+    n_spots : (F,) ndarray of int64
+        Spots found in each frame (−1 where the frame was not searched for spots).
+    """
+
+    trace: ParameterTrace
+    reference: SeriesIndexing
+    families: tuple
+    family_intensity: np.ndarray
+    present: np.ndarray
+    segments: tuple
+    n_spots: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.int64))
+
+    def segment_of(self, frame: int) -> Segment | None:
+        return next((s for s in self.segments if s.first <= frame <= s.last), None)
+
+    def switches(self) -> list[dict]:
+        """Each boundary between segments: the frames either side and the parameter midway."""
+        v = self.trace.value
+        return [{"after_frame": a.last, "before_frame": b.first, "value": float(0.5 * (v[a.last] + v[b.first])),
+                 "from": a.label, "to": b.label}
+                for a, b in zip(self.segments[:-1], self.segments[1:])]
+
+    def to_dict(self) -> dict:
+        """JSON-safe record (see :mod:`analysis.follow.export`)."""
+        from .export import result_to_dict
+
+        return result_to_dict(self)
+
+
+def resolve_parameters(parameters, names, *, paths=None, name_pattern: str | None = None,
+                       name: str = "parameter", unit: str = "") -> ParameterTable:
+    """The parameter table of frames `names`: a ParameterTable, a sidecar path, values,
+    ``"names"`` (numbers in the file names, also the default) or ``"times"`` (file times)."""
+    if isinstance(parameters, ParameterTable):
+        return parameters
+    if parameters is None or (isinstance(parameters, str) and parameters.strip().lower() in ("names", "name")):
+        return parameters_from_names(names, pattern=name_pattern or DEFAULT_PARAMETER_PATTERN, name=name, unit=unit)
+    if isinstance(parameters, str) and parameters.strip().lower() in ("times", "time", "mtime"):
+        if paths is None:
+            raise SeriesError("File times need frames that are files (a folder); give the values another way.")
+        return parameters_from_times(paths)
+    if isinstance(parameters, (str, Path)):
+        return read_parameter_file(parameters)
+    from .parameters import check_parameters
+
+    return ParameterTable(check_parameters(parameters, names, what=name), name, unit, None, "values")
+
+
+def _frame_array(frame):
+    return np.asarray(getattr(frame, "data", frame))
+
+
+class LiveSeries:
+    """A parameter series analysed frame by frame as the frames arrive.
+
+    Parameters
+    ----------
+    substrate : str or Net2D
+    energy_eV : float, keyword-only
+    name, unit : str, keyword-only
+        What the parameter is.
+    beams : BeamSet, optional, keyword-only
+        Beams to follow from the start (with `geometry` and `reference`); default found.
+    reference : SeriesIndexing, optional, keyword-only
+        A reading of the camera and substrate to use instead of indexing the first frame.
+    discover : bool, keyword-only
+        Search every frame for spots and follow new fractional beams.
+    z_min, min_frames : keyword-only
+        As for :func:`family_presence` and :func:`find_segments`.
+    index_segments : bool, keyword-only
+        Index the first clear frame of each new segment.
+    """
+
+    def __init__(self, substrate, *, energy_eV: float, name: str = "parameter", unit: str = "",
+                 beams: BeamSet | None = None, reference: SeriesIndexing | None = None, discover: bool = True,
+                 z_min: float = 8.0, min_frames: int = 2, index_segments: bool = True, min_snr: float = 5.0):
+        from ..nets import parse_substrate
+
+        self.hint = parse_substrate(substrate) if isinstance(substrate, str) else substrate
+        e = float(energy_eV)
+        if not (math.isfinite(e) and e > 0):
+            raise SeriesError(f"The energy must be a positive number of eV, got {energy_eV!r}.")
+        self.energy_eV, self.name, self.unit = e, name, unit
+        self.discover, self.z_min, self.min_frames = bool(discover), float(z_min), int(min_frames)
+        self.index_segments, self.min_snr = bool(index_segments), float(min_snr)
+        self.reference = reference
+        self.follower: BeamFollower | None = None
+        self._preset = beams
+        self.waiting: list[tuple] = []
+        self.seen: dict[tuple, int] = {}  # snapped fractional hk -> frames it was seen in
+        self.n_spots: list[int] = []
+        self.families: list[Family] = []
+        self.live_segments: list[dict] = []  # first, signature, indexing
+        self._pending_change = None
+        self.lines: list[dict] = []
+        if reference is not None:
+            self._start(reference)
+
+    # -- set-up
+    @property
+    def substrate(self) -> Net2D | None:
+        return None if self.reference is None else self.reference.substrate
+
+    def _start(self, ref: SeriesIndexing) -> None:
+        from ..series.beams import beams_from_nets
+
+        self.reference = ref
+        if self._preset is not None:
+            beams = self._preset
+        else:
+            b = beams_from_nets(ref.substrate, list(ref.overlayers), energy_max_eV=self.energy_eV,
+                                geometry=ref.geometry)
+            integer = b.hk[b.integer]
+            frac = b.hk[~b.integer]
+            if len(frac):
+                frac = self._on_screen(orbit_hk(ref.substrate, frac), ref.geometry, None)
+            beams = BeamSet.from_hk(ref.substrate, np.vstack([integer, frac]) if len(frac) else integer)
+        self.follower = BeamFollower(beams, ref.geometry, energy_eV=self.energy_eV, mask=ref.mask)
+        self.families = beam_families(beams, ref.substrate)
+
+    def _on_screen(self, hk, geom: ScreenGeometry, shape) -> np.ndarray:
+        from ..optics import momentum_to_pixels
+
+        hk = np.asarray(hk, dtype=np.float64).reshape(-1, 2)
+        if not len(hk):
+            return hk
+        g = hk @ reciprocal(self.reference.substrate).vectors
+        xy, vis = momentum_to_pixels(g, self.energy_eV, geom)
+        ok = vis & np.all(np.isfinite(xy), axis=1)
+        if shape is not None:
+            rows, cols = shape
+            ok &= (xy[:, 0] >= 0) & (xy[:, 0] <= cols - 1) & (xy[:, 1] >= 0) & (xy[:, 1] <= rows - 1)
+        elif self.reference.mask is not None:
+            rows, cols = self.reference.mask.shape
+            ok &= (xy[:, 0] >= 0) & (xy[:, 0] <= cols - 1) & (xy[:, 1] >= 0) & (xy[:, 1] <= rows - 1)
+        return hk[ok]
+
+    # -- frames
+    def add(self, frame, *, value: float, name: str = "") -> list[dict]:
+        """Analyse one frame; returns the lines of the frames analysed now (several when
+        frames waited for the first indexing, none while still waiting)."""
+        name = name or f"frame {len(self.lines) + len(self.waiting)}"
+        arr = _frame_array(frame)
+        if arr.ndim != 2:
+            raise SeriesError(f"Frame {name} is not a 2-D image (shape {arr.shape}).")
+        if self.follower is None:
+            try:
+                ref = index_series_frame(frame, energy_eV=self.energy_eV, substrate=self.hint,
+                                         frame_index=len(self.waiting), frame_name=name, min_snr=self.min_snr)
+            except SeriesError as err:
+                if len(self.waiting) >= _MAX_WAITING:
+                    raise SeriesError(f"None of the first {_MAX_WAITING + 1} frames could be indexed; the last: "
+                                      f"{err}") from None
+                self.waiting.append((frame, float(value), name, str(err)))
+                return []
+            self._start(ref)
+            todo, self.waiting = self.waiting + [(frame, float(value), name, "")], []
+            return [self._one(f, v, n) for f, v, n, _ in todo]
+        return [self._one(frame, float(value), name)]
+
+    def _spots_hk(self, arr) -> tuple[np.ndarray, int]:
+        from ..spots import measure_image
+
+        try:
+            meas = measure_image(arr, sigma_px=None, min_snr=self.min_snr)
+        except (RecinetError, ValueError):
+            return np.zeros((0, 2)), 0
+        xy = np.asarray(meas.spots.xy, dtype=np.float64).reshape(-1, 2)
+        if not len(xy):
+            return np.zeros((0, 2)), 0
+        geom = self.follower.geometry
+        k = pixels_to_momentum(xy, self.energy_eV, geom)
+        hk = k @ np.linalg.inv(reciprocal(self.reference.substrate).vectors)
+        return hk[np.all(np.isfinite(hk), axis=1)], len(xy)
+
+    def _discover(self, arr) -> int:
+        hk, n = self._spots_hk(arr)
+        if not len(hk):
+            return n
+        frac = hk[np.max(np.abs(hk - np.rint(hk)), axis=1) > _TOL_HK]
+        if not len(frac):
+            return n
+        known = self.follower.beams.hk
+        d = np.min(np.max(np.abs(frac[:, None, :] - known[None, :, :]), axis=2), axis=1)
+        new = snap_fractional(frac[d > _TOL_HK], tol=_TOL_HK)
+        add = []
+        for h in new:
+            key = tuple(np.rint(h * 840).astype(int).tolist())
+            self.seen[key] = self.seen.get(key, 0) + 1
+            if self.seen[key] == 2:  # seen in two frames: a beam, not a stray spot
+                add.append(h)
+        if add:
+            cand = self._on_screen(orbit_hk(self.reference.substrate, np.array(add)), self.follower.geometry,
+                                   arr.shape)
+            if len(cand):
+                d = np.min(np.max(np.abs(cand[:, None, :] - known[None, :, :]), axis=2), axis=1)
+                cand = cand[d > _TOL_HK]
+            if len(cand):
+                beams = BeamSet.from_hk(self.reference.substrate, np.vstack([known, cand]))
+                self.follower.add_beams(beams)
+                self.families = beam_families(beams, self.reference.substrate)
+        return n
+
+    def _one(self, frame, value: float, name: str) -> dict:
+        arr = _frame_array(frame)
+        i = len(self.lines)
+        n_spots = self._discover(arr) if self.discover else -1
+        self.n_spots.append(n_spots)
+        row = self.follower.add(frame, value=value, name=name)
+        beams = self.follower.beams
+        k = len(row["intensity"])
+        inten = np.full(len(beams), np.nan)
+        sig = np.full(len(beams), np.nan)
+        inten[:k], sig[:k] = row["intensity"], row["sigma"]
+        total, present = family_presence(inten[None], sig[None], self.families, z_min=self.z_min)
+        sig_now = tuple(f.label for f, on in zip(self.families, present[0]) if on)
+        self._segment_step(i, sig_now, frame, name)
+        integer = beams.integer
+        line = {"frame": i, "name": name, "value": value, "spots": n_spots, "beams": int(len(beams)),
+                "integer_intensity": float(np.nansum(inten[integer])),
+                "fractional_intensity": float(np.nansum(inten[~integer])),
+                "families": list(sig_now), "segment": self.live_segments[-1]["label"],
+                "center_px": list(row["geometry"].center_px)}
+        self.lines.append(line)
+        check_time()
+        return line
+
+    def _segment_step(self, i, sig_now, frame, name) -> None:
+        segs = self.live_segments
+        if not segs:
+            segs.append(self._new_segment(i, sig_now, frame, name))
+            return
+        if sig_now == segs[-1]["families"]:
+            self._pending_change = None
+            return
+        p = self._pending_change
+        if p is None or p["families"] != sig_now:
+            self._pending_change = p = {"first": i, "families": sig_now, "count": 0}
+        p["count"] += 1
+        if p["count"] >= self.min_frames:
+            segs.append(self._new_segment(p["first"], sig_now, frame, name))
+            self._pending_change = None
+
+    def _new_segment(self, first, fams, frame, name) -> dict:
+        ind = None
+        if fams and self.index_segments:
+            try:
+                ind = index_series_frame(frame, energy_eV=self.energy_eV, substrate=self.hint, frame_index=first,
+                                         frame_name=name, min_snr=self.min_snr)
+            except SeriesError:
+                ind = None
+        label = ind.label if ind is not None else ("(1×1)" if not fams else "families " + ", ".join(fams))
+        return {"first": first, "families": fams, "indexing": ind, "label": label}
+
+    # -- results
+    def result(self, *, segment_indexing: Callable | None = None) -> ParameterSeriesResult:
+        """The series so far: trace, families, presence, segments (each with an indexing)."""
+        if self.follower is None or not len(self.follower):
+            why = f" ({self.waiting[-1][3]})" if self.waiting else ""
+            raise SeriesError(f"No frame of the series could be indexed yet{why}.")
+        trace = self.follower.result(name=self.name, unit=self.unit)
+        fams = beam_families(trace.beams, self.reference.substrate)
+        total, present = family_presence(trace.intensity, trace.sigma, fams, z_min=self.z_min)
+        segs = find_segments(present, trace.value, [f.label for f in fams], min_frames=self.min_frames)
+        out = []
+        for s in segs:
+            ind = None
+            if s.families:
+                if segment_indexing is not None:
+                    ind = segment_indexing(s, total, fams)
+                else:  # the live segment that began nearest, with the same families
+                    cands = [ls for ls in self.live_segments if ls["families"] == s.families and
+                             ls["indexing"] is not None]
+                    if cands:
+                        ind = min(cands, key=lambda ls: abs(ls["first"] - s.first))["indexing"]
+            out.append(Segment(s.first, s.last, s.families, s.value_range, ind))
+        return ParameterSeriesResult(trace, self.reference, tuple(fams), total, present, tuple(out),
+                                     np.array(self.n_spots, dtype=np.int64))
+
+
+def _source_and_names(frames):
+    """A fresh-iterator function over (name, frame), the frame names and their paths (or None)."""
+    from ..series.pipeline import _source
+
+    paths = None
+    if isinstance(frames, (str, Path)) and Path(frames).is_dir():
+        from ..io import IMAGE_SUFFIXES, _natural_key
+
+        paths = sorted((p for p in Path(frames).iterdir() if p.is_file() and not p.name.startswith(".")
+                        and p.suffix.lower() in IMAGE_SUFFIXES), key=lambda p: _natural_key(p.name))
+        if not paths:
+            raise SeriesError(f"{Path(frames).name}: the folder holds no image files.")
+    elif isinstance(frames, (list, tuple)) and frames and all(isinstance(f, (str, Path)) for f in frames):
+        paths = [Path(f) for f in frames]
+    if paths is not None:
+        from ..io import load_image
+
+        def it():
+            for p in paths:
+                yield p.name, load_image(p)
+        return it, [p.name for p in paths], paths
+    source = _source(frames)
+    names = []
+    gen = source()
+    try:
+        for nm, _ in gen:
+            names.append(str(nm))
+    except ImageError as err:
+        raise SeriesError(f"Cannot read frame {len(names)}: {err}") from None
+    finally:
+        close = getattr(gen, "close", None)
+        if close is not None:
+            close()
+    return source, names, None
+
+
+def _spread(n: int, k: int) -> list[int]:
+    return sorted(set(np.linspace(0, n - 1, min(k, n)).round().astype(int).tolist()))
+
+
+def analyse_parameter_series(frames, *, substrate, energy_eV: float, parameters=None, name_pattern: str | None = None,
+                             name: str = "parameter", unit: str = "", n_probe: int = 16, n_index: int = 2,
+                             z_min: float = 8.0, min_frames: int = 2, min_snr: float = 5.0,
+                             progress: Callable | None = None) -> ParameterSeriesResult:
+    """Analyse a whole parameter series: beams, families, segments and their structures.
+
+    Parameters
+    ----------
+    frames : folder, multi-page file, list of paths, callable or sequence of arrays
+        The frames in recording order (a folder in natural name order).
+    substrate : str or Net2D, keyword-only
+    energy_eV : float, keyword-only
+        The one electron energy of the series.
+    parameters : ParameterTable, sidecar path, (F,) values, "names" or "times", keyword-only
+        Default: a number in each file name (`name_pattern`).
+    name, unit : str, keyword-only
+        What the parameter is, when not read from a sidecar heading.
+    n_probe : int, keyword-only
+        Frames, spread over the series, searched for spots before following (beams
+        found there are followed in every frame).
+    n_index : int, keyword-only
+        Frames indexed together for the camera and for each segment (1: one frame alone).
+    z_min, min_frames, min_snr : keyword-only
+        Presence threshold, shortest segment, spot detection threshold.
+    progress : callable(i, n, text), optional, keyword-only
+
+    Returns
+    -------
+    ParameterSeriesResult
+
+    Raises
+    ------
+    SeriesError
+        One line: no frames, frames of different sizes, parameters that do not match,
+        no frame that can be indexed.
+    """
+    from ..series.joint import index_series_joint
+    from ..spots import measure_image
+
+    say = progress or (lambda i, n, text="": None)
+    for nm, v in (("n_probe", n_probe), ("n_index", n_index), ("min_frames", min_frames)):
+        if not (isinstance(v, (int, np.integer)) and v >= 1):
+            raise SeriesError(f"`{nm}` must be a positive integer, got {v!r}.")
+    source, names, paths = _source_and_names(frames)
+    if not names:
+        raise SeriesError("The series holds no frames.")
+    table = resolve_parameters(parameters, names, paths=paths, name_pattern=name_pattern, name=name, unit=unit)
+    values = np.array([table.value_of(i, n) for i, n in enumerate(names)])
+    from ..series.pipeline import _pick
+
+    e = float(energy_eV)
+    # pass 1: spots of frames spread over the series
+    probes = _spread(len(names), n_probe)
+    probe_frames = _pick(source, probes, np.full(len(names), e))
+    counts = []
+    for n, (f, _, i, nm) in enumerate(probe_frames):
+        say(n, len(probe_frames), f"searching {nm} for spots")
+        try:
+            counts.append(len(measure_image(_frame_array(f), sigma_px=None, min_snr=min_snr).spots.xy))
+        except (RecinetError, ValueError):
+            counts.append(0)
+        check_time()
+    order = np.argsort(counts)[::-1]
+    picks = [probe_frames[j] for j in sorted(order[:n_index].tolist())]
+    say(0, 1, "indexing")
+    if n_index == 1:
+        f, _, i, nm = picks[0]
+        ref = index_series_frame(f, energy_eV=e, substrate=substrate, frame_index=i, frame_name=nm, min_snr=min_snr)
+    else:
+        ref = index_series_joint(picks, substrate=substrate, min_snr=min_snr)
+    live = LiveSeries(substrate, energy_eV=e, name=table.name, unit=table.unit, reference=ref, discover=True,
+                      z_min=z_min, min_frames=min_frames, index_segments=False, min_snr=min_snr)
+    for f, _, i, nm in probe_frames:
+        live._discover(_frame_array(f))
+    probes_set = set(probes)
+    live.discover = False
+    # pass 2: every beam in every frame
+    gen = source()
+    try:
+        for i, (nm, f) in enumerate(gen):
+            say(i, len(names), f"following {nm}")
+            live._one(f, float(values[i]), str(nm))
+            live.n_spots[-1] = counts[probes.index(i)] if i in probes_set else -1
+    except ImageError as err:
+        raise SeriesError(f"Cannot read frame {len(live.lines)}: {err}") from None
+    finally:
+        close = getattr(gen, "close", None)
+        if close is not None:
+            close()
+
+    def index_segment(seg: Segment, total, fams):
+        cols = [n for n, fm in enumerate(fams) if fm.label in seg.families]
+        strength = np.nansum(total[seg.first:seg.last + 1][:, cols], axis=1)
+        best = (np.argsort(-np.nan_to_num(strength, nan=-np.inf))[:n_index] + seg.first).tolist()
+        chosen = _pick(source, best, np.full(len(names), e))
+        say(0, 1, f"indexing frames {seg.first}–{seg.last}")
+        try:
+            if len(chosen) == 1:
+                f, _, i, nm = chosen[0]
+                return index_series_frame(f, energy_eV=e, substrate=substrate, frame_index=i, frame_name=nm,
+                                          min_snr=min_snr)
+            return index_series_joint(chosen, substrate=substrate, min_snr=min_snr)
+        except SeriesError:
+            return None
+
+    return live.result(segment_indexing=index_segment)
