@@ -23,6 +23,7 @@ from analysis.errors import RecinetError
 
 from . import ids, jobs, runtime, service
 from .figures import thumbnail_png
+from .key_limit import KeyGuessLimit
 
 __all__ = ["app", "server", "celery_app", "run", "save_bundle"]
 
@@ -64,6 +65,7 @@ app.layout = html.Div(className="shell", children=[
 # ---------------------------------------------------------------- group access key
 _COOKIE = "recinet_access"
 _OPEN_PATHS = ("/login",)
+key_limit = KeyGuessLimit(server, settings)  # wrong keys per client address, shared through Redis when set
 
 
 def _key_digest(key: str) -> str:
@@ -78,7 +80,12 @@ def _allowed() -> bool:
     if hmac.compare_digest(request.cookies.get(_COOKIE, ""), good):
         return True
     given = request.headers.get("X-Recinet-Key", "")
-    return bool(given) and hmac.compare_digest(_key_digest(given), good)
+    if not given or key_limit.wait_s():
+        return False
+    if hmac.compare_digest(_key_digest(given), good):
+        return True
+    key_limit.count_wrong()
+    return False
 
 
 def _safe_next(target: str | None) -> str:
@@ -91,6 +98,9 @@ def _safe_next(target: str | None) -> str:
 def _guard():
     if request.path in _OPEN_PATHS or _allowed():
         return None
+    wait = key_limit.wait_s() if request.headers.get("X-Recinet-Key") else 0
+    if wait:
+        return Response(key_limit.message(wait), 429, {"Retry-After": str(wait)}, mimetype="text/plain")
     if request.path.startswith(("/_dash", "/api/", "/thumb/", "/assets/", "/_reload", "/_favicon")):
         return Response("This recinet server needs the group access key.", 401, mimetype="text/plain")
     return redirect("/login?next=" + quote(request.full_path.rstrip("?")))
@@ -112,11 +122,17 @@ def _login():
     if not key:
         return redirect(nxt)
     if request.method == "POST":
+        wait = key_limit.wait_s()
+        if wait:
+            return Response(_LOGIN.format(next=escape(nxt), error=escape(key_limit.message(wait))), 429,
+                            {"Retry-After": str(wait)}, mimetype="text/html")
         given = request.form.get("key", "")
         if given and hmac.compare_digest(_key_digest(given), _key_digest(key)):
             resp = redirect(nxt)
-            resp.set_cookie(_COOKIE, _key_digest(key), httponly=True, samesite="Lax", max_age=30 * 86400)
+            resp.set_cookie(_COOKIE, _key_digest(key), httponly=True, samesite="Lax", max_age=30 * 86400,
+                            secure=runtime.get_settings().https)
             return resp
+        key_limit.count_wrong()
         return Response(_LOGIN.format(next=escape(nxt), error="That key is not right."), 403, mimetype="text/html")
     return Response(_LOGIN.format(next=escape(nxt), error=""), mimetype="text/html")
 

@@ -8,6 +8,10 @@ RECINET_ACCESS_KEY     when set, every page and API asks for this group key
 RECINET_MAX_UPLOAD_MB  largest accepted upload in MB of 10⁶ bytes (default 64)
 RECINET_CELERY_BROKER  Redis URL; when set, long work runs on Celery workers
 RECINET_JOB_TIME_LIMIT_S  longest a background job (an analysis, a series) may run (default 300 s)
+RECINET_BEHIND_PROXY   number of reverse proxies in front (default 0): client addresses are then read
+                       from their X-Forwarded-For, and the scheme from X-Forwarded-Proto
+RECINET_HTTPS          1 when visitors reach the server by HTTPS (a proxy in front): the access-key
+                       cookie is then sent with the Secure flag (never over plain HTTP)
 """
 
 from __future__ import annotations
@@ -30,6 +34,8 @@ class Settings:
     max_upload_bytes: int
     celery_broker: str | None
     job_time_limit_s: float = 300.0
+    behind_proxies: int = 0
+    https: bool = False
 
     @property
     def max_request_bytes(self) -> int:
@@ -59,6 +65,13 @@ def load_settings(env: dict | None = None) -> Settings:
         raise ParameterError(f"RECINET_JOB_TIME_LIMIT_S must be a number of seconds, got {raw_limit!r}.") from None
     if not (5 <= limit <= 86400):
         raise ParameterError(f"RECINET_JOB_TIME_LIMIT_S must lie in [5, 86400] s, got {raw_limit!r}.")
+    raw_proxies = (env.get("RECINET_BEHIND_PROXY") or "0").strip()
+    if not (raw_proxies.isdigit() and int(raw_proxies) <= 5):
+        raise ParameterError(f"RECINET_BEHIND_PROXY must be the number of reverse proxies in front, 0 to 5, "
+                             f"got {raw_proxies!r}.")
+    raw_https = (env.get("RECINET_HTTPS") or "0").strip().lower()
+    if raw_https not in _FLAGS:
+        raise ParameterError(f"RECINET_HTTPS must be 1 or 0 (yes/no, true/false), got {raw_https!r}.")
     return Settings(
         data_dir=data_dir,
         database_url=url,
@@ -67,4 +80,9 @@ def load_settings(env: dict | None = None) -> Settings:
         max_upload_bytes=int(mb * 1_000_000),
         celery_broker=env.get("RECINET_CELERY_BROKER") or None,
         job_time_limit_s=limit,
+        behind_proxies=int(raw_proxies),
+        https=_FLAGS[raw_https],
     )
+
+
+_FLAGS = {"1": True, "yes": True, "true": True, "on": True, "0": False, "no": False, "false": False, "off": False}
