@@ -26,6 +26,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..errors import ImageError, ParameterError
+from ..timelimit import check_time
 
 __all__ = ["SpotWidths", "fit_spot_widths", "FWHM_PER_SIGMA"]
 
@@ -194,6 +195,8 @@ def fit_spot_widths(image, xy_px, *, sigma_px: float, center_xy, mask=None, satu
         for i in range(k):
             if pas == 2 and not near[i]:
                 continue
+            if i % 16 == 0:
+                check_time()  # a caller's time limit (web job, CLI) stops the work between spots
             sig = guess[i] if pas == 1 or not np.isfinite(params[i, 3]) else max(math.exp(params[i, 3]), s0)
             p = _fit_window(img, valid, xy, params, i, sig, s0, subtract=pas == 2)
             if p is not None:
