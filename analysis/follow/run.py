@@ -77,11 +77,38 @@ class ParameterSeriesResult:
                  "from": a.label, "to": b.label}
                 for a, b in zip(self.segments[:-1], self.segments[1:])]
 
-    def to_dict(self) -> dict:
+    def family_curve(self, family) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """(value, summed intensity, its σ) of one family (label or position)."""
+        labels = [f.label for f in self.families]
+        if isinstance(family, str):
+            if family not in labels:
+                raise SeriesError(f"No beam family {family!r}; the series has {', '.join(labels) or 'none'}.")
+            family = labels.index(family)
+        fam = self.families[int(family)]
+        s = self.trace.sigma[:, fam.members]
+        ok = np.isfinite(s) & np.isfinite(self.trace.intensity[:, fam.members])
+        sig = np.sqrt(np.where(ok, s * s, 0.0).sum(axis=1))
+        sig = np.where(ok.any(axis=1), sig, np.nan)
+        return self.trace.value.copy(), self.family_intensity[:, int(family)].copy(), sig
+
+    def order_disorder(self, family=None, **kw):
+        """:func:`analysis.follow.fit_order_disorder` on a family's summed intensity against
+        the parameter (default: the first family present in the first frames)."""
+        from .transition import fit_order_disorder
+
+        if not self.families:
+            raise SeriesError("The series shows no fractional-order beams to fit.")
+        if family is None:
+            first = next((s for s in self.segments if s.families), None)
+            family = first.families[0] if first is not None else 0
+        v, total, sig = self.family_curve(family)
+        return fit_order_disorder(v, total, sig, **kw)
+
+    def to_dict(self, **kw) -> dict:
         """JSON-safe record (see :mod:`analysis.follow.export`)."""
         from .export import result_to_dict
 
-        return result_to_dict(self)
+        return result_to_dict(self, **kw)
 
 
 def resolve_parameters(parameters, names, *, paths=None, name_pattern: str | None = None,
@@ -165,12 +192,15 @@ class LiveSeries:
         if self._preset is not None:
             beams = self._preset
         else:
-            b = beams_from_nets(ref.substrate, list(ref.overlayers), energy_max_eV=self.energy_eV,
-                                geometry=ref.geometry)
+            # a commensurate reading's beams are followed from the start; other readings'
+            # beams (and those of later phases) come from the spots as they are seen
+            mats = list(ref.overlayers) if ref.kind == "commensurate" else []
+            b = beams_from_nets(ref.substrate, mats, energy_max_eV=self.energy_eV, geometry=ref.geometry)
             integer = b.hk[b.integer]
             frac = b.hk[~b.integer]
             if len(frac):
-                frac = self._on_screen(orbit_hk(ref.substrate, frac), ref.geometry, None)
+                frac = self._on_screen(orbit_hk(ref.substrate, snap_fractional(frac, tol=_TOL_HK)), ref.geometry,
+                                       None)
             beams = BeamSet.from_hk(ref.substrate, np.vstack([integer, frac]) if len(frac) else integer)
         self.follower = BeamFollower(beams, ref.geometry, energy_eV=self.energy_eV, mask=ref.mask)
         self.families = beam_families(beams, ref.substrate)

@@ -1,0 +1,104 @@
+"""Whole parameter series rendered with known truth: an order–disorder transition and an
+exposure series in which p(2×2) gives way to (√3×√3)R30° on a hexagonal substrate.
+
+The truth is what the renderer was given (analysis.simulate.parameter_series): Tc, the
+camera drift, and the coverage window in which one phase's beams vanish and the
+other's appear. The intensities are drawn from models other than the fitted form
+(finite-size rounding, short-range order, Debye–Waller damping, a rising background).
+"""
+
+import json
+import math
+
+import numpy as np
+import pytest
+
+from analysis.errors import SeriesError
+from analysis.follow import analyse_parameter_series, csv_text
+from analysis.nets import parse_substrate
+from analysis.optics import ScreenGeometry
+from analysis.simulate.parameter_series import ExposureModel, OrderDisorderModel, render_parameter_series
+from analysis.superstructure import parse_wood
+
+PT = parse_substrate("Pt(111)")
+R3 = parse_wood("(√3×√3)R30°", PT)
+GEOM = ScreenGeometry(129.0, 126.0, 115.0, distortion=0.1, rotation_deg=4.0)
+E = 200.0  # eV: two rings of integer beams on the 256² screen (one ring leaves the camera open)
+
+
+@pytest.fixture(scope="module")
+def temperature_run():
+    model = OrderDisorderModel(tc=400.0)
+    t = np.linspace(250.0, 480.0, 32)
+    frames = [im.image for _, im in render_parameter_series(
+        PT, [[[2, 0], [0, 2]]], t, model=model, energy_eV=E, geometry=GEOM, rng=np.random.default_rng(1),
+        drift_px_per_frame=(0.03, -0.02))]
+    return t, analyse_parameter_series(frames, substrate="Pt(111)", energy_eV=E, parameters=t, name="temperature",
+                                       unit="K", n_probe=6, n_index=1)
+
+
+@pytest.mark.slow
+def test_order_disorder_tc_within_two_percent(temperature_run):
+    t, res = temperature_run
+    fit = res.order_disorder()
+    # truth given to the renderer: Tc = 400 K (the issue's target: within 2 %)
+    assert abs(fit.tc - 400.0) <= 0.02 * 400.0
+    assert fit.tc_sigma > 0 and math.isfinite(fit.tc_spread)
+    # the ordered phase is read as p(2×2) and ends near Tc; the (1×1) above it
+    assert "p(2×2)" in res.segments[0].label
+    assert res.segments[-1].families == () and 390.0 < res.segments[-1].value_range[0] < 450.0
+
+
+@pytest.mark.slow
+@pytest.mark.filterwarnings("ignore:All-NaN slice")  # no width above Tc, where the beams are gone
+def test_drift_and_widths_followed(temperature_run):
+    t, res = temperature_run
+    # truth: the pattern centre moved (0.03, −0.02) px per frame
+    assert res.trace.drift["rate_px_per_frame"] == pytest.approx([0.03, -0.02], abs=0.006)
+    fam = res.families[0].members
+    w = np.nanmedian(res.trace.width_radial_px[:, fam], axis=1)
+    # truth: fractional spots σ 1.6 px far below Tc, widened towards 1.6·(1 + 0.5 e^{-|T−Tc|/20 K}) near it
+    assert w[0] == pytest.approx(1.6, rel=0.1)
+    near = np.flatnonzero((t > 370) & (t < 400) & np.isfinite(w))
+    assert np.max(w[near]) > 1.25 * w[0]
+
+
+@pytest.mark.slow
+def test_exposure_series_p2x2_then_sqrt3():
+    model = ExposureModel()
+    dose = np.linspace(0.0, 12.0, 25)
+    frames = [(f"dose_{d:.1f}L.png", im.image) for d, im in render_parameter_series(
+        PT, [[[2, 0], [0, 2]], R3], dose, model=model, energy_eV=E, geometry=GEOM, rng=np.random.default_rng(2))]
+    res = analyse_parameter_series(frames, substrate="Pt(111)", energy_eV=E, name="exposure", unit="L",
+                                   n_probe=8, n_index=1)
+    # the parameter came from the file names (the default)
+    assert res.trace.value.tolist() == pytest.approx(dose.tolist())
+    labels = [s.label for s in res.segments]
+    i22 = next(i for i, lab in enumerate(labels) if lab.startswith("p(2×2)"))
+    i3 = next(i for i, lab in enumerate(labels) if lab.startswith("(√3×√3)R30°"))
+    assert i22 < i3
+    # truth: the p(2×2) beams fade and the √3 beams grow between θ = 0.28 and 0.30 ML,
+    # i.e. between these doses (θ = θsat (1 − e^{−L/L0}) inverted), ± one dose step
+    lo, hi = (-model.dose_scale * math.log(1 - th / model.theta_sat) for th in model.theta_switch)
+    step = dose[1] - dose[0]
+    sw = [s for s in res.switches() if s["from"].startswith("p(2×2)") and s["to"].startswith("(√3")]
+    assert len(sw) == 1 and lo - step <= sw[0]["value"] <= hi + step
+    # presence per frame against the truth where the truth is clear
+    share = np.array([model.shares(d) for d in dose])
+    col = {f.label: n for n, f in enumerate(res.families)}
+    half = col[res.segments[i22].families[0]]
+    third = col[res.segments[i3].families[0]]
+    clear22 = share[:, 0] > 0.3
+    assert np.all(res.present[clear22, half]) and not np.any(res.present[share[:, 0] == 0, half])
+    assert np.all(res.present[share[:, 1] > 0.3, third]) and not np.any(res.present[share[:, 1] == 0, third][1:])
+    # exports: one CSV row per frame and beam; the JSON names both segments
+    rows = csv_text(res).splitlines()
+    assert rows[0].startswith("frame,name,exposure (L),beam") and len(rows) == 1 + 25 * len(res.trace.beams)
+    rec = json.loads(json.dumps(res.to_dict()))
+    assert [s["structure"] for s in rec["segments"]] == labels
+
+
+def test_mismatched_parameters_say_so():
+    frames = [np.ones((32, 32)) * i for i in range(3)]
+    with pytest.raises(SeriesError, match="lists only 2"):
+        analyse_parameter_series(frames, substrate="Pt(111)", energy_eV=E, parameters=[1.0, 2.0])
