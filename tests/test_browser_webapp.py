@@ -43,13 +43,6 @@ def _demo_truth(name):
     return json.loads((DEMO / name).with_suffix(".json").read_text())
 
 
-def _needs_pipeline():
-    from webapp import service
-
-    if not service.pipeline_ready():
-        pytest.skip("analysis.pipeline is not in this build yet")
-
-
 def _demo_or_skip(name):
     if not (DEMO / name).exists():
         pytest.skip(f"demo image {name} is missing")
@@ -110,7 +103,6 @@ def _analyse_demo(page, base, name):
 
 
 def test_upload_demo_and_see_wood_notation_and_matrix(page, live_server):
-    _needs_pipeline()
     from analysis.nets import parse_substrate
     from analysis.superstructure import format_matrix, same_lattice
 
@@ -136,7 +128,6 @@ def test_upload_demo_and_see_wood_notation_and_matrix(page, live_server):
 
 
 def test_click_adds_a_spot_and_the_count_changes(page, live_server):
-    _needs_pipeline()
     _demo_or_skip("pt111_PX-7_oxygen_p2x2.png")
     _analyse_demo(page, live_server, "pt111_PX-7_oxygen_p2x2.png")
     before = int(page.get_attribute("#spot-count", "data-count"))
@@ -150,7 +141,6 @@ def test_click_adds_a_spot_and_the_count_changes(page, live_server):
 
 
 def test_save_and_open_the_share_link_in_a_fresh_context(page, browser, live_server):
-    _needs_pipeline()
     _demo_or_skip("pt111_PX-7_oxygen_p2x2.png")
     _analyse_demo(page, live_server, "pt111_PX-7_oxygen_p2x2.png")
     wood = page.inner_text("#wood")
@@ -211,7 +201,6 @@ def test_saved_analysis_in_the_list_and_read_only_view(page, live_server, webapp
 def test_analyse_try_a_model_pick_a_candidate_then_analyse_another_image(page, live_server):
     """Every step finishes: trying a model and picking a candidate must leave nothing behind
     that a later background job (a forked process) would wait on forever."""
-    _needs_pipeline()
     _demo_or_skip("pt111_PX-7_oxygen_p2x2.png")
     _demo_or_skip("cu100_CX-3_c2x2.png")
     _analyse_demo(page, live_server, "pt111_PX-7_oxygen_p2x2.png")
@@ -244,7 +233,6 @@ def test_analyse_try_a_model_pick_a_candidate_then_analyse_another_image(page, l
 
 
 def test_stop_clears_the_message_and_result(page, live_server):
-    _needs_pipeline()
     _demo_or_skip("pt111_PX-7_oxygen_p2x2.png")
     _analyse_demo(page, live_server, "pt111_PX-7_oxygen_p2x2.png")
     assert "Analysed" in page.inner_text("#message")

@@ -9,6 +9,7 @@ import json
 
 import numpy as np
 import pytest
+from dash import no_update
 from PIL import Image
 
 from analysis.errors import ImageError, NetError, ParameterError
@@ -33,9 +34,9 @@ def _png(arr) -> bytes:
 
 @pytest.fixture
 def ws(webapp_env):
-    from webapp import workspace
+    from webapp.pages import analyse
 
-    return workspace
+    return analyse
 
 
 @pytest.fixture
@@ -76,7 +77,7 @@ def test_bad_uploads_show_one_line_messages(ws, fresh_store, raw, name, message)
         contents = "data:image/png;base64,"
     out = _call(ws.on_upload, "upload.contents", contents, None, name, 80, "Pt(111)")
     text = _text(out[7])
-    assert out[0] is ws.no_update and message in text
+    assert out[0] is no_update and message in text
     assert "Traceback" not in text and "\n" not in text.strip()
     assert fresh_store.count_analyses() == 0
 
@@ -142,7 +143,7 @@ def test_analysis_job_reports_bad_parameters_in_the_page(ws, fresh_store, noisy_
     image = _call(ws.on_upload, "upload.contents", _data_url(noisy_png), None, "f.png", 80, "Pt(111)")[0]
     seen = []
     record, note = _call(ws.run_job, "run.n_clicks", seen.append, 1, None, image, -20, "Pt(111)", {"readonly": False})
-    assert record is ws.no_update and "energy must be a positive number of eV, got -20" in _text(note)
+    assert record is no_update and "energy must be a positive number of eV, got -20" in _text(note)
     record, note = _call(ws.run_job, "run.n_clicks", seen.append, 1, None, image, 80, "Qq(100)", {"readonly": False})
     assert "Unknown element 'Qq'" in _text(note)
 
@@ -151,7 +152,7 @@ def test_analysis_job_does_not_start_on_a_fresh_image_or_read_only(ws, fresh_sto
     from dash.exceptions import PreventUpdate
 
     image = _call(ws.on_upload, "upload.contents", _data_url(noisy_png), None, "f.png", 80, "Pt(111)")[0]
-    fresh = ws._empty_edits(image["sha"])
+    fresh = ws.state.empty_edits(image["sha"])
     with pytest.raises(PreventUpdate):
         _call(ws.run_job, "edits.data", print, None, fresh, image, 80, "Pt(111)", {"readonly": False})
     with pytest.raises(PreventUpdate):
@@ -166,7 +167,7 @@ def _image_meta():
 
 def test_click_adds_then_drops_spots_and_sets_centre(ws):
     img = _image_meta()
-    ed = ws._empty_edits(img["sha"])
+    ed = ws.state.empty_edits(img["sha"])
     click = {"points": [{"x": 50.4, "y": 20.6, "curveNumber": 0}]}
     ed = _call(ws.on_graph_event, "graph.clickData", click, None, None, "spots", ed, img, {})
     assert ed["added"] == [[50.4, 20.6]] and ed["rev"] == 1
@@ -189,7 +190,7 @@ def test_clicks_are_ignored_read_only_outside_or_in_zoom(ws):
     from dash.exceptions import PreventUpdate
 
     img = _image_meta()
-    ed = ws._empty_edits(img["sha"])
+    ed = ws.state.empty_edits(img["sha"])
     click = {"points": [{"x": 5, "y": 5}]}
     for args in [("spots", ed, img, {"readonly": True}), ("none", ed, img, {})]:
         with pytest.raises(PreventUpdate):
@@ -229,13 +230,12 @@ def _square_result():
 @pytest.fixture(scope="module")
 def analysed_demo(webapp_env):
     """The p(2×2) demo analysed once through the real job callback (about 5 s)."""
-    from webapp import service, workspace
+    from webapp import service
+    from webapp.pages import analyse as workspace
 
     name = "pt111_PX-7_oxygen_p2x2.png"
     if name not in {c["value"] for c in service.demo_choices()}:
         pytest.skip(f"demo image {name} is missing")
-    if not service.pipeline_ready():
-        pytest.skip("analysis.pipeline is not in this build yet")
     out = _call(workspace.on_upload, "demo-pick.value", None, name, None, None, "")
     image, energy, substrate = out[0], out[3], out[4]
     progress = []
@@ -334,7 +334,7 @@ def test_analysis_job_stops_at_its_time_limit(ws, fresh_store, noisy_png, monkey
     t0 = time.monotonic()
     record, note = _call(ws.run_job, "run.n_clicks", lambda p: None, 1, None, image, 60, "Cu(100)", {"readonly": False})
     assert time.monotonic() - t0 < 3
-    assert record is ws.no_update and "time limit of 0.2 s" in _text(note)
+    assert record is no_update and "time limit of 0.2 s" in _text(note)
 
 
 def test_try_model_bad_text_and_singular_matrix(ws, analysed_demo):
@@ -558,6 +558,6 @@ def test_candidate_labels_say_what_cost_each_candidate(ws):
                                    "extra_domains": {"value": 1, "weight": -1.0, "contribution": -1.0},
                                    "miss": {"value": 0.01, "weight": -1.0, "contribution": -0.01}},
                          "total": 1.99}}
-    label = ws._candidate_label(c, 0)
+    label = ws.results._candidate_label(c, 0)
     assert "costs: unexplained −3, extra domains −1" in label and "miss" not in label
-    assert "costs" not in ws._candidate_label({"wood": "p(2×2)", "score": 1.0}, 1)
+    assert "costs" not in ws.results._candidate_label({"wood": "p(2×2)", "score": 1.0}, 1)

@@ -47,15 +47,20 @@ server = app.server
 server.config["MAX_CONTENT_LENGTH"] = settings.max_request_bytes
 server.config["RECINET_MAX_UPLOAD_BYTES"] = settings.max_upload_bytes
 
+
+def nav_links() -> list:
+    """A link to every registered page that gave an `order`, in that order (pages without one,
+    such as a saved analysis or the 404 page, are reached by their links only)."""
+    pages = [p for p in dash.page_registry.values() if p.get("supplied_order") is not None]
+    pages.sort(key=lambda p: (p["supplied_order"], p["module"]))
+    return [html.A(p["name"], href=p["relative_path"]) for p in pages]
+
+
 app.layout = html.Div(className="shell", children=[
     dcc.Location(id=ids.URL),
     html.Header(className="topbar", children=[
         html.A("recinet", href="/", className="brand"),
-        html.Nav(id=ids.NAV, children=[
-            html.A("Analyse", href="/"),
-            html.A("Saved analyses", href="/recent"),
-            html.A("Energy series", href="/series"),
-        ]),
+        html.Nav(id=ids.NAV, children=nav_links()),
         html.Span(f"uploads up to {settings.max_upload_bytes / 1e6:.0f} MB", className="limit",
                   **{"data-max-bytes": str(settings.max_upload_bytes)}),
     ]),

@@ -3,9 +3,9 @@
 A series arrives as one uploaded file (a multi-page TIFF or a zip of images); its
 bytes are kept in a disk cache of the data folder under their SHA-256, so every
 worker and the background job see them, and no user input becomes a file path.
-A run indexes one frame (:func:`analysis.pipeline.analyze_image`), lists the beams
-of the substrate and overlayer domains (:func:`analysis.series.beams_from_nets`),
-tracks them (:func:`analysis.series.track_series`) and keeps the
+A run is the one series pipeline, :func:`analysis.series.pipeline.run_iv` (the
+one ``recinet iv`` runs: first pass over the frames, indexing, beams, tracking);
+this module checks the form's fields in front of it and keeps the
 :class:`~analysis.series.IVResult` and a small 8-bit preview of every frame in
 the same cache under a run key. The page holds only :func:`run_series`'s small
 JSON summary. Every function raises a :class:`analysis.errors.RecinetError` with
@@ -17,6 +17,7 @@ top-left pixel at (0, 0).
 
 from __future__ import annotations
 
+import base64
 import functools
 import hashlib
 import json
@@ -26,8 +27,15 @@ from pathlib import Path
 
 import numpy as np
 
-from analysis.errors import FitError, ImageError, ParameterError, RecinetError, SeriesError
+from analysis.errors import ImageError, RecinetError, SeriesError
+from analysis.io import iter_frames, load_image
 from analysis.jsonsafe import json_safe
+from analysis.series import (DEFAULT_NAME_PATTERN, EnergyTable, average_equivalent, check_energies, csv_text,
+                             read_energy_file, result_to_dict)
+from analysis.series.pipeline import overlayer_matrices, run_iv
+from analysis.superstructure import domains, format_matrix, wood_notation
+
+from . import figures, service
 
 __all__ = [
     "MAX_FRAMES", "MAX_FRAME_PIXELS", "MAX_SIDECAR_BYTES", "PREVIEW_SIDE", "ENERGY_MODES",
@@ -44,7 +52,6 @@ _KEEP_S = 3 * 86400  # uploads and runs stay this long in the cache
 
 def _cache():
     """diskcache of uploads and runs in the data folder's job-cache (see service.job_cache)."""
-    from . import service
 
     return service.job_cache("series", 4 * 1024**3)
 
@@ -61,7 +68,6 @@ def frames_of(raw: bytes, filename: str):
     Frame names carry the upload's file name (``stack.tif#3``) or the zip member's;
     errors name the file the user chose. More than :data:`MAX_FRAMES` frames is refused.
     """
-    from analysis.io import iter_frames
 
     name = _short(filename)
     it = iter_frames(raw, max_pixels=MAX_FRAME_PIXELS)
@@ -81,7 +87,6 @@ def frames_of(raw: bytes, filename: str):
 
 def _preview(frame: np.ndarray) -> bytes:
     """An 8-bit PNG of one frame for the slider view, at most :data:`PREVIEW_SIDE` px."""
-    from . import figures
 
     small, _ = figures.downsample(frame, PREVIEW_SIDE)
     return figures.png_bytes(figures.display_levels(small, scale="gamma", gamma=0.5, clip_pct=(1.0, 99.95)))
@@ -120,7 +125,6 @@ def _raw(sha: str) -> bytes:
 
 def first_frame_view(sha: str) -> str | None:
     """PNG data URL of the first frame of an uploaded series (before any run), or None."""
-    import base64
 
     png = _cache().get(("first", str(sha)))
     return None if png is None else "data:image/png;base64," + base64.b64encode(png).decode("ascii")
@@ -134,7 +138,6 @@ def read_energies(raw: bytes, filename: str) -> dict:
     Returns ``{"filename", "energy_eV", "current" or None, "frame" or None}`` (JSON-safe).
     Energies in frame order are checked at once (positive, steadily rising or falling).
     """
-    from analysis.series import check_energies, read_energy_file
 
     name = _short(filename)
     if not raw:
@@ -173,7 +176,6 @@ def _number(value, what: str) -> float:
 
 
 def _energy_table(table: dict):
-    from analysis.series import EnergyTable
 
     if not isinstance(table, dict) or not table.get("energy_eV"):
         raise SeriesError("Drop an energy file (CSV or JSON) first, or choose 'a start and a step'.")
@@ -184,25 +186,13 @@ def _energy_table(table: dict):
                        None if frame is None else tuple(str(f) for f in frame), _short(table.get("filename")))
 
 
-def _energies(mode: str, table, start, step, pattern, names: list[str]):
-    """(energies for track_series, (F,) energies in frame order) for the frames `names`."""
-    from analysis.series import DEFAULT_NAME_PATTERN, energies_from_names, energies_from_start_step
+# --------------------------------------------------------------------------- the run
 
-    n = len(names)
+
+def _energy_source(mode: str, table, start, step, pattern):
+    """What :func:`analysis.series.run_iv` reads the energies from: (energies, name pattern)."""
     if mode == "file":
-        t = _energy_table(table)
-        if t.frame is not None and not all(f.strip().lstrip("+-").isdigit() for f in t.frame):
-            rows = {Path(f.strip()).name.lower(): i for i, f in enumerate(t.frame)}
-            e = []
-            for i, nm in enumerate(names):
-                key = Path(nm).name.lower()
-                if key not in rows:
-                    raise SeriesError(f"Frame {i} ({nm}) is not listed in the `frame` column of {t.source}.")
-                e.append(t.energy_eV[rows[key]])
-            return t, np.asarray(e)
-        if len(t) != n:
-            raise SeriesError(f"The series has {n} frames but {t.source} lists {len(t)} energies.")
-        return t, np.asarray(t.energy_eV)
+        return _energy_table(table), None
     if mode == "step":
         if start in (None, ""):
             raise SeriesError("Give the energy of the first frame (start, eV).")
@@ -211,50 +201,16 @@ def _energies(mode: str, table, start, step, pattern, names: list[str]):
         s, d = _number(start, "The start energy"), _number(step, "The energy step")
         if d == 0:
             raise SeriesError("The energy step must not be 0: energies must not repeat.")
-        e = energies_from_start_step(n, start_eV=s, step_eV=d)
-        return e, e
+        return {"start_eV": s, "step_eV": d}, None
     if mode == "names":
         pat = str(pattern).strip() if pattern else DEFAULT_NAME_PATTERN
         if len(pat) > 200:
             raise SeriesError("The file-name pattern is too long (at most 200 characters).")
-        e = energies_from_names(names, pattern=pat)
-        return e, e
+        return None, pat
     raise SeriesError(f"Unknown energy source {str(mode)[:20]!r}; use {', '.join(ENERGY_MODES)}.")
 
 
-# --------------------------------------------------------------------------- the run
-
-def _first_pass(raw: bytes, filename: str, pick: int):
-    """Names of every frame and frame `pick` itself (frames streamed, one held at a time; sizes checked)."""
-    names, chosen, shape = [], None, None
-    it = frames_of(raw, filename)
-    while True:
-        try:
-            nm, frame = next(it)
-        except StopIteration:
-            break
-        except ImageError as err:
-            after = f" (after {names[-1]})" if names else ""
-            raise SeriesError(f"Cannot read frame {len(names)}{after}: {err}") from None
-        if shape is None:
-            shape = frame.shape
-        elif frame.shape != shape:  # the same words as track_series, before any indexing is spent
-            raise SeriesError(f"Frame {len(names)} ({nm}) is {frame.shape[1]}×{frame.shape[0]} px but frame 0 "
-                              f"({names[0]}) is {shape[1]}×{shape[0]} px: all frames must have one size.")
-        if pick is not None and len(names) == pick:
-            chosen = frame
-        names.append(nm)
-    if not names:
-        raise SeriesError(f"{_short(filename)}: the file holds no frames.")
-    if chosen is None and pick is not None:
-        raise SeriesError(f"There is no frame {pick} to index: the series has {len(names)} frames "
-                          f"(0 to {len(names) - 1}).")
-    return names, chosen
-
-
 def _saturation(raw: bytes):
-    from analysis.io import load_image
-
     try:
         return load_image(raw, max_pixels=MAX_FRAME_PIXELS).saturation_level
     except RecinetError:
@@ -267,7 +223,7 @@ def _run_key(sha: str, params: dict) -> str:
 
 
 def _index_frame(value) -> int | None:
-    """The frame number typed, or None (blank: several frames vote)."""
+    """The frame number typed, or None (blank: several frames are indexed together)."""
     if value in (None, ""):
         return None
     try:
@@ -279,28 +235,11 @@ def _index_frame(value) -> int | None:
     return int(v)
 
 
-_NO_OVERLAYER = ("none", "no", "clean", "1x1", "(1x1)", "1×1", "(1×1)", "p(1x1)", "p(1×1)")
-
-
-def _overlayer_matrix(text, hint):
-    """None (as indexed), "none" (substrate beams only) or the (2, 2) matrix typed (a matrix or Wood)."""
-    from analysis.superstructure import parse_matrix, parse_wood
-
-    t = (text or "").strip()
-    if not t:
-        return None
-    if len(t) > 200:
-        raise SeriesError("The overlayer text is too long (at most 200 characters).")
-    if t.lower() in _NO_OVERLAYER:
-        return "none"
-    wood = "(" in t and ("x" in t.lower() or "×" in t)
-    return parse_wood(t, hint) if wood else parse_matrix(t)
-
-
 def run_series(sha: str, filename: str, *, substrate: str, mode: str = "file", table: dict | None = None,
                start=None, step=None, pattern: str | None = None, index_frame=None, overlayer: str | None = None,
                progress=None) -> dict:
-    """Index one frame, track every beam through the uploaded series, keep the result; return its summary.
+    """Index and follow every beam of the uploaded series with :func:`analysis.series.run_iv`
+    (the pipeline ``recinet iv`` runs), keep the result; return its summary.
 
     Parameters
     ----------
@@ -313,10 +252,11 @@ def run_series(sha: str, filename: str, *, substrate: str, mode: str = "file", t
         from a number in each frame's name (`pattern`, a regular expression).
     index_frame : int or None, keyword-only
         The frame whose pattern is indexed (geometry, substrate net, overlayer domains);
-        None: several frames are indexed and vote (:func:`analysis.series.index_series_frames`).
+        None: several frames are indexed together (:func:`analysis.series.joint.index_series_joint`).
     overlayer : str, keyword-only
         Empty: follow the overlayer domains the indexing found; ``"none"``: substrate beams
-        only; a matrix (``"2 0 / 0 2"``) or a Wood notation (``"c(2x2)"``): its domains.
+        only; a matrix (``"2 0 / 0 2"``) or a Wood notation (``"c(2x2)"``): it and its
+        symmetry-equivalent domains (:func:`analysis.series.overlayer_matrices` reads it).
     progress : callable(fraction, text), optional
 
     Returns
@@ -325,82 +265,64 @@ def run_series(sha: str, filename: str, *, substrate: str, mode: str = "file", t
         JSON-safe: ``key`` (for :func:`load_result`), ``n_frames``, ``energy_eV``, ``width``,
         ``height``, ``factor`` (preview downsampling), ``beams`` [{label, group, n_valid}],
         ``groups`` [{label, members, r_pendry, r_zj, overlap_eV, range_eV}], ``calibration``,
-        ``index`` {frame, name, energy_eV, kind, wood, matrix, n_domains}, ``normalised``,
-        ``default_beams``.
+        ``index`` {frame, name, energy_eV, kind, wood, matrix, n_domains, source, votes},
+        ``normalised``, ``default_beams``.
     """
-    from analysis import pipeline
-    from analysis.nets import Net2D
-    from analysis.series import beams_from_nets, index_series_frames, track_series, vote_frame_choices
-    from analysis.superstructure import domains, format_matrix
-
-    from . import service
-
     say = progress or (lambda f, t="": None)
     hint = service.check_substrate(substrate)
-    asked = k = _index_frame(index_frame)
-    typed = _overlayer_matrix(overlayer, hint)
-    if mode not in ENERGY_MODES:
-        raise SeriesError(f"Unknown energy source {str(mode)[:20]!r}; use {', '.join(ENERGY_MODES)}.")
+    asked = _index_frame(index_frame)
+    typed = overlayer_matrices(overlayer, hint)  # bad text fails here, before any frame is read
+    energies, name_pattern = _energy_source(mode, table, start, step, pattern)
     raw = _raw(sha)
-    say(0.02, "reading the frames")
-    names, chosen = _first_pass(raw, filename, k)
-    spec, energies = _energies(mode, table, start, step, pattern, names)
-    votes = []
-    if k is None:  # several frames vote
-        picks = set(vote_frame_choices(energies))
-        say(0.12, f"indexing {len(picks)} frames")
-        cands = [(f, float(energies[i]), i, nm) for i, (nm, f) in enumerate(frames_of(raw, filename)) if i in picks]
-        found = index_series_frames(cands, substrate=hint)
-        del cands
-        k, geometry, net, valid_mask = found.frame, found.geometry, found.substrate, found.mask
-        indexed = list(found.overlayers)
-        kind, wood, matrix = found.kind, found.wood, (found.matrix_text if found.kind != "none" else None)
-        votes = [dict(v) for v in found.votes]
-    else:
-        e_k = float(energies[k])
-        say(0.12, f"indexing frame {k} at {e_k:g} eV")
-        try:
-            one = pipeline.analyze_image(chosen, energy_eV=e_k, substrate=hint)
-        except (FitError, ParameterError, ImageError) as err:
-            raise SeriesError(f"Could not index frame {k} ({names[k]}) at {e_k:g} eV: {err} "
-                              "Try indexing another frame.") from None
-        fit, best = one.index.substrate, one.index.best
-        geometry, net, valid_mask = fit.geometry, Net2D(fit.net.vectors, label=hint.label), one.measurement.valid
-        indexed = [np.asarray(m, dtype=np.float64) for m in best.domains] if best.kind != "none" else []
-        kind, wood, matrix = best.kind, best.wood, (format_matrix(best.matrix) if best.kind != "none" else None)
-        del one
-    e_k = float(energies[k])
-    if typed is None:
-        mats = indexed
-        shown = {"kind": kind, "wood": wood, "matrix": matrix, "source": "indexed"}
-    elif isinstance(typed, str):
+    previews: dict[int, bytes] = {}
+
+    def frames():  # a fresh pass over the upload; each frame's preview is made on the first pass
+        for i, (nm, frame) in enumerate(frames_of(raw, filename)):
+            if i not in previews:
+                previews[i] = _preview(frame)
+            yield nm, frame
+
+    stage = ["reading"]
+
+    def staged(frac, text=""):
+        stage[0] = "indexing" if text.startswith("indexing") else ("following" if frac >= 0.2 else stage[0])
+        say(frac, text)
+
+    n_seen = [1]
+
+    def tracked(i, n, e):
+        n_seen[0] = n
+        say(0.2 + 0.78 * i / max(n, 1), f"frame {i} of {n}, {e:g} eV")
+
+    try:
+        run = run_iv(frames, substrate=hint, energies=energies, name_pattern=name_pattern, overlayer=typed,
+                     index_frame=asked, all_domains=isinstance(typed, list),
+                     saturation_level=_saturation(raw), progress=tracked, say=staged)
+    except SeriesError as err:
+        if stage[0] == "indexing" and asked is not None:
+            raise SeriesError(f"{err} Try indexing another frame.") from None
+        raise
+    res, found = run.result, run.indexing
+    net = found.substrate
+    if isinstance(typed, list):
+        mats = [np.asarray(d.matrix, dtype=np.float64) for m in typed for d in domains(net, m)]
+        shown = {"kind": "typed", "wood": wood_notation_or_none(net, typed[0]), "matrix": format_matrix(typed[0]),
+                 "source": "typed"}
+    elif typed == "none":
         mats = []
         shown = {"kind": "none", "wood": None, "matrix": None, "source": "typed"}
     else:
-        mats = [np.asarray(d.matrix, dtype=np.float64) for d in domains(net, typed)]
-        shown = {"kind": "typed", "wood": wood_notation_or_none(net, typed), "matrix": format_matrix(typed),
-                 "source": "typed"}
-    beams = beams_from_nets(net, mats, energy_max_eV=float(np.max(energies)), geometry=geometry)
-    say(0.2, "following the beams")
-    n = len(names)
-    previews: list[bytes] = []
-
-    def streamed():
-        for nm, frame in frames_of(raw, filename):
-            previews.append(_preview(frame))
-            yield nm, frame
-
-    res = track_series(streamed(), beams, geometry, energies=spec, mask=valid_mask,
-                       saturation_level=_saturation(raw),
-                       progress=lambda i, _n, e: say(0.2 + 0.78 * i / n, f"frame {i} of {n}, {e:g} eV"))
+        mats = list(run.overlayer["matrices"])
+        shown = {"kind": found.kind, "wood": found.wood,
+                 "matrix": found.matrix_text if found.kind != "none" else None, "source": "indexed"}
     params = {"mode": mode, "table": table, "start": start, "step": step, "pattern": pattern,
               "substrate": substrate, "index_frame": asked, "overlayer": overlayer}
     key = _run_key(sha, params)
     c = _cache()
     c.set(("iv", key), res, expire=_KEEP_S)
-    c.set(("previews", key), previews, expire=_KEEP_S)
+    c.set(("previews", key), [previews[i] for i in range(len(run.frame_names))], expire=_KEEP_S)
     say(1.0, "done")
-    h, w = (int(v) for v in res.settings["frame_shape"])
+    h, w = (int(v) for v in run.frame_shape)
     groups = groups_of(res)
     valid = res.valid
     beams_out = [{"label": lab, "group": int(res.beams.group[j]), "n_valid": int(valid[:, j].sum())}
@@ -416,8 +338,9 @@ def run_series(sha: str, filename: str, *, substrate: str, mode: str = "file", t
         "groups": [{"label": g.label, "members": list(g.members), "r_pendry": g.r_pendry, "r_zj": g.r_zj,
                     "overlap_eV": g.overlap_eV, "range_eV": g.range_eV} for g in groups],
         "calibration": None if cal is None else cal.to_dict(),
-        "index": {"frame": k, "name": names[k], "energy_eV": e_k, **shown,
-                  "n_domains": len(mats), "substrate": hint.label or str(substrate), "votes": votes},
+        "index": {"frame": found.frame, "name": found.frame_name, "energy_eV": found.energy_eV, **shown,
+                  "n_domains": len(mats), "substrate": hint.label or str(substrate),
+                  "votes": [dict(v) for v in found.votes]},
         "symmetry": res.beams.symmetry,
         "normalised": bool(res.settings.get("normalised_by_current")),
         "default_beams": _default_beams(groups),
@@ -426,8 +349,6 @@ def run_series(sha: str, filename: str, *, substrate: str, mode: str = "file", t
 
 def wood_notation_or_none(net, matrix) -> str | None:
     """The Wood notation of `matrix` on `net` as text, or None when none exists."""
-    from analysis.superstructure import wood_notation
-
     try:
         w = wood_notation(net, matrix)
     except RecinetError:
@@ -464,7 +385,6 @@ def load_result(key: str):
 
 @functools.lru_cache(maxsize=64)
 def _preview_url(key: str, i: int) -> str:
-    import base64
 
     previews = _cache().get(("previews", key))
     if previews is None:
@@ -481,14 +401,12 @@ def frame_view(key: str, i: int) -> str:
 
 @functools.lru_cache(maxsize=4)
 def _groups(key: str):
-    from analysis.series import average_equivalent
 
     return average_equivalent(_load(key))
 
 
 def groups_of(res) -> list:
     """The equivalent-beam groups (:func:`analysis.series.average_equivalent`) of an IVResult or run key."""
-    from analysis.series import average_equivalent
 
     if isinstance(res, str):
         return _groups(res)
@@ -497,13 +415,11 @@ def groups_of(res) -> list:
 
 def export_csv(key: str, *, averaged: bool = False) -> str:
     """The I(V) table as CSV (energy in eV first, one column per beam or per group)."""
-    from analysis.series import csv_text
 
     return csv_text(load_result(key), averaged=averaged)
 
 
 def export_json(key: str) -> str:
     """The whole run as JSON (:func:`analysis.series.result_to_dict`)."""
-    from analysis.series import result_to_dict
 
     return json.dumps(result_to_dict(load_result(key)), indent=1, allow_nan=False)

@@ -8,22 +8,34 @@ from __future__ import annotations
 
 import base64
 import binascii
+import dataclasses
 import functools
+import hashlib
 import json
 import math
+import os
 import re
 from datetime import datetime, timezone
 from pathlib import Path
 
+import diskcache
 import numpy as np
 
+from analysis import pipeline, serialize
 from analysis.errors import ImageError, NetError, ParameterError, RecinetError
+from analysis.indexing import predicted_beams
+from analysis.io import load_image
+from analysis.nets import Net2D, parse_substrate, reciprocal
+from analysis.optics import ScreenGeometry
+from analysis.superstructure import format_matrix
+
+from . import runtime
 
 __all__ = [
     "result_object", "candidate_predictions", "record_key", "calibration_of",
     "DEMO_DIR", "EXPORT_FORMAT", "demo_choices", "demo_bytes", "decode_upload", "read_image",
     "image_array", "check_energy", "check_substrate", "analyze", "try_model", "summary_of",
-    "export_bundle", "read_bundle", "clean_edits", "pipeline_ready",
+    "export_bundle", "read_bundle", "clean_edits",
 ]
 
 DEMO_DIR = Path(__file__).resolve().parent.parent / "demo_images"
@@ -120,7 +132,6 @@ def decode_upload(contents: str | None, filename: str | None, *, max_bytes: int)
 
 def read_image(raw: bytes, *, name: str = "upload"):
     """Decode image bytes through :func:`analysis.io.load_image` (all format and bomb checks live there)."""
-    from analysis.io import load_image
 
     try:
         im = load_image(raw)
@@ -135,9 +146,8 @@ def read_image(raw: bytes, *, name: str = "upload"):
 
 @functools.lru_cache(maxsize=6)
 def _cached_array(sha: str, store_key: int) -> np.ndarray:
-    from .runtime import get_store
 
-    raw = get_store().image_bytes(sha)
+    raw = runtime.get_store().image_bytes(sha)
     if raw is None:
         raise ParameterError("The image of this analysis is no longer stored; upload it again.")
     return read_image(raw).data
@@ -145,23 +155,20 @@ def _cached_array(sha: str, store_key: int) -> np.ndarray:
 
 def image_array(sha: str) -> np.ndarray:
     """The (M, N) float64 pixels of a stored image, decoded once per process."""
-    from .runtime import get_store
 
-    return _cached_array(sha, id(get_store()))
+    return _cached_array(sha, id(runtime.get_store()))
 
 
 # --------------------------------------------------------------------------- parameters
 
 def check_energy(value) -> float:
     """Electron energy from a form field, in eV (the pipeline's check: 5 to 5000 eV)."""
-    from analysis.pipeline import check_energy as _check
 
-    return _check(value)
+    return pipeline.check_energy(value)
 
 
 def check_substrate(text):
     """Substrate net from a preset like ``Pt(111)`` or a net like ``hexagonal:2.775``."""
-    from analysis.nets import parse_substrate
 
     if not isinstance(text, str) or len(text) > 120:
         raise NetError("Substrate must be a short text like 'Pt(111)' or 'hexagonal:2.775'.")
@@ -190,15 +197,6 @@ def clean_edits(edits) -> dict:
 
 # --------------------------------------------------------------------------- the analysis
 
-def pipeline_ready() -> bool:
-    try:
-        import analysis.pipeline  # noqa: F401
-        import analysis.serialize  # noqa: F401
-    except ImportError:
-        return False
-    return True
-
-
 def calibration_of(result: dict | None):
     """The fitted camera model (a ScreenGeometry dict) a saved result carries, or None."""
     if not isinstance(result, dict):
@@ -211,7 +209,6 @@ def calibration_of(result: dict | None):
 
 def record_key(sha: str, parameters: dict, edits: dict | None) -> str:
     """A stable key for one (image, parameters, edits): the cache name of its analysis object."""
-    import hashlib
 
     blob = json.dumps(_normalised([sha, parameters or {}, clean_edits(edits)]), sort_keys=True, default=str)
     return hashlib.sha256(blob.encode()).hexdigest()
@@ -246,15 +243,12 @@ _CACHES: dict = {}  # folder name → (process id, diskcache.Cache)
 def job_cache(name: str, size_limit: int):
     """diskcache in the data folder's job-cache subfolder `name`, opened once per process
     (shared by workers and background jobs; the least recently used entries are evicted)."""
-    import os
 
-    import diskcache
 
-    from .runtime import get_settings
 
     pid, cache = _CACHES.get(name, (None, None))
     if cache is None or pid != os.getpid():
-        cache = diskcache.Cache(str(get_settings().cache_dir / name), size_limit=size_limit,
+        cache = diskcache.Cache(str(runtime.get_settings().cache_dir / name), size_limit=size_limit,
                                 eviction_policy="least-recently-used")
         _CACHES[name] = (os.getpid(), cache)
     return cache
@@ -277,13 +271,7 @@ def analyze(image: np.ndarray, *, energy_eV: float, substrate: str, edits: dict 
     With `cache_key`, the analysis object is kept (without its background maps)
     so that trying a model or drawing a candidate later needs no new analysis.
     """
-    import dataclasses
 
-    try:
-        from analysis import pipeline, serialize
-        from analysis.optics import ScreenGeometry
-    except ImportError:
-        raise RecinetError("The analysis pipeline is not installed in this build; the image can be viewed only.") from None
     e = check_energy(energy_eV)
     check_substrate(substrate)
     ed = clean_edits(edits)
@@ -302,7 +290,6 @@ def analyze(image: np.ndarray, *, energy_eV: float, substrate: str, edits: dict 
 
 def result_object(record: dict):
     """The analysis object behind a stored record: from the cache, else analysed again (same inputs)."""
-    from .runtime import get_store
 
     params = (record or {}).get("parameters") or {}
     sha = (record or {}).get("sha")
@@ -318,7 +305,7 @@ def result_object(record: dict):
         ref = image_array(params["reference_sha256"])
     cal = None
     if params.get("calibration_from"):
-        saved = get_store().get_analysis(params["calibration_from"])
+        saved = runtime.get_store().get_analysis(params["calibration_from"])
         cal = calibration_of(saved.result if saved else None)
     analyze(image_array(sha), energy_eV=params.get("energy_eV"), substrate=params.get("substrate", ""),
             edits=record.get("edits"), reference=ref, reference_energy_eV=params.get("reference_energy_eV"),
@@ -337,7 +324,6 @@ def summary_of(result: dict | None) -> str:
     if ov.get("kind") == "none":
         return "(1×1)"
     if ov.get("matrix"):
-        from analysis.superstructure import format_matrix
         try:
             return format_matrix(ov["matrix"])
         except (ValueError, TypeError):
@@ -355,8 +341,6 @@ def try_model(text: str, record: dict) -> dict:
     Returns ``{"label", "matrices", "xy", "explained", "unexplained", "n_domains", "wood", "kind"}``;
     ``xy`` are the beams every domain of the model predicts, on the camera model.
     """
-    from analysis import pipeline, serialize
-    from analysis.indexing import predicted_beams
 
     if not isinstance(text, str) or not text.strip():
         raise NetError("Type a matrix like '2 1 / -1 1' or a Wood notation like '(√3×√3)R30°'.")
@@ -375,8 +359,6 @@ def try_model(text: str, record: dict) -> dict:
 
 def candidate_predictions(record: dict, pick: int) -> list[list]:
     """Predicted beams (x, y, h, k dicts) of each domain of ranked candidate `pick`."""
-    from analysis import serialize
-    from analysis.indexing import predicted_beams
 
     obj = result_object(record)
     models = obj.index.models
@@ -390,7 +372,6 @@ def candidate_predictions(record: dict, pick: int) -> list[list]:
 def export_bundle(*, image_bytes: bytes, filename: str, parameters: dict, edits: dict, result: dict | None,
                   sample_name: str = "", notes: str = "", token: str | None = None) -> dict:
     """A self-contained, re-importable JSON document of one analysis (the image included)."""
-    import hashlib
 
     return {
         "format": EXPORT_FORMAT, "version": 1,
@@ -404,7 +385,6 @@ def export_bundle(*, image_bytes: bytes, filename: str, parameters: dict, edits:
 
 def read_bundle(raw: bytes | str, *, max_bytes: int) -> dict:
     """Check an exported analysis and return it with the image bytes decoded under ``image["data"]``."""
-    import hashlib
 
     if isinstance(raw, bytes):
         if len(raw) > max_bytes * 4 // 3 + 1_000_000:
@@ -448,7 +428,6 @@ def read_bundle(raw: bytes | str, *, max_bytes: int) -> dict:
 
 def reciprocal_parameters(a, b, gamma_deg):
     """(a*, b*, γ*) in Å⁻¹ (no 2π) and degrees of the net (a, b, γ), or None when incomplete."""
-    from analysis.nets import Net2D, reciprocal
 
     try:
         rec = reciprocal(Net2D.from_parameters(float(a), float(b), float(gamma_deg)))
@@ -459,7 +438,6 @@ def reciprocal_parameters(a, b, gamma_deg):
 
 def substrate_vectors(sub: dict) -> np.ndarray:
     """Real-space rows a1, a2 (Å) for drawing, from a result's substrate block (a along +x)."""
-    from analysis.nets import Net2D
 
     try:
         return Net2D.from_parameters(float(sub["a_angstrom"]), float(sub["b_angstrom"]), float(sub["gamma_deg"])).vectors
@@ -469,7 +447,6 @@ def substrate_vectors(sub: dict) -> np.ndarray:
 
 
 def summary_matrix(overlayer: dict) -> str:
-    from analysis.superstructure import format_matrix
 
     m = (overlayer or {}).get("matrix")
     if m is None:

@@ -6,7 +6,7 @@ from dash import html, register_page
 
 from webapp import ids, runtime
 
-register_page(__name__, path="/recent", title="recinet: saved analyses", name="Saved analyses")
+register_page(__name__, path="/recent", title="recinet: saved analyses", name="Saved analyses", order=10)
 
 PAGE_SIZE = 48
 

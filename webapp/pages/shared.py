@@ -4,7 +4,8 @@ from __future__ import annotations
 
 from dash import html, register_page
 
-from webapp import ids, runtime, workspace
+from webapp import ids, runtime
+from webapp.pages.analyse import workspace
 
 register_page(__name__, path_template="/analysis/<token>", title="recinet: saved analysis", name="Saved analysis")
 
@@ -21,12 +22,12 @@ def layout(token: str | None = None, **_query):
     record = {"sha": a.image_sha256, "parameters": a.parameters, "edits": a.edits, "result": a.result}
     p = a.parameters
     header = html.Div(className="panel", children=[
-        html.H1(a.sample_name or "Untitled sample", id="shared-title"),
+        html.H1(a.sample_name or "Untitled sample", id=ids.SHARED_TITLE),
         html.P(f"{a.image_filename} · {p.get('substrate', '?')} · {p.get('energy_eV', '?')} eV · saved "
                f"{a.created_at:%Y-%m-%d %H:%M} UTC", className="muted"),
         html.P(a.notes, className="notes-text") if a.notes else None,
         html.A("Copy to edit", href=f"/?copy={a.token}", id=ids.COPY_TO_EDIT, className="button"),
     ])
-    return workspace.workspace(readonly=True, image=image, record=record, energy=p.get("energy_eV"),
+    return workspace(readonly=True, image=image, record=record, energy=p.get("energy_eV"),
                                substrate=p.get("substrate", ""), sample_name=a.sample_name, notes=a.notes,
                                token=a.token, header=header)

@@ -1,0 +1,56 @@
+"""What every figure shares: the colours, the domain styles, index text, the empty figure."""
+
+from __future__ import annotations
+
+from fractions import Fraction
+
+import numpy as np
+import plotly.graph_objects as go
+
+__all__ = ["PALETTE", "DOMAIN_STYLES", "hk_text", "empty_figure"]
+
+# Okabe & Ito, "Color Universal Design" (2008): eight colours told apart with every common colour-vision deficiency.
+PALETTE = {
+    "orange": "#E69F00", "sky": "#56B4E9", "green": "#009E73", "yellow": "#F0E442",
+    "blue": "#0072B2", "vermillion": "#D55E00", "purple": "#CC79A7", "black": "#000000",
+}
+# each domain gets its own marker shape as well as its own colour
+DOMAIN_STYLES = [
+    ("circle-open", PALETTE["orange"]), ("square-open", PALETTE["green"]),
+    ("diamond-open", PALETTE["purple"]), ("triangle-up-open", PALETTE["yellow"]),
+    ("pentagon-open", PALETTE["vermillion"]), ("hexagon-open", PALETTE["sky"]),
+    ("triangle-down-open", "#FFFFFF"), ("star-open", PALETTE["blue"]),
+]
+_MPL_MARKERS = {"circle-open": "o", "square-open": "s", "diamond-open": "D", "triangle-up-open": "^",
+                "pentagon-open": "p", "hexagon-open": "h", "triangle-down-open": "v", "star-open": "*"}
+
+
+def hk_text(h: float, k: float) -> str:
+    """``(1/2, -1)``: indices as small fractions, or 2 decimals when not one.
+
+    >>> hk_text(0.5, -1.0), hk_text(0.3333333, 0.0), hk_text(0.123, 1)
+    ('(1/2, -1)', '(1/3, 0)', '(0.12, 1)')
+    """
+    def one(x):
+        if x is None or not np.isfinite(x):
+            return "?"
+        f = Fraction(float(x)).limit_denominator(12)
+        return str(f) if abs(float(f) - x) < 2e-3 else f"{x:.2f}"
+    return f"({one(h)}, {one(k)})"
+
+
+def num(x, fmt="{:.3g}"):
+    try:
+        return fmt.format(float(x))
+    except (TypeError, ValueError):
+        return "–"
+
+
+def empty_figure(message: str = "Drop a LEED image here or pick a demo image", *, height: int = 640) -> go.Figure:
+    fig = go.Figure()
+    fig.update_layout(
+        template="plotly_white", margin=dict(l=10, r=10, t=10, b=10), height=height,
+        xaxis=dict(visible=False), yaxis=dict(visible=False),
+        annotations=[dict(text=message, showarrow=False, font=dict(size=16, color="#666"),
+                          xref="paper", yref="paper", x=0.5, y=0.5)])
+    return fig

@@ -1,0 +1,178 @@
+"""The workspace layout shared by the editor (``/``) and the read-only view (``/analysis/<token>``)."""
+
+from __future__ import annotations
+
+from dash import dcc, html
+
+from webapp import figures, ids, runtime, service
+
+from .state import empty_edits
+
+__all__ = ["workspace", "calibration_choices", "DEFAULT_OVERLAYS"]
+
+DEFAULT_OVERLAYS = ["spots", "substrate", "domains", "unexplained", "model"]
+
+def workspace(*, readonly: bool = False, image: dict | None = None, record: dict | None = None,
+              energy=None, substrate: str = "Pt(111)", sample_name: str = "", notes: str = "",
+              token: str | None = None, header=None):
+    """The page body: the pattern large on the left, the answer on the right."""
+    hide = {"display": "none"} if readonly else {}
+    edits = (record or {}).get("edits") or empty_edits((image or {}).get("sha"))
+    edits = {**empty_edits((image or {}).get("sha")), **edits, "sha": (image or {}).get("sha")}
+    controls = html.Div(className="controls", children=[
+        html.Div(className="control", children=[
+            html.Label("Contrast", htmlFor=ids.SCALE),
+            dcc.RadioItems(id=ids.SCALE, options=[{"label": l, "value": v} for v, l in figures.SCALES],
+                           value="linear", inline=True),
+        ]),
+        html.Div(className="control", children=[
+            html.Label("Gamma"),
+            dcc.Slider(id=ids.GAMMA, min=0.1, max=2.0, step=0.05, value=0.5,
+                       marks={0.25: "0.25", 0.5: "0.5", 1: "1", 1.5: "1.5", 2: "2"}),
+        ]),
+        html.Div(className="control wide", children=[
+            html.Label("Clip (percentiles)"),
+            dcc.RangeSlider(id=ids.CLIP, min=0, max=100, step=0.01, value=[0.5, 99.95],
+                            marks={0: "0", 25: "25", 50: "50", 75: "75", 100: "100"},
+                            tooltip={"placement": "bottom"}),
+        ]),
+        html.Div(className="control wide", children=[
+            html.Label("Show"),
+            dcc.Checklist(id=ids.OVERLAYS, options=[{"label": l, "value": v} for v, l in figures.OVERLAY_CHOICES],
+                          value=DEFAULT_OVERLAYS, inline=True),
+        ]),
+        html.Div(className="control wide", style=hide, children=[
+            html.Label("A click on the pattern"),
+            dcc.RadioItems(id=ids.CLICK_MODE, inline=True, value="spots", options=[
+                {"label": "adds a spot, or drops the spot under it", "value": "spots"},
+                {"label": "sets the centre", "value": "center"},
+                {"label": "does nothing", "value": "none"},
+            ]),
+            html.Div(className="row", children=[
+                html.Span(id=ids.EDIT_SUMMARY, className="muted"),
+                html.Button("Undo all edits", id=ids.UNDO_EDITS, className="small"),
+            ]),
+        ]),
+    ])
+    left = html.Div(className="left", children=[
+        dcc.Graph(id=ids.GRAPH, figure=figures.empty_figure(), className="pattern",
+                  config={"edits": {"shapePosition": not readonly}, "displaylogo": False,
+                          "scrollZoom": True, "modeBarButtonsToRemove": ["select2d", "lasso2d"]}),
+        controls,
+    ])
+    inputs = html.Div(className="panel", style=hide, children=[
+        html.H2("Image and parameters"),
+        dcc.Upload(id=ids.UPLOAD, className="upload", max_size=-1, multiple=False, children=html.Div([
+            "Drop a LEED image (PNG, JPEG, TIFF incl. 16-bit) or an exported analysis (.json) here, or ",
+            html.A("choose a file"),
+        ])),
+        html.Div(id=ids.UPLOAD_NOTE, **{"aria-live": "polite"}),
+        html.Div(className="row", children=[
+            html.Label("Demo image", htmlFor=ids.DEMO),
+            dcc.Dropdown(id=ids.DEMO, options=service.demo_choices(), placeholder="pick a demo image",
+                         className="grow"),
+        ]),
+        html.Div(className="row", children=[
+            html.Label("Energy (eV)", htmlFor=ids.ENERGY),
+            dcc.Input(id=ids.ENERGY, type="number", value=energy, placeholder="e.g. 80", debounce=True),
+            html.Label("Substrate", htmlFor=ids.SUBSTRATE),
+            dcc.Input(id=ids.SUBSTRATE, type="text", value=substrate, placeholder="Pt(111) or hexagonal:2.775",
+                      debounce=True, maxLength=120),
+        ]),
+        html.Details(className="more", children=[
+            html.Summary("Reference image and calibration (optional)"),
+            html.Div(className="row", children=[
+                dcc.Upload(id=ids.REF_UPLOAD, className="upload small", max_size=-1, multiple=False,
+                           children=html.Div(["Drop a reference image (e.g. the clean substrate) or ",
+                                              html.A("choose one")])),
+            ]),
+            html.Div(className="row", children=[
+                html.Label("or a demo", htmlFor=ids.REF_DEMO),
+                dcc.Dropdown(id=ids.REF_DEMO, options=service.demo_choices(), placeholder="no reference",
+                             className="grow"),
+                html.Label("at (eV)", htmlFor=ids.REF_ENERGY),
+                dcc.Input(id=ids.REF_ENERGY, type="number", placeholder="eV", debounce=True),
+            ]),
+            html.Div(id=ids.REF_NOTE),
+            html.Div(className="row", children=[
+                html.Label("Screen calibration from", htmlFor=ids.CALIBRATION),
+                dcc.Dropdown(id=ids.CALIBRATION, options=calibration_choices(), placeholder="fit it on this image",
+                             className="grow"),
+            ]),
+        ]),
+        html.Div(className="row", children=[
+            html.Button("Analyse", id=ids.RUN, className="primary"),
+            html.Button("Stop", id=ids.CANCEL, disabled=True),
+            html.Progress(id=ids.PROGRESS, value="0", max="100", style={"visibility": "hidden"}),
+        ]),
+        html.Div(id=ids.MESSAGE, **{"aria-live": "polite"}),
+    ])
+    saving = html.Div(className="panel", style=hide, children=[
+        html.H2("Save and share"),
+        dcc.Input(id=ids.SAMPLE, type="text", value=sample_name, placeholder="sample name", maxLength=200,
+                  className="full"),
+        dcc.Textarea(id=ids.NOTES, value=notes, placeholder="notes", maxLength=20000, className="full"),
+        html.Button("Save and make a link", id=ids.SAVE),
+        html.Div(id=ids.SAVE_NOTE, **{"aria-live": "polite"}),
+        html.Div(id=ids.SHARE_LINK),
+    ])
+    right = html.Div(className="right", children=[
+        header,
+        inputs,
+        html.Div(className="panel", children=[html.H2("Result"), html.Div(id=ids.RESULT_PANEL, children=
+                                                                          html.P("No analysis yet.", className="muted"))]),
+        html.Div(className="panel", children=[
+            html.H2("Other candidates"),
+            dcc.RadioItems(id=ids.CANDIDATE_PICK, options=[], value=None, className="candidates"),
+            html.Div(id=ids.CANDIDATES),
+        ]),
+        html.Div(className="panel", children=[
+            html.H2("Real space"),
+            dcc.Graph(id=ids.REAL_SPACE, figure=figures.empty_figure("The cells appear after an analysis", height=300),
+                      config={"displaylogo": False}, style={"height": "320px"}),
+        ]),
+        html.Div(className="panel", children=[
+            html.H2("Try a model"),
+            html.Div(className="row", children=[
+                dcc.Input(id=ids.MODEL_TEXT, type="text", placeholder="2 1 / -1 1  or  (√3×√3)R30°",
+                          maxLength=200, className="grow", debounce=False),
+                html.Button("Try", id=ids.MODEL_TRY),
+            ]),
+            html.Div(id=ids.MODEL_NOTE, **{"aria-live": "polite"}),
+        ]),
+        saving,
+        html.Div(className="panel", children=[
+            html.H2("Export"),
+            html.Div(className="row", children=[
+                html.Button("Analysis (JSON)", id=ids.EXPORT_JSON),
+                html.Button("Spots (CSV)", id=ids.EXPORT_CSV),
+                html.Button("Figure (PNG)", id=ids.EXPORT_PNG),
+                html.Button("Figure (SVG)", id=ids.EXPORT_SVG),
+            ]),
+            dcc.Download(id=ids.DOWNLOAD),
+        ]),
+    ])
+    return html.Div(className="workspace", children=[
+        dcc.Store(id=ids.IMAGE, data=image),
+        dcc.Store(id=ids.RESULT, data=record),
+        dcc.Store(id=ids.EDITS, data=edits),
+        dcc.Store(id=ids.MODEL, data=None),
+        dcc.Store(id=ids.REFERENCE, data=None),
+        dcc.Store(id=ids.SOURCE, data={"readonly": bool(readonly), "token": token}),
+        left, right,
+    ])
+
+
+def calibration_choices() -> list[dict]:
+    """Saved analyses whose result carries a screen calibration, newest first."""
+    try:
+        saved = runtime.get_store().recent(40)
+    except Exception:  # noqa: BLE001 - a list of choices must never break the page
+        return []
+    out = []
+    for a in saved:
+        if service.calibration_of(a.result) is not None:
+            label = f"{a.sample_name or a.image_filename} · {a.created_at:%Y-%m-%d}"
+            out.append({"label": label[:80], "value": a.token})
+    return out
+

@@ -1,0 +1,137 @@
+"""The pattern on screen: contrast, overlays, and the edits made by clicking on it."""
+
+from __future__ import annotations
+
+import functools
+import math
+
+import numpy as np
+from dash import Input, Output, State, callback
+from dash.exceptions import PreventUpdate
+
+from webapp import figures, ids, service
+from webapp.pages.common import fail, triggered
+
+from .state import candidate, empty_edits, result_of
+
+__all__ = ["display_image", "render_pattern", "on_graph_event", "edit_summary"]
+
+@functools.lru_cache(maxsize=16)
+def display_image(sha: str, scale: str, gamma: float, clip_lo: float, clip_hi: float) -> tuple[str, int]:
+    """PNG data URL of a stored image at the chosen contrast, and its downsampling factor."""
+    data = service.image_array(sha)
+    small, f = figures.downsample(data, 1024)
+    levels = figures.display_levels(small, scale=scale, clip_pct=(clip_lo, clip_hi), gamma=gamma)
+    return figures.png_data_url(levels), f
+
+
+
+def render_pattern(image, record, edits, model, scale, gamma, clip, overlays, pick, source):
+    """The pattern figure with the chosen contrast and overlays."""
+    if not image or not image.get("sha"):
+        return figures.empty_figure()
+    clip = clip or [0.5, 99.95]
+    try:
+        url, f = display_image(image["sha"], scale or "linear", float(gamma or 0.5), float(clip[0]), float(clip[1]))
+    except Exception as err:  # noqa: BLE001
+        return figures.empty_figure(fail(err))
+    result = result_of(record, image)
+    ed = edits if edits and edits.get("sha") == image["sha"] else None
+    cand = candidate(result, pick)
+    if cand is not None:
+        try:
+            cand = {**cand, "predicted": service.candidate_predictions(record, pick)}
+        except Exception as err:  # noqa: BLE001 - fall back to the local linear prediction
+            fail(err)
+    return figures.pattern_figure(url, width=image["width"], height=image["height"], factor=f, result=result,
+                                  overlays=overlays or [], edits=ed, model=model,
+                                  candidate=cand,
+                                  editable=not (source or {}).get("readonly"), revision=image["sha"])
+
+
+def on_graph_event(click, relayout, undo, mode, edits, image, source):
+    """A click adds or drops a spot or sets the centre; dragging the centre circle moves it."""
+    if (source or {}).get("readonly") or not image:
+        raise PreventUpdate
+    trig, prop = triggered()
+    ed = dict(edits) if edits and edits.get("sha") == image["sha"] else empty_edits(image["sha"])
+    ed = {**ed, **service.clean_edits(ed)}
+    if trig == ids.UNDO_EDITS:
+        out = empty_edits(image["sha"])
+        out["rev"] = int(ed.get("rev", 0)) + 1
+        return out
+    if prop.endswith("relayoutData"):
+        c = _center_from_relayout(relayout)
+        if c is None:
+            raise PreventUpdate
+        ed["center"] = c
+    else:
+        if not click or not click.get("points") or mode == "none":
+            raise PreventUpdate
+        p = click["points"][0]
+        x, y = p.get("x"), p.get("y")
+        if x is None or y is None:
+            raise PreventUpdate
+        x, y = float(x), float(y)
+        if not (-0.5 <= x <= image["width"] - 0.5 and -0.5 <= y <= image["height"] - 0.5):
+            raise PreventUpdate
+        cd = p.get("customdata")
+        if mode == "center":
+            ed["center"] = [x, y]
+        elif isinstance(cd, (list, tuple)) and len(cd) >= 2 and cd[0] == "spot":
+            if len(cd) >= 3 and cd[2] and ed["added"]:  # a spot added by hand: forget it
+                d = [math.hypot(q[0] - x, q[1] - y) for q in ed["added"]]
+                j = int(np.argmin(d))
+                ed["added"] = [q for i, q in enumerate(ed["added"]) if i != j]
+            else:  # a detected spot: drop it (the analysis finds it again by position)
+                ed["removed"] = ed["removed"] + [[round(x, 2), round(y, 2)]]
+        elif isinstance(cd, (list, tuple)) and len(cd) == 2 and cd[0] == "added":
+            i = int(cd[1])
+            ed["added"] = [q for j, q in enumerate(ed["added"]) if j != i]
+        else:
+            if len(ed["added"]) >= service.MAX_EDITS:
+                raise PreventUpdate
+            ed["added"] = ed["added"] + [[round(x, 2), round(y, 2)]]
+    ed["rev"] = int(ed.get("rev", 0)) + 1
+    ed["sha"] = image["sha"]
+    return ed
+
+
+def _center_from_relayout(relayout):
+    if not isinstance(relayout, dict):
+        return None
+    keys = [f"shapes[0].{k}" for k in ("x0", "x1", "y0", "y1")]
+    if not all(k in relayout for k in keys):
+        return None
+    try:
+        x0, x1, y0, y1 = (float(relayout[k]) for k in keys)
+    except (TypeError, ValueError):
+        return None
+    if not all(map(math.isfinite, (x0, x1, y0, y1))):
+        return None
+    return [round((x0 + x1) / 2, 2), round((y0 + y1) / 2, 2)]
+
+
+def edit_summary(edits, image):
+    if not image or not edits or edits.get("sha") != image.get("sha"):
+        return ""
+    a, r, c = len(edits.get("added") or []), len(edits.get("removed") or []), edits.get("center")
+    parts = [f"{a} added", f"{r} dropped", "centre " + (f"set to ({c[0]:.1f}, {c[1]:.1f})" if c else "found")]
+    return "Edits by hand: " + ", ".join(parts)
+
+
+callback(
+    Output(ids.GRAPH, "figure"),
+    Input(ids.IMAGE, "data"), Input(ids.RESULT, "data"), Input(ids.EDITS, "data"), Input(ids.MODEL, "data"),
+    Input(ids.SCALE, "value"), Input(ids.GAMMA, "value"), Input(ids.CLIP, "value"), Input(ids.OVERLAYS, "value"),
+    Input(ids.CANDIDATE_PICK, "value"), State(ids.SOURCE, "data"),
+)(render_pattern)
+
+callback(
+    Output(ids.EDITS, "data"),
+    Input(ids.GRAPH, "clickData"), Input(ids.GRAPH, "relayoutData"), Input(ids.UNDO_EDITS, "n_clicks"),
+    State(ids.CLICK_MODE, "value"), State(ids.EDITS, "data"), State(ids.IMAGE, "data"), State(ids.SOURCE, "data"),
+    prevent_initial_call=True,
+)(on_graph_event)
+
+callback(Output(ids.EDIT_SUMMARY, "children"), Input(ids.EDITS, "data"), Input(ids.IMAGE, "data"))(edit_summary)
