@@ -15,6 +15,15 @@ at polar angle θ, azimuth φ lands at the image radius
 so that d = 0 is the distant camera (r = s sin θ) and s is the image radius in
 pixels that sin θ = 1 would reach in that limit. The image may be slightly
 elliptical (axis ratio `ellipticity` along direction `ellipse_deg`) and rotated.
+
+Off-normal incidence: the primary beam's parallel momentum k_in∥ adds to every beam,
+so a beam of parallel momentum transfer g leaves along the direction whose sin θ
+vector (on the screen, before the rotation to image axes is undone) is
+λ R g + t, with t = λ k_in∥ rotated into image axes (`incidence_x`, `incidence_y`:
+the sin θ vector of the specular (0,0) beam; energy-independent for a fixed
+sample). The screen axis stays the image of the surface normal; the specular beam
+lands at :attr:`ScreenGeometry.specular_px`, about s·|t| from it. At d = 0 a
+shift of t is a shift of the centre; the radial law (d > 0) tells them apart.
 Pixels: x to the right, y downwards, the centre of the top-left pixel at (0, 0);
 a surface direction at azimuth φ appears at image angle φ + rotation measured
 counter-clockwise on the screen (so y_px decreases as sin φ grows).
@@ -135,6 +144,9 @@ class ScreenGeometry:
         Image direction along which radii are multiplied by `ellipticity`.
     acceptance_deg : float
         Half-angle the screen accepts (beams beyond it are not seen).
+    incidence_x, incidence_y : float
+        sin θ vector of the specular (0,0) beam in image axes (x right, y up):
+        λ k_in∥ for a primary beam off the surface normal; 0 at normal incidence.
     """
 
     center_x_px: float
@@ -145,6 +157,8 @@ class ScreenGeometry:
     ellipticity: float = 1.0
     ellipse_deg: float = 0.0
     acceptance_deg: float = 52.0
+    incidence_x: float = 0.0
+    incidence_y: float = 0.0
     extra: dict = field(default_factory=dict, compare=False)
 
     def __post_init__(self):
@@ -156,11 +170,27 @@ class ScreenGeometry:
             raise ParameterError(f"`ellipticity` must be positive, got {self.ellipticity}.")
         if not (0.0 < self.acceptance_deg <= 90.0):
             raise ParameterError(f"`acceptance_deg` must be in (0, 90], got {self.acceptance_deg}.")
+        if not math.hypot(self.incidence_x, self.incidence_y) < 0.5:
+            raise ParameterError(f"The incidence (sin θ of the specular beam) must be below 0.5 (30°), got "
+                                 f"({self.incidence_x}, {self.incidence_y}).")
 
     @property
     def center_px(self) -> tuple[float, float]:
-        """(x, y) of the pattern centre."""
+        """(x, y) of the screen axis (the image of the surface normal)."""
         return (self.center_x_px, self.center_y_px)
+
+    @property
+    def specular_px(self) -> tuple[float, float]:
+        """(x, y) of the specular (0,0) beam: the centre itself at normal incidence.
+
+        Examples
+        --------
+        >>> g = ScreenGeometry(100.0, 100.0, 80.0, incidence_x=0.05)
+        >>> print(np.round(g.specular_px, 3).tolist())
+        [104.0, 100.0]
+        """
+        xy, _ = project(np.zeros((1, 2)), 1.0, self)
+        return (float(xy[0, 0]), float(xy[0, 1]))
 
     def to_dict(self) -> dict:
         d = asdict(self)
@@ -232,16 +262,31 @@ def project(k_par, lam: float, geom) -> tuple[np.ndarray, np.ndarray]:
 
     `geom` is a ScreenGeometry or any object with its fields (no validation here).
     """
-    k = np.asarray(k_par, dtype=np.float64).reshape(-1, 2)
-    st = lam * np.hypot(k[:, 0], k[:, 1])
+    w = _screen_sin(k_par, lam, geom)
+    st = np.hypot(w[:, 0], w[:, 1])
     visible = st <= math.sin(math.radians(geom.acceptance_deg)) + 1e-12
-    phi = np.arctan2(k[:, 1], k[:, 0]) + math.radians(geom.rotation_deg)
-    with np.errstate(invalid="ignore"):
-        r = geom.scale_px * _radial(np.where(st <= 1.0, st, np.nan), geom.distortion)
-    xy_up = np.stack([r * np.cos(phi), r * np.sin(phi)], axis=1) @ _ellipse(geom).T
+    with np.errstate(invalid="ignore", divide="ignore"):
+        st_ok = np.where(st <= 1.0, st, np.nan)
+        ratio = np.where(st_ok > 0, _radial(st_ok, geom.distortion) / np.where(st_ok > 0, st_ok, 1.0), 1.0)
+    xy_up = (geom.scale_px * ratio)[:, None] * w @ _ellipse(geom).T
     xy = np.column_stack([geom.center_x_px + xy_up[:, 0], geom.center_y_px - xy_up[:, 1]])
     xy[~visible] = np.nan
     return xy, visible
+
+
+def _incidence(geom) -> np.ndarray:
+    return np.array([getattr(geom, "incidence_x", 0.0), getattr(geom, "incidence_y", 0.0)], dtype=np.float64)
+
+
+def _rotation(geom) -> np.ndarray:
+    c, s = math.cos(math.radians(geom.rotation_deg)), math.sin(math.radians(geom.rotation_deg))
+    return np.array([[c, -s], [s, c]])
+
+
+def _screen_sin(k_par, lam: float, geom) -> np.ndarray:
+    """(K, 2) sin θ vectors in image axes (y up): λ R k + t."""
+    k = np.asarray(k_par, dtype=np.float64).reshape(-1, 2)
+    return lam * k @ _rotation(geom).T + _incidence(geom)[None, :]
 
 
 def pixels_to_momentum(xy_px: np.ndarray, energy_eV: float, geom: ScreenGeometry, *,
@@ -270,14 +315,15 @@ def pixels_to_momentum(xy_px: np.ndarray, energy_eV: float, geom: ScreenGeometry
     up = np.column_stack([p[:, 0] - geom.center_x_px, geom.center_y_px - p[:, 1]])
     up = up @ np.linalg.inv(_ellipse(geom)).T
     r = np.hypot(up[:, 0], up[:, 1])
-    phi = np.arctan2(up[:, 1], up[:, 0]) - math.radians(geom.rotation_deg)
     st = _radial_inverse(r / geom.scale_px, geom.distortion)
-    kmag = st / wavelength_A(energy_eV, relativistic=relativistic)
-    return np.column_stack([kmag * np.cos(phi), kmag * np.sin(phi)])
+    with np.errstate(invalid="ignore", divide="ignore"):
+        w = np.where(r[:, None] > 0, up * (st / np.where(r > 0, r, 1.0))[:, None], 0.0)
+    lam = wavelength_A(energy_eV, relativistic=relativistic)
+    return (w - _incidence(geom)[None, :]) @ _rotation(geom) / lam
 
 
 def local_jacobian(energy_eV: float, geom: ScreenGeometry, *, relativistic: bool = False) -> np.ndarray:
-    """d(pixel x, y) / d(k_x, k_y) at the pattern centre, pixels per Å⁻¹ (no 2π).
+    """d(pixel x, y) / d(k_x, k_y) at the specular (0,0) beam, pixels per Å⁻¹ (no 2π).
 
     Returns
     -------
@@ -286,16 +332,14 @@ def local_jacobian(energy_eV: float, geom: ScreenGeometry, *, relativistic: bool
         J @ δk pixels. Use ``reciprocal_vectors @ J.T`` for rows in pixels.
     """
     lam = wavelength_A(energy_eV, relativistic=relativistic)
-    c, s = math.cos(math.radians(geom.rotation_deg)), math.sin(math.radians(geom.rotation_deg))
-    rot = np.array([[c, -s], [s, c]])
-    flip = np.diag([1.0, -1.0])  # y up → y down
-    # dr/d(sin θ) at θ = 0 is s (1 − d) / (1 − d) = s
-    return geom.scale_px * lam * (flip @ _ellipse(geom) @ rot)
+    return project_derivatives(np.zeros((1, 2)), lam, geom)[1][0]
 
 
 #: Parameters of :func:`pixel_derivatives`, in its column order: centre (px), ln scale,
-#: rotation (deg), distortion R/L, and the ellipse pair (e1, e2) = (ε − 1)(cos 2β, sin 2β).
-GEOMETRY_PARAMETERS = ("center_x_px", "center_y_px", "log_scale", "rotation_deg", "distortion", "e1", "e2")
+#: rotation (deg), distortion R/L, the ellipse pair (e1, e2) = (ε − 1)(cos 2β, sin 2β), and the
+#: incidence (sin θ vector of the specular beam, image axes).
+GEOMETRY_PARAMETERS = ("center_x_px", "center_y_px", "log_scale", "rotation_deg", "distortion", "e1", "e2",
+                       "incidence_x", "incidence_y")
 
 
 def pixel_derivatives(k_par: np.ndarray, energy_eV: float, geom: ScreenGeometry, *,
@@ -313,7 +357,7 @@ def pixel_derivatives(k_par: np.ndarray, energy_eV: float, geom: ScreenGeometry,
         As :func:`momentum_to_pixels` (NaN beyond the screen).
     d_k : (K, 2, 2) ndarray
         d(x, y)/d(k_x, k_y), pixels per Å⁻¹.
-    d_geom : (K, 2, 7) ndarray
+    d_geom : (K, 2, 9) ndarray
         d(x, y)/d(parameter) for the parameters named in :data:`GEOMETRY_PARAMETERS`.
         Both are NaN where the beam misses the screen.
 
@@ -328,49 +372,43 @@ def pixel_derivatives(k_par: np.ndarray, energy_eV: float, geom: ScreenGeometry,
 
 
 def project_derivatives(k_par, lam: float, geom) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """:func:`pixel_derivatives` for a wavelength `lam` (Å) already known (hot loops)."""
+    """:func:`pixel_derivatives` for a wavelength `lam` (Å) already known (hot loops).
+
+    With w = λ R k + t the sin θ vector on the screen and ρ = |w|, the image point
+    before the ellipse is v = s · (f(ρ)/ρ) · w, f the radial law; so
+    ∂v/∂w = s [(f/ρ) I + (f′ − f/ρ) ŵŵᵀ], smooth through ρ = 0.
+    """
     k = np.asarray(k_par, dtype=np.float64).reshape(-1, 2)
     d, sc_px = geom.distortion, geom.scale_px
-    kn = np.hypot(k[:, 0], k[:, 1])
-    st = lam * kn
-    visible = st <= math.sin(math.radians(geom.acceptance_deg)) + 1e-12
+    rot = _rotation(geom)
+    w = lam * k @ rot.T + _incidence(geom)[None, :]
+    rho = np.hypot(w[:, 0], w[:, 1])
+    visible = rho <= math.sin(math.radians(geom.acceptance_deg)) + 1e-12
+    small = rho < 1e-12
+    rho_s = np.where(small, 1.0, rho)
     with np.errstate(invalid="ignore", divide="ignore"):
-        st_ok = np.where(st < 1.0, st, np.nan)
-        c = np.sqrt(1.0 - st_ok**2)
+        r_ok = np.where(rho < 1.0, rho, np.nan)
+        c = np.sqrt(1.0 - r_ok**2)
         den = 1.0 - d * c
-        f = st_ok * (1.0 - d) / den  # r / s
-        df_dst = (1.0 - d) * (1.0 - d / c) / den**2
-        df_dd = st_ok * (c - 1.0) / den**2
-    phi0 = np.arctan2(k[:, 1], k[:, 0])
-    phi = phi0 + math.radians(geom.rotation_deg)
-    cp, sp = np.cos(phi), np.sin(phi)
-    r = sc_px * f
-    v = np.stack([r * cp, r * sp], axis=1)  # before the ellipse, y up
+        f_over = np.where(small, 1.0, (1.0 - d) / den)  # f(ρ)/ρ
+        df = (1.0 - d) * (1.0 - d / c) / den**2  # f′(ρ)
+        df_dd = np.where(small, 0.0, (c - 1.0) / den**2)  # ∂(f/ρ)/∂d
+    w_hat = w / rho_s[:, None]
+    dv_dw = sc_px * (f_over[:, None, None] * np.eye(2)[None]
+                     + np.where(small, 0.0, df - f_over)[:, None, None] * w_hat[:, :, None] * w_hat[:, None, :])
+    v = (sc_px * f_over)[:, None] * w  # before the ellipse, y up
     e = _ellipse(geom)
-    # dv/dk: radial part along (cos φ, sin φ), azimuthal part along (−sin φ, cos φ)
-    small = kn < 1e-12
-    kn_s = np.where(small, 1.0, kn)
-    u0 = np.stack([k[:, 0] / kn_s, k[:, 1] / kn_s], axis=1)  # unit k (surface axes)
-    t0 = np.stack([-u0[:, 1], u0[:, 0]], axis=1)
-    radial = np.stack([cp, sp], axis=1)
-    azim = np.stack([-sp, cp], axis=1)
-    dr_dk = (sc_px * df_dst * lam)[:, None] * u0  # (K, 2)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        dphi_dk = t0 / kn_s[:, None]
-    dv_dk = radial[:, :, None] * dr_dk[:, None, :] + (r[:, None, None] * azim[:, :, None]) * dphi_dk[:, None, :]
-    if small.any():  # at k = 0: the linear map s λ f'(0) R(rotation)
-        cr, sr = math.cos(math.radians(geom.rotation_deg)), math.sin(math.radians(geom.rotation_deg))
-        dv_dk[small] = sc_px * lam * (1.0 - d) / (1.0 - d) * np.array([[cr, -sr], [sr, cr]])
     flip = np.array([1.0, -1.0])
-    d_k = flip[None, :, None] * np.einsum("ij,kjl->kil", e, dv_dk)
+    d_k = flip[None, :, None] * np.einsum("ij,kjl->kil", e, dv_dw @ (lam * rot))
     xy_up = v @ e.T
     xy = np.column_stack([geom.center_x_px + xy_up[:, 0], geom.center_y_px - xy_up[:, 1]])
-    d_geom = np.zeros((len(k), 2, 7))
+    d_geom = np.zeros((len(k), 2, 9))
     d_geom[:, 0, 0] = 1.0
     d_geom[:, 1, 1] = 1.0
     d_geom[:, :, 2] = flip * xy_up
-    d_geom[:, :, 3] = flip * ((r[:, None] * azim) @ e.T) * (math.pi / 180.0)
-    d_geom[:, :, 4] = flip * (((sc_px * df_dd)[:, None] * radial) @ e.T)
+    turn = lam * k @ rot.T @ np.array([[0.0, 1.0], [-1.0, 0.0]])  # ∂(R k)/∂angle = J90 R k (rows)
+    d_geom[:, :, 3] = flip * (np.einsum("kij,kj->ki", dv_dw, turn) @ e.T) * (math.pi / 180.0)
+    d_geom[:, :, 4] = flip * (((sc_px * df_dd)[:, None] * w) @ e.T)
     eps1 = geom.ellipticity - 1.0
     b2 = math.radians(2.0 * geom.ellipse_deg)
     e1, e2 = eps1 * math.cos(b2), eps1 * math.sin(b2)
@@ -380,6 +418,9 @@ def project_derivatives(k_par, lam: float, geom) -> tuple[np.ndarray, np.ndarray
     de2 = 0.5 * np.array([[c2, 1.0], [1.0, c2]])
     d_geom[:, :, 5] = flip * (v @ de1.T)
     d_geom[:, :, 6] = flip * (v @ de2.T)
+    d_t = flip[None, :, None] * np.einsum("ij,kjl->kil", e, dv_dw)  # ∂(x, y)/∂t
+    d_geom[:, :, 7] = d_t[:, :, 0]
+    d_geom[:, :, 8] = d_t[:, :, 1]
     xy[~visible] = np.nan
     d_k[~visible] = np.nan
     d_geom[~visible] = np.nan

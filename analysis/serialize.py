@@ -2,8 +2,11 @@
 
 Schema (``"schema": "recinet.analysis"``, ``"version": 1``), keys kept stable:
 
-* ``center_px``: [x, y] pattern centre; pixels are x right, y down, the centre
-  of the top-left pixel at (0, 0).
+* ``center_px``: [x, y] pattern centre: the specular (0,0) beam (the image of the
+  surface normal at normal incidence); pixels are x right, y down, the centre
+  of the top-left pixel at (0, 0). ``geometry`` holds the camera model, with
+  ``incidence_x``/``incidence_y`` (sin θ of the specular beam) when the beam is
+  off normal.
 * ``spots``: one object per spot used: ``x``, ``y``, ``h``, ``k`` (fractional
   indices in the substrate basis, null when the spot is not explained),
   ``h_measured``, ``k_measured``, ``intensity``, ``snr``, ``kind``
@@ -24,6 +27,17 @@ Schema (``"schema": "recinet.analysis"``, ``"version": 1``), keys kept stable:
   the first is ``matrix``), ``wood`` (text or null), ``coverage`` (one
   adsorbate per overlayer cell), ``net`` (real-space a, b, γ, type),
   ``angle_to_substrate_deg``, counts, ``unexplained`` (spot indices).
+  ``overlayer.phases``: every overlayer phase found, the dominant one (this
+  ``overlayer``, the model that explains most spots) first, then coexisting phases
+  that explain the spots it leaves; each ``{"kind", "matrix", "domains", "n_domains",
+  "wood", "coverage", "intensity_share", "explained", "spots", "plane_group"}``
+  (``intensity_share``: its spots' share of the intensity of all the phases' spots;
+  ``spots``: spot indices); empty for a clean surface. Each spot's ``phase`` indexes it.
+  ``overlayer.plane_group``: what the dominant phase's absent beams say (null for a
+  clean surface): ``{"symbol", "groups", "cell", "glide_lines", "tested_domains",
+  "note"}``, each glide line ``{"domain", "axis"`` (real-space cell vector, substrate
+  basis), ``"missing_beams", "weak_beams", "filled_by_other_domains"}``; ``groups``
+  lists the plane groups the glide lines allow (empty: absences cannot tell).
 * ``candidates``: the ranked models (same fields and their ``score``), each with
   ``score_terms``: ``{"terms": {name: {"value", "weight", "contribution"}}, "total"}``, the named
   terms of the score (``analysis/indexing/score.py``) that say why it won or lost.
@@ -87,8 +101,8 @@ def model_to_dict(model: OverlayerModel) -> dict:
     """One overlayer model as a JSON-safe dict (see the module docstring)."""
     m = np.asarray(model.matrix, dtype=np.float64)
     over = model.net
-    wn = model.details.get("wood_notation")
-    kind = model.details.get("kind")
+    wn = model.details.wood_notation if model.details is not None else None
+    kind = model.details.kind if model.details is not None else None
     d = {
         "kind": model.kind,
         "matrix": m.tolist(),
@@ -133,6 +147,7 @@ def result_to_dict(result) -> dict:
     hk_model = idx.best_indices
     by = best.explained_by
     trusted = np.ones(len(result.xy_px), bool) if getattr(result, "trusted", None) is None else result.trusted
+    phase_of = {int(j): n for n, ph in enumerate(getattr(idx, "phases", ())) for j in ph.spots}
     spots = []
     for i, (p, hkm) in enumerate(zip(result.xy_px, fit.hk)):
         explained = bool(np.all(np.isfinite(hk_model[i])))
@@ -146,6 +161,7 @@ def result_to_dict(result) -> dict:
             "intensity": _f(result.intensity[i]), "snr": _f(result.snr[i]),
             "kind": kind, "domain": int(by[i]) if by[i] >= 0 else None, "manual": bool(result.manual[i]),
             "trusted": bool(trusted[i]),
+            "phase": phase_of.get(i),
         })
     net = fit.net
     a_star, b_star, gamma_star = fit.reciprocal_constants
@@ -175,11 +191,11 @@ def result_to_dict(result) -> dict:
         "schema": SCHEMA, "version": VERSION,
         "energy_eV": result.energy_eV,
         "image_shape": [int(v) for v in result.image_shape],
-        "center_px": [fit.geometry.center_x_px, fit.geometry.center_y_px],
+        "center_px": list(fit.geometry.specular_px),
         "spots": spots,
         "substrate": sub,
         "substrate_alternatives": alt_sub,
-        "overlayer": model_to_dict(best),
+        "overlayer": _with_phases(model_to_dict(best), idx),
         "candidates": [model_to_dict(m) for m in idx.models],
         "geometry": fit.geometry.to_dict(),
         "calibration_source": result.calibration_source,
@@ -198,6 +214,14 @@ def result_to_dict(result) -> dict:
         "matrix_convention": "real space, (b1, b2) = M (a1, a2) in the substrate basis",
     }
     return json_safe(out)
+
+
+def _with_phases(d: dict, idx) -> dict:
+    """The overlayer dict with the pattern's phases and the best model's plane-group reading."""
+    phases = getattr(idx, "phases", ())
+    d["phases"] = [p.to_dict() for p in phases]
+    d["plane_group"] = phases[0].plane_group.to_dict() if phases else None
+    return d
 
 
 _REQUIRED = {"center_px": list, "spots": list, "substrate": dict, "overlayer": dict, "candidates": list}

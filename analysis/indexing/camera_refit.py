@@ -79,7 +79,15 @@ def _bounded_lm(fun, jac, x0: np.ndarray, lo: np.ndarray, hi: np.ndarray, *, max
     return x, j
 
 
-_GEOM_COLUMN = {"center_x_px": 0, "center_y_px": 1, "scale_px": 2, "rotation_deg": 3, "distortion": 4}
+_GEOM_COLUMN = {"center_x_px": 0, "center_y_px": 1, "scale_px": 2, "rotation_deg": 3, "distortion": 4,
+                "incidence_x": 7, "incidence_y": 8}
+
+#: Prior width of the incidence (sin θ of the specular beam): a sample aligned to within
+#: about 2° of normal incidence (common practice). A fitted incidence of this size costs
+#: as much as one spot coordinate off by `_INCIDENCE_PRIOR_PX`.
+_INCIDENCE_PRIOR = math.sin(math.radians(2.0))
+_INCIDENCE_PRIOR_PX = 1.0
+_MIN_SPOTS_FOR_INCIDENCE = 12
 
 
 @dataclass(frozen=True, eq=False)
@@ -141,8 +149,8 @@ def _refine(xy, hk, energy_eV, geom, lattice, free, fit_lattice, *, rtol: float 
         return hk if overlayer is None else overlayer.hk(p[n_geo + n_lat:].reshape(2, 2))
 
     p0 = [math.log(base[n]) if n == "scale_px" else base[n] for n in names]
-    lo = [0.0 if n == "distortion" else -np.inf for n in names]
-    hi = [0.9 if n == "distortion" else np.inf for n in names]
+    lo = [0.0 if n == "distortion" else -0.1 if n.startswith("incidence_") else -np.inf for n in names]
+    hi = [0.9 if n == "distortion" else 0.1 if n.startswith("incidence_") else np.inf for n in names]
     if ell:
         e, b = base["ellipticity"] - 1.0, math.radians(2 * base["ellipse_deg"])
         p0 += [e * math.cos(b), e * math.sin(b)]
@@ -161,9 +169,13 @@ def _refine(xy, hk, energy_eV, geom, lattice, free, fit_lattice, *, rtol: float 
 
     lam = wavelength_A(energy_eV)
 
+    inc = [i for i, n in enumerate(names) if n.startswith("incidence_")]
+    w_inc = _INCIDENCE_PRIOR_PX / _INCIDENCE_PRIOR
+
     def resid(p):  # the camera fields as a plain namespace: no validation in the loop
         d, lat = unpack(p)
-        return np.nan_to_num((project(hk_of(p) @ lat, lam, SimpleNamespace(**d))[0] - xy).ravel(), nan=1e3)
+        r = np.nan_to_num((project(hk_of(p) @ lat, lam, SimpleNamespace(**d))[0] - xy).ravel(), nan=1e3)
+        return np.concatenate([r, w_inc * p[inc]]) if inc else r
 
     cols = [_GEOM_COLUMN[n] for n in names] + ([5, 6] if ell else [])
 
@@ -178,6 +190,10 @@ def _refine(xy, hk, energy_eV, geom, lattice, free, fit_lattice, *, rtol: float 
             parts.append(np.einsum("kij,kjq->kiq", d_k, np.einsum("kcq,cj->kjq", d_hk_b0, lat)))
         j = np.concatenate(parts, axis=2).reshape(2 * len(hk_p), -1)
         j[~np.isfinite(xy_.ravel())] = 0.0
+        if inc:  # the prior's rows
+            prior = np.zeros((len(inc), j.shape[1]))
+            prior[np.arange(len(inc)), inc] = w_inc
+            j = np.vstack([j, prior])
         return np.nan_to_num(j)
 
     if len(xy) * 2 <= len(p0):
@@ -185,7 +201,7 @@ def _refine(xy, hk, energy_eV, geom, lattice, free, fit_lattice, *, rtol: float 
     x, j_fit = _bounded_lm(resid, jac, p0, np.array(lo, float), np.array(hi, float), rtol=rtol)
     d_fit, lat = unpack(x)
     g_fit = ScreenGeometry(**d_fit)
-    res = resid(x).reshape(-1, 2)
+    res = resid(x)[: 2 * len(xy)].reshape(-1, 2)
     dof = max(res.size - len(p0), 1)
     s2 = float(np.sum(res**2)) / dof
     sig = {}
@@ -277,9 +293,12 @@ def refine_with_model(xy_px: np.ndarray, energy_eV: float, fit: SubstrateFit, mo
     lat = fit.reciprocal_net.vectors
     free = ("center_x_px", "center_y_px", "rotation_deg") if fit.scale_source == "calibration" else \
         ("center_x_px", "center_y_px", "scale_px", "rotation_deg", "distortion", "ellipticity")
+    if int(trusted.sum()) >= _MIN_SPOTS_FOR_INCIDENCE:  # many spots at several radii tell a tilt from a shift
+        free = free + ("incidence_x", "incidence_y")
     joint = None
     if model.kind == "incommensurate":
-        tol_g = float(model.details.get("tol_g", 2.5 / (fit.geometry.scale_px * wavelength_A(energy_eV))))
+        tol_g = float(model.details.tol_g if model.details is not None else
+                      2.5 / (fit.geometry.scale_px * wavelength_A(energy_eV)))
         joint = _overlayer_terms(fit.hk, model, lat, tol_g, trusted)
     if joint is not None:
         terms, use = joint
