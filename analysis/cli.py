@@ -1,4 +1,4 @@
-"""Command line: ``recinet analyze | calibrate | iv | serve | net``.
+"""Command line: ``recinet analyze | calibrate | iv | watch | serve | net``.
 
 Every command prints a one-line message on stderr and exits with status 2 on
 bad input; it checks its output folders before any work and never leaves a
@@ -443,6 +443,9 @@ def build_parser() -> argparse.ArgumentParser:
     s.set_defaults(func=_cmd_serve)
 
     add_iv_parser(sub)
+    from .follow.watch import add_watch_parser  # recinet watch: a parameter series as the files arrive
+
+    add_watch_parser(sub)
     return p
 
 

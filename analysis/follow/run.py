@@ -176,6 +176,7 @@ class LiveSeries:
         self.families: list[Family] = []
         self.live_segments: list[dict] = []  # first, signature, indexing
         self._pending_change = None
+        self._screen = self._gun = self._spot_sigma = None
         self.lines: list[dict] = []
         if reference is not None:
             self._start(reference)
@@ -248,10 +249,13 @@ class LiveSeries:
     def _spots_hk(self, arr) -> tuple[np.ndarray, int]:
         from ..spots import measure_image
 
-        try:
-            meas = measure_image(arr, sigma_px=None, min_snr=self.min_snr)
+        try:  # the screen, gun shadow and spot width of the first search are kept (they do not change)
+            meas = measure_image(arr, sigma_px=self._spot_sigma, min_snr=self.min_snr, screen=self._screen,
+                                 gun=self._gun)
         except (RecinetError, ValueError):
             return np.zeros((0, 2)), 0
+        if self._screen is None:
+            self._screen, self._gun, self._spot_sigma = meas.screen, meas.gun, float(meas.sigma_px)
         xy = np.asarray(meas.spots.xy, dtype=np.float64).reshape(-1, 2)
         if not len(xy):
             return np.zeros((0, 2)), 0
