@@ -9,7 +9,7 @@ camera_refit  the least-squares camera fit, :func:`refine_with_model` (refits wi
               model's spots), readings with the distortion R/L held or set
 candidates    candidate overlayer bases: beam vectors to pair, refinement, snapping
 score         the substrate and overlayer scores: named terms, one table each
-overlayers    :class:`OverlayerModel`, :func:`find_overlayers`, :func:`evaluate_model`,
+overlayers    :class:`OverlayerModel` (:class:`ModelDetails`), :func:`find_overlayers`, :func:`evaluate_model`,
               :func:`model_from_matrix`, domains, :func:`model_indices`
 pattern       :class:`IndexResult`, :func:`index_pattern` (the whole pattern),
               :class:`PredictedBeams`, :func:`predicted_beams`
@@ -25,7 +25,7 @@ a substrate point-group operation W acts on beam indices as ``hk @ inv(W).T``.
 """
 
 from .camera_refit import refine_with_model
-from .overlayers import OverlayerModel, evaluate_model, find_overlayers, model_from_matrix, model_indices
+from .overlayers import ModelDetails, OverlayerModel, evaluate_model, find_overlayers, model_from_matrix, model_indices
 from .pattern import IndexResult, PredictedBeams, index_pattern, predicted_beams
 from .substrate import SubstrateFit, fit_substrate, fractional_indices
 
@@ -34,6 +34,7 @@ __all__ = [
     "fit_substrate",
     "fractional_indices",
     "OverlayerModel",
+    "ModelDetails",
     "find_overlayers",
     "evaluate_model",
     "model_from_matrix",

@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -19,6 +19,7 @@ from ..lattice import lattice_points, screen_g_max
 from ..nets import Net2D, classify_net, point_group, reciprocal, symmetrized
 from ..optics import ScreenGeometry, wavelength_A
 from ..superstructure import (
+    Kind,
     _same_lattice_fast,
     classify_superstructure,
     coverage,
@@ -26,12 +27,37 @@ from ..superstructure import (
     overlayer_net,
     wood_notation,
 )
+from ..wood import WoodNotation
 from .candidates import _candidate_matrices, _explained, _lattice_key, _snap_matrix, _structure_key
 from .matching import _screen_xy, _seen
 from .score import ScoreBreakdown, irrational_handicap, overlayer_breakdown, population_gain
 
 if TYPE_CHECKING:  # annotations only
     from .substrate import SubstrateFit
+
+
+@dataclass(frozen=True, eq=False)
+class ModelDetails:
+    """The objects behind an :class:`OverlayerModel`'s plain fields.
+
+    Attributes
+    ----------
+    kind : analysis.superstructure.Kind
+        The classification of the first domain's matrix (``.kind`` is the model's
+        `kind`; coincidence cell and approximants when they apply).
+    wood_notation : analysis.wood.WoodNotation
+        The Wood notation of the first domain (``.text`` is the model's `wood`).
+    intensity_ratio : float or None
+        Variance ratio of the population test of a multi-domain model
+        (None: one domain, no intensities, or too few spots to tell).
+    tol_g : float
+        The matching tolerance the model was scored with, in Å⁻¹ (no 2π).
+    """
+
+    kind: Kind
+    wood_notation: WoodNotation
+    intensity_ratio: float | None
+    tol_g: float
 
 
 @dataclass(frozen=True, eq=False)
@@ -70,6 +96,13 @@ class OverlayerModel:
     moire_period_A : float or None
         Incommensurate models: the period of the beat between overlayer and
         substrate nets (Å); None otherwise.
+    total_domains : int
+        Number of symmetry domains of the matrix on the substrate (used or not).
+    notes : tuple of str
+        Remarks for the reader (e.g. spots explained as satellites).
+    details : ModelDetails or None
+        The classification, Wood notation, population test and tolerance behind
+        the plain fields (None only for a model constructed directly).
     """
 
     matrix: np.ndarray
@@ -86,7 +119,7 @@ class OverlayerModel:
     score: float
     total_domains: int = 1
     notes: tuple = ()
-    details: dict = field(default_factory=dict)
+    details: ModelDetails | None = None
     score_terms: ScoreBreakdown | None = None
     net: Net2D | None = None
     net_type: str | None = None
@@ -377,7 +410,7 @@ def _describe(ctx: _Context, sc: _Scored, *, kind_tol: float) -> OverlayerModel:
                           wood_note=w.note, coverage=coverage(m), explained=sc.explained, unexplained=sc.unexplained,
                           absent=sc.absent, explained_by=sc.explained_by, score=sc.score, total_domains=sc.total_domains,
                           notes=tuple(notes), score_terms=sc.terms,
-                          details={"intensity_ratio": ratio, "kind": kind, "wood_notation": w, "tol_g": ctx.tol_g},
+                          details=ModelDetails(kind=kind, wood_notation=w, intensity_ratio=ratio, tol_g=ctx.tol_g),
                           **_net_facts(ctx.net, m, kind.kind))
 
 
@@ -562,7 +595,7 @@ def _lead_with_plainest_domain(ctx: _Context, mm: OverlayerModel) -> OverlayerMo
     w = woods[k]
     return dataclasses.replace(mm, matrix=mm.domains[k], domains=[mm.domains[i] for i in order],
                                domain_ops=[mm.domain_ops[i] for i in order], wood=w.text, wood_note=w.note,
-                               explained_by=by, details={**mm.details, "wood_notation": w},
+                               explained_by=by, details=dataclasses.replace(mm.details, wood_notation=w),
                                **_net_facts(ctx.net, mm.domains[k], mm.kind))
 
 
@@ -573,7 +606,7 @@ def _prefer_simple(models: list[OverlayerModel]) -> list[OverlayerModel]:
     out = []
     for mm in models:
         h = irrational_handicap(mm.explained, mm.n_domains) if mm.kind == "incommensurate" else 0.0
-        ratio = mm.details.get("intensity_ratio")
+        ratio = mm.details.intensity_ratio if mm.details is not None else None
         # only where positions cannot tell (rational models, no satellites); repays the domain penalty, no more
         p = 0.0
         if mm.n_domains > 1 and ratio is not None and mm.kind != "incommensurate":
