@@ -391,7 +391,9 @@ def _cmd_iv(args) -> int:
     if found is not None and found.joint is not None:
         j = found.joint
         msg += (f"; {len(j['frames'])} frames indexed together: {found.label} ({j['frames_agreeing']} of "
-                f"{j['frames_total']} frames read the same alone)")
+                f"{j['frames_total']} frames put the substrate beams there alone; the model explains "
+                f"{100 * j['explained_median']:.0f} % of a frame's spots, {100 * j['explained_min']:.0f} % at "
+                f"least; rms {j['rms_px']:.2f} px)")
     elif found is not None:
         msg += f"; indexed frame {found.frame} ({found.energy_eV:g} eV): {found.label}"
     if cal is not None:

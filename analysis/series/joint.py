@@ -36,6 +36,9 @@ __all__ = ["index_series_joint"]
 
 _TOL_PX = 2.5  # matching tolerance of a spot to its beam, px (the single-frame indexing's)
 _SPOT_FLOOR_PX = 0.05  # no camera fits better than this (spot centres are not exact)
+_READINGS_PER_FRAME = 4  # substrate readings each frame offers to the joint fit
+_ACCEPTANCE_DEG = 52.0  # screen half-angle, common practice (≈ 50–55° for rear-view optics; from memory)
+_ACCEPTANCE_SIGMA_DEG = 5.0  # its spread between instruments (common practice)
 
 
 def _label(kind: str, wood, matrix_text: str, n_domains: int) -> str:
@@ -45,43 +48,41 @@ def _label(kind: str, wood, matrix_text: str, n_domains: int) -> str:
 
 
 def _measure(frame, energy_eV, index, name, hint, min_snr):
-    """Spots of one frame and the readings its own indexing offers (best first)."""
-    from ..indexing import index_pattern
+    """Spots of one frame and the substrate readings it offers on its own (best first)."""
+    from ..indexing import fit_substrate
     from ..io import load_image
     from ..spots import FLAG_FIT_FAILED, FLAG_NEAR_EDGE, measure_image
-    from ..superstructure import format_matrix
 
     img = load_image(frame)
     meas = measure_image(img, sigma_px=None, min_snr=min_snr)
     st = meas.spots
     xy = np.asarray(st.xy, dtype=np.float64).reshape(-1, 2)
     trusted = (np.asarray(st.flags) & (FLAG_NEAR_EDGE | FLAG_FIT_FAILED)) == 0
+    framed = meas.screen.source == "frame"
     out = {"frame": int(index), "name": str(name), "energy_eV": float(energy_eV), "xy": xy,
            "intensity": np.clip(np.asarray(st.intensity, dtype=np.float64), 1e-9, None), "trusted": trusted,
-           "valid": meas.valid, "readings": [], "vote": None}
+           "valid": meas.valid, "readings": [], "vote": None,
+           # the screen's edge when it was found (None: the screen fills the frame)
+           "screen": None if framed else (float(meas.screen.center_rc[1]), float(meas.screen.center_rc[0]),
+                                          float(meas.screen.radius_px))}
     if len(xy) < 3:
         out["vote"] = f"not indexed: only {len(xy)} spots"
         return out
     cg = None if meas.gun.center_rc is None else (float(meas.gun.center_rc[1]), float(meas.gun.center_rc[0]))
-    framed = meas.screen.source == "frame"
-    from ..indexing.substrate import _scale_prior
-
-    out["prior"] = (_scale_prior(0.45 * min(img.shape) if framed else meas.screen.radius_px), 0.3 if framed else 0.15)
+    radius = 0.45 * min(img.shape) if framed else meas.screen.radius_px
     try:
-        idx = index_pattern(xy, float(energy_eV), hint, intensity=out["intensity"], center_guess=cg,
-                            screen_radius_px=(0.45 * min(img.shape) if framed else meas.screen.radius_px),
-                            screen_prior_sigma=0.3 if framed else 0.15, valid_mask=meas.valid,
-                            reliable=trusted)
+        fits = fit_substrate(xy, float(energy_eV), hint, intensity=out["intensity"], center_guess=cg,
+                             screen_radius_px=radius, screen_prior_sigma=0.3 if framed else 0.15,
+                             valid_mask=meas.valid, max_results=_READINGS_PER_FRAME)
     except (RecinetError, ValueError) as err:
         out["vote"] = f"not indexed: {err}"
         return out
-    best = idx.best
-    n = 0 if best.kind == "none" else len(best.domains)
-    out["vote"] = _label(best.kind, best.wood, format_matrix(np.asarray(best.matrix, dtype=np.float64)), n)
-    out["vote_confidence"] = float(idx.substrate.confidence)
-    out["vote_a_star"] = idx.substrate.reciprocal_net.vectors
-    out["vote_geometry"] = idx.substrate.geometry
-    out["readings"] = [(f.geometry, f.reciprocal_net.vectors) for f in idx.substrate_candidates]
+    best = fits[0]
+    out["vote"] = f"substrate at {best.geometry.scale_px:.0f} px per sin θ"
+    out["vote_confidence"] = float(best.confidence)
+    out["vote_a_star"] = best.reciprocal_net.vectors
+    out["vote_geometry"] = best.geometry
+    out["readings"] = [(f.geometry, f.reciprocal_net.vectors) for f in fits]
     return out
 
 
@@ -238,12 +239,10 @@ def _overlayer(pool, geom, a_star, hint, n_frames):
     return models[0], lab, fit
 
 
-def _evaluate(pool, reading, hint, frames):
-    """Fit one camera to all frames for one substrate reading, find its overlayer, score it."""
+def _evaluate(pool, reading, hint, frames, geom):
+    """Score one substrate reading whose camera `geom` fits the substrate beams of all frames:
+    its overlayer on the pooled beams, the camera refitted with every spot the model explains."""
     geom0, a_star = reading
-    geom = _substrate_camera(pool, geom0, a_star)
-    if geom is None:
-        return None
     n_frames = len(frames)
     model, lab, fit = _overlayer(pool, geom, a_star, hint, n_frames)
     for _ in range(2):  # refit the camera with every spot the model explains, then look again
@@ -264,11 +263,42 @@ def _evaluate(pool, reading, hint, frames):
             "explained": int(np.all(np.isfinite(assigned), axis=1).sum())}
 
 
+def _acceptance_z(frames, xy, geom: ScreenGeometry) -> float:
+    """The screen half-angle a reading's camera implies, against the usual one, in prior widths.
+
+    Readings of one set of beams whose nets differ in size (a substrate net on the
+    overlayer's beams) fit the spot positions of every energy about equally well: the
+    distortion R/L bends one scale onto the other, and θ depends on λ|g| alone, so the
+    energy cannot tell them apart. The camera they need can: with the fitted scale and
+    R/L the edge of the screen (where it was found) lies at an angle θ, and a reading that
+    needs a screen of 70° or beyond 90° misreads the momentum scale. Where the screen fills
+    the frame the outermost spot bounds θ from below only.
+    """
+    from ..optics import _radial_inverse
+
+    d = float(geom.distortion)
+    edges = [f["screen"] for f in frames if f.get("screen")]
+    if edges:
+        r = float(np.median([e[2] for e in edges]))
+    elif len(xy):
+        r = float(np.max(np.hypot(*(np.asarray(xy) - np.array(geom.center_px)).T)))
+    else:
+        return 0.0
+    u = r / geom.scale_px
+    if u >= math.sqrt((1.0 - d) / (1.0 + d)):  # the largest radius this camera can image (at cos θ = R/L)
+        theta = 90.0
+    else:
+        theta = math.degrees(math.asin(float(_radial_inverse(np.array([u]), d)[0])))
+    z = (theta - _ACCEPTANCE_DEG) / _ACCEPTANCE_SIGMA_DEG
+    return z if edges else max(z, 0.0)
+
+
 def _substrate_terms(pool, frames, geom, a_star):
     """The substrate score (:func:`analysis.indexing.score.substrate_breakdown`) of a reading
     over the spots of all frames: completeness over every frame's seen region, the share of
     spots on integer or simple fractional positions, the integer beams' brightness, the
-    camera scale against the screen-size prior, and the integer beams' pixel residual."""
+    screen's half-angle the camera implies against the usual one (:func:`_acceptance_z`),
+    and the integer beams' pixel residual."""
     from ..indexing.matching import _is_rational, _seen
     from ..indexing.score import substrate_breakdown
     from ..lattice import lattice_points, screen_g_max
@@ -298,10 +328,7 @@ def _substrate_terms(pool, frames, geom, a_star):
     li = np.log(np.clip(inten, 1e-9, None))
     d_logi = float(np.median(li[integer]) - np.percentile(li[~integer], 90)) if integer.any() and (~integer).any() \
         else 0.0
-    priors = [f["prior"] for f in frames if f.get("prior") and f["prior"][0]]
-    z = None
-    if priors:
-        z = math.log(geom.scale_px / float(np.median([p[0] for p in priors]))) / priors[0][1]
+    z = _acceptance_z(frames, xy, geom)
     ok = integer
     g_ref = np.rint(hk[ok]) @ a_star * (wavelength_A(e[ok]) / wavelength_A(100.0))[:, None]
     res = momentum_to_pixels(g_ref, 100.0, dataclasses.replace(geom, acceptance_deg=89.0))[0] - xy[ok]
@@ -388,12 +415,15 @@ def index_series_joint(frames, *, substrate: str | Net2D, min_snr: float = 5.0) 
         raise SeriesError("No frame could be indexed: " + " ".join(
             f"frame {m['frame']} ({m['energy_eV']:g} eV): {m['vote']}." for m in measured))
     pool = _pool(used)
-    results = []
+    results, cameras = [], []
     for r in readings:
-        if any(np.allclose(r[1], q["start"][1]) and r[0] == q["start"][0] for q in results):
-            continue
         with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-            ev = _evaluate(pool, r, hint, used)
+            geom = _substrate_camera(pool, r[0], r[1])
+            # readings that land on one camera and net are scored once (the overlayer search is the cost)
+            if geom is None or any(_same({"geometry": geom, "a_star": r[1]}, q) for q in cameras):
+                continue
+            cameras.append({"geometry": geom, "a_star": r[1]})
+            ev = _evaluate(pool, r, hint, used, geom)
         if ev is None or any(_same(ev, q) for q in results):
             continue
         ev["start"] = r
@@ -425,6 +455,9 @@ def index_series_joint(frames, *, substrate: str | Net2D, min_snr: float = 5.0) 
         m.flags.writeable = False
     matrix_text = format_matrix(np.asarray(model.matrix, dtype=np.float64))
     label = _label(model.kind, model.wood, matrix_text, len(mats))
+    # the cross-check: does each frame, read on its own, put the substrate beams where the
+    # joint camera does, and how many of its spots does the joint model explain
+    which = pool[3]
     votes, agree, n_voted = [], 0, 0
     for m in measured:
         v = {"frame": m["frame"], "energy_eV": m["energy_eV"], "reading": m["vote"],
@@ -433,20 +466,33 @@ def index_series_joint(frames, *, substrate: str | Net2D, min_snr: float = 5.0) 
             n_voted += 1
             p_own = m["vote_a_star"] @ local_jacobian(m["energy_eV"], m["vote_geometry"]).T
             p_joint = a_star @ local_jacobian(m["energy_eV"], geom).T
-            v["agrees"] = bool(m["vote"] == label and same_lattice(p_own, p_joint, tol=0.05))
+            v["agrees"] = bool(same_lattice(p_own, p_joint, tol=0.05))
             agree += v["agrees"]
+        n_used = next((k for k, u in enumerate(used) if u is m), None)
+        if n_used is not None:
+            sel = which == n_used
+            v["spots"] = int(sel.sum())
+            v["explained"] = int(win["assigned"][sel].sum())
+            c = win["cost"][sel & win["assigned"]]
+            v["rms_px"] = math.sqrt(float(np.mean(c))) if c.size else float("nan")
         votes.append(v)
     keep = max(used, key=lambda m: len(m["xy"]))
     warnings = []
     if agree < len(measured):
-        others = sorted({v["reading"] for v in votes if not v["agrees"]})
-        warnings.append(f"{agree} of {len(measured)} frames read {label} on their own; the others: "
-                        + "; ".join(others) + ".")
+        warnings.append(f"{agree} of {len(measured)} frames read on their own put the substrate beams where "
+                        f"the frames together do.")
+    shares = [v["explained"] / v["spots"] for v in votes if v.get("spots")]
+    if shares and min(shares) < 0.5:
+        worst = min((v for v in votes if v.get("spots")), key=lambda v: v["explained"] / v["spots"])
+        warnings.append(f"The joint reading explains only {worst['explained']} of {worst['spots']} spots of "
+                        f"frame {worst['frame']} ({worst['energy_eV']:g} eV).")
     rms = math.sqrt(float(np.mean(win["cost"][win["cost"] < _TOL_PX**2]))) if np.any(
         win["cost"] < _TOL_PX**2) else float("nan")
     joint = {"frames": [m["frame"] for m in used], "n_spots": int(n), "n_beams": win["n_beams"],
              "spots_explained": win["explained"], "rms_px": rms, "readings_tried": len(results),
              "frames_agreeing": int(agree), "frames_indexed": int(n_voted), "frames_total": len(measured),
+             "explained_min": float(min(shares)) if shares else float("nan"),
+             "explained_median": float(np.median(shares)) if shares else float("nan"),
              "readings": [{"scale_px": q["geometry"].scale_px, "distortion": q["geometry"].distortion,
                            "model": _label(q["model"].kind, q["model"].wood,
                                            format_matrix(np.asarray(q["model"].matrix, dtype=np.float64)),
