@@ -10,6 +10,8 @@ RECINET_CELERY_BROKER  Redis URL; when set, long work runs on Celery workers
 RECINET_JOB_TIME_LIMIT_S  longest a background job (an analysis, a series) may run (default 300 s)
 RECINET_BEHIND_PROXY   number of reverse proxies in front (default 0): client addresses are then read
                        from their X-Forwarded-For, and the scheme from X-Forwarded-Proto
+RECINET_WATCH_ROOT     a folder on the server under which the live page may watch folders (default: none,
+                       frames are then only uploaded)
 RECINET_HTTPS          1 when visitors reach the server by HTTPS (a proxy in front): the access-key
                        cookie is then sent with the Secure flag (never over plain HTTP)
 """
@@ -36,6 +38,7 @@ class Settings:
     job_time_limit_s: float = 300.0
     behind_proxies: int = 0
     https: bool = False
+    watch_root: Path | None = None
 
     @property
     def max_request_bytes(self) -> int:
@@ -72,6 +75,12 @@ def load_settings(env: dict | None = None) -> Settings:
     raw_https = (env.get("RECINET_HTTPS") or "0").strip().lower()
     if raw_https not in _FLAGS:
         raise ParameterError(f"RECINET_HTTPS must be 1 or 0 (yes/no, true/false), got {raw_https!r}.")
+    watch_root = None
+    raw_root = (env.get("RECINET_WATCH_ROOT") or "").strip()
+    if raw_root:
+        watch_root = Path(raw_root).expanduser().resolve()
+        if not watch_root.is_dir():
+            raise ParameterError(f"RECINET_WATCH_ROOT must be an existing folder, got {raw_root!r}.")
     return Settings(
         data_dir=data_dir,
         database_url=url,
@@ -82,6 +91,7 @@ def load_settings(env: dict | None = None) -> Settings:
         job_time_limit_s=limit,
         behind_proxies=int(raw_proxies),
         https=_FLAGS[raw_https],
+        watch_root=watch_root,
     )
 
 

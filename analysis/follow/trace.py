@@ -226,6 +226,7 @@ class BeamFollower:
         self.shape = None
         self._mask_map = None
         self.rows: list[dict] = []
+        self.last_frame: np.ndarray | None = None  # the frame measured last (for a live view)
 
     def __len__(self) -> int:
         return len(self.rows)
@@ -278,6 +279,7 @@ class BeamFollower:
         row = {"value": float(value), "name": str(name), "intensity": inten, "sigma": sig, "background": bgpx,
                "width_r": wr, "width_t": wt, "xy": xy, "flags": flags, "geometry": geom}
         self.rows.append(row)
+        self.last_frame = frame
         return row
 
     def _drift_step(self, geom: ScreenGeometry, xy: np.ndarray, ok: np.ndarray) -> ScreenGeometry:

@@ -185,11 +185,13 @@ def _line(d: dict, unit: str, name: str, latency_s: float) -> str:
 def watch_folder(folder, *, energy_eV: float, substrate: str, parameter_from: str = "names",
                  name_pattern: str | None = None, parameter_name: str = "parameter", unit: str = "",
                  out_csv=None, out_json=None, existing: bool = False, settle_s: float = 0.25,
-                 max_frames: int | None = None, idle_stop_s: float | None = None, say=print) -> int:
+                 max_frames: int | None = None, idle_stop_s: float | None = None, say=print, stop=None,
+                 on_frame=None) -> int:
     """Watch `folder` and analyse each complete new frame once; returns the frames analysed.
 
-    Stops on KeyboardInterrupt (SIGINT), after `max_frames` frames, or after `idle_stop_s`
-    seconds without a new frame; writes `out_json` (the whole series) when it stops.
+    Stops on KeyboardInterrupt (SIGINT), when `stop()` returns True, after `max_frames`
+    frames, or after `idle_stop_s` seconds without a new frame; writes `out_json` (the
+    whole series) when it stops. `on_frame(live, line)` is called after each frame.
     """
     from .export import CSV_COLUMNS, _cell
     from .run import LiveSeries
@@ -210,6 +212,8 @@ def watch_folder(folder, *, energy_eV: float, substrate: str, parameter_from: st
     say(f"watching {Path(folder)} at {energy_eV:g} eV on {substrate}; Ctrl+C stops")
     try:
         while max_frames is None or n_in < max_frames:
+            if stop is not None and stop():
+                break
             got = files.next_ready(0.2)
             if got is None:
                 if idle_stop_s is not None and time.monotonic() - last > idle_stop_s:
@@ -245,6 +249,8 @@ def watch_folder(folder, *, energy_eV: float, substrate: str, parameter_from: st
                                     _cell(row["background"][j]), _cell(row["width_r"][j]), _cell(row["width_t"][j]),
                                     _cell(row["xy"][j, 0]), _cell(row["xy"][j, 1]), int(row["flags"][j])])
                     csv_file.flush()
+                if on_frame is not None:
+                    on_frame(live, d)
     except KeyboardInterrupt:
         say("stopping (Ctrl+C)")
     finally:

@@ -1,0 +1,121 @@
+"""The live page's callbacks as plain functions, and its session service: a folder only under the
+configured root, uploads checked by name, sessions read back by any worker from their folder.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import io
+import json
+import os
+import time
+
+import numpy as np
+import pytest
+import tifffile
+
+from dash_helpers import call_callback, data_url
+
+
+@pytest.fixture
+def live_env(webapp_env, tmp_path):
+    """The app with its data and a watch root in `tmp_path`."""
+    from webapp import runtime
+
+    base = runtime.get_settings()
+    root = tmp_path / "root"
+    (root / "run1").mkdir(parents=True)
+    runtime.reset(dataclasses.replace(base, data_dir=tmp_path / "data", watch_root=root.resolve()))
+    yield root
+    runtime.reset(base)
+
+
+def test_watch_root_from_the_environment(tmp_path):
+    from analysis.errors import ParameterError
+    from webapp.settings import load_settings
+
+    s = load_settings({"RECINET_DATA_DIR": str(tmp_path), "RECINET_WATCH_ROOT": str(tmp_path)})
+    assert s.watch_root == tmp_path.resolve()
+    assert load_settings({"RECINET_DATA_DIR": str(tmp_path)}).watch_root is None
+    with pytest.raises(ParameterError, match="RECINET_WATCH_ROOT must be an existing folder"):
+        load_settings({"RECINET_DATA_DIR": str(tmp_path), "RECINET_WATCH_ROOT": str(tmp_path / "nope")})
+
+
+def test_no_path_outside_the_root_is_accepted(live_env, tmp_path):
+    from analysis.errors import ParameterError
+    from webapp import live_sessions
+
+    assert live_sessions.resolve_watch_folder("run1") == (live_env / "run1").resolve()
+    (tmp_path / "outside").mkdir()
+    os.symlink(tmp_path / "outside", live_env / "link")
+    for bad in ("../outside", str(tmp_path / "outside"), "link", "run1/../../outside"):
+        with pytest.raises(ParameterError, match="inside the watched root"):
+            live_sessions.resolve_watch_folder(bad)
+    with pytest.raises(ParameterError, match="No folder 'missing'"):
+        live_sessions.resolve_watch_folder("missing")
+
+
+def test_start_refuses_bad_input_with_one_line(live_env):
+    from webapp import ids
+    from webapp.pages import live
+
+    args = ("run1", 200, "Pt(111)", "names", "temperature", "K", None)
+    tok, msg = live.on_start(1, None, "../x", *args[1:], trigger=ids.LIVE_WATCH)
+    assert "inside the watched root" in msg
+    tok, msg = live.on_start(1, None, *args[:1], -5, *args[2:], trigger=ids.LIVE_WATCH)
+    assert "energy must be a number of eV" in msg
+    tok, msg = live.on_start(1, None, "run1", 200, "Qq(999)", "names", "t", "", None, trigger=ids.LIVE_WATCH)
+    assert msg.count("\n") == 0 and "Qq" in msg
+    tok, msg = live.on_start(1, None, "run1", 200, "Pt(111)", "names", "t", "", "([", trigger=ids.LIVE_WATCH)
+    assert "not a regular expression" in msg
+
+
+def _tif(image) -> bytes:
+    buf = io.BytesIO()
+    tifffile.imwrite(buf, image)
+    return buf.getvalue()
+
+
+@pytest.mark.slow
+def test_upload_session_analyses_dropped_frames(live_env):
+    from analysis.nets import parse_substrate
+    from analysis.optics import ScreenGeometry
+    from analysis.simulate.parameter_series import OrderDisorderModel, render_parameter_series
+    from webapp import ids, live_sessions
+    from webapp.pages import live
+
+    tok, msg = live.on_start(None, 1, None, 200, "Pt(111)", "names", "temperature", "K", None,
+                             trigger=ids.LIVE_UPLOAD_START)
+    assert tok and "waiting for frames" in msg
+    geom = ScreenGeometry(129.0, 126.0, 115.0, distortion=0.1, rotation_deg=4.0)
+    frames = list(render_parameter_series(parse_substrate("Pt(111)"), [[[2, 0], [0, 2]]], [300.0, 320.0, 340.0],
+                                          model=OrderDisorderModel(tc=400.0), energy_eV=200.0, geometry=geom,
+                                          rng=np.random.default_rng(0)))
+    contents = [data_url(_tif(im.image)) for _, im in frames] + [data_url(b"hello")]
+    names = [f"T_{t:.0f}K.tif" for t, _ in frames] + ["notes.txt"]
+    out, cleared = live.on_upload(contents, names, tok)
+    assert out.startswith("Added 3 frames.") and "not an image file name" in out and cleared is None
+    out, _ = live.on_upload(contents[:1], names[:1], tok)
+    assert "already added" in out
+    end = time.monotonic() + 120
+    state = {}
+    while time.monotonic() < end:
+        state = live_sessions.read_state(tok)
+        if state.get("n_frames") == 3:
+            break
+        time.sleep(0.3)
+    # truth: the names carry the temperatures; the renderer drew p(2×2) below Tc = 400 K
+    assert state["parameter"]["values"] == [300.0, 320.0, 340.0]
+    assert state["segments"] and state["segments"][0]["label"].startswith("p(2×2)")
+    status, curves, frame, table, log, link = live.on_tick(1, tok)
+    assert "3 frames" in status and len(curves.data) >= 2 and len(frame.data) >= 2
+    assert f"session={tok}" in link.href
+    data, _ = call_callback(live.on_export, f"{ids.LIVE_EXPORT_JSON}.n_clicks", None, 1, tok)
+    assert json.loads(data["content"])["n_frames"] == 3
+    live_sessions.stop_session(tok)
+    end = time.monotonic() + 30
+    while time.monotonic() < end and live_sessions.read_state(tok)["status"] != "stopped":
+        time.sleep(0.2)
+    assert live_sessions.read_state(tok)["status"] == "stopped"
+    data, _ = call_callback(live.on_export, f"{ids.LIVE_EXPORT_JSON}.n_clicks", None, 1, tok)
+    assert json.loads(data["content"])["frames"] == names[:3]  # the whole record once stopped
