@@ -4,6 +4,25 @@
 NAV = "nav"
 URL = "url"
 
+# analyse page: line profile, spot widths and the spot table (pages/analyse/spot_tools.py)
+PROFILE_PANEL = "profile-panel"
+PROFILE_DRAW = "profile-draw"
+PROFILE_WIDTH = "profile-width"
+PROFILE_UNIT = "profile-unit"
+PROFILE_X0 = "profile-x0"
+PROFILE_Y0 = "profile-y0"
+PROFILE_X1 = "profile-x1"
+PROFILE_Y1 = "profile-y1"
+PROFILE_GRAPH = "profile-graph"
+PROFILE_NOTE = "profile-note"
+PROFILE_CSV = "profile-csv"
+PROFILE_DOWNLOAD = "profile-download"
+WIDTHS_PANEL = "widths-panel"
+WIDTHS_SUMMARY = "widths-summary"
+SPOT_TABLE = "spot-table"
+SPOT_TABLE_CSV = "spot-table-csv"
+SPOT_TABLE_DOWNLOAD = "spot-table-download"
+
 # editor page: inputs
 UPLOAD = "upload"
 UPLOAD_NOTE = "upload-note"

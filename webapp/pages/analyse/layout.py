@@ -6,6 +6,7 @@ from dash import dcc, html
 
 from webapp import figures, ids, runtime, service
 
+from .spot_tools import tools_panels
 from .state import empty_edits
 
 __all__ = ["workspace", "calibration_choices", "DEFAULT_OVERLAYS"]
@@ -59,6 +60,7 @@ def workspace(*, readonly: bool = False, image: dict | None = None, record: dict
                   config={"edits": {"shapePosition": not readonly}, "displaylogo": False,
                           "scrollZoom": True, "modeBarButtonsToRemove": ["select2d", "lasso2d"]}),
         controls,
+        *tools_panels(readonly=readonly),
     ])
     inputs = html.Div(className="panel", style=hide, children=[
         html.H2("Image and parameters"),

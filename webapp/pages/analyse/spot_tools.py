@@ -1,0 +1,262 @@
+"""Measuring on the pattern: a line profile drawn on it, each spot's widths, the domain size,
+and the sortable, downloadable spot table.
+
+Thin: the callbacks read the stores, call :mod:`analysis.profile_line` and
+:mod:`analysis.spot_table`, and format. Each is a plain function that tests call directly.
+"""
+
+from __future__ import annotations
+
+import functools
+import math
+
+from dash import Input, Output, Patch, State, callback, dash_table, dcc, html
+from dash.exceptions import PreventUpdate
+
+from analysis.errors import ParameterError
+from analysis.optics import ScreenGeometry
+from analysis.profile_line import line_profile
+from analysis.spot_table import measure_widths, rows_to_csv, spot_rows
+from analysis.timelimit import time_limit
+from webapp import ids, service
+from webapp.pages.common import fail, note, safe_stem
+
+from webapp.figures.common import PALETTE
+from webapp.figures.line_profile import PROFILE_UNITS, profile_figure
+
+from .state import result_of
+
+__all__ = ["tools_panels", "on_draw_line", "line_from_relayout", "show_profile", "profile_csv",
+           "show_widths", "table_csv", "TABLE_COLUMNS"]
+
+_WIDTH_TIME_LIMIT_S = 60.0
+_LINE_COLOUR = PALETTE["blue"]  # the profile curve's colour; nothing else on the pattern uses it
+
+#: the table's columns: (key, header) — units in the headers
+TABLE_COLUMNS = (
+    ("n", "#"), ("label", "beam"), ("kind", "kind"), ("domain", "domain"), ("x", "x (px)"), ("y", "y (px)"),
+    ("intensity", "intensity"), ("snr", "SNR"), ("fwhm_radial_px", "FWHM radial (px)"),
+    ("fwhm_tangential_px", "FWHM tangential (px)"), ("fwhm_radial_bz_percent", "FWHM radial (% BZ)"),
+    ("fwhm_tangential_bz_percent", "FWHM tangential (% BZ)"), ("fwhm_radial_invA", "FWHM radial (Å⁻¹)"),
+    ("domain_size_A", "domain size (Å)"), ("flags", "flags"),
+)
+
+
+def tools_panels(*, readonly: bool = False):
+    """The two panels: the line profile, and the spot widths with the spot table."""
+    def num(cid, value=None, hint="px"):  # plain text boxes: compact, read as numbers by the callbacks
+        return dcc.Input(id=cid, type="text", inputMode="decimal", value=value, placeholder=hint, debounce=True,
+                         maxLength=12, style={"width": "5.2rem"})
+
+    profile = html.Div(className="panel", id=ids.PROFILE_PANEL, children=[
+        html.H2("Line profile"),
+        html.P(className="muted", children=[
+            "Press “Draw a line”, then drag across spots on the pattern; or type the ends (pixels)."]),
+        html.Div(className="row", children=[
+            html.Button("Draw a line", id=ids.PROFILE_DRAW, className="small"),
+            html.Label("from", htmlFor=ids.PROFILE_X0), num(ids.PROFILE_X0, hint="x"), num(ids.PROFILE_Y0, hint="y"),
+            html.Label("to", htmlFor=ids.PROFILE_X1), num(ids.PROFILE_X1, hint="x"), num(ids.PROFILE_Y1, hint="y"),
+        ]),
+        html.Div(className="row", children=[
+            html.Label("averaged across (px)", htmlFor=ids.PROFILE_WIDTH), num(ids.PROFILE_WIDTH, "3"),
+            html.Label("distance in", htmlFor=ids.PROFILE_UNIT),
+            dcc.RadioItems(id=ids.PROFILE_UNIT, inline=True, value="px",
+                           options=[{"label": l, "value": v} for v, l in PROFILE_UNITS]),
+        ]),
+        dcc.Graph(id=ids.PROFILE_GRAPH, figure=profile_figure(None), config={"displaylogo": False},
+                  style={"height": "300px"}),
+        html.Div(id=ids.PROFILE_NOTE, **{"aria-live": "polite"}),
+        html.Button("Profile (CSV)", id=ids.PROFILE_CSV, className="small"),
+        dcc.Download(id=ids.PROFILE_DOWNLOAD),
+    ])
+    table = html.Div(className="panel", id=ids.WIDTHS_PANEL, children=[
+        html.H2("Spot widths and domain size"),
+        dcc.Loading(type="dot", children=html.Div(id=ids.WIDTHS_SUMMARY, children=html.P(
+            "Widths appear after an analysis.", className="muted"))),
+        dash_table.DataTable(
+            id=ids.SPOT_TABLE, data=[], sort_action="native", sort_mode="multi", page_size=15,
+            columns=[{"name": h, "id": k, "type": "text" if k in ("label", "kind", "flags") else "numeric"}
+                     for k, h in TABLE_COLUMNS],
+            style_table={"overflowX": "auto"},
+            style_cell={"fontFamily": "inherit", "fontSize": "12px", "padding": "2px 6px", "textAlign": "right"},
+            style_cell_conditional=[{"if": {"column_id": c}, "textAlign": "left"} for c in ("label", "kind", "flags")],
+            style_header={"fontWeight": "600", "whiteSpace": "normal", "height": "auto"},
+            style_data_conditional=[{"if": {"filter_query": '{kind} = "fractional"'}, "backgroundColor": "#fdf4e3"}],
+        ),
+        html.Button("Spot table (CSV)", id=ids.SPOT_TABLE_CSV, className="small"),
+        dcc.Download(id=ids.SPOT_TABLE_DOWNLOAD),
+    ])
+    return [profile, table]
+
+
+# ------------------------------------------------------------------------------ line profile
+
+def on_draw_line(n_clicks):
+    """Turn the pattern's drag into line drawing (until the pattern is redrawn)."""
+    if not n_clicks:
+        raise PreventUpdate
+    fig = Patch()
+    fig["layout"]["dragmode"] = "drawline"
+    fig["layout"]["newshape"] = {"line": {"color": _LINE_COLOUR, "width": 3}, "opacity": 1.0}
+    return fig
+
+
+def line_from_relayout(relayout):
+    """The ends (x0, y0, x1, y1) of the newest line drawn on the pattern, from its relayoutData."""
+    if not isinstance(relayout, dict) or not isinstance(relayout.get("shapes"), list):
+        raise PreventUpdate
+    lines = [s for s in relayout["shapes"] if isinstance(s, dict) and s.get("type") == "line"]
+    if not lines:
+        raise PreventUpdate
+    s = lines[-1]
+    try:
+        vals = [round(float(s[k]), 2) for k in ("x0", "y0", "x1", "y1")]
+    except (KeyError, TypeError, ValueError):
+        raise PreventUpdate from None
+    if not all(map(math.isfinite, vals)):
+        raise PreventUpdate
+    return tuple(vals)
+
+
+def _momentum_scale(result):
+    """(energy eV, ScreenGeometry, |a*| Å⁻¹) of an analysis dict, or Nones."""
+    try:
+        geom = ScreenGeometry.from_dict(result["geometry"])
+        return float(result["energy_eV"]), geom, float(result["substrate"]["a_star_invA"])
+    except (KeyError, TypeError, ValueError, ParameterError):
+        return None, None, None
+
+
+def _number(value, what: str) -> float:
+    try:
+        v = float(str(value).strip().replace(",", "."))
+    except ValueError:
+        raise ParameterError(f"The {what} must be a number, got {str(value)[:20]!r}.") from None
+    if not math.isfinite(v):
+        raise ParameterError(f"The {what} must be a finite number, got {str(value)[:20]!r}.")
+    return v
+
+
+def _profile(image, record, x0, y0, x1, y1, width):
+    if not image or not image.get("sha"):
+        return None, "Load an image first."
+    if any(v in (None, "") for v in (x0, y0, x1, y1)):
+        return None, None
+    names = ("start x", "start y", "end x", "end y")
+    x0, y0, x1, y1 = (_number(v, n) for v, n in zip((x0, y0, x1, y1), names))
+    width = 1.0 if width in (None, "") else _number(width, "width across the line")
+    result = result_of(record, image)
+    e, geom, a_star = _momentum_scale(result) if result else (None, None, None)
+    data = service.image_array(image["sha"])
+    p = line_profile(data, (x0, y0), (x1, y1), width_px=width, energy_eV=e, geometry=geom, a_star_invA=a_star)
+    return p, None
+
+
+def show_profile(x0, y0, x1, y1, width, unit, image, record):
+    """The profile figure and a note (plain message for bad input)."""
+    try:
+        p, msg = _profile(image, record, x0, y0, x1, y1, width)
+    except Exception as err:  # noqa: BLE001
+        return profile_figure(None), note(fail(err))
+    if p is None:
+        return profile_figure(None), note(msg, "warn") if msg else None
+    if unit != "px" and p.distance_invA is None:
+        return profile_figure(p, "px"), note("Momentum units need an analysis (its camera model); shown in px.",
+                                            "warn")
+    return profile_figure(p, unit or "px"), note(
+        f"{len(p)} samples over {p.distance_px[-1]:.1f} px, averaged across {p.width_px:g} px.", "ok")
+
+
+def profile_csv(n_clicks, x0, y0, x1, y1, width, image, record):
+    if not n_clicks:
+        raise PreventUpdate
+    try:
+        p, msg = _profile(image, record, x0, y0, x1, y1, width)
+    except Exception as err:  # noqa: BLE001
+        return None, note(fail(err))
+    if p is None:
+        return None, note(msg or "Draw a line first.", "warn")
+    stem = safe_stem((image or {}).get("filename"), "pattern")
+    return dcc.send_string(p.to_csv(), f"{stem}_profile.csv"), None
+
+
+# ------------------------------------------------------------------------------ widths and the table
+
+@functools.lru_cache(maxsize=8)
+def _widths_cached(sha: str, key: str, record_json: str):
+    import json
+
+    record = json.loads(record_json)
+    obj = service.result_object(record)
+    with time_limit(_WIDTH_TIME_LIMIT_S, "the spot-width fits"):
+        rep = measure_widths(service.image_array(sha), obj)
+    return rep, spot_rows(obj, widths=rep)
+
+
+def _widths(record, image):
+    import json
+
+    result = result_of(record, image)
+    if result is None:
+        return None, None
+    key = service.record_key(image["sha"], record.get("parameters") or {}, record.get("edits"))
+    return _widths_cached(image["sha"], key, json.dumps({k: record.get(k) for k in ("sha", "parameters", "edits")},
+                                                        sort_keys=True, default=str))
+
+
+def _summary(rep):
+    d = rep.domain
+    px_r, px_t = d.instrument_fwhm_px
+    lines = [html.P(html.Strong(d.message))]
+    if math.isfinite(px_r):
+        inst = f"Instrument response (integer beams): FWHM {px_r:.2f} px radial, {px_t:.2f} px tangential"
+        if math.isfinite(d.instrument_fwhm_invA):
+            inst += f", {d.instrument_fwhm_invA:.4f} Å⁻¹ ({100 * d.instrument_fwhm_invA / rep.beams.a_star_invA:.1f} % BZ)"
+        lines.append(html.P(inst + "."))
+    if d.n_resolved:
+        lines.append(html.P(f"Per beam: {d.spread_A[0]:.0f}–{d.spread_A[1]:.0f} Å (quartiles).", className="muted"))
+    lines.append(html.Details([html.Summary("Method and source"), html.P(d.method, className="muted")]))
+    return html.Div(lines)
+
+
+def show_widths(record, image):
+    """Summary (domain size, instrument response, method) and the table rows."""
+    try:
+        rep, rows = _widths(record, image)
+    except Exception as err:  # noqa: BLE001
+        return note(fail(err)), []
+    if rep is None:
+        return html.P("Widths appear after an analysis.", className="muted"), []
+    return _summary(rep), rows
+
+
+def table_csv(n_clicks, record, image):
+    if not n_clicks:
+        raise PreventUpdate
+    try:
+        rep, rows = _widths(record, image)
+    except Exception as err:  # noqa: BLE001 - the summary already shows the message
+        fail(err)
+        raise PreventUpdate from None
+    if rep is None:
+        raise PreventUpdate
+    stem = safe_stem((image or {}).get("filename"), "analysis")
+    return dcc.send_string(rows_to_csv(rows, domain=rep.domain), f"{stem}_spot_table.csv")
+
+
+callback(Output(ids.GRAPH, "figure", allow_duplicate=True), Input(ids.PROFILE_DRAW, "n_clicks"),
+         prevent_initial_call=True)(on_draw_line)
+callback(Output(ids.PROFILE_X0, "value"), Output(ids.PROFILE_Y0, "value"), Output(ids.PROFILE_X1, "value"),
+         Output(ids.PROFILE_Y1, "value"), Input(ids.GRAPH, "relayoutData"), prevent_initial_call=True)(line_from_relayout)
+callback(Output(ids.PROFILE_GRAPH, "figure"), Output(ids.PROFILE_NOTE, "children"),
+         Input(ids.PROFILE_X0, "value"), Input(ids.PROFILE_Y0, "value"), Input(ids.PROFILE_X1, "value"),
+         Input(ids.PROFILE_Y1, "value"), Input(ids.PROFILE_WIDTH, "value"), Input(ids.PROFILE_UNIT, "value"),
+         Input(ids.IMAGE, "data"), Input(ids.RESULT, "data"))(show_profile)
+callback(Output(ids.PROFILE_DOWNLOAD, "data"), Output(ids.PROFILE_NOTE, "children", allow_duplicate=True),
+         Input(ids.PROFILE_CSV, "n_clicks"), State(ids.PROFILE_X0, "value"), State(ids.PROFILE_Y0, "value"),
+         State(ids.PROFILE_X1, "value"), State(ids.PROFILE_Y1, "value"), State(ids.PROFILE_WIDTH, "value"),
+         State(ids.IMAGE, "data"), State(ids.RESULT, "data"), prevent_initial_call=True)(profile_csv)
+callback(Output(ids.WIDTHS_SUMMARY, "children"), Output(ids.SPOT_TABLE, "data"),
+         Input(ids.RESULT, "data"), Input(ids.IMAGE, "data"))(show_widths)
+callback(Output(ids.SPOT_TABLE_DOWNLOAD, "data"), Input(ids.SPOT_TABLE_CSV, "n_clicks"),
+         State(ids.RESULT, "data"), State(ids.IMAGE, "data"), prevent_initial_call=True)(table_csv)
