@@ -74,6 +74,16 @@ def wavelength_A(energy_eV, *, relativistic: bool = False):
     relativistic : bool, keyword-only
         Include the factor (1 + E / (2 m_e c²))^(−1/2) (0.005 % at 100 eV).
 
+    Returns
+    -------
+    float or ndarray of float64
+        Wavelength in Å, a float for a scalar energy, else an array of the energies' shape.
+
+    Raises
+    ------
+    ParameterError
+        When an energy is not a positive finite number.
+
     Examples
     --------
     >>> print(round(wavelength_A(100.0), 6))

@@ -189,7 +189,8 @@ def analyze_image(image, *, energy_eV: float, substrate: str | Net2D, reference=
 
     Parameters
     ----------
-    image : path, bytes, ndarray or LoadedImage
+    image : path, bytes, (M, N) ndarray or LoadedImage
+        The camera frame (a file path or its bytes are read by :func:`analysis.io.load_image`).
     energy_eV : float, keyword-only
         Beam energy (5–5000 eV).
     substrate : str or Net2D, keyword-only
@@ -197,18 +198,42 @@ def analyze_image(image, *, energy_eV: float, substrate: str | Net2D, reference=
     reference : image, optional
         A clean-substrate image from the same optics; with `reference_energy_eV`
         it fixes the camera scale and distortion, so lattice constants are measured.
+    reference_energy_eV : float, optional, keyword-only
+        Beam energy of `reference`, eV (needed with it).
     calibration : Calibration or ScreenGeometry, optional
         A saved camera calibration (the same purpose as `reference`).
     edits : Edits or dict, optional
         Manual spot additions / removals and a centre set by hand.
-    progress : callable(fraction: float, message: str), optional
-    sigma_px : float, optional
-        Spot σ; None measures it.
+    progress : callable(fraction: float, message: str), optional, keyword-only
+        Told the fraction done (0–1) and the step in words between steps.
+    sigma_px : float, optional, keyword-only
+        Spot Gaussian σ in pixels; None measures it.
+    min_snr : float, keyword-only
+        Spot detection threshold in units of local noise.
+    tol_px : float, keyword-only
+        Matching tolerance between predicted beams and spots, pixels.
+
+    Returns
+    -------
+    AnalysisResult
+        The spots (``xy_px`` (K, 2) x, y pixels; ``intensity``, ``snr``), the measurement,
+        the indexing (``.index``: substrate reading, overlayer models best first), warnings
+        and timings; :func:`analysis.serialize.result_to_dict` writes it as JSON.
 
     Raises
     ------
     ImageError, ParameterError, NetError, FitError
         With a one-line message for the user.
+
+    Examples
+    --------
+    >>> from analysis.simulate import forward_pattern, render_image
+    >>> pat = forward_pattern(parse_substrate("Cu(100)"), [[[1, 1], [-1, 1]]], energy_eV=120.0,
+    ...                       geometry=ScreenGeometry(192.0, 192.0, 230.0))
+    >>> im = render_image(pat, shape=(384, 384), rng=np.random.default_rng(0))
+    >>> res = analyze_image(im.image, energy_eV=120.0, substrate="Cu(100)")
+    >>> print(res.index.best.wood, res.index.best.kind)
+    c(2×2) commensurate
     """
     t0 = time.perf_counter()
     user_say = progress or (lambda f, m: None)

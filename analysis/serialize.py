@@ -35,9 +35,10 @@ Schema (``"schema": "recinet.analysis"``, ``"version": 1``), keys kept stable:
   ``spots``: spot indices); empty for a clean surface. Each spot's ``phase`` indexes it.
   ``overlayer.plane_group``: what the dominant phase's absent beams say (null for a
   clean surface): ``{"symbol", "groups", "cell", "glide_lines", "tested_domains",
-  "note"}``, each glide line ``{"domain", "axis"`` (real-space cell vector, substrate
-  basis), ``"missing_beams", "weak_beams", "filled_by_other_domains"}``; ``groups``
-  lists the plane groups the glide lines allow (empty: absences cannot tell).
+  "open_axes", "note"}``, each glide line ``{"domain", "axis"`` (real-space cell
+  vector, substrate basis), ``"missing_beams", "weak_beams", "filled_by_other_domains"}``,
+  each open axis (one that cannot be told) ``{"domain", "axis", "filled_beams"}``;
+  ``groups`` lists the plane groups the glide lines allow (empty: absences cannot tell).
 * ``candidates``: the ranked models (same fields and their ``score``), each with
   ``score_terms``: ``{"terms": {name: {"value", "weight", "contribution"}}, "total"}``, the named
   terms of the score (``analysis/indexing/score.py``) that say why it won or lost.

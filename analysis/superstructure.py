@@ -100,7 +100,29 @@ def overlayer_reciprocal(substrate: Net2D, matrix, *, two_pi: bool = False) -> N
 
 
 def superstructure_matrix(substrate: Net2D, overlayer: Net2D, *, snap_tol: float = 1e-9) -> np.ndarray:
-    """M with ``overlayer.vectors = M @ substrate.vectors``; near-integers snapped."""
+    """M with ``overlayer.vectors = M @ substrate.vectors``; near-integers snapped.
+
+    Parameters
+    ----------
+    substrate : Net2D
+        Real-space substrate net (Å), rows a1, a2.
+    overlayer : Net2D
+        Real-space overlayer net (Å), rows b1, b2.
+    snap_tol : float, keyword-only
+        Entries within this absolute distance of an integer are set to it.
+
+    Returns
+    -------
+    (2, 2) ndarray of float64
+        The real-space superstructure matrix M, substrate basis.
+
+    Examples
+    --------
+    >>> sub = Net2D.from_parameters(2.775, 2.775, 120.0)
+    >>> over = Net2D(np.array([[2, 1], [-1, 1]]) @ sub.vectors)
+    >>> superstructure_matrix(sub, over).tolist()
+    [[2.0, 1.0], [-1.0, 1.0]]
+    """
     return _snap(overlayer.vectors @ np.linalg.inv(substrate.vectors), snap_tol)
 
 

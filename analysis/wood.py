@@ -160,10 +160,18 @@ def wood_notation(substrate: Net2D, matrix, *, tol: float = 1e-6) -> WoodNotatio
     Parameters
     ----------
     substrate : Net2D
+        Real-space substrate net (Å).
     matrix : (2, 2) array_like
         Real-space superstructure matrix.
     tol : float, keyword-only
         Relative tolerance on directions and lengths (loosen for measured matrices).
+
+    Returns
+    -------
+    WoodNotation
+        ``.text`` the notation (None when no Wood cell exists, ``.note`` then says
+        why), with the cell's sides ``.m``, ``.n`` (substrate lengths) and rotation
+        ``.angle_deg``.
 
     Examples
     --------
@@ -261,6 +269,18 @@ def parse_wood(text: str, substrate: Net2D) -> np.ndarray:
     has the written sides and, within that rounding, the written angle in either
     sense; with no such matrix, the exact (incommensurate) cell. When two lattices
     that are not domains of one another fit the text, `AmbiguousWoodWarning` names both.
+
+    Parameters
+    ----------
+    text : str
+        The Wood notation, unicode or ASCII.
+    substrate : Net2D
+        Real-space substrate net (Å); its angle decides which cells exist.
+
+    Returns
+    -------
+    (2, 2) ndarray of float64
+        Real-space superstructure matrix M, ``overlayer = M @ substrate``.
 
     Raises
     ------

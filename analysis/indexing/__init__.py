@@ -13,6 +13,9 @@ overlayers    :class:`OverlayerModel` (:class:`ModelDetails`), :func:`find_overl
               :func:`model_from_matrix`, domains, :func:`model_indices`
 pattern       :class:`IndexResult`, :func:`index_pattern` (the whole pattern),
               :class:`PredictedBeams`, :func:`predicted_beams`
+phases        :class:`Phase`, :func:`find_phases` (coexisting overlayer phases)
+absences      :class:`PlaneGroupReading`, :func:`read_plane_group` (glide lines from
+              systematic absences; glide-absent beams do not count against a cell)
 matching      predicted beams against observed spots (shared by the above)
 
 Conventions
@@ -26,7 +29,9 @@ a substrate point-group operation W acts on beam indices as ``hk @ inv(W).T``.
 
 from .camera_refit import refine_with_model
 from .overlayers import ModelDetails, OverlayerModel, evaluate_model, find_overlayers, model_from_matrix, model_indices
+from .absences import PlaneGroupReading, read_plane_group
 from .pattern import IndexResult, PredictedBeams, index_pattern, predicted_beams
+from .phases import Phase, find_phases
 from .substrate import SubstrateFit, fit_substrate, fractional_indices
 
 __all__ = [
@@ -44,4 +49,8 @@ __all__ = [
     "index_pattern",
     "PredictedBeams",
     "predicted_beams",
+    "Phase",
+    "find_phases",
+    "PlaneGroupReading",
+    "read_plane_group",
 ]

@@ -28,6 +28,7 @@ from ..superstructure import (
     wood_notation,
 )
 from ..wood import WoodNotation
+from .absences import glide_excused
 from .candidates import _candidate_matrices, _explained, _lattice_key, _snap_matrix, _structure_key
 from .matching import _screen_xy, _seen
 from .score import ScoreBreakdown, irrational_handicap, overlayer_breakdown, population_gain
@@ -382,7 +383,10 @@ def _with_absent(ctx: _Context, sc: _Scored) -> _Scored:
         seen = _seen(_screen_xy(pts @ a_star, ctx.energy_eV, ctx.geom), ctx.valid_mask, center, ctx.r_max, 0.0)
         if seen.any():
             d, _ = ctx.tree.query(pts[seen] @ a_star, distance_upper_bound=ctx.tol_g)
-            absent = int(np.sum(~np.isfinite(d)))
+            missing = ~np.isfinite(d)
+            if missing.any() and not sc.satellites_allowed:  # odd beams of glide lines the spots show
+                missing[missing] = ~glide_excused(ctx, sc.domains, pts[seen][missing])
+            absent = int(np.sum(missing))
     return dataclasses.replace(sc, absent=absent, terms=sc.terms.replace(absent=absent))
 
 

@@ -20,6 +20,7 @@ from ..optics import ScreenGeometry, momentum_to_pixels
 from .camera_refit import (_distortion_from_fractions, _distortion_open, _with_distortion, refine_with_model)
 from .candidates import _snap_matrix
 from .overlayers import OverlayerModel, evaluate_model, find_overlayers, model_indices
+from .phases import find_phases
 from .substrate import _DISTORTION_PRIOR, along_reference, _SCALE_PRIOR_SIGMA, SubstrateFit, fit_substrate
 
 
@@ -72,12 +73,21 @@ class IndexResult:
         Overlayer models on the best reading, best first.
     energy_eV : float
         The beam energy the pattern was indexed at.
+    phases : tuple of Phase
+        The overlayer phases (:func:`.phases.find_phases`): the best model first, then
+        coexisting phases that explain the spots it leaves; empty for a clean surface.
     """
 
     substrate: SubstrateFit
     substrate_candidates: list
     models: list
     energy_eV: float | None = None
+    phases: tuple = ()
+
+    @property
+    def plane_group(self):
+        """What the best model's absences say about its plane group (:mod:`.absences`), or None."""
+        return self.phases[0].plane_group if self.phases else None
 
     @property
     def best(self) -> OverlayerModel:
@@ -164,6 +174,66 @@ def index_pattern(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity
     3°, any symmetry-equivalent beam): the reference says where the integer beams are, so a
     net of the same length turned onto fractional beams is not read (when no reading agrees,
     all are kept and the best one's notes say so).
+
+    Parameters
+    ----------
+    xy_px : (K, 2) array_like of float
+        Spot centres (x, y), pixels (x right, y down).
+    energy_eV : float
+        Electron energy, eV.
+    hint : Net2D
+        The substrate's (1×1) real-space net, Å (from :func:`analysis.nets.parse_substrate`).
+    intensity : (K,) array_like of float, optional, keyword-only
+        Integrated spot intensities (counts); integer beams are usually the brightest.
+    geometry : ScreenGeometry, optional, keyword-only
+        A known camera model (calibration or reference image): its scale and distortion
+        are kept and the lattice constants measured.
+    center_px : (x, y), optional, keyword-only
+        The pattern centre when known (pixels); otherwise found from ±g spot pairs.
+    center_guess : (x, y), optional, keyword-only
+        Where to start pairing spots (e.g. the gun-disk centre), pixels.
+    screen_radius_px : float, optional, keyword-only
+        Radius of the visible screen, pixels: a prior on the camera scale.
+    screen_prior_sigma : float, keyword-only
+        Relative width of that prior.
+    valid_mask : (M, N) array_like of bool, optional, keyword-only
+        Pixels where a spot could be seen (screen minus gun shadow): predicted beams
+        there without a spot count as absent.
+    tol_px : float, keyword-only
+        Matching tolerance, pixels.
+    n_results : int, keyword-only
+        Overlayer models kept per reading.
+    min_confidence : float, keyword-only
+        Least confidence (0–1) of a further reading followed when ``max_readings > 1``.
+    max_readings : int, keyword-only
+        Substrate readings followed to their overlayer models.
+    reliable : (K,) array_like of bool, optional, keyword-only
+        Spots whose centres are trusted (not cut by a mask edge, fit converged); only
+        they count in the overlayer score. Default: all.
+    azimuth_a_star_px : (2, 2) array_like of float, optional, keyword-only
+        The substrate's reciprocal basis in pixels as a reference image showed it.
+
+    Returns
+    -------
+    IndexResult
+        The substrate reading (camera model, reciprocal net in Å⁻¹ without 2π, spot
+        indices), the other readings and the overlayer models, best first.
+
+    Raises
+    ------
+    FitError
+        Too few spots, or no reading of `hint` fits them.
+
+    Examples
+    --------
+    >>> from analysis.nets import parse_substrate
+    >>> from analysis.simulate import forward_pattern
+    >>> cu = parse_substrate("Cu(100)")
+    >>> beams = forward_pattern(cu, [[[2, 0], [0, 2]]], energy_eV=100.0,
+    ...                         geometry=ScreenGeometry(256.0, 256.0, 300.0))
+    >>> res = index_pattern(beams.xy_px, 100.0, cu)
+    >>> print(res.best.wood, res.best.n_domains, res.best.unexplained, np.round(res.substrate.geometry.center_px, 2))
+    p(2×2) 1 0 [256. 256.]
     """
     xy = np.asarray(xy_px, dtype=np.float64).reshape(-1, 2)
     fits = fit_substrate(xy, energy_eV, hint, intensity=intensity, geometry=geometry, center_px=center_px,
@@ -181,7 +251,11 @@ def index_pattern(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity
         followed.append((key, fit, models, reading))
     key, fit, models, reading = max(followed, key=lambda t: t[0])
     cands = [fit] + [f for f in fits if f is not reading]
-    return IndexResult(substrate=fit, substrate_candidates=cands, models=models, energy_eV=float(energy_eV))
+    # coexisting phases (the dominant one leads the models) and what their absences say
+    models, phases = find_phases(fit, models, energy_eV=energy_eV, intensity=intensity, valid_mask=valid_mask,
+                                 tol_px=tol_px, reliable=kw["reliable"])
+    return IndexResult(substrate=fit, substrate_candidates=cands, models=models, energy_eV=float(energy_eV),
+                       phases=phases)
 
 
 def _follow_reading(xy, energy_eV, reading: SubstrateFit, geometry, tol_px, kw):

@@ -180,16 +180,41 @@ def run_iv(frames, *, substrate: str | Net2D, energies=None, overlayer=None, geo
         A multi-page TIFF, folder or zip; a function returning a fresh iterator of
         (name, frame) each call; or the frames in memory.
     substrate : str or Net2D, keyword-only
+        E.g. ``"Cu(100)"`` (see :func:`analysis.nets.parse_substrate`), or the (1×1) net in Å.
     energies : EnergyTable, path, (F,) array_like, {"start_eV", "step_eV"} or None, keyword-only
         None: a number in each frame's name (`name_pattern`).
     overlayer : None, "none", (2, 2) array_like, list of them, matrix text or Wood notation, keyword-only
         None: the overlayer the indexing finds; ``"none"``: substrate beams only.
     geometry : ScreenGeometry, keyword-only
         A saved camera geometry (then nothing is indexed; `azimuth_deg` turns the net).
+    azimuth_deg : float, keyword-only
+        With `geometry`: counter-clockwise rotation of the substrate net on the screen, degrees.
     index_frame : int, keyword-only
         Index only this frame (default: several frames together).
-    mask, all_domains, symmetry, radius_px, background, method, gain, saturation_level, normalise_current
-        As for :func:`analysis.series.track_series` and :func:`analysis.series.beams_from_nets`.
+    name_pattern : str, optional, keyword-only
+        Regular expression whose first group is the energy in a frame's name (default
+        ``energies.DEFAULT_NAME_PATTERN``).
+    mask : (M, N) ndarray of bool, optional, keyword-only
+        Pixels that may be used (False: gun shadow, holder arm), as for
+        :func:`analysis.series.track_series`.
+    all_domains : bool, keyword-only
+        Follow the beams of every symmetry domain of the overlayer matrices.
+    symmetry : str, keyword-only
+        Point group for the classes of equivalent beams (``"auto"``: the substrate's).
+    radius_px : float, optional, keyword-only
+        Integration aperture radius, pixels (default from the spot σ of the first frame).
+    background : {"annulus", "plane"}, keyword-only
+        Local background model under each beam.
+    method : {"aperture", "profile"}, keyword-only
+        Aperture sum or profile fit of each beam.
+    gain : float, keyword-only
+        Frame units per detected count (for the shot noise).
+    saturation_level : float, optional, keyword-only
+        Full-scale value; beams touching it are flagged.
+    normalise_current : bool, keyword-only
+        Divide by the beam current when the energy table has one.
+    n_index_frames : int, keyword-only
+        How many frames are indexed together when neither `geometry` nor `index_frame` is given.
     progress : callable(i, n, energy_eV), keyword-only
         Called as the frames are followed.
     say : callable(fraction, text), keyword-only
@@ -198,6 +223,9 @@ def run_iv(frames, *, substrate: str | Net2D, energies=None, overlayer=None, geo
     Returns
     -------
     IVRun
+        ``.result`` (the beams' I(V) curves, flags and the geometry fitted over the
+        series), ``.indexing`` (how the series was indexed; None with `geometry`),
+        ``.energy_eV`` ((F,) eV) and the overlayer followed.
 
     Raises
     ------

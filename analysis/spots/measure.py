@@ -143,6 +143,7 @@ def find_spots(image, *, sigma_px: float = 2.0, min_snr: float = 5.0, mask=None,
     Parameters
     ----------
     image : (M, N) array_like or LoadedImage
+        Camera frame, any real dtype (converted to float64 counts).
     sigma_px : float, keyword-only
         Expected Gaussian σ of a spot, pixels (sets the filter and fit window).
     min_snr : float, keyword-only
@@ -156,11 +157,16 @@ def find_spots(image, *, sigma_px: float = 2.0, min_snr: float = 5.0, mask=None,
         Reference for radial/tangential widths; default the image centre.
     saturation_level : float, optional, keyword-only
         Full-scale value; default from an unsigned-integer dtype or a LoadedImage.
-    split_pairs, second_pass : bool, keyword-only
+    split_pairs : bool, keyword-only
+        Test wide spots for a close pair and split them with a two-spot fit.
+    second_pass : bool, keyword-only
+        Look again, with the found spots' models removed, for faint spots beside bright ones.
 
     Returns
     -------
     SpotTable
+        One row per spot: centre (row, col) px, amplitude and integrated intensity
+        (counts above background), SNR, widths (px), flags.
 
     Examples
     --------
@@ -324,9 +330,11 @@ def measure_image(image, *, sigma_px: float | None = 2.0, min_snr: float = 5.0, 
     Parameters
     ----------
     image : (M, N) array_like or LoadedImage
+        Camera frame, any real dtype (converted to float64 counts).
     sigma_px : float or None, keyword-only
-        Spot σ; None measures it from a first detection pass.
+        Spot Gaussian σ in pixels; None measures it from a first detection pass.
     min_snr : float, keyword-only
+        Detection threshold in units of the local noise of the matched-filter response.
     screen : ScreenMask, dict or None, keyword-only
         A ScreenMask, or keyword arguments for :func:`find_screen` (e.g.
         ``{"circle_xyr": (x, y, r)}``); None finds it.
@@ -335,6 +343,9 @@ def measure_image(image, *, sigma_px: float | None = 2.0, min_snr: float = 5.0, 
     center_rc : (row, col), optional
         Reference for radial/tangential widths; default the gun-disk centre
         when found, else the screen centre.
+    saturation_level : float, optional, keyword-only
+        Full-scale value (counts); default from an unsigned-integer dtype or a LoadedImage.
+        Saturated pixels do not enter the measurement of the spot σ.
     block_px : int, optional, keyword-only
         Background block size; default one 16th of the shorter side, 16–32 px (a
         small frame's diffuse background varies on a shorter scale in pixels).
@@ -342,10 +353,14 @@ def measure_image(image, *, sigma_px: float | None = 2.0, min_snr: float = 5.0, 
         Keep only detections that can be diffraction spots (default): as wide as the
         spots, spot-shaped, standing out of their own surroundings (`spots.accept`).
         The others go to ``Measurement.rejected`` with their reasons.
+    **spot_kw
+        Passed on to :func:`find_spots` (``split_pairs``, ``second_pass``).
 
     Returns
     -------
     Measurement
+        The screen and gun-shadow masks, the background estimate, the spot σ (px),
+        the accepted spots (``.spots``, a :class:`SpotTable`) and the rejected ones.
 
     Examples
     --------
