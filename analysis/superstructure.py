@@ -70,7 +70,12 @@ def as_matrix(matrix) -> np.ndarray:
         raise NetError(f"A superstructure matrix must be 2×2 numbers, got {matrix!r}.") from None
     if m.shape != (2, 2) or not np.all(np.isfinite(m)):
         raise NetError(f"A superstructure matrix must be 2×2 finite numbers, got {np.asarray(matrix).tolist()}.")
-    if abs(np.linalg.det(m)) < 1e-9:
+    with np.errstate(over="ignore", invalid="ignore"):
+        det = np.linalg.det(m)
+    if not np.isfinite(det):  # finite entries whose cell area overflows, e.g. 1e308 on the diagonal
+        raise NetError(f"The superstructure matrix {m.tolist()} is too large: its cell area (determinant) is "
+                       "not a finite number.")
+    if abs(det) < 1e-9:
         raise NetError(f"The superstructure matrix {m.tolist()} is singular (determinant 0).")
     return m
 

@@ -232,6 +232,9 @@ def test_bad_matrices():
         as_matrix([1, 2, 3])
     with pytest.raises(NetError, match="four numbers"):
         parse_matrix("1 2 3")
+    # finite entries whose cell area overflows a float (a model typed in the web app)
+    with pytest.raises(NetError, match="too large: its cell area"):
+        parse_matrix("1e308 0 / 0 1e308")
     assert_allclose(parse_matrix("2 1 / -1 1"), [[2, 1], [-1, 1]])
     assert_allclose(parse_matrix("[[3/2, 0], [0, 3/2]]"), [[1.5, 0], [0, 1.5]])
     assert format_matrix([[2, 1], [-1, 1]]) == "(2 1 / -1 1)"

@@ -347,23 +347,121 @@ def test_try_model_bad_text_and_singular_matrix(ws, analysed_demo):
     assert model is None and "Analyse the image first" in _text(note)
 
 
-def test_pattern_figure_overlays_and_hover(webapp_env):
+def test_try_model_too_large_gives_a_plain_message(ws, analysed_demo):
+    image, record, _, _, _ = analysed_demo
+    model, note = _call(ws.on_try_model, "model-try.n_clicks", 1, None, "1e308 0 / 0 1e308", record, image,
+                        "Pt(111)")
+    assert model is None and "too large: its cell area (determinant) is not a finite number" in _text(note)
+    assert "Something went wrong" not in _text(note)
+    model, note = _call(ws.on_try_model, "model-try.n_clicks", 1, None, "1000 0 / 0 1000", record, image, "Pt(111)")
+    assert model is None and "models up to 400 cells can be tried" in _text(note)
+
+
+def test_result_panel_says_when_a_candidate_is_shown(ws, analysed_demo):
+    image, record, _, _, _ = analysed_demo
+    panel = _call(ws.show_result, "result.data", record, image, None)[0]
+    assert "for one adsorbate per cell" in _text(panel) and "The pattern shows candidate" not in _text(panel)
+    panel = _call(ws.show_result, "candidate-pick.value", record, image, 1)[0]
+    assert "The pattern shows candidate 2" in _text(panel) and "of candidate 2, as drawn" in _text(panel)
+    assert _call(ws.results.on_show_best, "show-best.n_clicks", 1) is None
+
+
+def test_pattern_figure_draws_nets_spots_and_absent_beams(webapp_env):
     from webapp import figures
 
     res = _square_result()
     fig = figures.pattern_figure("data:image/png;base64,AAAA", width=512, height=512, result=res,
                                  overlays=["spots", "substrate", "domains", "unexplained"])
     names = [t.name for t in fig.data]
-    assert names[0] == "image" and "Detected spots" in names and "Substrate net" in names and "Domain 1" in names
+    assert names[0] == "image"
+    assert {"Detected spots", "Substrate net", "Domain 1 net", "Domain 1: predicted, no spot"} <= set(names)
     spots = fig.data[names.index("Detected spots")]
     assert list(spots.customdata[0]) == ["spot", 0, False]
     assert "(-1, -1)" in spots.text[0] and "SNR 20.0" in spots.text[0]
-    # p(2×2) on a 50 px square net inside 512 px: fractional beams at 25 px steps, (21² − 11²) = 320 of them
-    dom = fig.data[names.index("Domain 1")]
-    assert len(dom.x) == 21 * 21 - 11 * 11
+    # p(2×2) on a 50 px square net inside 512 px: its net has 21 × 21 points at 25 px steps, so
+    # 21 lines each way of 21 points (x holds each line's points and a None)
+    net = fig.data[names.index("Domain 1 net")]
+    assert len(net.x) == 2 * 21 * (21 + 1)
+    # 320 fractional beams (21² − 11²), 16 of them with a hand-made spot: 304 faint ticks
+    ticks = fig.data[names.index("Domain 1: predicted, no spot")]
+    assert len(ticks.x) == 320 - 16
+    # a1* and a2* labels beyond their arrows' tips (16 px along each vector), not at the centre
+    labels = {a.text: (a.x, a.y) for a in fig.layout.annotations if a.text}
+    assert labels == {"a1*": (322.0, 256.0), "a2*": (256.0, 322.0)}
     assert fig.layout.yaxis.range[0] > fig.layout.yaxis.range[1]  # y downwards
     hidden = figures.pattern_figure(None, width=512, height=512, result=res, overlays=[])
     assert [t.name for t in hidden.data] == []
+
+
+def _two_domain_result():
+    """p(2×1) in two domains on the hand-made square net: (2 0 / 0 1) and (1 0 / 0 2); the spots at
+    (1/2, 0) and (0, 1/2) belong to one domain each, (1, 0) to the substrate."""
+    res = _square_result()
+    res["overlayer"] = {"kind": "commensurate", "matrix": [[2, 0], [0, 1]], "domains": [[[2, 0], [0, 1]],
+                                                                                      [[1, 0], [0, 2]]]}
+    res["spots"] = [{"x": 281.0, "y": 256.0, "h": 0.5, "k": 0.0, "kind": "fractional", "domain": 0},
+                    {"x": 256.0, "y": 281.0, "h": 0.0, "k": 0.5, "kind": "fractional", "domain": 1},
+                    {"x": 306.0, "y": 256.0, "h": 1.0, "k": 0.0, "kind": "integer", "domain": None},
+                    {"x": 400.0, "y": 111.0, "kind": "unexplained"}]
+    res["screen"] = {"center_px": [256.0, 256.0], "radius_px": 240.0}
+    res["gun"] = {"center_px": [256.0, 256.0], "radius_px": 12.0}
+    return res
+
+
+def test_each_colour_and_line_style_means_one_thing(webapp_env):
+    from webapp import figures
+
+    model = {"xy": [[300.0, 300.0]], "matrices": [[[3, 0], [0, 3]]],
+             "domains": [[{"x": 272.7, "y": 256.0, "h": 1 / 3, "k": 0.0}]]}
+    fig = figures.pattern_figure(None, width=512, height=512, result=_two_domain_result(), model=model,
+                                 overlays=["spots", "masks", "substrate", "domains", "unexplained", "model"])
+    by = {t.name: t for t in fig.data}
+    spots = by["Detected spots"]
+    # measured spots tinted by the domain that explains them; the integer one grey, the unexplained white
+    assert list(spots.marker.color) == [figures.domain_colour(0), figures.domain_colour(1), "#C8C8C8", "#FFFFFF"]
+    screen, gun = by["Screen edge"].line, by["Gun shadow"].line
+    assert (screen.color, screen.dash) != (gun.color, gun.dash)
+    domain_colours = {figures.domain_colour(i) for i in range(6)}
+    assert by["Model"].marker.color not in domain_colours and by["Model net"].line.dash == "dash"
+    assert screen.color not in domain_colours and gun.color not in domain_colours
+    assert len(domain_colours) == 6
+
+
+def test_a_focused_domain_comes_forward(webapp_env):
+    from webapp import figures
+
+    fig = figures.pattern_figure(None, width=512, height=512, result=_two_domain_result(), focus=0,
+                                 overlays=["domains"])
+    nets = [t for t in fig.data if t.name.endswith(" net")]
+    assert [t.name for t in nets] == ["Domain 2 net", "Domain 1 net"]  # the focused one drawn last
+    assert nets[-1].line.width > 2 and nets[0].line.width < 2 and nets[0].opacity < 0.3
+    plain = figures.pattern_figure(None, width=512, height=512, result=_two_domain_result(), overlays=["domains"])
+    assert all(t.line.width < 2 for t in plain.data if t.name.endswith(" net"))
+
+
+def test_domain_buttons_set_and_clear_the_focus(ws):
+    from dash.exceptions import PreventUpdate
+
+    trig = '{"index":1,"type":"domain-button"}.n_clicks'
+    assert _call(ws.results.on_domain_focus, trig, [None, 1], None, None, None) == 1
+    assert _call(ws.results.on_domain_focus, trig, [None, 2], None, None, 1) is None  # again: all alike
+    assert _call(ws.results.on_domain_focus, "candidate-pick.value", [None, 2], 1, None, 1) is None
+    with pytest.raises(PreventUpdate):  # buttons just drawn, not clicked
+        _call(ws.results.on_domain_focus, trig, [None, None], None, None, None)
+
+
+def test_thumbnails_show_dark_background_and_bright_spots(webapp_env):
+    from PIL import Image as PILImage
+
+    from analysis.io import load_image
+    from webapp import figures, service
+
+    path = service.DEMO_DIR / "pt111_PX-7_oxygen_p2x2.png"
+    if not path.exists():
+        pytest.skip("demo image missing")
+    thumb = np.asarray(PILImage.open(io.BytesIO(figures.thumbnail_png(load_image(path).data))))
+    # common practice for a pattern on a dark screen: background near black, the brightest spots white
+    assert np.median(thumb) < 40 and thumb.max() == 255
 
 
 def test_display_levels_scales(webapp_env):

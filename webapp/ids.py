@@ -58,6 +58,9 @@ WOOD = "wood"
 MATRIX = "matrix"
 CANDIDATES = "candidates"
 CANDIDATE_PICK = "candidate-pick"
+SHOWN_NOTE = "shown-note"
+SHOW_BEST = "show-best"
+DOMAIN_BUTTON = "domain-button"  # pattern-matching: {"type": DOMAIN_BUTTON, "index": i}
 REAL_SPACE = "real-space"
 MODEL_TEXT = "model-text"
 MODEL_TRY = "model-try"
@@ -85,6 +88,7 @@ PARAMS = "params"
 EDITS = "edits"
 RESULT = "result"
 MODEL = "model"
+DOMAIN_FOCUS = "domain-focus"
 SOURCE = "source-token"
 
 # recent page

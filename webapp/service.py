@@ -27,6 +27,7 @@ from analysis.indexing import predicted_beams
 from analysis.io import load_image
 from analysis.nets import Net2D, parse_substrate, reciprocal
 from analysis.optics import ScreenGeometry
+from analysis.series.pipeline import overlayer_matrices
 from analysis.superstructure import format_matrix
 
 from . import runtime
@@ -43,6 +44,7 @@ EXPORT_FORMAT = "recinet-analysis"
 _DEMO_SUFFIXES = (".png", ".tif", ".tiff")
 _DATA_URL = re.compile(r"data:([\w.+/-]*)(;[\w=.+-]+)*;base64,", re.ASCII)
 MAX_EDITS = 500
+MAX_MODEL_CELLS = 400  # substrate cells in one tried model's cell: beyond it the drawing has ~10⁴ beams
 
 
 # --------------------------------------------------------------------------- demo images
@@ -338,8 +340,9 @@ def _xy_of(points) -> list:
 def try_model(text: str, record: dict) -> dict:
     """Score a typed model (a matrix or a Wood notation) on the analysed spots.
 
-    Returns ``{"label", "matrices", "xy", "explained", "unexplained", "n_domains", "wood", "kind"}``;
-    ``xy`` are the beams every domain of the model predicts, on the camera model.
+    Returns ``{"label", "matrices", "xy", "explained", "unexplained", "n_domains", "wood", "kind", "domains"}``;
+    ``xy`` are the beams every domain of the model predicts, on the camera model, and ``domains``
+    the same beams per domain as ``{"x", "y", "h", "k"}`` rows (drawn as the model's nets).
     """
 
     if not isinstance(text, str) or not text.strip():
@@ -347,14 +350,26 @@ def try_model(text: str, record: dict) -> dict:
     if len(text) > 200:
         raise NetError("The model text is too long (at most 200 characters).")
     obj = result_object(record)
-    model = pipeline.try_model(obj, text.strip())
+    typed = overlayer_matrices(text.strip(), obj.index.substrate.net)  # the pipeline's reading of the text
+    for m in typed if isinstance(typed, list) else []:
+        cells = abs(float(np.linalg.det(m)))
+        if cells > MAX_MODEL_CELLS:
+            raise NetError(f"The model {text.strip()[:60]!r} has a cell of {cells:.4g} substrate cells; models up "
+                           f"to {MAX_MODEL_CELLS} cells can be tried.")
+    try:
+        model = pipeline.try_model(obj, text.strip())
+    except (ValueError, ArithmeticError, MemoryError) as err:  # a numeric failure the checks above did not foresee
+        if isinstance(err, RecinetError):
+            raise
+        raise NetError(f"The model {text.strip()[:60]!r} cannot be drawn on this pattern ({type(err).__name__}); "
+                       "try a smaller cell.") from None
     fit = obj.index.substrate
     d = serialize.model_to_dict(model)
     pred = serialize.predicted_spots(predicted_beams(fit, model, obj.energy_eV))
     xy = [q for dom in pred["domains"] for q in _xy_of(dom)]
     return {"label": f"{d['matrix_text']}  {d['wood'] or 'no Wood notation'}", "matrices": d["domains"],
             "xy": xy, "explained": int(d["explained"]), "unexplained": int(d["unexplained_count"]),
-            "n_domains": int(d["n_domains"]), "wood": d["wood"], "kind": d["kind"]}
+            "n_domains": int(d["n_domains"]), "wood": d["wood"], "kind": d["kind"], "domains": pred["domains"]}
 
 
 def candidate_predictions(record: dict, pick: int) -> list[list]:

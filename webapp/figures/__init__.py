@@ -12,15 +12,15 @@ pixel at (0, 0), as everywhere at the edges of recinet.
 - ``series``     an energy-series frame with its beams, and the I(V) curves
 """
 
-from .common import DOMAIN_STYLES, PALETTE, empty_figure, hk_text
+from .common import DOMAIN_COLOURS, DOMAIN_STYLES, PALETTE, domain_colour, empty_figure, hk_text
 from .display import SCALES, display_levels, downsample, png_bytes, png_data_url, thumbnail_png
 from .export import export_figure, spots_csv
-from .pattern import OVERLAY_CHOICES, pattern_figure, predicted_spots
+from .pattern import OVERLAY_CHOICES, net_lines, pattern_figure, predicted_spots
 from .real_space import real_space_figure
 from .series import BEAM_COLOURS, colour_of, flag_text, frame_figure, iv_figure
 
 __all__ = [
-    "PALETTE", "DOMAIN_STYLES", "OVERLAY_CHOICES", "SCALES", "BEAM_COLOURS",
+    "PALETTE", "DOMAIN_COLOURS", "DOMAIN_STYLES", "domain_colour", "net_lines", "OVERLAY_CHOICES", "SCALES", "BEAM_COLOURS",
     "display_levels", "downsample", "png_data_url", "png_bytes", "thumbnail_png",
     "hk_text", "pattern_figure", "predicted_spots", "empty_figure", "real_space_figure",
     "spots_csv", "export_figure", "frame_figure", "iv_figure", "colour_of", "flag_text",

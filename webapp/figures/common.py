@@ -7,20 +7,42 @@ from fractions import Fraction
 import numpy as np
 import plotly.graph_objects as go
 
-__all__ = ["PALETTE", "DOMAIN_STYLES", "hk_text", "empty_figure"]
+__all__ = ["PALETTE", "DOMAIN_COLOURS", "DOMAIN_STYLES", "domain_colour", "domain_dash", "hk_text", "empty_figure"]
 
 # Okabe & Ito, "Color Universal Design" (2008): eight colours told apart with every common colour-vision deficiency.
 PALETTE = {
     "orange": "#E69F00", "sky": "#56B4E9", "green": "#009E73", "yellow": "#F0E442",
     "blue": "#0072B2", "vermillion": "#D55E00", "purple": "#CC79A7", "black": "#000000",
 }
-# each domain gets its own marker shape as well as its own colour
-DOMAIN_STYLES = [
-    ("circle-open", PALETTE["orange"]), ("square-open", PALETTE["green"]),
-    ("diamond-open", PALETTE["purple"]), ("triangle-up-open", PALETTE["yellow"]),
-    ("pentagon-open", PALETTE["vermillion"]), ("hexagon-open", PALETTE["sky"]),
-    ("triangle-down-open", "#FFFFFF"), ("star-open", PALETTE["blue"]),
-]
+# One meaning per colour and line style on the pattern (dark background):
+#   domains: the six colours below, in this order, and nothing else uses them;
+#   substrate net, centre and a1*/a2*: white; a tried model: white dashed; screen edge: steel
+#   dashed; gun shadow: light grey dotted; unexplained spots: white crosses; hand edits: white stars.
+DOMAIN_COLOURS = [PALETTE["orange"], PALETTE["sky"], PALETTE["green"], PALETTE["vermillion"], PALETTE["purple"],
+                  PALETTE["yellow"]]
+DOMAIN_DASHES = ["solid", "dash", "dot", "dashdot"]  # after six domains the colours repeat with another dash
+SUBSTRATE_COLOUR = "#FFFFFF"
+MODEL_COLOUR = "#FFFFFF"
+SCREEN_COLOUR = "#8FA8C0"
+GUN_COLOUR = "#D9D9D9"
+INTEGER_SPOT_COLOUR = "#C8C8C8"
+UNEXPLAINED_COLOUR = "#FFFFFF"
+# each domain gets its own marker shape as well as its own colour (the PNG/SVG export)
+DOMAIN_STYLES = [(shape, DOMAIN_COLOURS[i % len(DOMAIN_COLOURS)]) for i, shape in enumerate(
+    ["circle-open", "square-open", "diamond-open", "triangle-up-open", "pentagon-open", "hexagon-open",
+     "triangle-down-open", "star-open"])]
+
+
+def domain_colour(i: int) -> str:
+    """The colour of domain `i` (0-based) everywhere: pattern, real space, result panel, export."""
+    return DOMAIN_COLOURS[int(i) % len(DOMAIN_COLOURS)]
+
+
+def domain_dash(i: int) -> str:
+    """The line style of domain `i`: solid for the first six, then another dash per round of colours."""
+    return DOMAIN_DASHES[(int(i) // len(DOMAIN_COLOURS)) % len(DOMAIN_DASHES)]
+
+
 _MPL_MARKERS = {"circle-open": "o", "square-open": "s", "diamond-open": "D", "triangle-up-open": "^",
                 "pentagon-open": "p", "hexagon-open": "h", "triangle-down-open": "v", "star-open": "*"}
 

@@ -78,9 +78,10 @@ def png_data_url(levels: np.ndarray) -> str:
 
 
 def thumbnail_png(data: np.ndarray, *, side: int = 160) -> bytes:
-    """A small log-scaled PNG of the pattern for the list of saved analyses."""
+    """A small PNG of the pattern for the list of saved analyses: the median (the screen's
+    background) is black and the spots bright, with a gamma of 0.5 lifting the faint ones."""
     small, _ = downsample(data, side)
-    im = Image.fromarray(display_levels(small, scale="log", clip_pct=(1.0, 99.9)))
+    im = Image.fromarray(display_levels(small, scale="gamma", gamma=0.5, clip_pct=(50.0, 99.95)))
     im.thumbnail((side, side))
     buf = io.BytesIO()
     im.save(buf, format="PNG")

@@ -4,10 +4,12 @@ from __future__ import annotations
 
 import numpy as np
 import plotly.graph_objects as go
+from scipy.spatial import cKDTree
 
-from .common import DOMAIN_STYLES, PALETTE, hk_text, num
+from .common import (GUN_COLOUR, INTEGER_SPOT_COLOUR, MODEL_COLOUR, SCREEN_COLOUR, SUBSTRATE_COLOUR,
+                     UNEXPLAINED_COLOUR, domain_colour, domain_dash, hk_text, num)
 
-__all__ = ["OVERLAY_CHOICES", "pattern_figure", "predicted_spots"]
+__all__ = ["OVERLAY_CHOICES", "pattern_figure", "predicted_spots", "net_lines"]
 
 OVERLAY_CHOICES = [
     ("spots", "Detected spots"),
@@ -17,6 +19,7 @@ OVERLAY_CHOICES = [
     ("unexplained", "Unexplained spots"),
     ("model", "Model being tried"),
 ]
+
 
 def _lattice_hk(a_star_px: np.ndarray, center, width, height, *, inv_m=None, limit=4000):
     """Integer n (of the net with basis inv_m.T @ a*) whose pixel positions fall inside the image."""
@@ -72,8 +75,15 @@ def _spot_arrays(result):
 def pattern_figure(source: str | None, *, width: int, height: int, factor: int = 1,
                    result: dict | None = None, overlays=("spots", "substrate", "domains"),
                    edits: dict | None = None, model: dict | None = None,
-                   candidate: dict | None = None, editable: bool = True, revision: str = "") -> go.Figure:
-    """The pattern with its overlays.
+                   candidate: dict | None = None, editable: bool = True, revision: str = "",
+                   focus: int | None = None) -> go.Figure:
+    """The pattern with its overlays, drawn as reciprocal nets.
+
+    Each overlayer domain is its reciprocal net: thin lines through its lattice points
+    (the camera model's positions, so the lines bend with the screen); the measured
+    spots are drawn where they are, tinted by the domain that explains them (integer
+    beams light grey, unexplained ones white crosses); beams a domain predicts but no
+    spot shows are faint ticks. The substrate net is white, a tried model white dashed.
 
     Parameters
     ----------
@@ -88,15 +98,17 @@ def pattern_figure(source: str | None, *, width: int, height: int, factor: int =
     overlays : sequence of str
         Keys from :data:`OVERLAY_CHOICES` to draw.
     edits : dict, optional
-        ``{"added": [[x, y], ...], "removed": [...], "center": [x, y] or None}``.
+        ``{"added": [[x, y], ...], "removed": [[x, y], ...], "center": [x, y] or None}``.
     model : dict, optional
-        ``{"matrices": [...], "xy": [...], "label": str}`` from the model being tried.
+        The model being tried: ``{"domains": [[{x, y, h, k}...]...], "matrices": [...], "xy": [...]}``.
     candidate : dict, optional
         A ranked candidate to draw instead of the chosen overlayer.
+    focus : int, optional
+        A domain (0-based) brought forward: its net drawn thicker and last, the others dimmed.
 
-    Trace customdata: a detected spot is ``["spot", index]``, a spot added by
-    hand ``["added", index]``; anything else (the image, predictions) has none,
-    so a click there adds a spot.
+    Trace customdata: a detected spot is ``["spot", index, manual]``, a spot added by
+    hand ``["added", index]``; anything else (the image, nets, ticks) has none, so a
+    click there adds a spot.
     """
     result = result or {}
     edits = edits or {}
@@ -107,77 +119,121 @@ def pattern_figure(source: str | None, *, width: int, height: int, factor: int =
         fig.add_trace(go.Image(source=source, x0=(f - 1) / 2.0, y0=(f - 1) / 2.0, dx=f, dy=f,
                                hovertemplate="x %{x:.0f}, y %{y:.0f}<extra></extra>", name="image"))
     center = edits.get("center") or result.get("center_px")
+    annotations = []
 
     if "masks" in show:
         for mask in _mask_outlines(result):
+            screen = mask["name"] == "Screen edge"
             fig.add_trace(go.Scatter(x=mask["x"], y=mask["y"], mode="lines", name=mask["name"],
-                                     line=dict(color=PALETTE["yellow"], width=1.5, dash="dot"),
-                                     hoverinfo="name"))
+                                     line=dict(color=SCREEN_COLOUR if screen else GUN_COLOUR, width=1.5,
+                                               dash="dash" if screen else "dot"), hoverinfo="name"))
 
     sub = result.get("substrate") or {}
     if "substrate" in show and sub.get("a_star_px") is not None and center is not None:
         hk, xy = _substrate_points(result, center, width, height)
-        fig.add_trace(go.Scatter(
-            x=xy[:, 0], y=xy[:, 1], mode="markers", name="Substrate net",
-            marker=dict(symbol="cross-thin-open", size=11, color=PALETTE["vermillion"], line=dict(width=1.5, color=PALETTE["vermillion"])),
-            text=[hk_text(*p) for p in hk], hovertemplate="substrate %{text}<extra></extra>"))
-        for i, vec in enumerate(np.asarray(sub["a_star_px"], dtype=float)):
-            fig.add_annotation(x=center[0] + vec[0], y=center[1] + vec[1], ax=center[0], ay=center[1],
-                               xref="x", yref="y", axref="x", ayref="y", showarrow=True, arrowhead=3,
-                               arrowwidth=2, arrowcolor=PALETTE["vermillion"], text=f"a{i + 1}*",
-                               font=dict(color=PALETTE["vermillion"], size=13))
+        lx, ly = net_lines(xy, hk)
+        fig.add_trace(go.Scatter(x=lx, y=ly, mode="lines", name="Substrate net", hoverinfo="skip",
+                                 line=dict(color=SUBSTRATE_COLOUR, width=0.8), opacity=0.45))
+        annotations += _basis_arrows(np.asarray(sub["a_star_px"], dtype=float), center, factor)
 
-    if "domains" in show:
-        chosen = candidate or result.get("overlayer") or {}
-        preds = _domain_predictions(result, chosen, width, height)
-        for i, p in enumerate(preds):
-            sym, col = DOMAIN_STYLES[i % len(DOMAIN_STYLES)]
-            fig.add_trace(go.Scatter(
-                x=p["xy"][:, 0], y=p["xy"][:, 1], mode="markers", name=f"Domain {i + 1}",
-                marker=dict(symbol=sym, size=16, color=col, line=dict(width=2, color=col)),
-                text=[hk_text(*q) for q in p["hk"]], hovertemplate=f"domain {i + 1} %{{text}}<extra></extra>"))
-
-    if "model" in show and model and model.get("xy"):
-        xy = np.asarray(model["xy"], dtype=float).reshape(-1, 2)
-        fig.add_trace(go.Scatter(x=xy[:, 0], y=xy[:, 1], mode="markers", name="Model",
-                                 marker=dict(symbol="circle-open-dot", size=20, color=PALETTE["green"],
-                                             line=dict(width=1.5, color=PALETTE["green"])),
-                                 hovertemplate="model<extra></extra>"))
-
+    chosen = candidate or result.get("overlayer") or {}
+    preds = _domain_predictions(result, chosen, width, height) if chosen else []
     spots, sxy = _spot_arrays(result)
+    owner = _spot_domains(spots, sxy, preds, use_own=candidate is None)
+    if "domains" in show and preds:
+        mats = _domain_matrices(chosen)
+        sub_hk, sub_xy = (_substrate_points(result, center, width, height) if sub.get("a_star_px") is not None
+                          and center is not None else (np.zeros((0, 2)), np.zeros((0, 2))))
+        order = [i for i in range(len(preds)) if i != focus] + ([focus] if focus is not None and
+                                                                 0 <= focus < len(preds) else [])
+        for i in order:
+            p = preds[i]
+            col, dash = domain_colour(i), domain_dash(i)
+            strong = focus is None or i == focus
+            if i < len(mats):
+                n_xy, n_idx = _domain_net_points(p, mats[i], sub_hk, sub_xy)
+                lx, ly = net_lines(n_xy, n_idx)
+                fig.add_trace(go.Scatter(
+                    x=lx, y=ly, mode="lines", name=f"Domain {i + 1} net", hoverinfo="skip",
+                    line=dict(color=col, width=2.2 if i == focus else 1.0, dash=dash),
+                    opacity=0.95 if i == focus else (0.6 if strong else 0.18)))
+            absent = _absent(p["xy"], sxy)
+            if absent.any():
+                fig.add_trace(go.Scatter(
+                    x=p["xy"][absent, 0], y=p["xy"][absent, 1], mode="markers",
+                    name=f"Domain {i + 1}: predicted, no spot",
+                    marker=dict(symbol="line-ns-open", size=7, color=col, line=dict(width=1.2, color=col)),
+                    opacity=0.55 if strong else 0.2, text=[hk_text(*q) for q in p["hk"][absent]],
+                    hovertemplate=f"domain {i + 1} %{{text}}: predicted, no spot<extra></extra>"))
+
+    if "model" in show and model:
+        rows = model.get("domains")
+        if rows:
+            for j, dom in enumerate(rows):
+                d = _rows_to_arrays(dom)
+                mats = model.get("matrices") or []
+                if j < len(mats):
+                    n_xy, n_idx = _domain_net_points(d, np.asarray(mats[j], dtype=float), np.zeros((0, 2)),
+                                                     np.zeros((0, 2)))
+                    lx, ly = net_lines(n_xy, n_idx)
+                    fig.add_trace(go.Scatter(x=lx, y=ly, mode="lines", name="Model net" if j == 0 else None,
+                                             legendgroup="model", showlegend=j == 0, hoverinfo="skip",
+                                             line=dict(color=MODEL_COLOUR, width=1.3, dash="dash"), opacity=0.8))
+        xy = np.asarray(model.get("xy") or [], dtype=float).reshape(-1, 2)
+        if len(xy):
+            fig.add_trace(go.Scatter(x=xy[:, 0], y=xy[:, 1], mode="markers", name="Model",
+                                     marker=dict(symbol="diamond-open", size=9, color=MODEL_COLOUR,
+                                                 line=dict(width=1.2, color=MODEL_COLOUR)),
+                                     hovertemplate="tried model<extra></extra>"))
+
     if "spots" in show and len(spots):
         custom = [["spot", i, bool(s.get("manual"))] for i, s in enumerate(spots)]
+        colours = [domain_colour(d) if d is not None else
+                   (INTEGER_SPOT_COLOUR if s.get("kind") == "integer" else UNEXPLAINED_COLOUR)
+                   for s, d in zip(spots, owner)]
         text = [f"{hk_text(s.get('h'), s.get('k')) if s.get('h') is not None else '(not indexed)'}"
-                f"<br>intensity {num(s.get('intensity'))}<br>SNR {num(s.get('snr'), '{:.1f}')}"
-                for s in spots]
+                + (f" · domain {d + 1}" if d is not None else "")
+                + f"<br>intensity {num(s.get('intensity'))}<br>SNR {num(s.get('snr'), '{:.1f}')}"
+                for s, d in zip(spots, owner)]
         fig.add_trace(go.Scatter(x=sxy[:, 0], y=sxy[:, 1], mode="markers", name="Detected spots",
                                  customdata=custom, text=text,
-                                 marker=dict(symbol="circle-open", size=11, color=PALETTE["sky"], line=dict(width=1.5, color=PALETTE["sky"])),
+                                 marker=dict(symbol="circle-open", size=12, color=colours,
+                                             line=dict(width=1.8, color=colours)),
                                  hovertemplate="%{text}<br>x %{x:.1f}, y %{y:.1f}<extra>spot</extra>"))
     if "unexplained" in show and len(spots):
         un = [i for i, s in enumerate(spots) if s.get("kind") == "unexplained" or s.get("explained") is False]
         if un:
             fig.add_trace(go.Scatter(x=sxy[un, 0], y=sxy[un, 1], mode="markers", name="Unexplained",
                                      customdata=[["spot", i, bool(spots[i].get("manual"))] for i in un],
-                                     marker=dict(symbol="x-thin-open", size=14, color=PALETTE["purple"], line=dict(width=2, color=PALETTE["purple"])),
+                                     marker=dict(symbol="x-thin-open", size=14, color=UNEXPLAINED_COLOUR,
+                                                 line=dict(width=2, color=UNEXPLAINED_COLOUR)),
                                      hovertemplate="unexplained spot<br>x %{x:.1f}, y %{y:.1f}<extra></extra>"))
     added = edits.get("added") or []
     if added:
         a = np.asarray(added, dtype=float).reshape(-1, 2)
         fig.add_trace(go.Scatter(x=a[:, 0], y=a[:, 1], mode="markers", name="Added by hand",
                                  customdata=[["added", i] for i in range(len(a))],
-                                 marker=dict(symbol="star-open", size=13, color=PALETTE["green"], line=dict(width=1.5, color=PALETTE["green"])),
+                                 marker=dict(symbol="star-open", size=13, color=SUBSTRATE_COLOUR,
+                                             line=dict(width=1.5, color=SUBSTRATE_COLOUR)),
                                  hovertemplate="added by hand (click to drop)<extra></extra>"))
+    removed = edits.get("removed") or []
+    if removed:
+        r = np.asarray(removed, dtype=float).reshape(-1, 2)
+        fig.add_trace(go.Scatter(x=r[:, 0], y=r[:, 1], mode="markers", name="Dropped by hand",
+                                 marker=dict(symbol="circle-x-open", size=12, color="#9A9A9A",
+                                             line=dict(width=1.2, color="#9A9A9A")),
+                                 hovertemplate="dropped by hand (Undo brings it back)<extra></extra>"))
 
     shapes = []
     if center is not None:
         cx, cy = float(center[0]), float(center[1])
         r = max(6.0, 0.012 * max(width, height))
         shapes.append(dict(type="circle", xref="x", yref="y", x0=cx - r, x1=cx + r, y0=cy - r, y1=cy + r,
-                           line=dict(color=PALETTE["orange"], width=2), editable=bool(editable)))
+                           line=dict(color=SUBSTRATE_COLOUR, width=2), editable=bool(editable)))
     fig.update_layout(
         template="plotly_white", height=700, margin=dict(l=10, r=10, t=10, b=10),
         clickmode="event", dragmode="zoom", uirevision=revision or "pattern", shapes=shapes,
+        annotations=annotations,
         legend=dict(orientation="h", yanchor="bottom", y=1.0, x=0, bgcolor="rgba(255,255,255,0.8)"),
         xaxis=dict(range=[-0.5, width - 0.5], showgrid=False, zeroline=False, constrain="domain", title=None),
         yaxis=dict(range=[height - 0.5, -0.5], autorange=False, showgrid=False, zeroline=False,
@@ -185,6 +241,125 @@ def pattern_figure(source: str | None, *, width: int, height: int, factor: int =
         plot_bgcolor="#111",
     )
     return fig
+
+
+def _basis_arrows(a_star_px: np.ndarray, center, factor: int = 1) -> list[dict]:
+    """a1* and a2* as arrows from the centre, each label just beyond its arrow's tip (as the PNG export)."""
+    out = []
+    cx, cy = float(center[0]), float(center[1])
+    for i, v in enumerate(a_star_px):
+        tip = (cx + v[0], cy + v[1])
+        out.append(dict(x=tip[0], y=tip[1], ax=cx, ay=cy, xref="x", yref="y", axref="x", ayref="y", text="",
+                        showarrow=True, arrowhead=3, arrowwidth=2, arrowcolor=SUBSTRATE_COLOUR))
+        u = v / max(float(np.hypot(*v)), 1e-9)
+        out.append(dict(x=tip[0] + 16 * u[0] * max(1, factor), y=tip[1] + 16 * u[1] * max(1, factor),
+                        xref="x", yref="y", text=f"a{i + 1}*", showarrow=False, name=f"a{i + 1}* label",
+                        font=dict(color=SUBSTRATE_COLOUR, size=13), bgcolor="rgba(0,0,0,0.65)", borderpad=2))
+    return out
+
+
+def net_lines(xy: np.ndarray, idx: np.ndarray) -> tuple[list, list]:
+    """Polylines through a net's points along both index directions, for one Scatter trace.
+
+    Parameters
+    ----------
+    xy : (K, 2) ndarray of float
+        The points' (x, y) pixels.
+    idx : (K, 2) ndarray
+        Their integer indices in the net's own basis; only neighbours (indices one apart)
+        are joined, so a missing point leaves a gap.
+
+    Returns
+    -------
+    (list, list)
+        x and y with ``None`` between the lines.
+
+    Examples
+    --------
+    >>> g = np.array([[0, 0], [0, 1], [1, 0], [1, 1]])
+    >>> x, y = net_lines(g * 10.0, g)
+    >>> x
+    [0.0, 0.0, None, 10.0, 10.0, None, 0.0, 10.0, None, 0.0, 10.0, None]
+    """
+    xy = np.asarray(xy, dtype=float).reshape(-1, 2)
+    n = np.rint(np.asarray(idx, dtype=float)).astype(np.int64).reshape(-1, 2)
+    xs, ys = [], []
+    for along in (1, 0):  # lines of constant n0 (along n1), then of constant n1
+        fixed = 1 - along
+        order = np.lexsort((n[:, along], n[:, fixed]))
+        run = []
+        for j in order:
+            if run and (n[j, fixed] != n[run[-1], fixed] or n[j, along] != n[run[-1], along] + 1):
+                if len(run) > 1:
+                    xs += [float(xy[q, 0]) for q in run] + [None]
+                    ys += [float(xy[q, 1]) for q in run] + [None]
+                run = []
+            run.append(j)
+        if len(run) > 1:
+            xs += [float(xy[q, 0]) for q in run] + [None]
+            ys += [float(xy[q, 1]) for q in run] + [None]
+    return xs, ys
+
+
+def _domain_matrices(overlayer: dict) -> list[np.ndarray]:
+    mats = overlayer.get("domains") or ([overlayer["matrix"]] if overlayer.get("matrix") is not None else [])
+    out = []
+    for m in mats:
+        m = np.asarray(m, dtype=float)
+        if m.shape == (2, 2) and np.all(np.isfinite(m)) and abs(np.linalg.det(m)) > 1e-9:
+            out.append(m)
+    return out
+
+
+def _domain_net_points(pred: dict, matrix: np.ndarray, sub_hk: np.ndarray, sub_xy: np.ndarray):
+    """(xy, n) of a domain's lattice points: its fractional beams and the substrate beams on its net.
+
+    A beam at substrate indices hk sits at n = hk Mᵀ of the overlayer's reciprocal basis
+    (b* = M⁻ᵀ a*, overlayer = M @ substrate); points whose n is not whole are not on the net.
+    """
+    hk = np.vstack([pred["hk"], sub_hk]) if len(sub_hk) else pred["hk"]
+    xy = np.vstack([pred["xy"], sub_xy]) if len(sub_xy) else pred["xy"]
+    ok = np.all(np.isfinite(hk), axis=1)
+    n = hk[ok] @ np.asarray(matrix, dtype=float).T
+    whole = np.all(np.abs(n - np.rint(n)) < 1e-3, axis=1)
+    return xy[ok][whole], np.rint(n[whole])
+
+
+def _absent(pred_xy: np.ndarray, spots_xy: np.ndarray) -> np.ndarray:
+    """Which predicted beams have no detected spot within a third of their nearest spacing (≥ 3 px)."""
+    pred_xy = np.asarray(pred_xy, dtype=float).reshape(-1, 2)
+    if not len(pred_xy):
+        return np.zeros(0, dtype=bool)
+    if len(pred_xy) > 1:
+        d_pp, _ = cKDTree(pred_xy).query(pred_xy, k=2)
+        tol = max(3.0, float(np.median(d_pp[:, 1])) / 3.0)
+    else:
+        tol = 6.0
+    ok = np.all(np.isfinite(spots_xy), axis=1) if len(spots_xy) else np.zeros(0, bool)
+    if not ok.any():
+        return np.ones(len(pred_xy), dtype=bool)
+    d, _ = cKDTree(spots_xy[ok]).query(pred_xy, k=1)
+    return d > tol
+
+
+def _spot_domains(spots, sxy, preds, *, use_own: bool) -> list:
+    """The domain (0-based) each spot is tinted by: its own for the chosen model, else the nearest
+    predicted beam of the candidate shown (within a third of that domain's spacing)."""
+    if use_own:
+        return [s.get("domain") if isinstance(s.get("domain"), int) and s.get("kind") == "fractional" else None
+                for s in spots]
+    out = [None] * len(spots)
+    best = np.full(len(spots), np.inf)
+    for i, p in enumerate(preds):
+        if not len(p["xy"]) or not len(sxy):
+            continue
+        d, _ = cKDTree(p["xy"]).query(np.nan_to_num(sxy, nan=-1e9), k=1)
+        sp = cKDTree(p["xy"]).query(p["xy"], k=2)[0][:, 1] if len(p["xy"]) > 1 else np.array([18.0])
+        tol = max(3.0, float(np.median(sp)) / 3.0)
+        for j in np.flatnonzero((d < tol) & (d < best)):
+            if spots[j].get("kind") != "integer":
+                out[j], best[j] = i, d[j]
+    return out
 
 
 def _substrate_points(result, center, width, height):

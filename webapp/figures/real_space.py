@@ -7,7 +7,7 @@ import math
 import numpy as np
 import plotly.graph_objects as go
 
-from .common import DOMAIN_STYLES, PALETTE
+from .common import DOMAIN_STYLES
 
 __all__ = ["real_space_figure"]
 
@@ -39,7 +39,7 @@ def real_space_figure(substrate_vectors_A, domain_matrices, *, label: str = "") 
 
     x, y = cell_path(a)
     fig.add_trace(go.Scatter(x=x, y=y, mode="lines", name="Substrate cell",
-                             line=dict(color=PALETTE["vermillion"], width=2), hoverinfo="name"))
+                             line=dict(color="#444444", width=2), hoverinfo="name"))
     for i, c in enumerate(cells):
         x, y = cell_path(c)
         fig.add_trace(go.Scatter(x=x, y=y, mode="lines", name=f"Domain {i + 1}",

@@ -159,6 +159,7 @@ def workspace(*, readonly: bool = False, image: dict | None = None, record: dict
         dcc.Store(id=ids.RESULT, data=record),
         dcc.Store(id=ids.EDITS, data=edits),
         dcc.Store(id=ids.MODEL, data=None),
+        dcc.Store(id=ids.DOMAIN_FOCUS, data=None),
         dcc.Store(id=ids.REFERENCE, data=None),
         dcc.Store(id=ids.SOURCE, data={"readonly": bool(readonly), "token": token}),
         left, right,

@@ -26,8 +26,8 @@ def display_image(sha: str, scale: str, gamma: float, clip_lo: float, clip_hi: f
 
 
 
-def render_pattern(image, record, edits, model, scale, gamma, clip, overlays, pick, source):
-    """The pattern figure with the chosen contrast and overlays."""
+def render_pattern(image, record, edits, model, scale, gamma, clip, overlays, pick, focus=None, source=None):
+    """The pattern figure with the chosen contrast and overlays; `focus` is the domain brought forward."""
     if not image or not image.get("sha"):
         return figures.empty_figure()
     clip = clip or [0.5, 99.95]
@@ -45,7 +45,7 @@ def render_pattern(image, record, edits, model, scale, gamma, clip, overlays, pi
             fail(err)
     return figures.pattern_figure(url, width=image["width"], height=image["height"], factor=f, result=result,
                                   overlays=overlays or [], edits=ed, model=model,
-                                  candidate=cand,
+                                  candidate=cand, focus=focus if isinstance(focus, int) else None,
                                   editable=not (source or {}).get("readonly"), revision=image["sha"])
 
 
@@ -124,7 +124,7 @@ callback(
     Output(ids.GRAPH, "figure"),
     Input(ids.IMAGE, "data"), Input(ids.RESULT, "data"), Input(ids.EDITS, "data"), Input(ids.MODEL, "data"),
     Input(ids.SCALE, "value"), Input(ids.GAMMA, "value"), Input(ids.CLIP, "value"), Input(ids.OVERLAYS, "value"),
-    Input(ids.CANDIDATE_PICK, "value"), State(ids.SOURCE, "data"),
+    Input(ids.CANDIDATE_PICK, "value"), Input(ids.DOMAIN_FOCUS, "data"), State(ids.SOURCE, "data"),
 )(render_pattern)
 
 callback(

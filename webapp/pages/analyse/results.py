@@ -3,7 +3,8 @@
 from __future__ import annotations
 
 import numpy as np
-from dash import Input, Output, callback, html
+from dash import ALL, Input, Output, State, callback, ctx, html
+from dash.exceptions import PreventUpdate
 
 from analysis.superstructure import format_matrix
 from webapp import figures, ids, service
@@ -11,7 +12,7 @@ from webapp.pages.common import fail, note
 
 from .state import candidate, result_of
 
-__all__ = ["show_result"]
+__all__ = ["show_result", "on_domain_focus", "on_show_best"]
 
 def _fmt_pm(value, err, unit="", digits=3):
     if value is None:
@@ -58,19 +59,58 @@ def _matrix_table(m, cls="matrix"):
 
 
 def show_result(record, image, pick):
-    """Result panel, candidate list and real-space drawing from the stored record."""
+    """Result panel, candidate list and real-space drawing from the stored record.
+
+    With a candidate picked, the pattern draws that candidate: the panel says so at its top,
+    and its Domains row lists the domains drawn (the buttons bring one domain's net forward).
+    """
     result = result_of(record, image)
     empty = figures.empty_figure("The cells appear after an analysis", height=300)
     if not result:
         return html.P("No analysis yet.", className="muted"), [], None, empty
     try:
-        return _result_children(result, record), _candidate_options(result), _candidate_note(result, pick), \
+        return _result_children(result, record, pick), _candidate_options(result), _candidate_note(result, pick), \
             _real_space(result, pick)
     except Exception as err:  # noqa: BLE001
         return note(fail(err)), [], None, empty
 
 
-def _result_children(result, record):
+def _shown_note(result, pick):
+    """A note when the pattern shows a picked candidate rather than the best-scoring answer."""
+    cand = candidate(result, pick)
+    if cand is None:
+        return None
+    ov = result.get("overlayer") or {}
+    what = " ".join(str(x) for x in (cand.get("wood"), _matrix_text(cand.get("matrix"))) if x)
+    best = ov.get("wood") or _matrix_text(ov.get("matrix")) or "the best-scoring answer"
+    return html.Div(
+        [html.B(f"The pattern shows candidate {int(pick) + 1}"), f" ({what or 'picked'}). ",
+         f"The facts below are those of the best-scoring answer, {best}. ",
+         html.Button("Show the best answer", id=ids.SHOW_BEST, className="small")],
+        className="note note-warn", id=ids.SHOWN_NOTE, **{"data-pick": str(int(pick))})
+
+
+def _matrix_text(m) -> str:
+    try:
+        return format_matrix(m) if m is not None else ""
+    except (TypeError, ValueError):
+        return ""
+
+
+def _domain_buttons(domains, shown_label: str | None):
+    """One button per domain drawn: a click brings its net forward on the pattern (again: all alike)."""
+    if not domains:
+        return "–"
+    items = [html.Button([html.Span(f"{i + 1}: ", className=f"dom dom{i % 6}"), _matrix_table(m)],
+                         id={"type": ids.DOMAIN_BUTTON, "index": i}, className="domain-button",
+                         title="Bring this domain's net forward on the pattern (click again for all)")
+             for i, m in enumerate(domains)]
+    if shown_label:
+        items.insert(0, html.Div(shown_label, className="muted"))
+    return items
+
+
+def _result_children(result, record, pick=None):
     sub = result.get("substrate") or {}
     ov = result.get("overlayer") or {}
     spots = result.get("spots") or []
@@ -106,7 +146,9 @@ def _result_children(result, record):
         rows.append(("Lattice from", str(sub["lattice_source"])))
     kind = ov.get("kind") or "–"
     wood = ov.get("wood")
-    domains = ov.get("domains") or ([ov["matrix"]] if ov.get("matrix") is not None else [])
+    shown = candidate(result, pick)
+    drawn = shown if shown is not None else ov
+    domains = drawn.get("domains") or ([drawn["matrix"]] if drawn.get("matrix") is not None else [])
     table = html.Table(className="facts", children=[html.Tbody(
         [html.Tr([html.Th(k), html.Td(v)]) for k, v in rows]
         + [html.Tr([html.Th("Spots"), html.Td(spot_line, id=ids.SPOT_COUNT, **{"data-count": str(len(spots))})])]
@@ -119,13 +161,39 @@ def _result_children(result, record):
                                             id=ids.MATRIX,
                                             **({"data-matrix": format_matrix(ov["matrix"])} if ov.get("matrix") is not None else {}))]),
         html.Tr([html.Th("Coverage"), html.Td(_fmt_pm(ov.get("coverage"), None, " ML", 3)
+                                              + " for one adsorbate per cell"
                                               if ov.get("coverage") is not None else "–")]),
-        html.Tr([html.Th("Domains"), html.Td(
-            [html.Div([html.Span(f"{i + 1}: ", className=f"dom dom{i % 8}"), _matrix_table(m)]) for i, m in enumerate(domains)]
-            if domains else "–")]),
+        html.Tr([html.Th("Domains"), html.Td(_domain_buttons(
+            domains, f"of candidate {int(pick) + 1}, as drawn:" if shown is not None else None))]),
     ])])
     warn = [html.Div(str(w), className="note note-warn") for w in (result.get("warnings") or [])]
-    return [*warn, answer, table]
+    return [n for n in (_shown_note(result, pick), *warn, answer, table) if n is not None]
+
+
+def on_show_best(n_clicks):
+    """'Show the best answer' in the note -> no candidate picked."""
+    if not n_clicks:
+        raise PreventUpdate
+    return None
+
+
+def on_domain_focus(clicks, pick, record, current):
+    """A domain button -> that domain brought forward (a second click: all alike); a new result
+    or another candidate -> none."""
+    trig = ctx.triggered_id if _in_callback() else None
+    if isinstance(trig, dict) and trig.get("type") == ids.DOMAIN_BUTTON:
+        if not any(clicks or []):
+            raise PreventUpdate  # the buttons were just drawn
+        i = int(trig.get("index"))
+        return None if current == i else i
+    return None
+
+
+def _in_callback() -> bool:
+    try:
+        return bool(ctx.triggered)
+    except Exception:  # noqa: BLE001 - called as a plain function, outside a callback
+        return False
 
 
 def _candidate_label(c: dict, i: int) -> str:
@@ -187,3 +255,16 @@ callback(
     Output(ids.REAL_SPACE, "figure"),
     Input(ids.RESULT, "data"), Input(ids.IMAGE, "data"), Input(ids.CANDIDATE_PICK, "value"),
 )(show_result)
+
+callback(
+    Output(ids.CANDIDATE_PICK, "value", allow_duplicate=True),
+    Input(ids.SHOW_BEST, "n_clicks"),
+    prevent_initial_call=True,
+)(on_show_best)
+
+callback(
+    Output(ids.DOMAIN_FOCUS, "data"),
+    Input({"type": ids.DOMAIN_BUTTON, "index": ALL}, "n_clicks"), Input(ids.CANDIDATE_PICK, "value"),
+    Input(ids.RESULT, "data"), State(ids.DOMAIN_FOCUS, "data"),
+    prevent_initial_call=True,
+)(on_domain_focus)
