@@ -183,7 +183,20 @@ def reciprocal(net: Net2D, *, two_pi: bool = False) -> Net2D:
 
 
 def rotate_net(net: Net2D, angle_deg: float) -> Net2D:
-    """Rotate `net` counter-clockwise by `angle_deg` about the surface normal."""
+    """Rotate `net` counter-clockwise by `angle_deg` about the surface normal.
+
+    Parameters
+    ----------
+    net : Net2D
+        The net (Å).
+    angle_deg : float
+        Rotation, degrees (counter-clockwise positive).
+
+    Returns
+    -------
+    Net2D
+        The rotated net, rows rotated alike.
+    """
     c, s = np.cos(np.deg2rad(angle_deg)), np.sin(np.deg2rad(angle_deg))
     return Net2D(net.vectors @ np.array([[c, s], [-s, c]]), label=net.label)  # rows stay vectors
 
@@ -198,6 +211,7 @@ def reduce_net(net: Net2D, *, tol: float = 2e-4) -> tuple[Net2D, np.ndarray]:
     Parameters
     ----------
     net : Net2D
+        Real-space net (Å).
     tol : float, keyword-only
         Dimensionless tolerance for the equal-length test.
 
@@ -254,6 +268,7 @@ def classify_net(net: Net2D, *, tol: float = 2e-4) -> str:
     Parameters
     ----------
     net : Net2D
+        Real-space net (Å).
     tol : float, keyword-only
         One dimensionless tolerance: on length ratios (|b/a − 1|), on cosines
         and on the centering condition 2|a1·a2|/|a1|² = 1.
@@ -292,6 +307,13 @@ def conventional_cell(net: Net2D, *, tol: float = 2e-4) -> tuple[Net2D, np.ndarr
     primitive area (a ≤ b not guaranteed: a is along the rhombus's long or short
     diagonal as the net gives it); for the other four nets it is the reduced
     primitive cell (hexagonal at 120°).
+
+    Parameters
+    ----------
+    net : Net2D
+        Real-space net (Å).
+    tol : float, keyword-only
+        Dimensionless tolerance of :func:`classify_net`.
 
     Returns
     -------
@@ -362,7 +384,21 @@ def _fmt_angle(x: float) -> str:
 
 
 def point_group(net: Net2D, *, tol: float = 2e-4) -> list[SymmetryOp]:
-    """See :func:`_point_group`; results are cached per basis (the ops are read-only)."""
+    """See :func:`_point_group`; results are cached per basis (the ops are read-only).
+
+    Parameters
+    ----------
+    net : Net2D
+        Real-space net (Å).
+    tol : float, keyword-only
+        Relative tolerance of the metric test of each operation.
+
+    Returns
+    -------
+    list of SymmetryOp
+        The operations W (integer matrices on the basis) that map the net onto itself,
+        the identity first.
+    """
     key = tuple(np.round(net.vectors.ravel(), 12).tolist())
     return list(_point_group_cached(key, float(tol)))
 
@@ -431,6 +467,18 @@ def symmetrized(net: Net2D, *, tol: float = 2e-3) -> Net2D:
     has that group exactly; a1 keeps its direction and the basis its handedness.
     Structure answers that need exact symmetry (Wood notation, domains) use it.
 
+    Parameters
+    ----------
+    net : Net2D
+        The measured real-space net (Å).
+    tol : float, keyword-only
+        Relative tolerance of the point group that is made exact.
+
+    Returns
+    -------
+    Net2D
+        The symmetric net (Å), same basis and handedness.
+
     Examples
     --------
     >>> n = symmetrized(Net2D.from_parameters(2.556, 2.557, 89.97))
@@ -451,7 +499,20 @@ def symmetrized(net: Net2D, *, tol: float = 2e-3) -> Net2D:
 
 
 def point_group_name(net: Net2D, *, tol: float = 2e-4) -> str:
-    """Hermann–Mauguin symbol of the net's holohedry: p2, p2mm, c2mm, p4mm or p6mm."""
+    """Hermann–Mauguin symbol of the net's holohedry: p2, p2mm, c2mm, p4mm or p6mm.
+
+    Parameters
+    ----------
+    net : Net2D
+        Real-space net (Å).
+    tol : float, keyword-only
+        Relative tolerance (as :func:`point_group`).
+
+    Returns
+    -------
+    str
+        The symbol.
+    """
     kind = classify_net(net, tol=tol)
     return {"oblique": "p2", "rectangular": "p2mm", "centered-rectangular": "c2mm",
             "square": "p4mm", "hexagonal": "p6mm"}[kind]
@@ -513,6 +574,8 @@ def surface_net(structure: str, face: str, a0: float, *, label: str = "") -> Net
         "001" is accepted as the same face).
     a0 : float
         Bulk lattice constant in Å (for hcp, the in-plane a).
+    label : str, keyword-only
+        Name kept with the net (e.g. ``"Pt(111)"``).
 
     Returns
     -------

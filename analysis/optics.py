@@ -98,16 +98,19 @@ def wavelength_A(energy_eV, *, relativistic: bool = False):
 
 def sin_theta(g_par: np.ndarray, energy_eV: float, *, k_in_par: np.ndarray | None = None,
               relativistic: bool = False) -> np.ndarray:
-    """sin θ = λ |g + k_in∥| for each beam.
+    """Sine of each beam's exit angle, sin θ = λ |g + k_in∥|.
 
     Parameters
     ----------
     g_par : (K, 2) ndarray of float
         Parallel momentum transfer of each beam, Å⁻¹ without 2π.
     energy_eV : float
-    k_in_par : (2,) ndarray, optional
+        Electron energy, eV.
+    k_in_par : (2,) ndarray, optional, keyword-only
         Parallel component of the incident wave vector, Å⁻¹ without 2π
         (sin θ_in / λ along the tilt azimuth); None for normal incidence.
+    relativistic : bool, keyword-only
+        Use the relativistic wavelength.
 
     Returns
     -------
@@ -122,6 +125,20 @@ def sin_theta(g_par: np.ndarray, energy_eV: float, *, k_in_par: np.ndarray | Non
 
 def exit_angles_deg(g_par: np.ndarray, energy_eV: float, **kw) -> np.ndarray:
     """Polar exit angle θ in degrees of each beam; NaN where |sin θ| > 1.
+
+    Parameters
+    ----------
+    g_par : (K, 2) array_like of float
+        Parallel momentum transfer of each beam, Å⁻¹ without 2π.
+    energy_eV : float
+        Electron energy, eV.
+    **kw
+        ``k_in_par`` and ``relativistic``, as for :func:`sin_theta`.
+
+    Returns
+    -------
+    (K,) ndarray of float64
+        Exit angles from the surface normal, degrees.
 
     Examples
     --------
@@ -248,7 +265,11 @@ def momentum_to_pixels(k_par: np.ndarray, energy_eV: float, geom: ScreenGeometry
     k_par : (K, 2) ndarray of float
         Outgoing parallel momentum, surface (x, y) axes, Å⁻¹ without 2π.
     energy_eV : float
+        Electron energy, eV.
     geom : ScreenGeometry
+        The camera model.
+    relativistic : bool, keyword-only
+        Use the relativistic wavelength.
 
     Returns
     -------
@@ -307,6 +328,12 @@ def pixels_to_momentum(xy_px: np.ndarray, energy_eV: float, geom: ScreenGeometry
     ----------
     xy_px : (K, 2) ndarray of float
         (x, y) pixel positions.
+    energy_eV : float
+        Electron energy, eV.
+    geom : ScreenGeometry
+        The camera model.
+    relativistic : bool, keyword-only
+        Use the relativistic wavelength.
 
     Returns
     -------
@@ -333,7 +360,16 @@ def pixels_to_momentum(xy_px: np.ndarray, energy_eV: float, geom: ScreenGeometry
 
 
 def local_jacobian(energy_eV: float, geom: ScreenGeometry, *, relativistic: bool = False) -> np.ndarray:
-    """d(pixel x, y) / d(k_x, k_y) at the specular (0,0) beam, pixels per Å⁻¹ (no 2π).
+    """Derivative d(pixel x, y) / d(k_x, k_y) at the specular (0,0) beam, pixels per Å⁻¹ (no 2π).
+
+    Parameters
+    ----------
+    energy_eV : float
+        Electron energy, eV.
+    geom : ScreenGeometry
+        The camera model.
+    relativistic : bool, keyword-only
+        Use the relativistic wavelength.
 
     Returns
     -------
@@ -360,6 +396,12 @@ def pixel_derivatives(k_par: np.ndarray, energy_eV: float, geom: ScreenGeometry,
     ----------
     k_par : (K, 2) ndarray of float
         Outgoing parallel momentum, Å⁻¹ without 2π (as :func:`momentum_to_pixels`).
+    energy_eV : float
+        Electron energy, eV.
+    geom : ScreenGeometry
+        The camera model.
+    relativistic : bool, keyword-only
+        Use the relativistic wavelength.
 
     Returns
     -------

@@ -59,6 +59,16 @@ _EXACT = 1e-9
 def as_matrix(matrix) -> np.ndarray:
     """Validate a superstructure matrix: (2, 2), finite, non-singular.
 
+    Parameters
+    ----------
+    matrix : array_like
+        Anything numpy reads as a (2, 2) array of numbers.
+
+    Returns
+    -------
+    (2, 2) ndarray of float64
+        A copy of the matrix.
+
     Raises
     ------
     NetError
@@ -87,12 +97,39 @@ def _snap(m: np.ndarray, tol: float = 1e-9) -> np.ndarray:
 
 
 def overlayer_net(substrate: Net2D, matrix) -> Net2D:
-    """Real-space overlayer net, ``M @ substrate.vectors`` (Å)."""
+    """Real-space overlayer net, ``M @ substrate.vectors`` (Å).
+
+    Parameters
+    ----------
+    substrate : Net2D
+        Real-space substrate net (Å), rows a1, a2.
+    matrix : (2, 2) array_like of float
+        Real-space superstructure matrix M, ``overlayer = M @ substrate``.
+
+    Returns
+    -------
+    Net2D
+        Rows b1, b2 in Å.
+    """
     return Net2D(as_matrix(matrix) @ substrate.vectors)
 
 
 def overlayer_reciprocal(substrate: Net2D, matrix, *, two_pi: bool = False) -> Net2D:
     """Reciprocal overlayer net (M⁻¹)ᵀ A*, Å⁻¹ (no 2π unless `two_pi`).
+
+    Parameters
+    ----------
+    substrate : Net2D
+        Real-space substrate net (Å), rows a1, a2.
+    matrix : (2, 2) array_like of float
+        Real-space superstructure matrix M, ``overlayer = M @ substrate``.
+    two_pi : bool, keyword-only
+        Include the factor 2π (solid-state convention).
+
+    Returns
+    -------
+    Net2D
+        Rows b1*, b2* in Å⁻¹.
 
     Examples
     --------
@@ -134,6 +171,18 @@ def superstructure_matrix(substrate: Net2D, overlayer: Net2D, *, snap_tol: float
 def coverage(matrix, *, per_cell: float = 1.0) -> float:
     """Coverage in monolayers (adsorbates per substrate cell): per_cell / |det M|.
 
+    Parameters
+    ----------
+    matrix : (2, 2) array_like of float
+        Real-space superstructure matrix M, ``overlayer = M @ substrate``.
+    per_cell : float, keyword-only
+        Adsorbates per overlayer cell.
+
+    Returns
+    -------
+    float
+        Adsorbates per substrate cell (monolayers).
+
     Examples
     --------
     >>> print(coverage([[2, 0], [0, 2]]), round(coverage([[2, 1], [-1, 1]]), 6))
@@ -146,6 +195,20 @@ def rational_matrix(matrix, *, max_denominator: int = 12, tol: float = 1e-6) -> 
     """Entries of `matrix` as fractions with denominators ≤ `max_denominator`, or None.
 
     `tol` is absolute on the entries (in substrate-vector units).
+
+    Parameters
+    ----------
+    matrix : (2, 2) array_like of float
+        Real-space superstructure matrix M, ``overlayer = M @ substrate``.
+    max_denominator : int, keyword-only
+        Largest denominator allowed.
+    tol : float, keyword-only
+        Largest distance of an entry from its fraction.
+
+    Returns
+    -------
+    list of list of Fraction, or None
+        The entries row by row; None when an entry is no such fraction.
     """
     m = as_matrix(matrix)
     out = []
@@ -219,6 +282,18 @@ def hermite_normal_form(matrix, *, max_denominator: int = 12) -> np.ndarray:
     rational case is the integer form of ``D M`` divided by the common
     denominator D).
 
+    Parameters
+    ----------
+    matrix : (2, 2) array_like of float
+        Rational matrix whose rows span the lattice (substrate basis).
+    max_denominator : int, keyword-only
+        Largest denominator the entries are read with.
+
+    Returns
+    -------
+    (2, 2) ndarray of float64
+        The upper-triangular canonical form.
+
     Examples
     --------
     >>> hermite_normal_form([[2, 1], [-1, 1]]).tolist()
@@ -234,6 +309,18 @@ def same_lattice(m1, m2, *, tol: float = 1e-6) -> bool:
     """True when `m1` and `m2` span the same lattice (``m1 @ inv(m2)`` unimodular integer).
 
     `tol` is absolute on the entries of ``m1 @ inv(m2)``.
+
+    Parameters
+    ----------
+    m1, m2 : (2, 2) array_like of float
+        Real-space superstructure matrices on one substrate.
+    tol : float, keyword-only
+        Absolute tolerance on the entries of ``m1 @ inv(m2)``.
+
+    Returns
+    -------
+    bool
+        Whether the two span one lattice.
 
     Examples
     --------
@@ -271,6 +358,18 @@ def coincidence_cell(matrix, *, max_denominator: int = 12) -> np.ndarray:
     exact rational arithmetic. Returns an integer matrix C (as float) in
     Hermite normal form; |det C| substrate cells hold |det C| / |det M|
     overlayer cells.
+
+    Parameters
+    ----------
+    matrix : (2, 2) array_like of float
+        Real-space superstructure matrix M, ``overlayer = M @ substrate``.
+    max_denominator : int, keyword-only
+        Largest denominator the entries are read with.
+
+    Returns
+    -------
+    (2, 2) ndarray of float64
+        Integer matrix C of the common cell, substrate basis, Hermite normal form.
 
     Examples
     --------
@@ -349,6 +448,7 @@ def classify_superstructure(substrate: Net2D, matrix, *, tol: float = 1e-6, max_
     Parameters
     ----------
     substrate : Net2D
+        Real-space substrate net (Å).
     matrix : (2, 2) array_like
         Real-space superstructure matrix.
     tol : float, keyword-only
@@ -356,6 +456,14 @@ def classify_superstructure(substrate: Net2D, matrix, *, tol: float = 1e-6, max_
         (a measured matrix needs a looser one, e.g. 5e-3).
     max_denominator : int, keyword-only
         Largest denominator that still counts as a coincidence lattice.
+    n_approximants : int, keyword-only
+        How many nearby coincidence cells an incommensurate matrix lists.
+
+    Returns
+    -------
+    Kind
+        The kind, whether overlayer points lie on substrate lines, the coincidence
+        cell or the approximants.
 
     Examples
     --------
@@ -433,6 +541,22 @@ def domains(substrate: Net2D, matrix, *, tol: float = 1e-6, sym_tol: float = 2e-
     or mirror that makes it. Rotations are preferred to mirrors when both make
     the same domain.
 
+    Parameters
+    ----------
+    substrate : Net2D
+        Real-space substrate net (Å), rows a1, a2.
+    matrix : (2, 2) array_like of float
+        Real-space superstructure matrix M, ``overlayer = M @ substrate``.
+    tol : float, keyword-only
+        Absolute tolerance on entries when two domains are compared.
+    sym_tol : float, keyword-only
+        Relative tolerance of the substrate's point group (:func:`analysis.nets.point_group`).
+
+    Returns
+    -------
+    list of Domain
+        Each domain's matrix and the substrate operation that makes it; `matrix` first.
+
     Examples
     --------
     >>> sq = Net2D(np.eye(2))
@@ -469,6 +593,18 @@ def nice_matrix(substrate: Net2D, matrix) -> np.ndarray:
     The primitive Wood cell when one exists (e.g. [[2, 1], [−1, 1]] for
     (√3×√3)R30° on a 120° basis); otherwise the reduced overlayer basis with the
     handedness of the input.
+
+    Parameters
+    ----------
+    substrate : Net2D
+        Real-space substrate net (Å), rows a1, a2.
+    matrix : (2, 2) array_like of float
+        Real-space superstructure matrix M, ``overlayer = M @ substrate``.
+
+    Returns
+    -------
+    (2, 2) ndarray of float64
+        A matrix of the same lattice in a readable basis.
     """
     from .wood import wood_notation  # wood.py builds on this module, not the other way
 
@@ -485,6 +621,22 @@ def nice_matrix(substrate: Net2D, matrix) -> np.ndarray:
 def fraction_text(x: float, *, max_denominator: int = 12, tol: float = 1e-6, fmt: str = ".4g") -> str:
     """A number as a simple fraction when it is one (``1/2``, ``-2/3``, ``3``), else decimal.
 
+    Parameters
+    ----------
+    x : float
+        The number.
+    max_denominator : int, keyword-only
+        Largest denominator written as a fraction.
+    tol : float, keyword-only
+        Largest distance of `x` from that fraction.
+    fmt : str, keyword-only
+        Format of a number that is no simple fraction.
+
+    Returns
+    -------
+    str
+        The number as text.
+
     Examples
     --------
     >>> fraction_text(0.5), fraction_text(-2 / 3), fraction_text(3.0), fraction_text(0.1234567)
@@ -499,6 +651,20 @@ def fraction_text(x: float, *, max_denominator: int = 12, tol: float = 1e-6, fmt
 def beam_label(h: float, k: float, *, sep: str = ",", max_denominator: int = 12) -> str:
     """Beam label in substrate units, e.g. ``(1/2,0)``, ``(-1,1)``; `sep` joins h and k.
 
+    Parameters
+    ----------
+    h, k : float
+        Beam indices in the substrate's reciprocal basis.
+    sep : str, keyword-only
+        Text between h and k.
+    max_denominator : int, keyword-only
+        Largest denominator written as a fraction.
+
+    Returns
+    -------
+    str
+        The label.
+
     Examples
     --------
     >>> beam_label(0.5, 0.0), beam_label(2 / 3, -1 / 3, sep=", ")
@@ -510,6 +676,18 @@ def beam_label(h: float, k: float, *, sep: str = ",", max_denominator: int = 12)
 
 def format_matrix(matrix, *, digits: int = 3) -> str:
     """``(m11 m12 / m21 m22)`` with integers and small fractions shown exactly.
+
+    Parameters
+    ----------
+    matrix : (2, 2) array_like of float
+        Real-space superstructure matrix M, ``overlayer = M @ substrate``.
+    digits : int, keyword-only
+        Significant digits of entries that are not simple fractions.
+
+    Returns
+    -------
+    str
+        The matrix on one line, rows separated by ``/``.
 
     Examples
     --------
@@ -536,6 +714,16 @@ def parse_matrix(text: str) -> np.ndarray:
 
     Fractions like ``3/2`` are allowed only with the row separator ``;`` or in
     brackets form. Raises NetError naming what was given.
+
+    Parameters
+    ----------
+    text : str
+        The matrix as typed.
+
+    Returns
+    -------
+    (2, 2) ndarray of float64
+        The real-space superstructure matrix, rows as typed.
     """
     if not isinstance(text, str) or not text.strip():
         raise NetError("Empty matrix; write four numbers like '2 1 / -1 1' or '[[2,1],[-1,1]]'.")
