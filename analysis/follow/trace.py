@@ -260,14 +260,15 @@ class BeamFollower:
         if sat is None and np.issubdtype(frame.dtype, np.integer):
             sat = float(np.iinfo(frame.dtype).max)
         g, e, o = self.beams.g_par, self.energy_eV, self.opts
-        if self.ann is None:
-            self.geometry, self.r_ap, self.ann, self.sigma = _bootstrap(
-                frame, e, g, self.geometry, self._mask_map, sat, self.r_ap, None, None, o["search_px"],
-                o["min_snr"], ("center", "scale"), None)
-        geom = self.geometry
-        inten, sig, xy, flags, bgpx, okpos, s_est = _one_frame(
-            frame, e, g, geom, self._mask_map, sat, self.r_ap, self.ann, o["background"], o["method"],
-            o["search_px"], o["min_snr"], o["gain"], self.sigma)
+        with np.errstate(invalid="ignore", divide="ignore", over="ignore"):  # windows of blank pixels
+            if self.ann is None:
+                self.geometry, self.r_ap, self.ann, self.sigma = _bootstrap(
+                    frame, e, g, self.geometry, self._mask_map, sat, self.r_ap, None, None, o["search_px"],
+                    o["min_snr"], ("center", "scale"), None)
+            geom = self.geometry
+            inten, sig, xy, flags, bgpx, okpos, s_est = _one_frame(
+                frame, e, g, geom, self._mask_map, sat, self.r_ap, self.ann, o["background"], o["method"],
+                o["search_px"], o["min_snr"], o["gain"], self.sigma)
         if np.isfinite(s_est):
             self.sigma = s_est
         with np.errstate(invalid="ignore", divide="ignore"):
