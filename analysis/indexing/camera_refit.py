@@ -287,6 +287,26 @@ def refine_with_model(xy_px: np.ndarray, energy_eV: float, fit: SubstrateFit, mo
     and the centre; the reciprocal basis is kept unless `fit_lattice`. An
     irrational (incommensurate) model has no exact indices: its basis is fitted
     with the camera, satellites included. Only `reliable` spots (default all) enter the fit.
+
+    Parameters
+    ----------
+    xy_px : (K, 2) ndarray of float
+        Spot positions (x, y), pixels.
+    energy_eV : float
+        Electron energy, eV.
+    fit : SubstrateFit
+        The substrate reading to refine.
+    model : OverlayerModel
+        The overlayer model whose spots join the fit.
+    fit_lattice : bool, keyword-only
+        Fit the reciprocal basis too.
+    reliable : (K,) ndarray of bool, optional, keyword-only
+        Spots whose centres are trusted.
+
+    Returns
+    -------
+    SubstrateFit
+        The refined reading (`fit` itself when too few spots are explained).
     """
     xy = np.asarray(xy_px, dtype=np.float64).reshape(-1, 2)
     trusted = np.ones(len(xy), bool) if reliable is None else np.asarray(reliable, dtype=bool)

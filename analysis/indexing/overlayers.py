@@ -165,7 +165,21 @@ def _moire_period(m: np.ndarray, substrate: Net2D) -> float | None:
 
 
 def model_indices(hk: np.ndarray, model: OverlayerModel) -> np.ndarray:
-    """The exact (model) indices of the spots a model explains; NaN elsewhere. (K, 2)."""
+    """The exact (model) indices of the spots a model explains; NaN elsewhere. (K, 2).
+
+    Parameters
+    ----------
+    hk : (K, 2) ndarray of float
+        Fractional indices of the spots (substrate basis).
+    model : OverlayerModel
+        The model (its domains and which domain explains each spot).
+
+    Returns
+    -------
+    (K, 2) ndarray of float64
+        Exact indices in the substrate basis; integers for substrate beams, NaN for
+        spots the model leaves unexplained or explains only as satellites.
+    """
     out = np.full_like(np.asarray(hk, dtype=np.float64), np.nan)
     by = model.explained_by
     out[by == -2] = np.rint(hk[by == -2])
@@ -431,8 +445,17 @@ def evaluate_model(hk: np.ndarray, integer: np.ndarray, substrate_fit: Substrate
     integer : (K,) ndarray of bool
         Spots taken as substrate beams.
     substrate_fit : SubstrateFit
+        The substrate reading (camera model and reciprocal net).
     matrix : (2, 2) array_like
         Real-space matrix of one domain.
+    energy_eV : float, keyword-only
+        Electron energy, eV.
+    intensity : (K,) ndarray of float, optional, keyword-only
+        Integrated spot intensities (counts).
+    valid_mask : (M, N) ndarray of bool, optional, keyword-only
+        Pixels where a spot could be seen: predicted beams there without a spot count as absent.
+    tol_px : float, keyword-only
+        Matching tolerance, pixels.
     all_domains : bool
         Use every symmetry domain (a model typed by hand); otherwise the
         smallest set of domains that explains the spots (greedy).
@@ -444,6 +467,12 @@ def evaluate_model(hk: np.ndarray, integer: np.ndarray, substrate_fit: Substrate
     reliable : (K,) ndarray of bool, optional
         Spots whose centres are trusted; only they count in the score
         (the counts reported cover every spot).
+
+    Returns
+    -------
+    OverlayerModel
+        The matrix (first domain) with its domains, kind, Wood notation, coverage, counts
+        and score.
     """
     ctx = _context(hk, integer, substrate_fit, energy_eV, intensity, valid_mask, tol_px, reliable=reliable)
     sc = _score(ctx, matrix, all_domains=all_domains, satellites=satellites)
@@ -493,7 +522,28 @@ def _population_test(hk: np.ndarray, by: np.ndarray, intensity: np.ndarray, ops)
 
 
 def model_from_matrix(hk, integer, substrate_fit, matrix, *, energy_eV, **kw) -> OverlayerModel:
-    """A model typed by hand: every symmetry domain of `matrix` (see :func:`evaluate_model`)."""
+    """A model typed by hand: every symmetry domain of `matrix` (see :func:`evaluate_model`).
+
+    Parameters
+    ----------
+    hk : (K, 2) ndarray of float
+        Fractional indices of all spots (substrate basis).
+    integer : (K,) ndarray of bool
+        Spots taken as substrate beams.
+    substrate_fit : SubstrateFit
+        The substrate reading.
+    matrix : (2, 2) array_like of float
+        Real-space matrix of one domain.
+    energy_eV : float, keyword-only
+        Electron energy, eV.
+    **kw
+        The other options of :func:`evaluate_model`.
+
+    Returns
+    -------
+    OverlayerModel
+        The model with every symmetry domain of `matrix`.
+    """
     return evaluate_model(hk, integer, substrate_fit, matrix, energy_eV=energy_eV, all_domains=True, **kw)
 
 
@@ -516,6 +566,31 @@ def find_overlayers(hk: np.ndarray, integer: np.ndarray, substrate_fit: Substrat
     -------
     list of OverlayerModel
         Best first. A clean surface gives one model, the identity, kind ``none``.
+
+    Parameters
+    ----------
+    hk : (K, 2) ndarray of float
+        Fractional indices of all spots (substrate basis).
+    integer : (K,) ndarray of bool
+        Spots taken as substrate beams.
+    substrate_fit : SubstrateFit
+        The substrate reading (camera model and reciprocal net).
+    energy_eV : float, keyword-only
+        Electron energy, eV.
+    intensity : (K,) ndarray of float, optional, keyword-only
+        Integrated spot intensities (counts).
+    valid_mask : (M, N) ndarray of bool, optional, keyword-only
+        Pixels where a spot could be seen: predicted beams there without a spot count as absent.
+    tol_px : float, keyword-only
+        Matching tolerance, pixels.
+    max_det : float, keyword-only
+        Largest cell area tried, in substrate cells.
+    max_denominator : int, keyword-only
+        Largest denominator of a coincidence matrix.
+    n_results : int, keyword-only
+        Models returned at most.
+    reliable : (K,) ndarray of bool, optional, keyword-only
+        Spots whose centres are trusted; only they count in the score.
     """
     ctx = _context(hk, integer, substrate_fit, energy_eV, intensity, valid_mask, tol_px, max_denominator, reliable)
     if int((~ctx.integer).sum()) == 0:

@@ -128,6 +128,20 @@ def predicted_beams(fit: SubstrateFit, model: OverlayerModel | None, energy_eV: 
     Each net is enumerated inside the screen's momentum radius (:mod:`analysis.lattice`),
     in lexicographic order of its integer coordinates; a net far finer than the
     screen (more than 200 000 candidates) gives no beams.
+
+    Parameters
+    ----------
+    fit : SubstrateFit
+        The substrate reading (camera model and reciprocal net).
+    model : OverlayerModel or None
+        The overlayer model; None for the substrate beams only.
+    energy_eV : float
+        Electron energy, eV.
+
+    Returns
+    -------
+    PredictedBeams
+        Integer beams and each domain's fractional beams, with (x, y) pixels.
     """
     lat = fit.reciprocal_net.vectors
     geom = fit.geometry

@@ -103,6 +103,16 @@ _FRACTIONS = {0.25: "¼", 0.5: "½", 0.75: "¾"}
 def formula(terms: tuple) -> str:
     """The score as the docstrings write it, from a table of terms.
 
+    Parameters
+    ----------
+    terms : tuple of Term
+        The table (:data:`OVERLAYER_TERMS` or :data:`SUBSTRATE_TERMS`).
+
+    Returns
+    -------
+    str
+        ``"score = ..."`` with the weights as fractions where they are ¼, ½ or ¾.
+
     Examples
     --------
     >>> print(formula(SUBSTRATE_TERMS))
@@ -187,12 +197,18 @@ def overlayer_breakdown(*, explained: int, satellites: int, unexplained: int, n_
     explained, satellites, unexplained : int
         E, S and U over the trusted spots.
     n_domains : int
+        D, the domains used.
     det : float
         |det M| of the first domain.
     miss : (K,) ndarray of float, optional
         Miss of each explained trusted spot, in tolerances.
     own_log_i, satellite_log_i : ndarray of float, optional
         Log intensities of the layer's own beams and of its satellite-only spots.
+
+    Returns
+    -------
+    ScoreBreakdown
+        The :data:`OVERLAYER_TERMS` values; ``absent``, ``irrational`` and ``populations`` are 0.
 
     Examples
     --------
@@ -214,6 +230,26 @@ def substrate_breakdown(*, completeness: float, indexable: float, brightness_log
                         z: float | None, residual_rms_px: float, tol_px: float) -> ScoreBreakdown:
     """The substrate terms of one reading (``z`` None: no scale prior).
 
+    Parameters
+    ----------
+    completeness : float, keyword-only
+        C, the fraction (0–1) of predicted integer beams in the seen region that were found.
+    indexable : float, keyword-only
+        X, the fraction (0–1) of spots on integer or simple fractional positions.
+    brightness_log_ratio : float, keyword-only
+        ΔlogI, the integer spots' median log intensity over the others' 90th percentile.
+    z : float or None, keyword-only
+        The camera scale's distance from the screen-size prior, in prior widths.
+    residual_rms_px : float, keyword-only
+        RMS pixel residual of the fit (per coordinate).
+    tol_px : float, keyword-only
+        The matching tolerance, pixels.
+
+    Returns
+    -------
+    ScoreBreakdown
+        The :data:`SUBSTRATE_TERMS` values.
+
     Examples
     --------
     >>> b = substrate_breakdown(completeness=1.0, indexable=1.0, brightness_log_ratio=0.0, z=1.0,
@@ -231,6 +267,18 @@ def substrate_breakdown(*, completeness: float, indexable: float, brightness_log
 def irrational_handicap(explained: int, n_domains: int) -> float:
     """H of an irrational (incommensurate) model that explains `explained` spots with `n_domains` domains.
 
+    Parameters
+    ----------
+    explained : int
+        E′, every spot the model explains.
+    n_domains : int
+        Domains the model uses.
+
+    Returns
+    -------
+    float
+        H = 1.5 + 0.05·E′ + 2·(D − 1).
+
     Examples
     --------
     >>> print(irrational_handicap(10, 1), irrational_handicap(10, 2))
@@ -241,6 +289,18 @@ def irrational_handicap(explained: int, n_domains: int) -> float:
 
 def population_gain(ratio: float, n_domains: int) -> float:
     """P of a rational multi-domain model whose population test gave the variance ratio `ratio`.
+
+    Parameters
+    ----------
+    ratio : float
+        Variance ratio of the population test (> 0).
+    n_domains : int
+        Domains the model uses.
+
+    Returns
+    -------
+    float
+        P = D·tanh(max(ln r − ln 2, 0)).
 
     Examples
     --------

@@ -126,6 +126,7 @@ def fit_substrate(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity
     xy_px : (K, 2) ndarray
         Spot centres (x, y), pixels.
     energy_eV : float
+        Electron energy, eV.
     hint : Net2D
         The substrate's (1×1) real-space net (from :func:`analysis.nets.parse_substrate`).
     intensity : (K,) ndarray, optional
@@ -149,6 +150,10 @@ def fit_substrate(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity
         Fit a*, b*, γ* freely (default: True when `geometry` is given).
     tol_px : float
         Final matching tolerance, pixels.
+    n_candidates : int, keyword-only
+        Starting spot pairs tried.
+    max_results : int, keyword-only
+        Readings returned at most.
     reference_a_star_px : (2, 2) array_like, optional
         The substrate's reciprocal basis in pixels as a reference image showed it.
         The spots nearest to its first-order beams start readings first (a dense
@@ -255,6 +260,22 @@ def along_reference(a_star_px, reference_a_star_px, *, tol_deg: float = 3.0, len
     ...                              [-np.sin(np.radians(deg)), np.cos(np.radians(deg))]])
     >>> along_reference(ref @ turn(60.0), ref), along_reference(ref @ turn(38.2), ref)
     (True, False)
+
+    Parameters
+    ----------
+    a_star_px : (2, 2) array_like of float
+        A reading's reciprocal basis in pixels, rows a1*, a2*.
+    reference_a_star_px : (2, 2) array_like of float
+        The reference image's reciprocal basis in pixels.
+    tol_deg : float, keyword-only
+        Largest angle between a row and a reference vector, degrees.
+    len_rtol : float, keyword-only
+        Largest relative difference of their lengths.
+
+    Returns
+    -------
+    bool
+        True when both rows agree.
     """
     ref = np.asarray(reference_a_star_px, dtype=np.float64)
     short = _short_beams(ref)
@@ -394,6 +415,21 @@ def _try_substrate(xy, tree, inten, energy_eV, a_star, e, v, center, geometry, l
 
 
 def fractional_indices(xy_px: np.ndarray, energy_eV: float, fit: SubstrateFit) -> np.ndarray:
-    """(h, k) in the fitted substrate reciprocal basis for (x, y) pixel positions, (K, 2)."""
+    """(h, k) in the fitted substrate reciprocal basis for (x, y) pixel positions, (K, 2).
+
+    Parameters
+    ----------
+    xy_px : (K, 2) ndarray of float
+        Spot positions (x, y), pixels.
+    energy_eV : float
+        Electron energy, eV.
+    fit : SubstrateFit
+        The substrate reading (camera model and reciprocal net).
+
+    Returns
+    -------
+    (K, 2) ndarray of float64
+        (h, k) of each position; integers on substrate beams.
+    """
     g = pixels_to_momentum(np.asarray(xy_px, dtype=np.float64).reshape(-1, 2), energy_eV, fit.geometry)
     return g @ np.linalg.inv(fit.reciprocal_net.vectors)
