@@ -79,30 +79,39 @@ def test_line_profile_widths_domain_size_and_spot_table(page, live_server, tmp_p
     rows = list(csv.DictReader(io.StringIO("\n".join(l for l in body.splitlines() if not l.startswith("#")))))
     assert len(rows) >= 20 and {"label", "fwhm_radial_px", "domain_size_A", "flags"} <= set(rows[0])
 
-    # draw a line from the (0,0) beam to a (½ 0) beam (truth positions from the renderer)
+    # draw a line from the (−1 0) beam across (−½ 0), (0 0) and (½ 0) to the (1 0) beam (truth positions
+    # from the renderer); the drag starts away from the centre circle, which a drag would move
     spots = im.truth["spots"]
-    s00 = next(s for s in spots if s["h"] == 0 and s["k"] == 0)
-    half = next(s for s in spots if s["h"] == 0.5 and s["k"] == 0)
+    beam = {(s["h"], s["k"]): s for s in spots}
+    a_s, b_s = beam[(-1.0, 0.0)], beam[(1.0, 0.0)]
     page.click("#profile-draw")
     page.locator("#graph").scroll_into_view_if_needed()
     page.wait_for_timeout(300)
     box = page.locator("#graph .nsewdrag").first.bounding_box()
-    # from the (½ 0) beam to the centre (a drag that starts on the centre circle would move it)
-    a = _screen_xy(box, half["x"], half["y"], 512, 512)
-    b = _screen_xy(box, s00["x"], s00["y"], 512, 512)
+    a = _screen_xy(box, a_s["x"], a_s["y"], 512, 512)
+    b = _screen_xy(box, b_s["x"], b_s["y"], 512, 512)
     page.mouse.move(*a)
     page.mouse.down()
-    page.mouse.move(*b, steps=12)
+    page.mouse.move(*b, steps=15)
     page.mouse.up()
     page.wait_for_function("document.querySelector('#profile-x0').value !== ''")
     ends = [float(page.input_value(f"#profile-{k}")) for k in ("x0", "y0", "x1", "y1")]
     tol = 2.0 * 512 / box["width"] + 0.5  # two screen pixels of the drag, in image pixels
-    assert np.allclose(ends, [half["x"], half["y"], s00["x"], s00["y"]], atol=tol), ends
+    assert np.allclose(ends, [a_s["x"], a_s["y"], b_s["x"], b_s["y"]], atol=tol), ends
     page.wait_for_selector("#profile-graph .scatterlayer .trace", state="attached")
-    page.locator(f"#profile-unit").get_by_text("% BZ", exact=True).click()
+    page.locator("#profile-unit").get_by_text("% BZ", exact=True).click()
     page.wait_for_function("document.querySelector('#profile-graph').innerText.includes('% of |a*|')")
+    page.locator("#profile-scale").get_by_text("log", exact=True).click()
+    page.wait_for_function("document.querySelector('#profile-graph .js-plotly-plot').layout.yaxis.type === 'log'")
+    # the profile runs over two Brillouin zones: from (−1 0) to (1 0) is 2 |a*| (truth: the beams' indices)
+    x_end = page.evaluate("(x => x[x.length - 1])(document.querySelector('#profile-graph .js-plotly-plot')._fullData[0].x)")
+    assert abs(x_end - 200.0) < 2.0, x_end
     page.wait_for_timeout(500)
+    # the drawn line stays on the pattern
+    shapes = page.evaluate("document.querySelector('#graph .js-plotly-plot').layout.shapes.map(s => s.type)")
+    assert "line" in shapes, shapes
     SHOTS.mkdir(parents=True, exist_ok=True)
+    page.locator("#graph").screenshot(path=str(SHOTS / "profile-line-on-pattern.png"))
     page.locator("#profile-panel").screenshot(path=str(SHOTS / "line-profile.png"))
     page.locator("#widths-panel").screenshot(path=str(SHOTS / "spot-table.png"))
     page.screenshot(path=str(SHOTS / "profile-page.png"), full_page=True)

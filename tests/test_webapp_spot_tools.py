@@ -89,7 +89,8 @@ def test_profile_across_a_fractional_beam(analysed):
     n = len(y)
     assert y[0] > 5 * np.median(y)  # the line starts on the bright (0,0) beam...
     assert y[-1] > y[int(0.8 * n)] + 20  # ...and ends on the broad, faint (½ 0) beam: the profile rises to it
-    fig_px, _ = spot_tools.show_profile(s00["x"], s00["y"], half["x"], half["y"], 3, "px", image, record)
+    fig_px, _ = spot_tools.show_profile(s00["x"], s00["y"], half["x"], half["y"], 3, "px", image, record, "log")
+    assert fig_px.layout.yaxis.type == "log" and fig.layout.yaxis.type == "linear"
     assert abs(np.asarray(fig_px.data[0].x)[-1] - np.hypot(half["x"] - s00["x"], half["y"] - s00["y"])) < 1e-6
     sent, msg = _call(spot_tools.profile_csv, "profile-csv.n_clicks", 1, s00["x"], s00["y"], half["x"], half["y"],
                       3, image, record)

@@ -15,11 +15,12 @@ _AXIS = {"px": "distance along the line (px)", "invA": "distance along the line 
          "bz": "distance along the line (% of |a*|)"}
 
 
-def profile_figure(profile, unit: str = "px", *, height: int = 300) -> go.Figure:
+def profile_figure(profile, unit: str = "px", *, log: bool = False, height: int = 300) -> go.Figure:
     """Intensity along a :class:`analysis.profile_line.LineProfile`; an empty figure for None.
 
     `unit` is one of :data:`PROFILE_UNITS`' values; momentum units fall back to px when the
-    profile has no camera model.
+    profile has no camera model. `log` draws the intensity on a log axis (faint, broad
+    fractional beams beside sharp integer ones).
     """
     if profile is None:
         return empty_figure("Draw a line on the pattern to see its profile", height=height)
@@ -34,6 +35,7 @@ def profile_figure(profile, unit: str = "px", *, height: int = 300) -> go.Figure
                       "<extra></extra>"))
     fig.update_layout(template="plotly_white", height=height, margin=dict(l=55, r=10, t=10, b=45),
                       xaxis=dict(title=_AXIS[unit], zeroline=False),
-                      yaxis=dict(title=f"mean intensity across {profile.width_px:g} px", zeroline=False),
+                      yaxis=dict(title=f"mean intensity across {profile.width_px:g} px", zeroline=False,
+                                 type="log" if log else "linear"),
                       showlegend=False)
     return fig

@@ -62,6 +62,9 @@ def tools_panels(*, readonly: bool = False):
             html.Label("distance in", htmlFor=ids.PROFILE_UNIT),
             dcc.RadioItems(id=ids.PROFILE_UNIT, inline=True, value="px",
                            options=[{"label": l, "value": v} for v, l in PROFILE_UNITS]),
+            html.Label("intensity", htmlFor=ids.PROFILE_SCALE),
+            dcc.RadioItems(id=ids.PROFILE_SCALE, inline=True, value="linear",
+                           options=[{"label": "linear", "value": "linear"}, {"label": "log", "value": "log"}]),
         ]),
         dcc.Graph(id=ids.PROFILE_GRAPH, figure=profile_figure(None), config={"displaylogo": False},
                   style={"height": "300px"}),
@@ -152,8 +155,9 @@ def _profile(image, record, x0, y0, x1, y1, width):
     return p, None
 
 
-def show_profile(x0, y0, x1, y1, width, unit, image, record):
+def show_profile(x0, y0, x1, y1, width, unit, image, record, scale="linear"):
     """The profile figure and a note (plain message for bad input)."""
+    log = scale == "log"
     try:
         p, msg = _profile(image, record, x0, y0, x1, y1, width)
     except Exception as err:  # noqa: BLE001
@@ -161,9 +165,9 @@ def show_profile(x0, y0, x1, y1, width, unit, image, record):
     if p is None:
         return profile_figure(None), note(msg, "warn") if msg else None
     if unit != "px" and p.distance_invA is None:
-        return profile_figure(p, "px"), note("Momentum units need an analysis (its camera model); shown in px.",
-                                            "warn")
-    return profile_figure(p, unit or "px"), note(
+        return profile_figure(p, "px", log=log), note(
+            "Momentum units need an analysis (its camera model); shown in px.", "warn")
+    return profile_figure(p, unit or "px", log=log), note(
         f"{len(p)} samples over {p.distance_px[-1]:.1f} px, averaged across {p.width_px:g} px.", "ok")
 
 
@@ -251,7 +255,7 @@ callback(Output(ids.PROFILE_X0, "value"), Output(ids.PROFILE_Y0, "value"), Outpu
 callback(Output(ids.PROFILE_GRAPH, "figure"), Output(ids.PROFILE_NOTE, "children"),
          Input(ids.PROFILE_X0, "value"), Input(ids.PROFILE_Y0, "value"), Input(ids.PROFILE_X1, "value"),
          Input(ids.PROFILE_Y1, "value"), Input(ids.PROFILE_WIDTH, "value"), Input(ids.PROFILE_UNIT, "value"),
-         Input(ids.IMAGE, "data"), Input(ids.RESULT, "data"))(show_profile)
+         Input(ids.IMAGE, "data"), Input(ids.RESULT, "data"), Input(ids.PROFILE_SCALE, "value"))(show_profile)
 callback(Output(ids.PROFILE_DOWNLOAD, "data"), Output(ids.PROFILE_NOTE, "children", allow_duplicate=True),
          Input(ids.PROFILE_CSV, "n_clicks"), State(ids.PROFILE_X0, "value"), State(ids.PROFILE_Y0, "value"),
          State(ids.PROFILE_X1, "value"), State(ids.PROFILE_Y1, "value"), State(ids.PROFILE_WIDTH, "value"),
