@@ -105,6 +105,7 @@ def estimate_center_from_pairs(xy_px, *, sigma_px=None, tol_px: float | None = N
     initial_xy : (x, y), optional, keyword-only
         Start of the refinement instead of the vote (e.g. the gun-disk centre).
     min_pairs : int, keyword-only
+        Fewest symmetric pairs accepted.
 
     Returns
     -------
@@ -317,6 +318,8 @@ def fit_geometry(xy_px, k_par=None, energy_eV=None, *, hk=None, substrate: Net2D
         also held when all spots share one exit angle (one ring, one energy).
     sigma_px : float or (K,) array_like, optional, keyword-only
         Position uncertainty per spot; default: from the residuals.
+    relativistic : bool, keyword-only
+        Use the relativistic wavelength.
     acceptance_deg : float, optional, keyword-only
         Stored in the result (default `initial`'s, or 52°).
 
@@ -487,14 +490,21 @@ def calibrate_from_reference(xy_px, substrate: Net2D, energy_eV: float, *, cente
     substrate : Net2D
         Real-space (1×1) net, Å.
     energy_eV : float
+        Electron energy of the reference image, eV.
     center_xy : (x, y), optional, keyword-only
-        Default: :func:`estimate_center_from_pairs`.
+        Pattern centre, pixels. Default: :func:`estimate_center_from_pairs`.
     tol : float, keyword-only
         First match tolerance as a fraction of the first-order radius (it
         shrinks to 5 × the fit's RMS once a geometry is fitted).
-    fix : keyword-only
+    max_order : int, keyword-only
+        Largest |h|, |k| of the integer beams tried.
+    fix : iterable of str, keyword-only
         Passed to :func:`fit_geometry`; with fewer than 8 indexed spots the
         ellipticity is fixed too, with fewer than 6 also the distortion.
+    relativistic : bool, keyword-only
+        Use the relativistic wavelength.
+    acceptance_deg : float, keyword-only
+        Polar half-angle the screen accepts, degrees.
 
     Returns
     -------

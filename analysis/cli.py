@@ -242,7 +242,18 @@ def _read_geometry(path) -> ScreenGeometry:
 
 
 def add_iv_parser(subparsers) -> argparse.ArgumentParser:
-    """Add the ``iv`` command to an argparse sub-parser collection; returns its parser."""
+    """Add the ``iv`` command to an argparse sub-parser collection; returns its parser.
+
+    Parameters
+    ----------
+    subparsers : argparse._SubParsersAction
+        What ``ArgumentParser.add_subparsers`` returned.
+
+    Returns
+    -------
+    argparse.ArgumentParser
+        The ``iv`` parser.
+    """
     from .series.energies import DEFAULT_NAME_PATTERN
 
     p = subparsers.add_parser(
@@ -405,6 +416,13 @@ def _cmd_iv(args) -> int:
 
 
 def build_parser() -> argparse.ArgumentParser:
+    """The ``recinet`` parser with every command.
+
+    Returns
+    -------
+    argparse.ArgumentParser
+        Each command's parser sets ``func``, the function that runs it.
+    """
     p = argparse.ArgumentParser(prog="recinet", description="Analyse LEED patterns: spots, nets, superstructures, I(V).")
     p.add_argument("--version", action="version", version=f"recinet {_version()}")
     sub = p.add_subparsers(dest="command", required=True)
@@ -452,6 +470,18 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: list[str] | None = None) -> int:
+    """Run one ``recinet`` command; errors are one line on stderr.
+
+    Parameters
+    ----------
+    argv : list of str, optional
+        The arguments after the program name; default ``sys.argv[1:]``.
+
+    Returns
+    -------
+    int
+        The exit status: the command's own (0 on success), 2 after an error.
+    """
     parser = build_parser()
     args = parser.parse_args(argv)
     try:

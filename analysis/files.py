@@ -23,6 +23,7 @@ def write_text_atomic(path, text: str, *, mode: int = 0o666) -> Path:
     path : str or os.PathLike
         The file to write; its folder must exist.
     text : str
+        The content.
     mode : int, keyword-only
         Permission bits of the new file before the umask, as for :func:`os.open`
         (0o600: readable by its owner only).

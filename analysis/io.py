@@ -88,12 +88,14 @@ def to_luminance(arr: np.ndarray, *, name: str = "image") -> np.ndarray:
     Parameters
     ----------
     arr : (M, N) or (M, N, C) ndarray, C in 1..4
-    name : str
+        The pixels; alpha is dropped, colour weighted by the ITU-R BT.601 luma weights.
+    name : str, keyword-only
         Used in the error message.
 
     Returns
     -------
     (M, N) ndarray of float64
+        The luminance.
 
     Examples
     --------
@@ -336,6 +338,8 @@ def load_image(source, *, dark=None, flat=None, max_pixels: int = MAX_PIXELS,
         Refuse images with more pixels (guard against decompression bombs).
     max_bytes : int, keyword-only
         Refuse files larger than this.
+    _allow_constant : bool, keyword-only
+        Accept an image whose pixels are all equal (for internal callers only).
 
     Returns
     -------

@@ -12,6 +12,17 @@ __all__ = ["json_safe"]
 def json_safe(x):
     """Plain JSON value: Python floats (None for NaN and ±inf), ints, bools, lists, str-keyed dicts.
 
+    Parameters
+    ----------
+    x : object
+        A value made of numbers (numpy scalars and arrays included), str, bool, None,
+        lists, tuples and dicts.
+
+    Returns
+    -------
+    object
+        The same value in plain JSON types.
+
     Examples
     --------
     >>> json_safe({"a": np.array([1.5, np.nan]), 2: (np.int64(3), np.bool_(True))})

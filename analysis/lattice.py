@@ -31,6 +31,11 @@ def screen_g_max(energy_eV: float, acceptance_deg: float, *, relativistic: bool 
     relativistic : bool, keyword-only
         Use the relativistic wavelength (:func:`analysis.optics.wavelength_A`).
 
+    Returns
+    -------
+    float
+        |g|max in Å⁻¹ (no 2π).
+
     Examples
     --------
     >>> print(round(screen_g_max(100.0, 90.0), 6))  # 1 / λ at 100 eV

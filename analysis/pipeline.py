@@ -30,7 +30,25 @@ _MIN_EV, _MAX_EV = 5.0, 5000.0
 
 
 def check_energy(energy_eV, name: str = "energy") -> float:
-    """Validate a LEED beam energy in eV (5 to 5000 eV); returns it as float."""
+    """Validate a LEED beam energy in eV (5 to 5000 eV); returns it as float.
+
+    Parameters
+    ----------
+    energy_eV : float
+        The energy as given (any number-like value).
+    name : str
+        What the message calls it (e.g. ``"reference energy"``).
+
+    Returns
+    -------
+    float
+        The energy in eV.
+
+    Raises
+    ------
+    ParameterError
+        When it is not a finite number between 5 and 5000 eV.
+    """
     try:
         e = float(energy_eV)
     except (TypeError, ValueError):
@@ -317,6 +335,13 @@ def analyze_image(image, *, energy_eV: float, substrate: str | Net2D, reference=
 
 def try_model(result: AnalysisResult, text: str):
     """Score a model typed by hand (a matrix like ``"2 1 / -1 1"`` or a Wood notation).
+
+    Parameters
+    ----------
+    result : AnalysisResult
+        An analysis of the image (its spots and substrate reading are reused).
+    text : str
+        The model: a real-space matrix or a Wood notation on the analysed substrate.
 
     Returns
     -------

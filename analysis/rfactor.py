@@ -240,7 +240,18 @@ def zanazzi_jona_r(energy_eV, intensity_a, intensity_b, *, energy_b_eV=None,
                    step_eV: float | None = None) -> float:
     """Reduced Zanazzi–Jona R-factor between curve a (experiment) and curve b.
 
-    Parameters and missing-point rules as in :func:`pendry_r`.
+    Missing-point rules as in :func:`pendry_r`.
+
+    Parameters
+    ----------
+    energy_eV : (N,) array_like of float
+        Energies of `intensity_a` (eV, strictly increasing).
+    intensity_a, intensity_b : array_like of float
+        Experiment and the curve compared with it; NaN marks missing points.
+    energy_b_eV : (M,) array_like of float, optional, keyword-only
+        Energies of `intensity_b` when they differ from `energy_eV`.
+    step_eV : float, optional, keyword-only
+        Step of the common grid (default: the finer of the two steps).
 
     Returns
     -------
@@ -297,8 +308,9 @@ def r_factor(curves_a: Sequence[tuple], curves_b: Sequence[tuple], *, kind: str 
         overlap automatically). Zanazzi–Jona: the mean of the beams' reduced R_ZJ,
         weighted by each beam's compared energy range.
     v0i_eV : float, keyword-only
-    step_eV : float, optional
-        Common-grid step where a pair's energies differ.
+        Imaginary part of the inner potential, eV (Pendry only).
+    step_eV : float, optional, keyword-only
+        Common-grid step where a pair's energies differ (eV).
 
     Returns
     -------
@@ -345,6 +357,10 @@ def pairwise_pendry_r(curves: Sequence[tuple], *, v0i_eV: float = 4.0,
     ----------
     curves : sequence of (energy_eV, intensity) pairs
         Two or more curves that symmetry says should be identical.
+    v0i_eV : float, keyword-only
+        Imaginary part of the inner potential, eV.
+    step_eV : float, optional, keyword-only
+        Common-grid step where a pair's energies differ (eV).
 
     Returns
     -------

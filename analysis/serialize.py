@@ -99,7 +99,18 @@ def predicted_spots(beams: PredictedBeams) -> dict:
 
 
 def model_to_dict(model: OverlayerModel) -> dict:
-    """One overlayer model as a JSON-safe dict (see the module docstring)."""
+    """One overlayer model as a JSON-safe dict (see the module docstring).
+
+    Parameters
+    ----------
+    model : OverlayerModel
+        The model.
+
+    Returns
+    -------
+    dict
+        Kind, matrix, domains, Wood notation, coverage, net, counts, score and its terms.
+    """
     m = np.asarray(model.matrix, dtype=np.float64)
     over = model.net
     wn = model.details.wood_notation if model.details is not None else None
@@ -141,7 +152,18 @@ def model_to_dict(model: OverlayerModel) -> dict:
 
 
 def result_to_dict(result) -> dict:
-    """An :class:`analysis.pipeline.AnalysisResult` as the JSON contract dict."""
+    """An :class:`analysis.pipeline.AnalysisResult` as the JSON contract dict.
+
+    Parameters
+    ----------
+    result : AnalysisResult
+        What :func:`analysis.pipeline.analyze_image` returned.
+
+    Returns
+    -------
+    dict
+        JSON-safe, with the keys listed in the module docstring; pixels as (x, y).
+    """
     idx = result.index
     fit = idx.substrate
     best = idx.best
@@ -230,6 +252,16 @@ _REQUIRED = {"center_px": list, "spots": list, "substrate": dict, "overlayer": d
 
 def check_result_dict(d) -> dict:
     """Validate an analysis dict read back from JSON (e.g. an import); returns it.
+
+    Parameters
+    ----------
+    d : dict
+        The decoded JSON.
+
+    Returns
+    -------
+    dict
+        `d` itself.
 
     Raises
     ------

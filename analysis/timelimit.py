@@ -39,6 +39,18 @@ def time_limit(seconds: float | None, what: str = "the work"):
     ... except TimeLimitError as err:
     ...     print(err)
     Stopped a nap after its time limit of 0.05 s; try a smaller image or fewer frames.
+
+    Parameters
+    ----------
+    seconds : float or None
+        The limit, seconds of wall time.
+    what : str
+        What the message calls the work.
+
+    Yields
+    ------
+    None
+        The block runs inside the limit.
     """
     if seconds is None:
         yield

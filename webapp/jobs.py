@@ -6,9 +6,43 @@ gunicorn worker); Celery with Redis when ``RECINET_CELERY_BROKER`` is set.
 
 from __future__ import annotations
 
+import secrets
+import threading
+
 from .settings import Settings
 
 __all__ = ["make_manager", "progress_reporter", "job_controls"]
+
+
+class _OneResultPerJob:
+    """Every job gets its own result, and a result written between two looks is not lost.
+
+    Dash keys a job's result by the callback and its arguments, and deletes it once read. Two
+    visitors analysing the same image with the same parameters at once shared one key: the
+    first poll to read took the result, and the other page was told "no update" and never
+    showed one (seen under gunicorn -w 2 with eight clients on six demo images). Each job's
+    key therefore carries a random suffix.
+
+    On each poll Dash reads the result, then asks whether the job still runs; "no result" and
+    "not running" mean no update, and the browser stops waiting. A job that writes its result
+    and ends between those two looks would lose it the same way, so a job whose result waits
+    (the key read last in this thread) counts as running; the next poll reads it.
+    """
+
+    _last = threading.local()
+
+    def build_cache_key(self, fn, args, cache_args_to_ignore, triggered):
+        return f"{super().build_cache_key(fn, args, cache_args_to_ignore, triggered)}-{secrets.token_hex(8)}"
+
+    def get_result(self, key, job):
+        self._last.key = key
+        return super().get_result(key, job)
+
+    def job_running(self, job):
+        key = self._last.__dict__.pop("key", None)
+        if super().job_running(job):
+            return True
+        return key is not None and bool(self.result_ready(key))
 
 
 def make_manager(settings: Settings):
@@ -17,13 +51,19 @@ def make_manager(settings: Settings):
         from celery import Celery  # pip install "celery[redis]"
         from dash import CeleryManager
 
+        class _Celery(_OneResultPerJob, CeleryManager):
+            pass
+
         celery_app = Celery("recinet", broker=settings.celery_broker, backend=settings.celery_broker)
-        return CeleryManager(celery_app), celery_app
+        return _Celery(celery_app), celery_app
     import diskcache
     from dash import DiskcacheManager
 
+    class _Diskcache(_OneResultPerJob, DiskcacheManager):
+        pass
+
     settings.cache_dir.mkdir(parents=True, exist_ok=True)
-    return DiskcacheManager(diskcache.Cache(str(settings.cache_dir))), None
+    return _Diskcache(diskcache.Cache(str(settings.cache_dir))), None
 
 
 def progress_reporter(set_progress, *, start: float = 0.0, span: float = 100.0):
