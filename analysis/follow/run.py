@@ -290,11 +290,18 @@ class LiveSeries:
         known = self.follower.beams.hk
         d = np.min(np.max(np.abs(frac[:, None, :] - known[None, :, :]), axis=2), axis=1)
         new = snap_fractional(frac[d > _TOL_HK], tol=_TOL_HK)
+        # a beam, not a stray spot: seen in two frames, or seen with a symmetry image of it
+        # (another spot of its family, not its own position) in the same frame
+        from .segments import _hk_ops
+
+        ops = _hk_ops(self.reference.substrate)
+        keys = [tuple(np.rint(h * 840).astype(int).tolist()) for h in new]
+        fam = [min(tuple(np.mod(np.rint((h @ op) * 840).astype(int), 840).tolist()) for op in ops) for h in new]
         add = []
-        for h in new:
-            key = tuple(np.rint(h * 840).astype(int).tolist())
+        for h, key, f in zip(new, keys, fam):
             self.seen[key] = self.seen.get(key, 0) + 1
-            if self.seen[key] == 2:  # seen in two frames: a beam, not a stray spot
+            partners = sum(1 for k2, f2 in zip(keys, fam) if f2 == f and k2 != key)
+            if self.seen[key] == 2 or (self.seen[key] == 1 and partners >= 1):
                 add.append(h)
         if add:
             cand = self._on_screen(orbit_hk(self.reference.substrate, np.array(add)), self.follower.geometry,
