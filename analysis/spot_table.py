@@ -80,6 +80,31 @@ def _as_dict(result) -> tuple[dict, np.ndarray | None, list]:
     return d, meas.valid, names
 
 
+def _mask_from_dict(d: dict, img: np.ndarray):
+    """The valid pixels (screen minus gun shadow) rebuilt from an analysis dict's ``screen`` and
+    ``gun`` entries; None when they cannot be read."""
+    from .spots import find_gun_shadow, find_screen
+
+    try:
+        s, g = d.get("screen") or {}, d.get("gun") or {}
+        if s.get("source") in (None, "frame"):
+            valid = np.ones(img.shape, bool)
+            scr = None
+        else:
+            (x, y), (a, b) = s["center_px"], s["semi_axes_px"]
+            scr = find_screen(img, ellipse=(x, y, a, b, s.get("angle_deg", 0.0)), margin_px=s.get("margin_px", 3.0))
+            valid = scr.mask.copy()
+        if g.get("center_px") is not None and g.get("source") not in (None, "none") and scr is not None:
+            arm = g.get("arm_angle_deg")
+            gun = find_gun_shadow(img, scr, disk_xyr=(*g["center_px"], g["radius_px"]), arm_angle_deg=arm,
+                                  arm_width_px=g.get("arm_width_px") if arm is not None else None,
+                                  margin_px=g.get("margin_px", 3.0))
+            valid &= ~gun.mask
+        return valid
+    except (KeyError, TypeError, ValueError, ParameterError):
+        return None
+
+
 def _saturation(img: np.ndarray):
     return float(np.iinfo(img.dtype).max) if np.issubdtype(img.dtype, np.integer) else None
 
@@ -94,8 +119,8 @@ def measure_widths(image, result, *, mask=None) -> WidthReport:
     result : AnalysisResult or dict
         The analysis (or its JSON dict).
     mask : (M, N) ndarray of bool, optional, keyword-only
-        Valid pixels; default the analysis's own (screen minus gun shadow) when `result`
-        is an AnalysisResult, else every pixel.
+        Valid pixels; default the analysis's own (screen minus gun shadow): from its
+        measurement, or rebuilt from the dict's ``screen`` and ``gun`` entries.
 
     Returns
     -------
@@ -109,7 +134,7 @@ def measure_widths(image, result, *, mask=None) -> WidthReport:
     if img.ndim != 2 or tuple(img.shape) != shape:
         raise ParameterError(f"The image ({'x'.join(map(str, img.shape))}) is not the analysed one "
                              f"({'x'.join(map(str, shape))}).")
-    m = valid if mask is None else np.asarray(mask, bool)
+    m = np.asarray(mask, bool) if mask is not None else (valid if valid is not None else _mask_from_dict(d, img))
     spots = d["spots"]
     xy = np.array([[s["x"], s["y"]] for s in spots], float).reshape(-1, 2)
     geom = ScreenGeometry.from_dict(d["geometry"])
@@ -145,6 +170,7 @@ def spot_rows(result, *, widths: WidthReport | None = None) -> list[dict]:
     Returns
     -------
     list of dict
+        ``domain`` counts from 1 (as the page shows it; the JSON's ``domain`` counts from 0).
         ``flags`` is text: the spot fit's flags (saturated, near_mask_edge, fit_failed,
         split_pair), ``manual`` (added by hand), ``untrusted`` (does not count in the
         model scores), ``width_fit_failed``.

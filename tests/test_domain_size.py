@@ -247,3 +247,11 @@ def test_widths_and_size_on_demo_frames(name):
     step = np.sqrt(np.abs(np.linalg.det(np.linalg.inv(jac))))  # Å⁻¹ per px, geometric mean of the two directions
     expect = float(np.median(SCHERRER_K / (excess_px * step)))
     assert abs(rep.domain.size_A / expect - 1) < 0.12, (rep.domain.message, expect)
+    # an exported analysis (its JSON) gives the same widths: the screen and gun-shadow mask is rebuilt
+    from analysis.serialize import result_to_dict
+
+    again = measure_widths(img.data, result_to_dict(result))
+    ok = rep.beams.pixels.ok & again.beams.pixels.ok
+    assert ok.sum() >= 0.9 * len(ok)
+    assert_allclose(again.beams.pixels.fwhm_radial_px[ok], rep.beams.pixels.fwhm_radial_px[ok], atol=0.05)
+    assert abs(again.domain.size_A / rep.domain.size_A - 1) < 0.02
