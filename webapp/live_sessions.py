@@ -192,7 +192,10 @@ def _run(token: str, cfg: dict, folder: Path) -> None:
     lines: list[str] = []
     holder = {"live": None, "t": 0.0}
 
+    shown = (cfg.get("folder_shown") or ".") if cfg.get("mode") == "folder" else "the uploaded frames"
+
     def say(text):
+        text = text.replace(str(folder), shown)  # the server's own paths stay on the server
         lines.append(text)
         _write_json(d / "state.json", _state(holder["live"], lines, "watching", text, cfg))
 

@@ -58,8 +58,10 @@ def curves_figure(state: dict) -> go.Figure:
         fig.add_annotation(x=0.5 * (lo + hi), y=1.0, yref="paper", yanchor="bottom", showarrow=False,
                            text=seg["label"], font=dict(size=11))
     fig.update_layout(template="plotly_white", height=420, margin=dict(l=60, r=60, t=40, b=50),
-                      xaxis=dict(title=heading), yaxis=dict(title="family intensity (frame units)"),
-                      yaxis2=dict(title="integer beams", overlaying="y", side="right", showgrid=False),
+                      xaxis=dict(title=heading),
+                      yaxis=dict(title="family intensity (frame units)", rangemode="tozero", tickformat=".3s"),
+                      yaxis2=dict(title="integer beams", overlaying="y", side="right", showgrid=False,
+                                  rangemode="tozero", tickformat=".3s"),
                       legend=dict(orientation="h", y=-0.25), uirevision="live")
     return fig
 
@@ -76,7 +78,7 @@ def frame_figure(png: bytes | None, meta: dict | None, beams: list) -> go.Figure
     for b in beams:
         groups.setdefault(b["family"] or "other", []).append(b)
     for n, (fam, bs) in enumerate(sorted(groups.items(), key=lambda kv: kv[0] != "integer")):
-        colour = "#ffffff" if fam == "integer" else _COLOURS[n % len(_COLOURS)]
+        colour = "#ffc400" if fam == "integer" else _COLOURS[n % len(_COLOURS)]
         fig.add_trace(go.Scatter(x=[b["x"] for b in bs], y=[b["y"] for b in bs], mode="markers",
                                  name=fam if fam == "integer" else f"{fam} family", text=[b["label"] for b in bs],
                                  hovertemplate="%{text}<extra></extra>",
@@ -224,7 +226,7 @@ def _segments_table(state: dict):
     rows = [html.Tr([html.Td(f"{s['first']}–{s['last']}"), html.Td(f"{s['value_range'][0]:g}–{s['value_range'][1]:g}"
                                                                   + (f" {unit}" if unit else "")),
                      html.Td(s["label"]), html.Td(", ".join(s["families"]) or "none")]) for s in segs]
-    return html.Table(className="segments", children=[
+    return html.Table(className="segments", style={"borderSpacing": "1.2em 0.2em"}, children=[
         html.Thead(html.Tr([html.Th("frames"), html.Th("range"), html.Th("structure"), html.Th("families")])),
         html.Tbody(rows)])
 
