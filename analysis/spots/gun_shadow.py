@@ -95,8 +95,7 @@ def find_gun_shadow(image, screen: ScreenMask | None = None, *, disk_xyr=None, a
         mask = np.zeros(shape, bool)
         rr, cc = _polygon(p[:, 1], p[:, 0], shape)
         mask[rr, cc] = True
-        if grow:
-            mask = ndi.binary_dilation(mask, iterations=grow)
+        mask = _grow(mask, margin_px)
         cen = np.array([p[:, 1].mean(), p[:, 0].mean()])
         return ShadowMask(mask, cen, 0.0, None, 0.0, "polygon", float(margin_px))
     if disk_xyr is not None:
@@ -109,6 +108,20 @@ def find_gun_shadow(image, screen: ScreenMask | None = None, *, disk_xyr=None, a
                           w, "user", float(margin_px))
     screen = find_screen(img) if screen is None else screen
     return _auto_gun(img, screen, margin_px)
+
+
+def _grow(mask: np.ndarray, margin_px: float) -> np.ndarray:
+    """`mask` grown by `margin_px` in every direction (Euclidean: repeated dilations by a
+    cross would grow it by only margin/√2 along the diagonals).
+
+    >>> m = np.zeros((9, 9), bool); m[4, 4] = True
+    >>> g = _grow(m, 3.0)
+    >>> bool(g[4, 1]), bool(g[2, 2]), bool(g[1, 1])
+    (True, True, False)
+    """
+    if margin_px <= 0 or not mask.any():
+        return mask
+    return ndi.distance_transform_edt(~mask) <= margin_px
 
 
 def _disk_arm_mask(shape, center_rc, radius, arm_angle_deg, arm_width) -> np.ndarray:
@@ -231,8 +244,7 @@ def _auto_gun(img: np.ndarray, screen: ScreenMask, margin_px: float) -> ShadowMa
         keep = keep[keep > 0]
         fine = np.isin(lab2, keep) if keep.size else fine
     fine = ndi.binary_fill_holes(fine)
-    if grow:
-        fine = ndi.binary_dilation(np.pad(fine, grow), iterations=grow)[grow:-grow, grow:-grow]
+    fine = _grow(np.pad(fine, grow), margin_px)[grow:-grow, grow:-grow] if grow else fine
     mask = np.zeros((m, n), bool)
     mask[r0_:r1_, c0_:c1_] = fine
     if mask.sum() > 0.4 * screen.mask.sum():  # a gun shadow is a disk and an arm, not most of the screen

@@ -262,20 +262,27 @@ def _screen_levels(flat: np.ndarray):
     vals = flat.ravel()
     floor = float(np.percentile(vals, 1.0))
     sub = vals
+    found = None
     for _ in range(2):  # a third split would only carve the screen's own falloff
         if sub.size < 16 or float(np.ptp(sub)) <= 0.0:
-            return None
+            break
         dark = vals < float(threshold_otsu(sub))
         if not 0.02 <= dark.mean() <= 0.98:
-            return None
+            break
         lo, hi = float(np.median(vals[dark])), float(np.median(vals[~dark]))
         noise_lo = 1.4826 * float(np.median(np.abs(vals[dark] - lo))) + 1e-12
         # a step of ten times the dark side's spread is no falloff of the screen's own (there the
         # "dark" class spreads over most of the step); a dim 8-bit rim may be only ~20 × above it
         if hi - lo >= 10.0 * noise_lo and lo - floor <= 0.1 * (hi - lo):
-            return lo, hi, noise_lo
+            if found is not None and noise_lo >= 0.5 * found[2]:
+                break  # the split only cut the frame's own noise: keep the first
+            found = (lo, hi, noise_lo)
+            # a dim, vignetted rim can fall into the first dark class with the frame, which then
+            # spreads over the rim's level: a second split of it finds the flat frame underneath
+        elif found is not None:
+            break
         sub = vals[dark]
-    return None
+    return found
 
 
 def _border_band(shape, w: int) -> np.ndarray:
