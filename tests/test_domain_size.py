@@ -191,6 +191,7 @@ def test_spot_table_refuses_another_image(analysed):
         spot_rows([1, 2, 3])
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("cells, low, high", [
     # one elongated domain shape, 8 × 16 cells (40.9 × 81.8 Å): the estimate is the geometric mean
     # of the two extents (57.8 Å) within 15 %; measured 58 Å
@@ -210,6 +211,7 @@ def test_domain_size_of_anisotropic_and_mixed_domains(cells, low, high):
     assert low < ds.size_A / ref < high, (ds.message, ref)
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("name", ["cu100_CX-3_c2x2", "si100_SX-1_2x1_two_domains"])
 def test_widths_and_size_on_demo_frames(name):
     # truth: the demo renderer draws integer beams with σ = 2.3 px and fractional beams with
