@@ -148,6 +148,7 @@ def symmetry_ops(substrate: Net2D, symmetry: str = "auto") -> tuple[list[np.ndar
     Parameters
     ----------
     substrate : Net2D
+        Real-space substrate net (Å); its label names the face for ``"auto"``.
     symmetry : str
         ``"full"`` — the holohedry of the net (p2 … p6mm); ``"p3m1"`` — hexagonal nets:
         rotations by 120° and the mirror lines through the reciprocal basis vectors

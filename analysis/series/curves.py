@@ -115,6 +115,7 @@ def average_equivalent(result: IVResult, *, v0i_eV: float = 4.0, smooth_eV: floa
     Parameters
     ----------
     result : IVResult
+        What :func:`analysis.series.track_series` measured.
     v0i_eV : float, keyword-only
         V0i for the Pendry R-factor among members, eV.
     smooth_eV : float, keyword-only

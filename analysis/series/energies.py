@@ -201,10 +201,12 @@ def read_energy_file(path) -> EnergyTable:
     Parameters
     ----------
     path : str or os.PathLike
+        The sidecar file (``.csv`` or ``.json``).
 
     Returns
     -------
     EnergyTable
+        Energies (eV) in frame order, with the sidecar's frame column and beam currents when given.
 
     Raises
     ------
@@ -333,6 +335,20 @@ def energies_from_names(names: Sequence[str], *, pattern: str = DEFAULT_NAME_PAT
 
 def energies_from_start_step(n_frames: int, *, start_eV: float, step_eV: float) -> np.ndarray:
     """Energies ``start_eV + i · step_eV`` for ``i = 0 … n_frames − 1``.
+
+    Parameters
+    ----------
+    n_frames : int
+        Number of frames.
+    start_eV : float, keyword-only
+        Energy of the first frame, eV.
+    step_eV : float, keyword-only
+        Energy step between frames, eV (non-zero).
+
+    Returns
+    -------
+    (n_frames,) ndarray of float64
+        The energies, eV.
 
     Examples
     --------

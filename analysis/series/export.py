@@ -37,11 +37,14 @@ def iv_table(result: IVResult, *, averaged: bool = False, smooth_eV: float = 0.0
     Parameters
     ----------
     result : IVResult
+        What :func:`track_series` (or :func:`analysis.series.pipeline.run_iv`) measured.
     averaged : bool, keyword-only
         One column per group of equivalent beams (headed by its first member) instead of
         one per beam.
     smooth_eV : float, keyword-only
         Gaussian FWHM applied to every curve (0: none).
+    v0i_eV : float, keyword-only
+        V0i of the Pendry R-factor used when grouping equivalent beams, eV.
     include_empty : bool, keyword-only
         Keep beams that are never valid (an all-empty column).
 
@@ -90,7 +93,20 @@ def _atomic_write(path, text: str) -> None:
 
 
 def csv_text(result: IVResult, **kw) -> str:
-    """The table of :func:`iv_table` as CSV text (keywords as there)."""
+    """The table of :func:`iv_table` as CSV text (keywords as there).
+
+    Parameters
+    ----------
+    result : IVResult
+        What :func:`track_series` (or :func:`analysis.series.pipeline.run_iv`) measured.
+    **kw
+        ``averaged``, ``smooth_eV``, ``v0i_eV``, ``include_empty`` of :func:`iv_table`.
+
+    Returns
+    -------
+    str
+        Comma-separated, a header line then one line per frame.
+    """
     header, rows = iv_table(result, **kw)
     buf = _stdio.StringIO()
     w = csv.writer(buf, lineterminator="\n")
@@ -100,7 +116,17 @@ def csv_text(result: IVResult, **kw) -> str:
 
 
 def write_csv(result: IVResult, path, **kw) -> None:
-    """Write the I(V) table of :func:`iv_table` to `path` (keywords as there); atomic."""
+    """Write the I(V) table of :func:`iv_table` to `path` (keywords as there); atomic.
+
+    Parameters
+    ----------
+    result : IVResult
+        What :func:`track_series` (or :func:`analysis.series.pipeline.run_iv`) measured.
+    path : str or os.PathLike
+        The file to write; its folder must exist.
+    **kw
+        As for :func:`iv_table`.
+    """
     _atomic_write(path, csv_text(result, **kw))
 
 
@@ -108,6 +134,20 @@ def result_to_dict(result: IVResult, *, v0i_eV: float = 4.0, smooth_eV: float = 
     """JSON-safe record of a series: metadata, calibration, curves, flags and equivalent groups.
 
     NaN becomes null. ``flags`` are per frame and beam, with ``flag_names`` giving the bits.
+
+    Parameters
+    ----------
+    result : IVResult
+        What :func:`track_series` (or :func:`analysis.series.pipeline.run_iv`) measured.
+    v0i_eV : float, keyword-only
+        V0i of the Pendry R-factor among equivalent beams, eV.
+    smooth_eV : float, keyword-only
+        Gaussian FWHM applied to the curves of the groups, eV (0: none).
+
+    Returns
+    -------
+    dict
+        Plain JSON types (NaN as None); energies in eV.
     """
     b = result.beams
     groups = average_equivalent(result, v0i_eV=v0i_eV, smooth_eV=smooth_eV)
@@ -147,5 +187,15 @@ def result_to_dict(result: IVResult, *, v0i_eV: float = 4.0, smooth_eV: float = 
 
 
 def write_json(result: IVResult, path, **kw) -> None:
-    """Write :func:`result_to_dict` to `path` as JSON; atomic."""
+    """Write :func:`result_to_dict` to `path` as JSON; atomic.
+
+    Parameters
+    ----------
+    result : IVResult
+        What :func:`track_series` (or :func:`analysis.series.pipeline.run_iv`) measured.
+    path : str or os.PathLike
+        The file to write; its folder must exist.
+    **kw
+        ``v0i_eV`` and ``smooth_eV`` of :func:`result_to_dict`.
+    """
     _atomic_write(path, json.dumps(result_to_dict(result, **kw), indent=1, allow_nan=False))

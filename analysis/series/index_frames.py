@@ -187,8 +187,16 @@ def index_series_frames(frames, *, substrate: str | Net2D, min_snr: float = 5.0)
     Parameters
     ----------
     frames : iterable of (frame, energy_eV, frame_index, frame_name)
+        Each frame ((M, N) array or LoadedImage) with its energy (eV), index and name.
     substrate : str or Net2D, keyword-only
+        E.g. ``"Cu(100)"`` (:func:`analysis.nets.parse_substrate`), or the (1×1) net in Å.
     min_snr : float, keyword-only
+        Spot detection threshold in units of local noise.
+
+    Returns
+    -------
+    SeriesIndexing
+        The winning reading's most confident frame, with every frame's vote.
 
     Raises
     ------
@@ -314,6 +322,20 @@ def vote_frame_choices(energy_eV, *, n_frames: int = 5, e_max_eV: float = 250.0)
     The frame nearest the middle of the range (or nearest 150 eV when the middle is
     higher), and `n_frames` more spread from 10 % into the range up to `e_max_eV`, where
     several rings of beams are seen and spots do not crowd.
+
+    Parameters
+    ----------
+    energy_eV : (F,) array_like of float
+        The energy of every frame, eV.
+    n_frames : int, keyword-only
+        Frames chosen besides the middle one.
+    e_max_eV : float, keyword-only
+        Highest energy chosen, eV.
+
+    Returns
+    -------
+    list of int
+        Frame indices in increasing order, without repeats.
 
     Examples
     --------

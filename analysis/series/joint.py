@@ -133,7 +133,22 @@ def _substrate_camera(pool, geom: ScreenGeometry, a_star: np.ndarray, rounds: in
 
 
 def pixels_to_momentum_e(xy, e, geom: ScreenGeometry) -> np.ndarray:
-    """:func:`analysis.optics.pixels_to_momentum` for points each at its own energy (K, 2)."""
+    """:func:`analysis.optics.pixels_to_momentum` for points each at its own energy (K, 2).
+
+    Parameters
+    ----------
+    xy : (K, 2) array_like of float
+        Positions (x, y), pixels.
+    e : (K,) array_like of float
+        The energy of each point, eV.
+    geom : ScreenGeometry
+        The camera model.
+
+    Returns
+    -------
+    (K, 2) ndarray of float64
+        Outgoing parallel momentum, Å⁻¹ without 2π.
+    """
     k = pixels_to_momentum(xy, 100.0, geom)  # sin θ / λ scales as λ(100 eV) / λ(E)
     return k * (wavelength_A(100.0) / wavelength_A(np.asarray(e, dtype=np.float64)))[:, None]
 
@@ -370,6 +385,7 @@ def index_series_joint(frames, *, substrate: str | Net2D, min_snr: float = 5.0) 
     frames : iterable of (frame, energy_eV, frame_index, frame_name)
         Two or more frames, best spread over the energy range.
     substrate : str or Net2D, keyword-only
+        E.g. ``"Cu(100)"`` (:func:`analysis.nets.parse_substrate`), or the (1×1) net in Å.
     min_snr : float, keyword-only
         Spot detection threshold.
 

@@ -63,6 +63,18 @@ def overlayer_matrices(overlayer, substrate: Net2D):
     >>> from analysis.nets import parse_substrate
     >>> overlayer_matrices("c(2x2)", parse_substrate("Cu(100)"))[0].tolist()
     [[1.0, 1.0], [0.0, 2.0]]
+
+    Parameters
+    ----------
+    overlayer : None, str, (2, 2) array_like or list of them
+        The overlayer as the user gave it.
+    substrate : Net2D
+        Real-space substrate net (Å), for Wood notation.
+
+    Returns
+    -------
+    None, str or list of (2, 2) ndarray of float64
+        None, ``"none"`` or the real-space matrices.
     """
     from ..superstructure import parse_matrix, parse_wood
 

@@ -237,14 +237,27 @@ def track_series(frames, beams: BeamSet, geometry: ScreenGeometry, *, energies=N
     energies : EnergyTable, path of a sidecar, (F,) array_like, dict or None, keyword-only
         ``{"start_eV": …, "step_eV": …}`` for evenly stepped energies; None: read from
         each frame's name with `name_pattern`.
+    name_pattern : str, keyword-only
+        Regular expression whose first group is the energy in a frame's name.
     mask : (M, N) ndarray of bool, optional, keyword-only
         True where pixels may be used; beams whose aperture touches a False pixel (gun
         shadow, holder arm) are flagged "masked" in that frame and not integrated.
     radius_px : float, optional, keyword-only
         Aperture radius; default 3 × the spot σ measured in the first frame (2.5–20 px).
-    annulus_px, background, method, spot_sigma_px, gain, saturation_level
-        As for :func:`integrate_spots`; with `method="profile"` and no `spot_sigma_px`
-        the width is measured per frame from the strong spots.
+    annulus_px : (inner, outer), optional, keyword-only
+        Background annulus, pixels (as for :func:`integrate_spots`).
+    background : {"annulus", "plane"}, keyword-only
+        Background model (as for :func:`integrate_spots`).
+    method : {"aperture", "profile"}, keyword-only
+        Aperture sum or profile fit (as for :func:`integrate_spots`); with
+        `method="profile"` and no `spot_sigma_px` the width is measured per frame from
+        the strong spots.
+    spot_sigma_px : float, optional, keyword-only
+        Gaussian σ of the spots, pixels.
+    gain : float, keyword-only
+        Frame units per detected count.
+    saturation_level : float, optional, keyword-only
+        Full-scale pixel value.
     search_px : float, keyword-only
         Largest distance between prediction and refined position, px (also cut to 45 %
         of the distance to the nearest other beam).
