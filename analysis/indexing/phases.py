@@ -42,6 +42,7 @@ SWITCH_MARGIN = 1.0
 
 _MAX_PHASES = 3
 _STARTS = 3
+_POOL = 20  # models listed by the wider search for starts
 _RATIONAL = ("commensurate", "coincidence")
 
 
@@ -91,7 +92,7 @@ def _grow(p1: OverlayerModel, fit, kw: dict, rel: np.ndarray) -> tuple[list, flo
         n_left = int((~integer & ~taken & rel).sum())
         if n_left < MIN_PHASE_SPOTS:
             break
-        cand = find_overlayers(hk, integer | taken, fit, n_results=3, **kw)
+        cand = find_overlayers(hk, integer | taken, fit, n_results=_POOL // 2, **kw)
         top = next((m for m in cand if m.kind in _RATIONAL), None)
         if top is None:
             break
@@ -142,7 +143,17 @@ def find_phases(fit, models: list, *, energy_eV: float, intensity=None, valid_ma
     hk, integer = fit.hk, np.asarray(fit.integer, bool)
     rel = np.ones(len(hk), bool) if reliable is None else np.asarray(reliable, bool).reshape(len(hk))
     kw = dict(energy_eV=energy_eV, intensity=intensity, valid_mask=valid_mask, tol_px=tol_px, reliable=reliable)
-    starts = [best] + [m for m in models[1:] if m.kind in _RATIONAL][: _STARTS - 1]
+    # two phases side by side leave spots unexplained or beams absent for any one cell: then
+    # rational cells that explain part of the spots cleanly may start a set of phases, ranked
+    # by their score without the spots they leave (what they would score as one phase)
+    pool = list(models[1:])
+    if max(best.unexplained, best.absent) >= MIN_PHASE_SPOTS or best.kind == "incommensurate":
+        pool += find_overlayers(hk, integer, fit, n_results=_POOL, **kw)
+    starts = []
+    for m in sorted((m for m in pool if m.kind in _RATIONAL), key=lambda m: -(m.score + m.score_terms["unexplained"])):
+        if not _same_net(m, best) and not any(_same_net(m, o) for o in starts):
+            starts.append(m)
+    starts = [best] + starts[: _STARTS - 1]
     sets = [_grow(p1, fit, kw, rel) for p1 in starts]
     chain, joint = sets[0]
     for c, j in sets[1:]:
