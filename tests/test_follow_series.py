@@ -44,6 +44,9 @@ def test_order_disorder_tc_within_two_percent(temperature_run):
     # truth given to the renderer: Tc = 400 K (the target: within 2 %)
     assert abs(fit.tc - 400.0) <= 0.02 * 400.0
     assert fit.tc_sigma > 0 and math.isfinite(fit.tc_spread)
+    auto = res.transition()  # the parameter is a temperature (K): fitted without being asked
+    assert auto is not None and auto.tc == pytest.approx(fit.tc)
+    assert json.loads(json.dumps(res.to_dict(transition=auto)))["order_disorder"]["tc"] == pytest.approx(fit.tc)
     # the ordered phase is read as p(2×2) and ends near Tc; the (1×1) above it
     assert "p(2×2)" in res.segments[0].label
     assert res.segments[-1].families == () and 390.0 < res.segments[-1].value_range[0] < 450.0
@@ -96,6 +99,7 @@ def test_exposure_series_p2x2_then_sqrt3():
     assert rows[0].startswith("frame,name,exposure (L),beam") and len(rows) == 1 + 25 * len(res.trace.beams)
     rec = json.loads(json.dumps(res.to_dict()))
     assert [s["structure"] for s in rec["segments"]] == labels
+    assert res.transition() is None  # an exposure: no order–disorder fit
 
 
 def test_mismatched_parameters_say_so():

@@ -119,3 +119,22 @@ def test_upload_session_analyses_dropped_frames(live_env):
     assert live_sessions.read_state(tok)["status"] == "stopped"
     data, _ = call_callback(live.on_export, f"{ids.LIVE_EXPORT_JSON}.n_clicks", None, 1, tok)
     assert json.loads(data["content"])["frames"] == names[:3]  # the whole record once stopped
+
+
+def test_curves_figure_draws_families_segments_and_the_fit(live_env):
+    from webapp.pages import live
+
+    st = {"parameter": {"name": "temperature", "unit": "K", "values": [300.0, 350.0, 400.0, 450.0]},
+          "families": [{"label": "(1/2,0)", "total": [9.0, 7.0, 1.0, 0.0], "present": [True, True, False, False]}],
+          "integer_total": [5.0, 4.8, 4.6, 4.4],
+          "segments": [{"first": 0, "last": 1, "value_range": [300.0, 350.0], "label": "p(2×2), commensurate",
+                        "families": ["(1/2,0)"]},
+                       {"first": 2, "last": 3, "value_range": [400.0, 450.0], "label": "(1×1)", "families": []}],
+          "transition": {"family": "(1/2,0)", "tc": 402.0, "tc_sigma": 0.5, "tc_spread": 2.0,
+                         "model": [9.0, 7.1, 0.9, 0.0]}}
+    fig = live.curves_figure(st)
+    assert [t.name for t in fig.data] == ["(1/2,0) family", "fit: Tc = 402", "integer beams"]
+    assert [(s.x0, s.x1) for s in fig.layout.shapes] == [(300.0, 350.0), (400.0, 450.0)]
+    assert [a.text for a in fig.layout.annotations] == ["p(2×2), commensurate", "(1×1)"]
+    assert fig.layout.xaxis.title.text == "temperature (K)"
+    assert "as the frames arrive" in live.curves_figure({}).layout.annotations[0].text

@@ -177,6 +177,10 @@ def _state(live, lines: list, status: str, message: str, cfg: dict) -> dict:
     out["segments"] = [{"first": s.first, "last": s.last, "value_range": list(s.value_range), "label": s.label,
                         "families": list(s.families)} for s in res.segments]
     out["drift"] = tr.drift
+    fit = res.transition() if len(tr.value) >= 8 else None
+    if fit is not None:
+        fam = next(sg.families[0] for sg in res.segments if sg.families)
+        out["transition"] = {"family": fam, **fit.to_dict(), "model": fit.model(tr.value).tolist()}
     last = live.follower.rows[-1]
     fam = {int(j): f.label for f in res.families for j in f.members}
     out["last_beams"] = [{"x": float(x), "y": float(y), "label": lab, "family": "integer" if integ else fam.get(j, "")}

@@ -104,6 +104,21 @@ class ParameterSeriesResult:
         v, total, sig = self.family_curve(family)
         return fit_order_disorder(v, total, sig, **kw)
 
+    def transition(self):
+        """The order–disorder fit when the parameter is a temperature (unit K or named so) and
+        the first family's intensity vanishes inside the range measured; else None."""
+        tr = self.trace
+        if not (tr.unit == "K" or tr.name.strip().lower() in ("temperature", "t")) or not self.families:
+            return None
+        from ..errors import FitError
+
+        try:
+            fit = self.order_disorder()
+        except (FitError, SeriesError):
+            return None
+        v = tr.value[np.isfinite(tr.value)]
+        return fit if v.size and v.min() < fit.tc < v.max() else None
+
     def to_dict(self, **kw) -> dict:
         """JSON-safe record (see :mod:`analysis.follow.export`)."""
         from .export import result_to_dict

@@ -257,10 +257,18 @@ def watch_folder(folder, *, energy_eV: float, substrate: str, parameter_from: st
         files.close()
         if csv_file is not None:
             csv_file.close()
-    if out_json is not None and n_done:
-        from .export import write_json
+    if n_done:
+        res = live.result()
+        fit = res.transition()
+        if fit is not None:
+            u = f" {par.unit}" if par.unit else ""
+            say(f"order–disorder fit of the {next(s.families[0] for s in res.segments if s.families)} family: "
+                f"Tc = {fit.tc:.4g}{u} ± {fit.tc_sigma:.2g} (statistics) ± {fit.tc_spread:.2g} (refits), "
+                f"2β = {2 * fit.beta:.3g}")
+        if out_json is not None:
+            from .export import write_json
 
-        write_json(live.result(), out_json)
+            write_json(res, out_json, transition=fit)
     say(f"stopped after {n_done} frames" + (f"; {len(live.waiting)} not indexed" if live.waiting else ""))
     return n_done
 

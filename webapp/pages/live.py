@@ -49,6 +49,10 @@ def curves_figure(state: dict) -> go.Figure:
     for n, fam in enumerate(state.get("families", [])):
         fig.add_trace(go.Scatter(x=x, y=fam["total"], mode="lines+markers", name=f"{fam['label']} family",
                                  line=dict(color=_COLOURS[n % len(_COLOURS)])))
+    tr = state.get("transition")
+    if tr:
+        fig.add_trace(go.Scatter(x=x, y=tr["model"], mode="lines", name=f"fit: Tc = {tr['tc']:.4g}",
+                                 line=dict(color="#000", dash="dash", width=1)))
     fig.add_trace(go.Scatter(x=x, y=state.get("integer_total", []), mode="lines", name="integer beams",
                              line=dict(color="#555", dash="dot"), yaxis="y2"))
     for n, seg in enumerate(state.get("segments", [])):
@@ -253,6 +257,11 @@ def on_tick(_n, token):
     status = f"{state.get('status', '')}: {state.get('n_frames', 0)} frames"
     if segs:
         status += f"; now {segs[-1]['label']}"
+    tr = state.get("transition")
+    if tr:
+        unit = (state.get("parameter") or {}).get("unit", "")
+        status += (f"; order–disorder fit of the {tr['family']} family: Tc = {tr['tc']:.4g} {unit} "
+                   f"± {tr['tc_sigma']:.2g} (statistics) ± {tr['tc_spread']:.2g} (refits)")
     link = html.A("Link to this series", href=f"/live?session={token}")
     return (status, curves_figure(state), frame_figure(png, meta, state.get("last_beams", [])),
             _segments_table(state), "\n".join(state.get("lines", [])), link)
