@@ -176,7 +176,9 @@ def widths_in_momentum(widths: SpotWidths, *, energy_eV: float, geometry: Screen
     Parameters
     ----------
     widths : SpotWidths
+        The spots' pixel widths (:func:`analysis.spot_table.measure_widths`).
     energy_eV : float, keyword-only
+        Electron energy, eV.
     geometry : ScreenGeometry, keyword-only
         The fitted camera model.
     a_star_invA : float, keyword-only
@@ -231,6 +233,7 @@ def domain_size(beams: BeamWidths, integer, fractional, *, shape_factor: float =
     Parameters
     ----------
     beams : BeamWidths
+        The spots' widths in momentum (:func:`widths_in_momentum`).
     integer, fractional : (K,) array_like of bool
         Which spots are integer-order beams (the instrument response) and which are
         fractional-order beams of the overlayer.
@@ -301,6 +304,18 @@ def domain_size(beams: BeamWidths, integer, fractional, *, shape_factor: float =
 def interference_fwhm(n_cells: int, *, samples: int = 20001) -> float:
     """FWHM (in units of the reciprocal cell, i.e. of x) of sin²(πNx)/sin²(πx) for N = `n_cells`,
     found numerically; N × this tends to :data:`SCHERRER_K`.
+
+    Parameters
+    ----------
+    n_cells : int
+        N, the cells in a row.
+    samples : int, keyword-only
+        Sample points of the numerical search.
+
+    Returns
+    -------
+    float
+        The FWHM as a fraction of the reciprocal cell.
 
     Examples
     --------

@@ -121,6 +121,7 @@ def line_profile(image, start_xy, end_xy, *, width_px: float = 1.0, step_px: flo
     mask : (M, N) array_like of bool, optional, keyword-only
         Valid pixels; samples whose nearest pixel is invalid are left out of the mean.
     energy_eV : float, optional, keyword-only
+        Electron energy, eV (with `geometry`).
     geometry : ScreenGeometry, optional, keyword-only
         With `energy_eV`: distances in momentum (Å⁻¹, no 2π).
     a_star_invA : float, optional, keyword-only

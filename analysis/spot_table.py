@@ -163,6 +163,7 @@ def spot_rows(result, *, widths: WidthReport | None = None) -> list[dict]:
     Parameters
     ----------
     result : AnalysisResult or dict
+        An analysis, or its JSON dict.
     widths : WidthReport, optional, keyword-only
         From :func:`measure_widths` on the same analysis; without it the width
         columns are None.
@@ -222,6 +223,18 @@ def spot_rows(result, *, widths: WidthReport | None = None) -> list[dict]:
 def rows_to_csv(rows: list[dict], *, domain: DomainSize | None = None) -> str:
     """CSV text of :func:`spot_rows` (header :data:`COLUMNS`; empty cells for None); with
     `domain`, leading ``#`` comment lines state the domain-size estimate and its method.
+
+    Parameters
+    ----------
+    rows : list of dict
+        From :func:`spot_rows`.
+    domain : DomainSize, optional, keyword-only
+        The domain-size estimate of the same analysis.
+
+    Returns
+    -------
+    str
+        CSV text, one line per spot after the header.
 
     Examples
     --------

@@ -54,9 +54,7 @@ PACKAGES = ("analysis", "webapp")
 
 #: Public functions whose docstrings do not pass :data:`CHECKS` yet (module.qualname).
 NOT_YET = frozenset({
-    "analysis.domain_size.domain_size",
-    "analysis.domain_size.interference_fwhm",
-    "analysis.domain_size.widths_in_momentum",
+    "analysis.domain_size.sizes_along_axes",
     "analysis.follow.export.csv_text",
     "analysis.follow.export.frame_rows",
     "analysis.follow.export.result_to_dict",
@@ -81,7 +79,6 @@ NOT_YET = frozenset({
     "analysis.indexing.absences.glide_excused",
     "analysis.indexing.absences.read_plane_group",
     "analysis.indexing.phases.find_phases",
-    "analysis.profile_line.line_profile",
     "analysis.simulate.domain_spots.render_domain_image",
     "analysis.simulate.extinction.glide_factors",
     "analysis.simulate.extinction.glide_intensities",
@@ -114,13 +111,6 @@ NOT_YET = frozenset({
     "analysis.simulate.viewing.rescale_pattern",
     "analysis.simulate.viewing.warp_image",
     "analysis.spot_table.rows_to_csv",
-    "analysis.spot_table.spot_rows",
-    "analysis.spots.accept.split_table",
-    "analysis.spots.background.estimate_background",
-    "analysis.spots.gun_shadow.find_gun_shadow",
-    "analysis.spots.measure.localization_bound_px",
-    "analysis.spots.screen.disk_mask",
-    "analysis.spots.screen.find_screen",
     "webapp.app.run",
     "webapp.app.save_bundle",
     "webapp.figures.common.domain_colour",

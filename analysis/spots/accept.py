@@ -144,6 +144,19 @@ def local_snr(image: np.ndarray, valid: np.ndarray, noise: np.ndarray, rc: np.nd
 
 
 def split_table(table, keep: np.ndarray):
-    """(kept, rejected) SpotTables: the rows of `table` where `keep` is True, and the others."""
+    """(kept, rejected) SpotTables: the rows of `table` where `keep` is True, and the others.
+
+    Parameters
+    ----------
+    table : SpotTable
+        The spots.
+    keep : (K,) ndarray of bool
+        Which rows to keep.
+
+    Returns
+    -------
+    kept, rejected : SpotTable
+        The rows where `keep` is True, and the others.
+    """
     keep = np.asarray(keep, bool)
     return table.select(keep), table.select(~keep)

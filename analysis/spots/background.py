@@ -64,6 +64,7 @@ def estimate_background(image, mask=None, *, block_px: int = 32, exclude=None,
     Parameters
     ----------
     image : (M, N) array_like or LoadedImage
+        The camera frame, any real dtype.
     mask : (M, N) array_like of bool, optional
         Valid pixels (the screen without the gun shadow); default all.
     block_px : int, keyword-only

@@ -59,11 +59,16 @@ def find_gun_shadow(image, screen: ScreenMask | None = None, *, disk_xyr=None, a
     Parameters
     ----------
     image : (M, N) array_like or LoadedImage
+        The camera frame, any real dtype.
     screen : ScreenMask, optional
         Default: :func:`find_screen` of `image`.
     disk_xyr : (x, y, r), optional, keyword-only
         User disk; with `arm_angle_deg` and `arm_width_px` it overrides the search
         (the arm runs from the disk centre to the frame edge).
+    arm_angle_deg : float, optional, keyword-only
+        Direction of the holder arm from the disk centre on the image, degrees.
+    arm_width_px : float, optional, keyword-only
+        Width of the holder arm, pixels.
     polygon_xy : (P, 2) array_like of (x, y), optional, keyword-only
         User polygon; overrides everything else.
     margin_px : float, keyword-only

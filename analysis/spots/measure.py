@@ -489,7 +489,12 @@ def localization_bound_px(photons, sigma_px, background_per_px, *, pixel_px: flo
     Parameters
     ----------
     photons, sigma_px, background_per_px : float or ndarray (broadcast)
-        b² in photons per pixel (add the read-noise variance in photons² for a camera).
+        N, s (pixels) and b² in photons per pixel (add the read-noise variance in
+        photons² for a camera).
+    pixel_px : float, keyword-only
+        Pixel size a, in the units of `sigma_px`.
+    kind : {"ml", "ls", "thompson"}, keyword-only
+        Which bound (see above).
 
     Returns
     -------

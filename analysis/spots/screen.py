@@ -21,16 +21,21 @@ def disk_mask(shape, center_rc, radius_px: float, *, axes_px=None, angle_deg: fl
 
     Parameters
     ----------
-    shape : (M, N)
-    center_rc : (row, col) of the centre, pixels.
+    shape : (M, N) tuple of int
+        Shape of the image.
+    center_rc : (row, col)
+        The centre, pixels.
     radius_px : float
         Radius (used when `axes_px` is None).
-    axes_px : (a, b), optional
-        Semi-axes of an ellipse; `a` along image angle `angle_deg`.
+    axes_px : (a, b), optional, keyword-only
+        Semi-axes of an ellipse, pixels; `a` along image angle `angle_deg`.
+    angle_deg : float, keyword-only
+        Direction of the ellipse's `a` axis on the image, degrees.
 
     Returns
     -------
     (M, N) ndarray of bool
+        True inside.
 
     Examples
     --------
@@ -104,6 +109,7 @@ def find_screen(image, *, circle_xyr=None, ellipse=None, margin_px: float = 3.0)
     Parameters
     ----------
     image : (M, N) array_like or LoadedImage
+        The camera frame, any real dtype.
     circle_xyr : (x, y, r), optional, keyword-only
         User circle in pixels; overrides the automatic search.
     ellipse : (x, y, a, b, angle_deg), optional, keyword-only
