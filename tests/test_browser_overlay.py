@@ -57,6 +57,12 @@ def test_two_domains_are_drawn_as_nets_and_one_comes_forward(page, live_server):
     spots = next(t for t in _traces(page) if t["name"] == "Detected spots")
     assert len({c for c in spots["colours"]}) >= n_dom + 1  # integer grey + one tint per domain
     _shot(page, "overlay-two-domains.png")
+    opacity_of_1 = """() => document.querySelector('#graph .js-plotly-plot').data
+        .find(t => t.name === 'Domain 1 net').opacity"""
+    page.locator(".domain-button").nth(1).hover()  # hovering: in the browser, no round trip
+    page.wait_for_function(f"({opacity_of_1})() < 0.2", timeout=10_000)
+    page.mouse.move(2, 2)
+    page.wait_for_function(f"({opacity_of_1})() > 0.5", timeout=10_000)
     page.locator(".domain-button").nth(1).click()
     page.wait_for_function("""() => { const d = document.querySelector('#graph .js-plotly-plot').data;
         const nets = d.filter(t => (t.name || '').startsWith('Domain') && (t.name || '').endsWith(' net'));
@@ -95,3 +101,19 @@ def test_a_huge_model_and_a_picked_candidate_say_so(page, live_server):
     page.click("#show-best")
     page.wait_for_selector("#shown-note", state="detached", timeout=30_000)
     assert page.locator("#candidate-pick input:checked").count() == 0
+
+
+def test_undo_last_edit_takes_back_one_click(page, live_server):
+    _analyse(page, live_server, "pt111_PX-7_oxygen_p2x2.png")
+    before = int(page.get_attribute("#spot-count", "data-count"))
+    box = page.locator("#graph .nsewdrag").first.bounding_box()
+    for fx in (0.2, 0.25):  # dark places near the edge of the screen, far from every spot
+        n = int(page.get_attribute("#spot-count", "data-count"))
+        page.mouse.click(box["x"] + box["width"] * fx, box["y"] + box["height"] * 0.5)
+        page.wait_for_function(f"() => {{ const e = document.querySelector('#spot-count');"
+                               f" return e && parseInt(e.dataset.count) === {n + 1}; }}", timeout=WAIT_MS)
+    assert "2 added" in page.inner_text("#edit-summary")
+    page.click("#undo-last")
+    page.wait_for_function(f"() => {{ const e = document.querySelector('#spot-count');"
+                           f" return e && parseInt(e.dataset.count) === {before + 1}; }}", timeout=WAIT_MS)
+    assert "1 added" in page.inner_text("#edit-summary")

@@ -186,6 +186,32 @@ def test_click_adds_then_drops_spots_and_sets_centre(ws):
     assert ed["added"] == [] and ed["removed"] == [] and ed["center"] is None and ed["rev"] == 6
 
 
+def test_undo_last_edit_steps_back_one_edit_at_a_time(ws):
+    from dash.exceptions import PreventUpdate
+
+    img = _image_meta()
+    ed = ws.state.empty_edits(img["sha"])
+    for x in (20.0, 40.0):
+        ed = _call(ws.on_graph_event, "graph.clickData", {"points": [{"x": x, "y": 30.0}]}, None, None, "spots", ed,
+                   img, {})
+    on_detected = {"points": [{"x": 10, "y": 10, "customdata": ["spot", 7, False]}]}
+    ed = _call(ws.on_graph_event, "graph.clickData", on_detected, None, None, "spots", ed, img, {})
+    ed = _call(ws.on_graph_event, "undo-edits.n_clicks", None, None, 1, "spots", ed, img, {})
+    assert ed["added"] == [] and ed["removed"] == []
+    ed = ws.on_undo_last(1, ed, img, {})  # 'Undo all' undone: both spots and the dropped one are back
+    assert ed["added"] == [[20.0, 30.0], [40.0, 30.0]] and ed["removed"] == [[10.0, 10.0]]
+    ed = ws.on_undo_last(2, ed, img, {})
+    assert ed["added"] == [[20.0, 30.0], [40.0, 30.0]] and ed["removed"] == []
+    ed = ws.on_undo_last(3, ed, img, {})
+    assert ed["added"] == [[20.0, 30.0]] and ed["rev"] == 7  # each undo is a new revision (the job reruns)
+    ed = ws.on_undo_last(4, ed, img, {})
+    assert ed["added"] == [] and ed["history"] == []
+    with pytest.raises(PreventUpdate):  # nothing left to undo
+        ws.on_undo_last(5, ed, img, {})
+    with pytest.raises(PreventUpdate):
+        ws.on_undo_last(1, ed, img, {"readonly": True})
+
+
 def test_clicks_are_ignored_read_only_outside_or_in_zoom(ws):
     from dash.exceptions import PreventUpdate
 

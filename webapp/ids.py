@@ -51,6 +51,7 @@ OVERLAYS = "overlays"
 CLICK_MODE = "click-mode"
 EDIT_SUMMARY = "edit-summary"
 UNDO_EDITS = "undo-edits"
+UNDO_LAST = "undo-last"
 
 # the answer
 RESULT_PANEL = "result-panel"

@@ -114,7 +114,7 @@ def _make_engine(url: str) -> sa.Engine:
 
 
 def _insert_ignore(dialect: str, table):
-    if dialect == "postgresql":
+    if dialect == "postgresql":  # each dialect's INSERT ... ON CONFLICT, loaded for the database in use
         from sqlalchemy.dialects.postgresql import insert
     elif dialect == "sqlite":
         from sqlalchemy.dialects.sqlite import insert

@@ -17,11 +17,11 @@ from .display import SCALES, display_levels, downsample, png_bytes, png_data_url
 from .export import export_figure, spots_csv
 from .pattern import OVERLAY_CHOICES, net_lines, pattern_figure, predicted_spots
 from .real_space import real_space_figure
-from .series import BEAM_COLOURS, colour_of, flag_text, frame_figure, iv_figure
+from .series import BEAM_COLOURS, colour_of, flag_text, frame_figure, group_figure, iv_figure
 
 __all__ = [
     "PALETTE", "DOMAIN_COLOURS", "DOMAIN_STYLES", "domain_colour", "net_lines", "OVERLAY_CHOICES", "SCALES", "BEAM_COLOURS",
     "display_levels", "downsample", "png_data_url", "png_bytes", "thumbnail_png",
     "hk_text", "pattern_figure", "predicted_spots", "empty_figure", "real_space_figure",
-    "spots_csv", "export_figure", "frame_figure", "iv_figure", "colour_of", "flag_text",
+    "spots_csv", "export_figure", "frame_figure", "iv_figure", "group_figure", "colour_of", "flag_text",
 ]

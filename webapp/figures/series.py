@@ -12,7 +12,7 @@ from analysis.series import FLAG_NAMES
 
 from .common import empty_figure
 
-__all__ = ["BEAM_COLOURS", "colour_of", "flag_text", "frame_figure", "iv_figure"]
+__all__ = ["BEAM_COLOURS", "colour_of", "flag_text", "frame_figure", "iv_figure", "group_figure"]
 
 # Okabe & Ito colours for the picked beams (the same colour on the frame and in the plot);
 # black is kept for a group's average.
@@ -122,4 +122,45 @@ def iv_figure(res, picked, *, average=None, energy_eV: float | None = None) -> g
         xaxis=dict(title="Energy (eV)", zeroline=False),
         yaxis=dict(title=f"Intensity ({unit})", zeroline=False, rangemode="tozero"),
     )
+    return fig
+
+
+def group_figure(res, members, *, average=None, height: int = 150) -> go.Figure:
+    """A small plot of one group of equivalent beams: each member's I(V), and their average.
+
+    Parameters
+    ----------
+    res : IVResult
+        The run (:func:`analysis.series.track_series`).
+    members : sequence of str
+        The beams of the group, by label.
+    average : object, optional
+        The group's average (``energy_eV``, ``intensity``), from
+        :func:`analysis.series.average_equivalent`.
+    height : int, optional
+        Height of the plot, px.
+
+    Returns
+    -------
+    plotly.graph_objects.Figure
+        Members in the beam colours (thin), the average black and dashed on top.
+    """
+    fig = go.Figure()
+    for i, lab in enumerate(members):
+        try:
+            e, inten, _ = res.curve(lab)
+        except RecinetError:
+            continue
+        o = np.argsort(e)
+        col = BEAM_COLOURS[i % len(BEAM_COLOURS)]
+        fig.add_trace(go.Scatter(x=e[o], y=inten[o], mode="lines", name=lab, connectgaps=False,
+                                 line=dict(color=col, width=1.1), hovertemplate=f"{lab} %{{x:g}} eV<extra></extra>"))
+    if average is not None and len(members) > 1:
+        o = np.argsort(average.energy_eV)
+        fig.add_trace(go.Scatter(x=average.energy_eV[o], y=average.intensity[o], mode="lines", name="average",
+                                 connectgaps=False, line=dict(color="#000000", width=2.0, dash="dash"),
+                                 hovertemplate="average %{x:g} eV<extra></extra>"))
+    fig.update_layout(template="plotly_white", height=height, margin=dict(l=8, r=8, t=4, b=22), showlegend=False,
+                      xaxis=dict(title=None, zeroline=False, tickfont=dict(size=9)),
+                      yaxis=dict(visible=False, rangemode="tozero"))
     return fig

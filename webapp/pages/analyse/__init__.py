@@ -20,13 +20,13 @@ from .export import on_export, on_save
 from .job import on_new_image, on_new_result, on_stop, run_job
 from .layout import DEFAULT_OVERLAYS, workspace
 from .model import on_try_model
-from .pattern import display_image, edit_summary, on_graph_event, render_pattern
+from .pattern import display_image, edit_summary, on_graph_event, on_undo_last, render_pattern
 from .results import show_result
 from .upload import on_reference, on_upload
 
 __all__ = [
     "workspace", "DEFAULT_OVERLAYS", "on_upload", "on_reference", "render_pattern", "display_image",
-    "on_graph_event", "edit_summary", "run_job", "on_stop", "on_new_image", "on_new_result", "show_result",
+    "on_graph_event", "on_undo_last", "edit_summary", "run_job", "on_stop", "on_new_image", "on_new_result", "show_result",
     "on_try_model", "on_save", "on_export",
     "export", "job", "layout", "model", "pattern", "results", "state", "upload",
 ]

@@ -51,6 +51,7 @@ def workspace(*, readonly: bool = False, image: dict | None = None, record: dict
             ]),
             html.Div(className="row", children=[
                 html.Span(id=ids.EDIT_SUMMARY, className="muted"),
+                html.Button("Undo last edit", id=ids.UNDO_LAST, className="small"),
                 html.Button("Undo all edits", id=ids.UNDO_EDITS, className="small"),
             ]),
         ]),

@@ -14,7 +14,9 @@ from webapp.pages.common import fail, triggered
 
 from .state import candidate, empty_edits, result_of
 
-__all__ = ["display_image", "render_pattern", "on_graph_event", "edit_summary"]
+__all__ = ["display_image", "render_pattern", "on_graph_event", "on_undo_last", "edit_summary"]
+
+MAX_UNDO = 50  # edits remembered for "Undo last edit"
 
 @functools.lru_cache(maxsize=16)
 def display_image(sha: str, scale: str, gamma: float, clip_lo: float, clip_hi: float) -> tuple[str, int]:
@@ -56,9 +58,11 @@ def on_graph_event(click, relayout, undo, mode, edits, image, source):
     trig, prop = triggered()
     ed = dict(edits) if edits and edits.get("sha") == image["sha"] else empty_edits(image["sha"])
     ed = {**ed, **service.clean_edits(ed)}
+    before = _snapshot(ed)
     if trig == ids.UNDO_EDITS:
         out = empty_edits(image["sha"])
         out["rev"] = int(ed.get("rev", 0)) + 1
+        out["history"] = _pushed(ed, before)
         return out
     if prop.endswith("relayoutData"):
         c = _center_from_relayout(relayout)
@@ -94,7 +98,33 @@ def on_graph_event(click, relayout, undo, mode, edits, image, source):
             ed["added"] = ed["added"] + [[round(x, 2), round(y, 2)]]
     ed["rev"] = int(ed.get("rev", 0)) + 1
     ed["sha"] = image["sha"]
+    ed["history"] = _pushed(ed, before)
     return ed
+
+
+def _snapshot(ed: dict) -> dict:
+    return {"added": list(ed.get("added") or []), "removed": list(ed.get("removed") or []),
+            "center": ed.get("center")}
+
+
+def _pushed(ed: dict, snapshot: dict) -> list:
+    """The edits' history with `snapshot` (the state before this edit) on top, at most MAX_UNDO deep."""
+    hist = [h for h in (ed.get("history") or []) if isinstance(h, dict)]
+    return (hist + [snapshot])[-MAX_UNDO:]
+
+
+def on_undo_last(n_clicks, edits, image, source):
+    """'Undo last edit': the edits as they were before the last click, drag or 'Undo all'."""
+    if not n_clicks or (source or {}).get("readonly") or not image:
+        raise PreventUpdate
+    if not edits or edits.get("sha") != image["sha"] or not edits.get("history"):
+        raise PreventUpdate
+    hist = list(edits["history"])
+    last = hist.pop()
+    out = {**empty_edits(image["sha"]), **service.clean_edits(last)}
+    out["rev"] = int(edits.get("rev", 0)) + 1
+    out["history"] = hist
+    return out
 
 
 def _center_from_relayout(relayout):
@@ -133,5 +163,12 @@ callback(
     State(ids.CLICK_MODE, "value"), State(ids.EDITS, "data"), State(ids.IMAGE, "data"), State(ids.SOURCE, "data"),
     prevent_initial_call=True,
 )(on_graph_event)
+
+callback(
+    Output(ids.EDITS, "data", allow_duplicate=True),
+    Input(ids.UNDO_LAST, "n_clicks"),
+    State(ids.EDITS, "data"), State(ids.IMAGE, "data"), State(ids.SOURCE, "data"),
+    prevent_initial_call=True,
+)(on_undo_last)
 
 callback(Output(ids.EDIT_SUMMARY, "children"), Input(ids.EDITS, "data"), Input(ids.IMAGE, "data"))(edit_summary)

@@ -5,11 +5,12 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from dash import Input, Output, State, callback, html, no_update
+from dash import Input, Output, State, callback, dcc, html, no_update
 from dash.exceptions import PreventUpdate
 
 from analysis.errors import RecinetError
 from webapp import ids, series_service
+from webapp.figures import group_figure
 from webapp.pages.common import fail, note, triggered_id
 
 from .frames import frame_index
@@ -17,6 +18,7 @@ from .frames import frame_index
 __all__ = ["MAX_PICKED", "summary_panel", "groups_table", "on_result", "pick_beams", "beam_at_click"]
 
 MAX_PICKED = 12
+MAX_GROUP_PLOTS = 16  # groups drawn as small plots; further ones show their numbers only
 
 
 def _fmt(v, digits=2, unit=""):
@@ -85,25 +87,42 @@ def summary_panel(summary: dict):
 
 
 def groups_table(summary: dict):
+    """One card per group of equivalent beams: its members' I(V) and their average in one small plot,
+    the members, and how well they agree (Pendry and reduced Zanazzi–Jona R-factors, common range)."""
     groups = summary.get("groups") or []
     if not groups:
         return html.P("No beam was followed long enough to compare.", className="muted")
-    head = html.Tr([html.Th("Group"), html.Th("Beams"), html.Th("R_P", title="Pendry R-factor among the members"),
-                    html.Th("R_ZJ", title="reduced Zanazzi–Jona R-factor"), html.Th("Overlap")])
-    body = []
-    for g in groups:
+    try:  # the curves stay on the server; without them the cards still give the numbers
+        res = series_service.load_result(summary["key"])
+        averages = {g.label: g for g in series_service.groups_of(summary["key"])}
+    except RecinetError:
+        res, averages = None, {}
+    order = sorted(range(len(groups)), key=lambda i: (len(groups[i]["members"]) < 2, -(groups[i].get("overlap_eV") or 0)))
+    cards = []
+    for n, i in enumerate(order):
+        g = groups[i]
         m = g["members"]
-        body.append(html.Tr([
-            html.Td(g["label"], className="mono"),
-            html.Td(", ".join(m) if len(m) <= 6 else ", ".join(m[:6]) + f" … ({len(m)})", className="mono"),
-            html.Td(_fmt(g.get("r_pendry"), 3), className="num"),
-            html.Td(_fmt(g.get("r_zj"), 3), className="num"),
-            html.Td(_fmt(g.get("overlap_eV"), 0, " eV"), className="num"),
+        plot = None
+        if res is not None and n < MAX_GROUP_PLOTS:
+            plot = dcc.Graph(figure=group_figure(res, m, average=averages.get(g["label"])),
+                             config={"staticPlot": True}, className="group-plot")
+        cards.append(html.Div(className="group-card", children=[
+            html.Div(className="group-head", children=[
+                html.Span(g["label"], className="mono group-label"),
+                html.Span(f"{len(m)} beam{'s' if len(m) != 1 else ''}", className="muted")]),
+            plot,
+            html.Div(", ".join(m) if len(m) <= 6 else ", ".join(m[:6]) + f" … ({len(m)})", className="mono small-print"),
+            html.Dl(className="group-numbers", children=[
+                html.Dt("R_P", title="Pendry R-factor among the members"), html.Dd(_fmt(g.get("r_pendry"), 3)),
+                html.Dt("R_ZJ", title="reduced Zanazzi–Jona R-factor"), html.Dd(_fmt(g.get("r_zj"), 3)),
+                html.Dt("common", title="the energy range every member covers"),
+                html.Dd(_fmt(g.get("overlap_eV"), 0, " eV")),
+            ]),
         ]))
     return html.Div([
-        html.Table(className="series-groups", children=[html.Thead(head), html.Tbody(body)]),
-        html.P("R_P compares each pair of equivalent beams over their common energies (V0i 4 eV); "
-               "low values mean the data agree. Overlap: the energy range every member covers.",
+        html.Div(cards, className="group-cards"),
+        html.P("Each card: the equivalent beams' I(V) (thin) and their average (dashed). R_P compares each pair "
+               "of them over their common energies (V0i 4 eV); low values mean the data agree.",
                className="muted small-print"),
     ])
 
