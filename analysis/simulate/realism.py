@@ -91,6 +91,7 @@ def channel_plate_transmission(shape, *, period_px: float, depth: float, angle_d
     Parameters
     ----------
     shape : (rows, cols)
+        Size of the frame.
     period_px : float, keyword-only
         Distance between neighbouring cells, pixels (> 1).
     depth : float, keyword-only
@@ -134,6 +135,18 @@ def add_channel_plate_texture(light, *, period_px: float, depth: float, angle_de
                               phase_rad=(0.0, 0.0, 0.0)) -> np.ndarray:
     """`light` × :func:`channel_plate_transmission` (photons per pixel, (rows, cols) float64).
 
+    Parameters
+    ----------
+    light : (rows, cols) array_like of float
+        Photons per pixel.
+    period_px, depth, angle_deg, phase_rad : keyword-only
+        The texture, as for :func:`channel_plate_transmission`.
+
+    Returns
+    -------
+    (rows, cols) ndarray of float64
+        The light with the texture.
+
     Examples
     --------
     >>> out = add_channel_plate_texture(np.full((64, 64), 100.0), period_px=5.0, depth=0.2)
@@ -158,7 +171,9 @@ def dust_transmission(shape, rng: np.random.Generator, *, n: int, radius_px=(1.5
     Parameters
     ----------
     shape : (rows, cols)
+        Size of the frame.
     rng : numpy.random.Generator
+        Source of the random draws.
     n : int, keyword-only
         Number of specks.
     radius_px, opacity, edge_px : (low, high), keyword-only
@@ -167,10 +182,12 @@ def dust_transmission(shape, rng: np.random.Generator, *, n: int, radius_px=(1.5
         With `within_px`: specks fall uniformly on this disk (the screen); default
         anywhere in the frame.
     within_px : float, optional, keyword-only
+        Radius of that disk, pixels.
 
     Returns
     -------
     transmission : (rows, cols) ndarray of float64
+        Multiplies the screen's light.
     specks : list of dict
         ``x``, ``y`` (pixels), ``radius_px``, ``opacity``, ``edge_px`` of each speck.
 
@@ -214,7 +231,26 @@ def dust_transmission(shape, rng: np.random.Generator, *, n: int, radius_px=(1.5
 
 
 def add_dust(light, rng: np.random.Generator, *, n: int, **kw) -> tuple[np.ndarray, list[dict]]:
-    """`light` × :func:`dust_transmission` (same keywords); returns (light, specks)."""
+    """`light` × :func:`dust_transmission` (same keywords); returns (light, specks).
+
+    Parameters
+    ----------
+    light : (rows, cols) array_like of float
+        Photons per pixel.
+    rng : numpy.random.Generator
+        Source of the random draws.
+    n : int, keyword-only
+        Number of specks.
+    **kw
+        The other keywords of :func:`dust_transmission`.
+
+    Returns
+    -------
+    light : (rows, cols) ndarray of float64
+        The light with the specks.
+    specks : list of dict
+        Each speck, as :func:`dust_transmission` lists them.
+    """
     a = _image2(light, "light").astype(np.float64)
     t, specks = dust_transmission(a.shape, rng, n=n, **kw)
     return a * t, specks
@@ -232,6 +268,7 @@ def add_glare(light, *, center_px, sigma_px, photons_per_px: float, angle_deg: f
     light : (rows, cols) array_like of float
         Photons per pixel.
     center_px : (x, y), keyword-only
+        Centre of the patch, pixels.
     sigma_px : float or (major, minor), keyword-only
         Widths along `angle_deg` and across it, pixels.
     photons_per_px : float, keyword-only
@@ -276,7 +313,9 @@ def bloom_columns(electrons, *, full_well_e: float) -> np.ndarray:
     Parameters
     ----------
     electrons : (rows, cols) array_like of float
+        Charge per pixel, electrons.
     full_well_e : float, keyword-only
+        Largest charge a pixel holds, electrons.
 
     Returns
     -------
@@ -333,13 +372,17 @@ def expose(light, rng: np.random.Generator, *, gain_adu_per_e: float, offset_adu
     light : (rows, cols) array_like of float
         Expected photons per pixel (1 photon = 1 electron).
     rng : numpy.random.Generator
+        Source of the random draws.
     gain_adu_per_e, offset_adu, read_noise_e : float, keyword-only
+        Counts per electron, the dark offset (counts) and the read noise (electrons).
     bit_depth : {8, 16}, keyword-only
+        Bits per pixel of the output.
     full_well_e : float, optional, keyword-only
         Default: a little above the charge that reaches full scale,
         (2^bits − 1 − offset) / gain + 5 × read noise, so a full pixel reads full scale
         whatever its read noise.
     bloom : bool, keyword-only
+        Let charge above the full well spill along the columns.
 
     Returns
     -------
@@ -378,7 +421,9 @@ def add_hot_pixels(image, rng: np.random.Generator, *, n: int, level=(0.85, 1.0)
     Parameters
     ----------
     image : (rows, cols) ndarray of int or float
+        Camera counts.
     rng : numpy.random.Generator
+        Source of the random draws.
     n : int, keyword-only
         Number of hot pixels (distinct positions, uniform over the frame).
     level : (low, high), keyword-only
@@ -424,12 +469,17 @@ def add_cosmic_rays(image, rng: np.random.Generator, *, n: int, length_px=(1.0, 
     Parameters
     ----------
     image : (rows, cols) ndarray
+        Camera counts.
     rng : numpy.random.Generator
+        Source of the random draws.
     n : int, keyword-only
+        Number of tracks.
     length_px, charge_e : (low, high), keyword-only
+        Ranges of the projected track length (pixels) and of its charge (electrons).
     gain_adu_per_e : float, keyword-only
         Counts per electron of the camera.
     full_scale : float, optional, keyword-only
+        Largest count; default the largest value of an integer dtype.
 
     Returns
     -------
@@ -491,9 +541,11 @@ def to_colour_jpeg(image, *, quality: int, black_adu: float | None = None, white
         Counts that become 0 and 255 (default: the image's 0.1st percentile, and the
         99.99th percentile of its 3 × 3 median, which hot pixels do not move).
     channel_gains : 3 floats, keyword-only
+        Red, green and blue responses to the phosphor's light.
     gamma : float, keyword-only
         Exponent of the tone curve (1 = linear, 1/2.2 ≈ a display gamma).
     bayer : bool, keyword-only
+        Sample through an RGGB colour filter and interpolate, as a one-chip camera does.
 
     Returns
     -------

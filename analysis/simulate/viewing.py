@@ -111,6 +111,18 @@ def _homography(h) -> np.ndarray:
 def map_points(h, xy_px) -> np.ndarray:
     """Positions (x, y) through the homography `h`: (K, 2) → (K, 2) float64.
 
+    Parameters
+    ----------
+    h : (3, 3) array_like of float
+        The homography, acting on (x, y, 1) columns.
+    xy_px : (K, 2) array_like of float
+        Positions (x, y), pixels.
+
+    Returns
+    -------
+    (K, 2) ndarray of float64
+        The moved positions.
+
     Examples
     --------
     >>> print(map_points(np.diag([2.0, 1.0, 1.0]), [[1.0, 3.0]]).tolist())
@@ -134,12 +146,15 @@ def warp_image(image, h, *, shape=None, order: int = 3, conserve: bool = True, c
     Parameters
     ----------
     image : (rows, cols) array_like
+        The frame.
     h : (3, 3) array_like
+        The homography H, acting on (x, y, 1) columns.
     shape : (rows, cols), optional, keyword-only
         Output size; default the input's.
     order : int, keyword-only
         0 (nearest: masks) … 5.
     conserve : bool, keyword-only
+        Treat values as amounts per pixel and keep their totals.
     cval : float, keyword-only
         Value outside the input.
 
@@ -199,11 +214,14 @@ def map_truth(truth: dict, h, *, shape) -> dict:
     truth : dict
         As made by :func:`analysis.simulate.render_image`.
     h : (3, 3) array_like
+        The homography, acting on (x, y, 1) columns.
     shape : (rows, cols), keyword-only
+        Size of the new frame.
 
     Returns
     -------
     dict
+        The moved truth.
     """
     a = _homography(h)
     out = copy.deepcopy(truth)
@@ -270,7 +288,9 @@ def crop(image, truth: dict, *, top_left_rc, shape) -> tuple[np.ndarray, dict]:
     Parameters
     ----------
     image : (rows, cols) ndarray
+        The frame.
     truth : dict
+        Its truth (as made by :func:`analysis.simulate.render_image`).
     top_left_rc : (row, col) of int, keyword-only
         First pixel of the window.
     shape : (rows, cols), keyword-only
@@ -278,7 +298,10 @@ def crop(image, truth: dict, *, top_left_rc, shape) -> tuple[np.ndarray, dict]:
 
     Returns
     -------
-    image : ndarray (a copy), truth : dict
+    image : ndarray
+        The window (a copy).
+    truth : dict
+        Its truth.
 
     Examples
     --------
@@ -309,6 +332,22 @@ def incidence_k_in_par(energy_eV: float, *, tilt_deg: float, azimuth_deg: float,
     |k∥| = sin(tilt) / λ (Å⁻¹, no 2π), pointing along the surface azimuth
     `azimuth_deg` (the optics' surface axes, counter-clockwise from x).
 
+    Parameters
+    ----------
+    energy_eV : float
+        Electron energy, eV.
+    tilt_deg : float, keyword-only
+        Angle of the incident beam from the surface normal, degrees.
+    azimuth_deg : float, keyword-only
+        Surface azimuth of the tilt, degrees.
+    relativistic : bool, keyword-only
+        Use the relativistic wavelength.
+
+    Returns
+    -------
+    (2,) ndarray of float64
+        k_in∥, Å⁻¹ without 2π.
+
     Examples
     --------
     >>> k = incidence_k_in_par(100.0, tilt_deg=30.0, azimuth_deg=90.0)
@@ -335,6 +374,20 @@ def off_normal_pattern(pattern: Pattern, *, tilt_deg: float, azimuth_deg: float)
     geometry and azimuth are those of `pattern`; beams are merged with the default
     tolerance (non-relativistic wavelength).
 
+    Parameters
+    ----------
+    pattern : Pattern
+        The pattern at normal incidence.
+    tilt_deg : float, keyword-only
+        Angle of the primary beam from the surface normal, degrees.
+    azimuth_deg : float, keyword-only
+        Surface azimuth of the tilt, degrees.
+
+    Returns
+    -------
+    Pattern
+        The beams at the tilted incidence.
+
     Examples
     --------
     >>> from analysis.nets import parse_substrate
@@ -356,7 +409,18 @@ def off_normal_pattern(pattern: Pattern, *, tilt_deg: float, azimuth_deg: float)
 
 
 def gun_position_px(pattern: Pattern) -> np.ndarray:
-    """(x, y) image position of the electron gun: the direction the incident beam comes from (−k_in∥)."""
+    """(x, y) image position of the electron gun: the direction the incident beam comes from (−k_in∥).
+
+    Parameters
+    ----------
+    pattern : Pattern
+        A pattern with its incidence (``k_in_par``) and geometry.
+
+    Returns
+    -------
+    (2,) ndarray of float64
+        (x, y), pixels.
+    """
     xy, _ = momentum_to_pixels(-np.asarray(pattern.k_in_par, dtype=np.float64).reshape(1, 2), pattern.energy_eV,
                                dataclasses.replace(pattern.geometry, acceptance_deg=90.0))
     return xy[0]
@@ -365,6 +429,20 @@ def gun_position_px(pattern: Pattern) -> np.ndarray:
 def rescale_pattern(pattern: Pattern, *, factor: float, center_px) -> Pattern:
     """`pattern` as a camera with `factor` times the pixels per screen radius sees it,
     its centre at `center_px` (x, y); everything else as in `pattern`.
+
+    Parameters
+    ----------
+    pattern : Pattern
+        The pattern.
+    factor : float, keyword-only
+        Ratio of the new camera scale to the old.
+    center_px : (x, y), keyword-only
+        The new pattern centre, pixels.
+
+    Returns
+    -------
+    Pattern
+        The same beams on the new camera.
 
     Examples
     --------
