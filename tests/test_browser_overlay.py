@@ -48,6 +48,9 @@ def _shot(page, name):
 
 
 def test_two_domains_are_drawn_as_nets_and_one_comes_forward(page, live_server):
+    errors = []
+    page.on("console", lambda m: errors.append(m.text) if m.type == "error" else None)
+    page.on("pageerror", lambda e: errors.append(str(e)))
     truth = _analyse(page, live_server, TWO_DOMAINS)
     # truth: the renderer drew two mirror domains of (√7×√7)R19.1° on Pt(111)
     n_dom = len(truth["scenario"]["domains"])
@@ -76,6 +79,7 @@ def test_two_domains_are_drawn_as_nets_and_one_comes_forward(page, live_server):
     page.wait_for_function("""() => document.querySelector('#graph .js-plotly-plot').data
         .filter(t => (t.name || '').endsWith(' net') && (t.name || '').startsWith('Domain'))
         .every(t => t.line.width < 2)""", timeout=30_000)
+    assert errors == []
 
 
 def test_basis_labels_sit_beyond_their_arrows(page, live_server):

@@ -181,6 +181,9 @@ def on_domain_focus(clicks, pick, record, current):
     """A domain button -> that domain brought forward (a second click: all alike); a new result
     or another candidate -> none."""
     trig = ctx.triggered_id if _in_callback() else None
+    fired = {str(t.get("prop_id", "")).rsplit(".", 1)[0] for t in ctx.triggered} if _in_callback() else set()
+    if fired & {ids.RESULT, ids.CANDIDATE_PICK}:  # a new answer or another candidate: all domains alike
+        return None
     if isinstance(trig, dict) and trig.get("type") == ids.DOMAIN_BUTTON:
         if not any(clicks or []):
             raise PreventUpdate  # the buttons were just drawn
