@@ -19,7 +19,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .domain_size import BeamWidths, DomainSize, domain_size, widths_in_momentum
+from .domain_size import BeamWidths, DomainSize, domain_size, sizes_along_axes, widths_in_momentum
 from .errors import ParameterError
 from .optics import ScreenGeometry
 from .spots.widths import fit_spot_widths
@@ -42,14 +42,28 @@ class WidthReport:
     beams : BeamWidths
         One entry per spot of the analysis, in its order.
     domain : DomainSize
+    axes : list of dict
+        Per overlayer domain, the mean extents along its net vectors b1 and b2
+        (:func:`analysis.domain_size.sizes_along_axes`).
     """
 
     beams: BeamWidths
     domain: DomainSize
+    axes: tuple = ()
 
     def to_dict(self) -> dict:
-        return {"domain_size": self.domain.to_dict(),
+        return {"domain_size": self.domain.to_dict(), "along_domain_axes": list(self.axes),
                 "instrument_fwhm_px": list(self.domain.instrument_fwhm_px)}
+
+    def axes_text(self) -> str:
+        """One line: each domain's extents along b1 and b2 ('' when none resolves)."""
+        parts = []
+        for a in self.axes:
+            b1, b2 = a["size_b1_angstrom"], a["size_b2_angstrom"]
+            f = (lambda v: f"{v:.0f} Å" if math.isfinite(v) else "unresolved")
+            parts.append(f"domain {a['domain']}: {f(b1)} along b1, {f(b2)} along b2 "
+                         f"({max(a['n_b1'], a['n_b2'])} beams)")
+        return ("Along each domain's net vectors — " + "; ".join(parts) + ".") if parts else ""
 
 
 def _as_dict(result) -> tuple[dict, np.ndarray | None, list]:
@@ -144,8 +158,25 @@ def measure_widths(image, result, *, mask=None) -> WidthReport:
                                a_star_invA=float(d["substrate"]["a_star_invA"]))
     usable = np.array([bool(s.get("trusted", True)) and not s.get("manual", False) for s in spots], bool)
     kind = np.array([s.get("kind") for s in spots], dtype=object)
-    dom = domain_size(beams, usable & (kind == "integer"), usable & (kind == "fractional"), geometry=geom)
-    return WidthReport(beams, dom)
+    frac = usable & (kind == "fractional")
+    dom = domain_size(beams, usable & (kind == "integer"), frac, geometry=geom)
+    return WidthReport(beams, dom, tuple(_axes_sizes(d, beams, usable & (kind == "integer"), frac)))
+
+
+def _axes_sizes(d: dict, beams: BeamWidths, integer, frac) -> list:
+    """Per domain, extents along its net vectors (momentum frame: k = hk · A*, rows of A* from the dict)."""
+    try:
+        a_star = np.asarray(d["substrate"]["reciprocal_invA"], float).reshape(2, 2)
+        mats = np.asarray(d["overlayer"].get("domains") or [], float).reshape(-1, 2, 2)
+    except (KeyError, TypeError, ValueError):
+        return []
+    if len(mats) == 0 or abs(np.linalg.det(a_star)) < 1e-12:
+        return []
+    a_real = np.linalg.inv(a_star).T  # rows a1, a2 (Å): a_i · a*_j = δ_ij
+    axes = mats @ a_real  # (D, 2, 2): rows b1, b2 of each domain
+    idx = np.array([s.get("domain") if s.get("domain") is not None else -1 for s in d["spots"]], int)
+    idx = np.where(frac, idx, -1)
+    return sizes_along_axes(beams, integer, idx, axes)
 
 
 def _num(v, nd=None):
@@ -220,9 +251,10 @@ def spot_rows(result, *, widths: WidthReport | None = None) -> list[dict]:
     return rows
 
 
-def rows_to_csv(rows: list[dict], *, domain: DomainSize | None = None) -> str:
+def rows_to_csv(rows: list[dict], *, domain: DomainSize | None = None, axes_text: str = "") -> str:
     """CSV text of :func:`spot_rows` (header :data:`COLUMNS`; empty cells for None); with
-    `domain`, leading ``#`` comment lines state the domain-size estimate and its method.
+    `domain` (and `axes_text`, :meth:`WidthReport.axes_text`), leading ``#`` comment lines state
+    the domain-size estimate, the extents along the domains' net vectors and the method.
 
     Parameters
     ----------
@@ -243,7 +275,10 @@ def rows_to_csv(rows: list[dict], *, domain: DomainSize | None = None) -> str:
     """
     out = io.StringIO()
     if domain is not None:
-        out.write(f"# {domain.message}\n# method: {domain.method}\n")
+        out.write(f"# {domain.message}\n")
+        if axes_text:
+            out.write(f"# {axes_text}\n")
+        out.write(f"# method: {domain.method}\n")
     w = csv.writer(out, lineterminator="\n")
     w.writerow(COLUMNS)
     for r in rows:

@@ -60,6 +60,10 @@ def test_widths_summary_and_table_show_the_domain_size(analysed, domain_frame):
     size = float(text.split("≈ ")[1].split(" Å")[0])
     assert abs(size / truth - 1.0) < 0.15, text
     assert "Instrument response" in text and "Scherrer" in text
+    # square 8 × 8-cell domains: the same extent along both net vectors (40.9 Å, 15 %)
+    along = text.split("domain 1: ")[1]
+    b1, b2 = float(along.split(" Å along b1")[0]), float(along.split(", ")[1].split(" Å along b2")[0])
+    assert abs(b1 / truth - 1) < 0.15 and abs(b2 / truth - 1) < 0.15, along
     assert len(rows) == len(record["result"]["spots"])
     frac = [r for r in rows if r["kind"] == "fractional" and r["domain_size_A"]]
     assert len(frac) >= 5 and all(r["fwhm_radial_bz_percent"] > 0 for r in frac)

@@ -217,6 +217,8 @@ def _summary(rep):
         if math.isfinite(d.instrument_fwhm_invA):
             inst += f", {d.instrument_fwhm_invA:.4f} Å⁻¹ ({100 * d.instrument_fwhm_invA / rep.beams.a_star_invA:.1f} % BZ)"
         lines.append(html.P(inst + "."))
+    if rep.axes_text():
+        lines.append(html.P(rep.axes_text()))
     if d.n_resolved:
         lines.append(html.P(f"Per beam: {d.spread_A[0]:.0f}–{d.spread_A[1]:.0f} Å (quartiles).", className="muted"))
     lines.append(html.Details([html.Summary("Method and source"), html.P(d.method, className="muted")]))
@@ -245,7 +247,8 @@ def table_csv(n_clicks, record, image):
     if rep is None:
         raise PreventUpdate
     stem = safe_stem((image or {}).get("filename"), "analysis")
-    return dcc.send_string(rows_to_csv(rows, domain=rep.domain), f"{stem}_spot_table.csv")
+    return dcc.send_string(rows_to_csv(rows, domain=rep.domain, axes_text=rep.axes_text()),
+                           f"{stem}_spot_table.csv")
 
 
 callback(Output(ids.GRAPH, "figure", allow_duplicate=True), Input(ids.PROFILE_DRAW, "n_clicks"),
