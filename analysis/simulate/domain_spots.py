@@ -143,9 +143,29 @@ def render_domain_image(pattern: Pattern, *, cells, rng: np.random.Generator, sh
     cells : (N1, N2) or sequence of them, keyword-only
         Domain sizes in overlayer cells along b1, b2 (equal numbers of domains of each size).
     rng : numpy.random.Generator, keyword-only
+        Source of every random number.
+    shape : (rows, cols), keyword-only
+        Size of the frame.
     spot_sigma_px : float, keyword-only
         The instrument response (σ of the integer beams), pixels.
-    Other keywords as :func:`analysis.simulate.render_image` (the gun shadow is off by default).
+    intensities : (K,) array_like, optional, keyword-only
+        Photons per beam (as for :func:`analysis.simulate.render_image`).
+    screen_radius_px : float, optional, keyword-only
+        As for :func:`analysis.simulate.render_image`.
+    gun : GunShadow or None, keyword-only
+        The gun shadow; None (default) for none.
+    background_photons : float, keyword-only
+        Diffuse background at the pattern centre, photons per pixel.
+    background_gradient : (gx, gy), keyword-only
+        Relative change of the background per screen radius along x and y.
+    read_noise_e : float, keyword-only
+        Gaussian read noise, electrons.
+    bit_depth : {8, 16}, keyword-only
+        Bits per pixel.
+    noise : bool, keyword-only
+        False renders the rounded expected value.
+    supersample : int, keyword-only
+        Sub-samples per pixel and axis for the broadened spots.
 
     Returns
     -------

@@ -27,6 +27,7 @@ def glide_factors(pattern: Pattern, glide_axes: Sequence, *, residual: float = 0
     Parameters
     ----------
     pattern : Pattern
+        The beams and the domains' matrices.
     glide_axes : sequence of sequence of int
         For each domain of `pattern` (its ``overlayers`` order), the rows of its matrix
         along which a glide line runs (``[]``, ``[0]``, ``[1]`` or ``[0, 1]``).
@@ -79,7 +80,24 @@ def glide_factors(pattern: Pattern, glide_axes: Sequence, *, residual: float = 0
 def glide_intensities(glide_axes: Sequence, *, rng: np.random.Generator, residual: float = 0.0, **kw):
     """A callable ``pattern -> photons``: :func:`analysis.simulate.default_intensities` times
     :func:`glide_factors` (for ``photograph(..., intensities=...)``, which asks it for the final
-    pattern, after ``off_normal``). Keywords go to ``default_intensities``."""
+    pattern, after ``off_normal``). Keywords go to ``default_intensities``.
+
+    Parameters
+    ----------
+    glide_axes : sequence of sequence of int
+        As for :func:`glide_factors`.
+    rng : numpy.random.Generator, keyword-only
+        Source of the random factors of ``default_intensities``.
+    residual : float, keyword-only
+        What is left of an extinguished beam, 0 ≤ residual ≤ 1.
+    **kw
+        Passed to ``default_intensities``.
+
+    Returns
+    -------
+    callable
+        ``f(pattern) -> (K,) ndarray of float64``, photons per beam.
+    """
     def photons(pattern: Pattern) -> np.ndarray:
         return default_intensities(pattern, rng, **kw) * glide_factors(pattern, glide_axes, residual=residual)
 

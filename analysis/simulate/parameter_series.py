@@ -171,6 +171,7 @@ def render_parameter_series(substrate: Net2D, overlayers: Sequence, values: Iter
     Parameters
     ----------
     substrate : Net2D
+        Real-space (1×1) net in Å.
     overlayers : sequence of (2, 2) matrices
         Every superstructure that shows in the series (for :class:`ExposureModel`: the
         first phase, then the second; each given as one domain matrix, its rotated
@@ -179,13 +180,17 @@ def render_parameter_series(substrate: Net2D, overlayers: Sequence, values: Iter
         The parameter of each frame (K for :class:`OrderDisorderModel`, L for
         :class:`ExposureModel`).
     model : callable(Pattern, value) -> (photons, sigma_px, background_photons), keyword-only
+        Per frame: photons and σ (px) of each beam, and the diffuse background.
     energy_eV : float, keyword-only
+        Electron energy, eV.
     geometry : ScreenGeometry, keyword-only
         The camera at frame 0.
     rng : numpy.random.Generator, keyword-only
+        Shared by all frames.
     drift_px_per_frame : (dx, dy), keyword-only
         The pattern centre moves by this much each frame (the screen does not).
     shape : (rows, cols), keyword-only
+        Size of each frame.
     **render_kw
         Passed to :func:`render_image` (gun, bit_depth, …).
 

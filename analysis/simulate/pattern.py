@@ -93,6 +93,18 @@ class Pattern:
 def hk_label(h: float, k: float, *, max_denominator: int = 12) -> str:
     """Beam label with simple fractions, e.g. ``(1/2, -1/3)``; decimals when irrational.
 
+    Parameters
+    ----------
+    h, k : float
+        Beam indices in the substrate's reciprocal basis.
+    max_denominator : int, keyword-only
+        Largest denominator written as a fraction.
+
+    Returns
+    -------
+    str
+        The label.
+
     Examples
     --------
     >>> hk_label(0.5, -1 / 3), hk_label(1.0, 0.0), hk_label(0.1234567, 0.0)
@@ -161,7 +173,9 @@ def forward_pattern(substrate: Net2D, overlayers: Sequence = (), *, energy_eV: f
         One matrix M per domain, ``(b1, b2) = M (a1, a2)``; may be fractional or
         irrational (incommensurate). Empty for the clean surface.
     energy_eV : float, keyword-only
+        Electron energy, eV.
     geometry : ScreenGeometry, keyword-only
+        The camera model.
     azimuth_deg : float, keyword-only
         Counter-clockwise rotation of the sample's surface axes relative to the
         surface frame of the optics.

@@ -175,9 +175,28 @@ def photograph(pattern: Pattern, *, rng: np.random.Generator, effects=(), option
     options : dict, optional, keyword-only
         Per effect, values that replace the drawn parameters, e.g.
         ``{"keystone": {"tilt_deg": 8.0}}`` (the keys are those in ``truth["effects"]``).
-    shape, spot_sigma_px, screen_radius_px, screen_center_px, gun, background_photons,
-    background_gradient, read_noise_e, gain, offset_adu, bit_depth
-        As for :func:`analysis.simulate.render_image` (in the frame of `shape`).
+    shape : (rows, cols), keyword-only
+        Size of the frame (the other sizes are in its pixels).
+    spot_sigma_px : float or (K,) array_like, keyword-only
+        Gaussian σ of each spot, pixels.
+    screen_radius_px : float, optional, keyword-only
+        As for :func:`analysis.simulate.render_image`.
+    screen_center_px : (x, y), optional, keyword-only
+        As for :func:`analysis.simulate.render_image`.
+    gun : GunShadow or None, keyword-only
+        As for :func:`analysis.simulate.render_image`.
+    background_photons : float, keyword-only
+        Diffuse background at the pattern centre, photons per pixel.
+    background_gradient : (gx, gy), keyword-only
+        Relative change of the background per screen radius along x and y.
+    read_noise_e : float, keyword-only
+        Gaussian read noise, electrons.
+    gain : float, optional, keyword-only
+        ADU per electron (as for :func:`analysis.simulate.render_image`).
+    offset_adu : float, optional, keyword-only
+        Dark level (as for :func:`analysis.simulate.render_image`).
+    bit_depth : {8, 16}, keyword-only
+        Bits per pixel.
     intensities : (K,) array_like or callable(Pattern) -> (K,), optional
         Photons per beam; a callable is asked for the final pattern (after
         ``off_normal`` or a new frame changed the beams). Default
@@ -427,11 +446,13 @@ def score_spots(truth: dict, xy_px, *, tol_px: float = 2.0, min_peak_snr: float 
     Parameters
     ----------
     truth : dict
+        A frame's truth (``truth`` of a Photograph or SyntheticImage).
     xy_px : (N, 2) array_like
         Measured (x, y), pixels.
     tol_px : float, keyword-only
         A measurement within this distance of a truth spot matches it.
     min_peak_snr : float, keyword-only
+        Least peak signal-to-noise of a visible truth spot.
 
     Returns
     -------

@@ -114,6 +114,18 @@ def acceptance_radius_px(geometry: ScreenGeometry, energy_eV: float = 100.0) -> 
 
     It does not depend on the energy: the radius is a function of θ only.
 
+    Parameters
+    ----------
+    geometry : ScreenGeometry
+        The camera model (its acceptance angle and scale).
+    energy_eV : float
+        Any electron energy, eV (the radius does not depend on it).
+
+    Returns
+    -------
+    float
+        Radius, pixels.
+
     Examples
     --------
     >>> print(round(acceptance_radius_px(ScreenGeometry(0.0, 0.0, 500.0, acceptance_deg=30.0)), 6))
@@ -131,6 +143,17 @@ def default_intensities(pattern: Pattern, rng: np.random.Generator, *, photons: 
 
     I = photons · (0.25 + 0.75 exp(−(sin θ / 0.55)²)) · u, u uniform in [0.35, 1),
     times `overlayer_factor` for fractional-order beams.
+
+    Parameters
+    ----------
+    pattern : Pattern
+        The beams.
+    rng : numpy.random.Generator
+        Source of the random factors.
+    photons : float, keyword-only
+        Photons of a beam at the pattern centre before the random factor.
+    overlayer_factor : float, keyword-only
+        Factor on fractional-order beams.
 
     Returns
     -------
@@ -231,7 +254,9 @@ def render_image(pattern: Pattern, *, shape=(1024, 1024), rng: np.random.Generat
     Parameters
     ----------
     pattern : Pattern
+        The beams, framed by its geometry.
     shape : (rows, cols), keyword-only
+        Size of the frame.
     rng : numpy.random.Generator, keyword-only
         Source of every random number (noise and default intensities).
     spot_sigma_px : float or (K,) array_like
@@ -255,6 +280,7 @@ def render_image(pattern: Pattern, *, shape=(1024, 1024), rng: np.random.Generat
     offset_adu : float, optional
         Dark level; default 100 (16-bit) or 4 (8-bit).
     bit_depth : {8, 16}
+        Bits per pixel.
     saturate : bool
         True: pixels above full scale clip (real camera). False: the gain is
         lowered so the brightest expected pixel stays below full scale.

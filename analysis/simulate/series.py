@@ -71,9 +71,14 @@ def render_series(substrate: Net2D, overlayers: Sequence = (), energies_eV: Iter
 
     Parameters
     ----------
-    substrate, overlayers : as for :func:`forward_pattern`.
+    substrate : Net2D
+        Real-space (1×1) net in Å.
+    overlayers : sequence of (2, 2) array_like of float
+        One matrix per domain (as for :func:`forward_pattern`).
     energies_eV : iterable of float
+        The energy of each frame, eV.
     geometry : ScreenGeometry, keyword-only
+        The camera model.
     rng : numpy.random.Generator, keyword-only
         Shared by all frames (noise differs frame to frame, reproducibly).
     intensity_fn : callable(Pattern) -> (K,) photons, optional

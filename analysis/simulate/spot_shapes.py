@@ -41,6 +41,18 @@ _LN2 = math.log(2.0)
 def moffat_alpha_px(sigma_px, beta: float):
     """Moffat width α (pixels) whose FWHM equals a Gaussian's of width `sigma_px`.
 
+    Parameters
+    ----------
+    sigma_px : float or ndarray of float
+        The Gaussian σ, pixels.
+    beta : float
+        The Moffat exponent (> 0).
+
+    Returns
+    -------
+    float or ndarray of float64
+        α, pixels.
+
     Examples
     --------
     >>> a = moffat_alpha_px(2.0, 2.5)
