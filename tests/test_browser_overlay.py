@@ -121,3 +121,19 @@ def test_undo_last_edit_takes_back_one_click(page, live_server):
     page.wait_for_function(f"() => {{ const e = document.querySelector('#spot-count');"
                            f" return e && parseInt(e.dataset.count) === {before + 1}; }}", timeout=WAIT_MS)
     assert "1 added" in page.inner_text("#edit-summary")
+
+
+def test_masks_and_domains_keep_their_own_styles_on_si100(page, live_server):
+    truth = _analyse(page, live_server, "si100_SX-1_2x1_two_domains.png")
+    page.locator("#overlays").get_by_text("Screen and gun masks", exact=True).click()
+    page.wait_for_function("""() => document.querySelector('#graph .js-plotly-plot').data
+        .some(t => t.name === 'Gun shadow')""", timeout=30_000)
+    styles = page.evaluate("""() => Object.fromEntries(document.querySelector('#graph .js-plotly-plot').data
+        .filter(t => t.mode === 'lines').map(t => [t.name, [t.line.color, t.line.dash || 'solid']]))""")
+    assert styles["Screen edge"] != styles["Gun shadow"]
+    nets = [n for n in styles if n.startswith("Domain") and n.endswith(" net")]
+    # truth: the renderer drew the two rotational domains of (2×1) on Si(100)
+    assert len(nets) == len(truth["scenario"]["domains"]) == 2
+    colours = {styles[n][0] for n in nets}
+    assert len(colours) == 2 and not colours & {styles["Screen edge"][0], styles["Gun shadow"][0]}
+    _shot(page, "overlay-si100-masks.png")
