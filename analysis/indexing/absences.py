@@ -143,8 +143,22 @@ def _rect_cell(substrate: Net2D, m: np.ndarray) -> tuple[np.ndarray, str] | None
 def extinct_mask(hk: np.ndarray, matrix, axis: int) -> np.ndarray:
     """Which beams `hk` (substrate units) a glide along row `axis` of the cell `matrix` extinguishes.
 
-    Beams n·b*_axis of the cell with n odd (the other index 0). `matrix` must be the
-    domain's rectangular cell (rows along the glide candidates).
+    Beams n·b*_axis of the cell with n odd (the other index 0).
+
+    Parameters
+    ----------
+    hk : (N, 2) array_like of float
+        Beam indices in the substrate's reciprocal basis.
+    matrix : (2, 2) array_like of float
+        The domain's rectangular cell, real space, substrate basis; its rows are the
+        cell axes a glide may run along.
+    axis : int
+        The row of `matrix` the glide line runs along (0 or 1).
+
+    Returns
+    -------
+    (N,) ndarray of bool
+        True for the beams the glide extinguishes.
 
     Examples
     --------
@@ -249,8 +263,8 @@ def glide_excused(ctx, mats, absent_hk: np.ndarray) -> np.ndarray:
 
     Parameters
     ----------
-    ctx
-        The overlayer scoring context (``analysis.indexing.overlayers``).
+    ctx : analysis.indexing.overlayers._Context
+        The overlayer scoring context (spots, camera, matching tolerance).
     mats : list of (2, 2) ndarray
         The model's domains.
     absent_hk : (N, 2) ndarray
@@ -282,8 +296,8 @@ def read_plane_group(ctx, mats) -> PlaneGroupReading:
 
     Parameters
     ----------
-    ctx
-        The overlayer scoring context (``analysis.indexing.overlayers``).
+    ctx : analysis.indexing.overlayers._Context
+        The overlayer scoring context (spots, camera, matching tolerance).
     mats : list of (2, 2) ndarray
         The model's domains.
 

@@ -126,8 +126,16 @@ def find_phases(fit, models: list, *, energy_eV: float, intensity=None, valid_ma
         The substrate reading the models were found on.
     models : list of OverlayerModel
         The overlayer models, best first (:func:`.overlayers.find_overlayers`).
-    energy_eV, intensity, valid_mask, tol_px, reliable
-        As for :func:`.overlayers.find_overlayers`.
+    energy_eV : float
+        Electron energy, eV.
+    intensity : (K,) ndarray of float, optional
+        Spot intensities (the intensity shares and the search use them).
+    valid_mask : (M, N) ndarray of bool, optional
+        Pixels where a spot could be seen.
+    tol_px : float
+        Matching tolerance, pixels.
+    reliable : (K,) ndarray of bool, optional
+        Spots whose centres are trusted (only they count in the scores).
 
     Returns
     -------
