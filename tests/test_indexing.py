@@ -463,3 +463,30 @@ def test_serialize_formats_and_computes_nothing():
     assert imported == {("__future__", "annotations"), ("typing", "TYPE_CHECKING"), ("errors", "ParameterError"),
                         ("jsonsafe", "json_safe"), ("superstructure", "beam_label"),
                         ("superstructure", "format_matrix")}
+
+
+def test_population_test_puts_measured_indices_on_the_model_grid():
+    # Three (2×1) domains on a hexagonal net with populations 1 : 0.8 : 0.6 (a render's truth:
+    # intensity ∝ population × a per-class structure factor). Measured indices carry ±0.01 of
+    # noise; rounded to 3 decimals each spot was its own symmetry class and the test said nothing.
+    from analysis.indexing.overlayers import _population_test
+    from analysis.nets import point_group
+
+    sub = parse_substrate("hexagonal:2.7")
+    ops = point_group(sub)
+    mats = all_domain_matrices(sub, "p(2x1)")
+    rng = np.random.default_rng(1)
+    hk, by, inten = [], [], []
+    for d, (m, pop) in enumerate(zip(mats, (1.0, 0.8, 0.6))):
+        b = np.linalg.inv(np.asarray(m, float)).T  # rows: the domain's reciprocal basis (hk units)
+        for u in [(1, 0), (-1, 0), (1, 1), (-1, -1), (1, -1), (-1, 1), (3, 0), (-3, 0)]:
+            g = np.array(u, float) @ b
+            if np.allclose(g, np.rint(g)):
+                continue
+            cls = round(float(np.hypot(*(g @ reciprocal(sub).vectors))), 3)
+            hk.append(g + rng.normal(0.0, 0.01, 2))
+            by.append(d)
+            inten.append(pop * (1000.0 if cls < 0.3 else 400.0) * rng.normal(1.0, 0.02))
+    hk, by, inten = np.array(hk), np.array(by), np.array(inten)
+    assert _population_test(hk, by, inten, ops) is None  # without the grid: no classes shared
+    assert _population_test(hk, by, inten, ops, denominator=2) > 3.0

@@ -14,7 +14,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 from scipy.spatial import cKDTree
 
-from ..errors import FitError, ParameterError
+from ..errors import FitError, NetError, ParameterError
 from ..lattice import lattice_points, screen_g_max
 from ..nets import Net2D, classify_net, point_group, reciprocal, symmetrized
 from ..optics import ScreenGeometry, wavelength_A
@@ -22,6 +22,7 @@ from ..superstructure import (
     Kind,
     _same_lattice_fast,
     classify_superstructure,
+    coincidence_cell,
     coverage,
     nice_matrix,
     overlayer_net,
@@ -420,7 +421,8 @@ def _describe(ctx: _Context, sc: _Scored, *, kind_tol: float) -> OverlayerModel:
     w = wood_notation(ctx.substrate, m, tol=1e-6 if kind.kind != "incommensurate" else 2e-3)
     ratio = None
     if ctx.intensity is not None and len(mats) > 1:
-        ratio = _population_test(ctx.hk, sc.explained_by, ctx.intensity, ctx.ops)
+        ratio = _population_test(ctx.hk, sc.explained_by, ctx.intensity, ctx.ops,
+                                 denominator=_index_denominator(mats[0]) if kind.kind != "incommensurate" else None)
     notes = []
     if sc.satellites:
         notes.append(f"{sc.satellites} spots explained as multiple-scattering satellites")
@@ -482,20 +484,39 @@ def evaluate_model(hk: np.ndarray, integer: np.ndarray, substrate_fit: Substrate
 _INTENSITY_SCATTER = 0.1  # relative scatter of equivalent beams' intensities taken as noise
 
 
-def _population_test(hk: np.ndarray, by: np.ndarray, intensity: np.ndarray, ops) -> float | None:
+def _index_denominator(matrix) -> int | None:
+    """The n with every beam of a rational overlayer at indices in (1/n)ℤ (n = |det| of its
+    integer coincidence matrix), or None for an irrational one.
+
+    >>> _index_denominator([[2, 0], [0, 1]]), _index_denominator([[1.5, 0], [0, 1.5]])
+    (2, 9)
+    """
+    q = _snap_matrix(np.asarray(matrix, dtype=np.float64), 1e-6, 12)
+    if q is None:
+        return None
+    try:
+        return int(round(abs(np.linalg.det(coincidence_cell(q)))))
+    except NetError:
+        return None
+
+
+def _population_test(hk: np.ndarray, by: np.ndarray, intensity: np.ndarray, ops, *,
+                     denominator: int | None = None) -> float | None:
     """Variance ratio of log intensities within symmetry classes, without / with per-domain populations.
 
     Classes are orbits of beam indices under the full substrate group. A ratio
     well above 1 says the domains are unequally populated, which a
-    single-domain model cannot produce.
+    single-domain model cannot produce. `denominator` n puts the measured
+    indices on the model's grid (1/n)ℤ first, so equivalent beams share a class.
     """
     sel = by >= 0
     if sel.sum() < 6:
         return None
     li = np.log(np.clip(intensity[sel], 1e-9, None))
     inv_t = np.array([np.linalg.inv(op.matrix).T for op in ops])
+    hk_sel = hk[sel] if not denominator else np.rint(hk[sel] * denominator) / denominator
     # class key: the lexicographically largest image of the beam index under the group
-    img = np.round(np.einsum("si,gij->sgj", hk[sel], inv_t), 3) + 0.0  # (S, G, 2)
+    img = np.round(np.einsum("si,gij->sgj", hk_sel, inv_t), 3) + 0.0  # (S, G, 2)
     k0 = img[:, :, 0].max(axis=1)
     k1 = np.where(img[:, :, 0] == k0[:, None], img[:, :, 1], -np.inf).max(axis=1)
     _, cls = np.unique(np.column_stack([k0, k1]), axis=0, return_inverse=True)
