@@ -104,7 +104,8 @@ def test_line_profile_widths_domain_size_and_spot_table(page, live_server, tmp_p
     page.locator("#profile-scale").get_by_text("log", exact=True).click()
     page.wait_for_function("document.querySelector('#profile-graph .js-plotly-plot').layout.yaxis.type === 'log'")
     # the profile runs over two Brillouin zones: from (−1 0) to (1 0) is 2 |a*| (truth: the beams' indices)
-    x_end = page.evaluate("(x => x[x.length - 1])(document.querySelector('#profile-graph .js-plotly-plot')._fullData[0].x)")
+    x_end = page.evaluate(
+        "(x => x[x.length - 1])(document.querySelector('#profile-graph .js-plotly-plot')._fullData[0].x)")
     assert abs(x_end - 200.0) < 2.0, x_end
     page.wait_for_timeout(500)
     # the drawn line stays on the pattern

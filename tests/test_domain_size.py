@@ -175,10 +175,12 @@ def test_spot_table_of_an_analysis(analysed):
     assert len(frac) >= 5 and min(r["fwhm_radial_px"] for r in frac) > max(r["fwhm_radial_px"] for r in integ)
     text = rows_to_csv(rows, domain=w.domain)
     assert text.startswith("# Mean domain size")
-    back = list(csv.DictReader(io.StringIO("".join(line + "\n" for line in text.splitlines() if not line.startswith("#")))))
+    body = "".join(line + "\n" for line in text.splitlines() if not line.startswith("#"))
+    back = list(csv.DictReader(io.StringIO(body)))
     assert len(back) == len(rows) and float(back[0]["x"]) == rows[0]["x"]
     # the JSON route gives the same rows, without the fit flags it does not carry
-    rows_json = spot_rows(result_to_dict(result), widths=measure_widths(im.image, result_to_dict(result), mask=result.measurement.valid))
+    as_json = result_to_dict(result)
+    rows_json = spot_rows(as_json, widths=measure_widths(im.image, as_json, mask=result.measurement.valid))
     assert [r["label"] for r in rows_json] == [r["label"] for r in rows]
     assert_allclose([r["fwhm_radial_px"] or 0 for r in rows_json], [r["fwhm_radial_px"] or 0 for r in rows], atol=0.02)
 

@@ -215,7 +215,8 @@ def _summary(rep):
     if math.isfinite(px_r):
         inst = f"Instrument response (integer beams): FWHM {px_r:.2f} px radial, {px_t:.2f} px tangential"
         if math.isfinite(d.instrument_fwhm_invA):
-            inst += f", {d.instrument_fwhm_invA:.4f} Å⁻¹ ({100 * d.instrument_fwhm_invA / rep.beams.a_star_invA:.1f} % BZ)"
+            bz = 100 * d.instrument_fwhm_invA / rep.beams.a_star_invA
+            inst += f", {d.instrument_fwhm_invA:.4f} Å⁻¹ ({bz:.1f} % BZ)"
         lines.append(html.P(inst + "."))
     if rep.axes_text():
         lines.append(html.P(rep.axes_text()))
@@ -254,7 +255,8 @@ def table_csv(n_clicks, record, image):
 callback(Output(ids.GRAPH, "figure", allow_duplicate=True), Input(ids.PROFILE_DRAW, "n_clicks"),
          prevent_initial_call=True)(on_draw_line)
 callback(Output(ids.PROFILE_X0, "value"), Output(ids.PROFILE_Y0, "value"), Output(ids.PROFILE_X1, "value"),
-         Output(ids.PROFILE_Y1, "value"), Input(ids.GRAPH, "relayoutData"), prevent_initial_call=True)(line_from_relayout)
+         Output(ids.PROFILE_Y1, "value"), Input(ids.GRAPH, "relayoutData"),
+         prevent_initial_call=True)(line_from_relayout)
 callback(Output(ids.PROFILE_GRAPH, "figure"), Output(ids.PROFILE_NOTE, "children"),
          Input(ids.PROFILE_X0, "value"), Input(ids.PROFILE_Y0, "value"), Input(ids.PROFILE_X1, "value"),
          Input(ids.PROFILE_Y1, "value"), Input(ids.PROFILE_WIDTH, "value"), Input(ids.PROFILE_UNIT, "value"),
