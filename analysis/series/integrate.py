@@ -122,6 +122,22 @@ def _despike(data: np.ndarray, n: int, hi_px: float, bg: np.ndarray, sd: np.ndar
     return np.where(spike, second, p)
 
 
+def _despike_windows(data: np.ndarray, bg: np.ndarray, sd: np.ndarray) -> None:
+    """:func:`_despike` on (K, w, w) windows, in place (the peak search then cannot lock on a
+    hot pixel beside a spot); `bg` and `sd` (K,) the background level and noise of each."""
+    up = np.concatenate([data[:, :1], data[:, :-1]], axis=1)
+    down = np.concatenate([data[:, 1:], data[:, -1:]], axis=1)
+    left = np.concatenate([data[:, :, :1], data[:, :, :-1]], axis=2)
+    right = np.concatenate([data[:, :, 1:], data[:, :, -1:]], axis=2)
+    second = np.maximum(np.minimum(np.maximum(up, down), np.maximum(left, right)),
+                        np.maximum(np.minimum(up, down), np.minimum(left, right)))
+    b = np.where(np.isfinite(bg), bg, 0.0)[:, None, None]
+    noise = _SPIKE_SIGMAS * np.where(np.isfinite(sd), sd, 0.0)[:, None, None]
+    spike = data - b > _SPIKE_RATIO * np.maximum(second - b, 0.0) + noise
+    if spike.any():
+        data[spike] = second[spike]
+
+
 @dataclass(frozen=True, eq=False)
 class _MaskMap:
     """A mask of usable pixels with a summed-area table of its unusable ones, so that

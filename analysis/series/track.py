@@ -31,6 +31,7 @@ from .integrate import (
     FLAG_OFF_SCREEN,
     _check_integration,
     _default_annulus,
+    _despike_windows,
     _extract,
     _integrate,
     _mask_map,
@@ -484,6 +485,7 @@ def _refine(win: _Windows, rc_pred: np.ndarray, search_px: np.ndarray, radius_px
     flat = win.data.reshape(k, -1)
     bg, noise, _ = _robust(flat[:, ring], win.usable.reshape(k, -1)[:, ring])
     noise = np.maximum(noise, 1e-6)
+    _despike_windows(win.data, bg, noise)  # hot pixels and cosmic-ray hits out first
     # peak search: 3×3 box sums (separable) in the central (2s+1)² part of the window only
     s = min(int(math.ceil(float(np.max(search_px, initial=0.0)))) + 1, h - 1)
     lo, hi = h - s - 1, h + s + 2
