@@ -38,7 +38,22 @@ def _family_of(beams, families) -> list[str]:
 
 
 def frame_rows(trace, frame: int, families=()) -> list[list[str]]:
-    """The CSV rows (cells as text) of one frame of a ParameterTrace, one per beam."""
+    """The CSV rows (cells as text) of one frame of a ParameterTrace, one per beam.
+
+    Parameters
+    ----------
+    trace : ParameterTrace
+        The beams followed so far.
+    frame : int
+        The frame (0-based).
+    families : sequence of Family
+        The beam families, to name each beam's family.
+
+    Returns
+    -------
+    list of list of str
+        One row per beam, cells in :data:`CSV_COLUMNS` order.
+    """
     fam = _family_of(trace.beams, families)
     rows = []
     for j in range(len(trace.beams)):
@@ -53,7 +68,18 @@ def frame_rows(trace, frame: int, families=()) -> list[list[str]]:
 
 
 def csv_text(result) -> str:
-    """The whole series as CSV text: a header, then one row per frame and beam."""
+    """The whole series as CSV text: a header, then one row per frame and beam.
+
+    Parameters
+    ----------
+    result : ParameterSeriesResult
+        What :func:`analysis.follow.analyse_parameter_series` (or a LiveSeries) found.
+
+    Returns
+    -------
+    str
+        CSV text (header :data:`CSV_COLUMNS`).
+    """
     buf = _stdio.StringIO()
     w = csv.writer(buf, lineterminator="\n")
     heading = result.trace.name + (f" ({result.trace.unit})" if result.trace.unit else "")
@@ -64,7 +90,20 @@ def csv_text(result) -> str:
 
 
 def result_to_dict(result, *, transition=None) -> dict:
-    """JSON-safe record of a :class:`analysis.follow.ParameterSeriesResult`."""
+    """JSON-safe record of a :class:`analysis.follow.ParameterSeriesResult`.
+
+    Parameters
+    ----------
+    result : ParameterSeriesResult
+        What :func:`analysis.follow.analyse_parameter_series` (or a LiveSeries) found.
+    transition : optional, keyword-only
+        An order–disorder fit (:func:`analysis.follow.fit_order_disorder`) to record with it.
+
+    Returns
+    -------
+    dict
+        Plain JSON types (NaN as None).
+    """
     tr = result.trace
     segs = []
     for s in result.segments:
@@ -96,12 +135,30 @@ def result_to_dict(result, *, transition=None) -> dict:
 
 
 def write_csv(result, path) -> None:
-    """Write :func:`csv_text` atomically (nothing is left half-written on an error)."""
+    """Write :func:`csv_text` atomically (nothing is left half-written on an error).
+
+    Parameters
+    ----------
+    result : ParameterSeriesResult
+        What :func:`analysis.follow.analyse_parameter_series` (or a LiveSeries) found.
+    path : str or os.PathLike
+        The file to write; its folder must exist.
+    """
     write_text_atomic(path, csv_text(result), mode=0o644)
 
 
 def write_json(result, path, **kw) -> None:
-    """Write :func:`result_to_dict` atomically as JSON."""
+    """Write :func:`result_to_dict` atomically as JSON.
+
+    Parameters
+    ----------
+    result : ParameterSeriesResult
+        What :func:`analysis.follow.analyse_parameter_series` (or a LiveSeries) found.
+    path : str or os.PathLike
+        The file to write; its folder must exist.
+    **kw
+        Passed to :func:`result_to_dict`.
+    """
     import json
 
     write_text_atomic(path, json.dumps(result_to_dict(result, **kw), indent=1), mode=0o644)

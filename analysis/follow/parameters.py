@@ -98,6 +98,16 @@ class ParameterTable:
 def split_heading(text: str) -> tuple[str, str]:
     """Name and unit of a column heading: ``"temperature_K"``, ``"T (K)"``, ``"dose [L]"``.
 
+    Parameters
+    ----------
+    text : str
+        The heading.
+
+    Returns
+    -------
+    name, unit : str
+        The unit is ``""`` when the heading has none.
+
     Examples
     --------
     >>> split_heading("temperature_K"), split_heading("dose [L]"), split_heading("time")
@@ -115,6 +125,25 @@ def split_heading(text: str) -> tuple[str, str]:
 
 def check_parameters(value, names: Sequence[str] | None = None, *, what: str = "parameter") -> np.ndarray:
     """Validate the parameter values of a series: numbers, finite, at least one.
+
+    Parameters
+    ----------
+    value : (F,) array_like of float
+        The values.
+    names : sequence of str, optional
+        The frames' names, to name a bad value's frame.
+    what : str, keyword-only
+        What the message calls the values.
+
+    Returns
+    -------
+    (F,) ndarray of float64
+        The values.
+
+    Raises
+    ------
+    SeriesError
+        When a value is not a finite number, or there is none.
 
     Examples
     --------
@@ -199,6 +228,7 @@ def read_parameter_file(path, *, column: str | None = None) -> ParameterTable:
     Parameters
     ----------
     path : str or os.PathLike
+        The sidecar file (``.csv`` or ``.json``).
     column : str, optional, keyword-only
         The column to use when there are several.
 
@@ -279,6 +309,11 @@ def parameters_from_names(names: Sequence[str], *, pattern: str = DEFAULT_PARAME
     name, unit : str, keyword-only
         What the number is.
 
+    Returns
+    -------
+    ParameterTable
+        One value per name.
+
     Examples
     --------
     >>> t = parameters_from_names(["run_0001_300K.tif", "run_0002_312.5K.tif"], name="temperature", unit="K")
@@ -311,8 +346,14 @@ def parameters_from_times(paths: Sequence, *, origin: float | None = None) -> Pa
     Parameters
     ----------
     paths : sequence of path
+        The frames' files.
     origin : float, optional, keyword-only
         Time (seconds since the epoch) counted as 0; default the earliest file's.
+
+    Returns
+    -------
+    ParameterTable
+        Seconds, one per path (name ``time``, unit ``s``).
 
     Examples
     --------

@@ -129,7 +129,26 @@ class ParameterSeriesResult:
 def resolve_parameters(parameters, names, *, paths=None, name_pattern: str | None = None,
                        name: str = "parameter", unit: str = "") -> ParameterTable:
     """The parameter table of frames `names`: a ParameterTable, a sidecar path, values,
-    ``"names"`` (numbers in the file names, also the default) or ``"times"`` (file times)."""
+    ``"names"`` (numbers in the file names, also the default) or ``"times"`` (file times).
+
+    Parameters
+    ----------
+    parameters : ParameterTable, str, os.PathLike, (F,) array_like or None
+        As above; None means ``"names"``.
+    names : sequence of str
+        The frames' names.
+    paths : sequence of path, optional, keyword-only
+        The frames' files (for ``"times"``).
+    name_pattern : str, optional, keyword-only
+        Regular expression for the number in a name.
+    name, unit : str, keyword-only
+        What the parameter is, when not read from a sidecar heading.
+
+    Returns
+    -------
+    ParameterTable
+        One value per frame.
+    """
     if isinstance(parameters, ParameterTable):
         return parameters
     if parameters is None or (isinstance(parameters, str) and parameters.strip().lower() in ("names", "name")):
@@ -458,10 +477,13 @@ def analyse_parameter_series(frames, *, substrate, energy_eV: float, parameters=
     frames : folder, multi-page file, list of paths, callable or sequence of arrays
         The frames in recording order (a folder in natural name order).
     substrate : str or Net2D, keyword-only
+        E.g. ``"Pt(111)"`` (:func:`analysis.nets.parse_substrate`), or the (1×1) net in Å.
     energy_eV : float, keyword-only
         The one electron energy of the series.
     parameters : ParameterTable, sidecar path, (F,) values, "names" or "times", keyword-only
         Default: a number in each file name (`name_pattern`).
+    name_pattern : str, optional, keyword-only
+        Regular expression whose first group is the parameter in a file name.
     name, unit : str, keyword-only
         What the parameter is, when not read from a sidecar heading.
     n_probe : int, keyword-only
@@ -469,9 +491,14 @@ def analyse_parameter_series(frames, *, substrate, energy_eV: float, parameters=
         found there are followed in every frame).
     n_index : int, keyword-only
         Frames indexed together for the camera and for each segment (1: one frame alone).
-    z_min, min_frames, min_snr : keyword-only
-        Presence threshold, shortest segment, spot detection threshold.
+    z_min : float, keyword-only
+        Significance a beam family needs to count as present.
+    min_frames : int, keyword-only
+        Shortest segment, frames.
+    min_snr : float, keyword-only
+        Spot detection threshold in units of local noise.
     progress : callable(i, n, text), optional, keyword-only
+        Told how far the work is.
 
     Returns
     -------

@@ -55,6 +55,18 @@ def _hk_ops(substrate: Net2D) -> list[np.ndarray]:
 def orbit_hk(substrate: Net2D, hk) -> np.ndarray:
     """Every symmetry image of the beams `hk` (K, 2) under the substrate's full point group.
 
+    Parameters
+    ----------
+    substrate : Net2D
+        Real-space substrate net (Å).
+    hk : (K, 2) array_like of float
+        Beam indices in the substrate's reciprocal basis.
+
+    Returns
+    -------
+    (M, 2) ndarray of float64
+        The distinct images.
+
     Examples
     --------
     >>> from analysis.nets import parse_substrate
@@ -70,6 +82,20 @@ def orbit_hk(substrate: Net2D, hk) -> np.ndarray:
 
 def snap_fractional(hk, *, max_denominator: int = 6, tol: float = 0.04) -> np.ndarray:
     """Indices moved to the nearest fraction with a small denominator when within `tol`.
+
+    Parameters
+    ----------
+    hk : (K, 2) array_like of float
+        Beam indices in the substrate's reciprocal basis.
+    max_denominator : int, keyword-only
+        Largest denominator of the fractions.
+    tol : float, keyword-only
+        Largest move of an index.
+
+    Returns
+    -------
+    (K, 2) ndarray of float64
+        The indices, snapped where close enough.
 
     Examples
     --------
@@ -98,6 +124,18 @@ def _order(hk: np.ndarray) -> int:
 
 def beam_families(beams: BeamSet, substrate: Net2D) -> list[Family]:
     """Group the fractional beams of `beams` into families (integer beams are left out).
+
+    Parameters
+    ----------
+    beams : BeamSet
+        The beams followed (their indices in the substrate's reciprocal basis).
+    substrate : Net2D
+        Real-space substrate net (Å), for its point group.
+
+    Returns
+    -------
+    list of Family
+        The families, by order then label.
 
     Examples
     --------
@@ -132,6 +170,7 @@ def family_presence(intensity, sigma, families, *, z_min: float = 8.0) -> tuple[
     intensity, sigma : (F, K) array_like of float
         Beam intensities and their uncertainties; NaN where not measured.
     families : sequence of Family
+        From :func:`beam_families`.
     z_min : float, keyword-only
         Significance needed: ΣI / √(Σσ²) over the family's measured beams.
 
@@ -140,6 +179,7 @@ def family_presence(intensity, sigma, families, *, z_min: float = 8.0) -> tuple[
     total : (F, n) ndarray of float64
         ΣI of each family (NaN where none of its beams was measured).
     present : (F, n) ndarray of bool
+        Whether each family stands out in each frame.
 
     Examples
     --------
@@ -211,15 +251,18 @@ def find_segments(present, values, labels, *, min_frames: int = 2) -> list[Segme
     Parameters
     ----------
     present : (F, n) array_like of bool
+        From :func:`family_presence`.
     values : (F,) array_like of float
         The parameter of each frame.
     labels : sequence of str
         The n family labels.
     min_frames : int, keyword-only
+        Shortest run that makes a segment.
 
     Returns
     -------
-    list of Segment, in frame order
+    list of Segment
+        In frame order.
 
     Examples
     --------

@@ -95,7 +95,9 @@ def fit_drift(center_xy_px, scale_px) -> dict:
     Parameters
     ----------
     center_xy_px : (F, 2) array_like of float
+        The pattern centre of each frame, (x, y) pixels.
     scale_px : (F,) array_like of float
+        The camera scale of each frame, pixels.
 
     Returns
     -------

@@ -192,6 +192,44 @@ def watch_folder(folder, *, energy_eV: float, substrate: str, parameter_from: st
     Stops on KeyboardInterrupt (SIGINT), when `stop()` returns True, after `max_frames`
     frames, or after `idle_stop_s` seconds without a new frame; writes `out_json` (the
     whole series) when it stops. `on_frame(live, line)` is called after each frame.
+
+    Parameters
+    ----------
+    folder : str or os.PathLike
+        The folder the camera program writes into.
+    energy_eV : float, keyword-only
+        Beam energy of the series, eV.
+    substrate : str, keyword-only
+        E.g. ``"Pt(111)"`` or ``"hexagonal:2.775"``.
+    parameter_from : str, keyword-only
+        Where each frame's parameter comes from: ``"names"``, ``"times"`` or a sidecar.
+    name_pattern : str, optional, keyword-only
+        Regular expression whose first group is the parameter in a file name.
+    parameter_name, unit : str, keyword-only
+        What the number is and its unit.
+    out_csv : str or os.PathLike, optional, keyword-only
+        Every frame's beams are appended here.
+    out_json : str or os.PathLike, optional, keyword-only
+        The whole series is written here on stopping.
+    existing : bool, keyword-only
+        Analyse the image files already in the folder first.
+    settle_s : float, keyword-only
+        Seconds a file's size must stay the same before it is read.
+    max_frames : int, optional, keyword-only
+        Stop after this many frames.
+    idle_stop_s : float, optional, keyword-only
+        Stop after this many seconds without a new frame.
+    say : callable(str), keyword-only
+        Where the one-line reports go.
+    stop : callable() -> bool, optional, keyword-only
+        Polled; True stops the watch.
+    on_frame : callable(live, line), optional, keyword-only
+        Called after each frame.
+
+    Returns
+    -------
+    int
+        The frames analysed.
     """
     from .export import CSV_COLUMNS, _cell
     from .run import LiveSeries
@@ -296,7 +334,18 @@ def _cmd_watch(args) -> int:
 
 
 def add_watch_parser(subparsers) -> argparse.ArgumentParser:
-    """The ``recinet watch`` sub-command."""
+    """The ``recinet watch`` sub-command.
+
+    Parameters
+    ----------
+    subparsers : argparse._SubParsersAction
+        What ``ArgumentParser.add_subparsers`` returned.
+
+    Returns
+    -------
+    argparse.ArgumentParser
+        The ``watch`` parser.
+    """
     w = subparsers.add_parser(
         "watch", help="analyse each new frame in a folder as it is written (temperature, dose or time series)",
         description="Watch FOLDER; each new image file, once complete, is analysed at one energy: the beams' "
