@@ -128,7 +128,11 @@ def test_a_drawn_line_fills_the_ends():
     relayout = {"shapes": [{"type": "circle", "x0": 1, "y0": 1, "x1": 3, "y1": 3},
                            {"type": "line", "x0": 10.123, "y0": 20.0, "x1": 30.0, "y1": 40.5}]}
     assert spot_tools.line_from_relayout(relayout) == (10.12, 20.0, 30.0, 40.5)
-    for bad in ({"shapes[0].x0": 3}, {"shapes": [{"type": "circle", "x0": 1}]}, None):
+    moved = {f"shapes[1].{k}": v for k, v in (("x0", 1.0), ("y0", 2.0), ("x1", 3.0), ("y1", 4.0))}
+    assert spot_tools.line_from_relayout(moved) == (1.0, 2.0, 3.0, 4.0)  # a drawn line dragged afterwards
+    centre = {f"shapes[0].{k}": 5.0 for k in ("x0", "y0", "x1", "y1")}  # the centre circle moved: not ours
+    for bad in ({"shapes[0].x0": 3}, {"shapes": [{"type": "circle", "x0": 1}]}, None, centre,
+                {"shapes[2].x0": 1.0}):
         with pytest.raises(PreventUpdate):
             spot_tools.line_from_relayout(bad)
     patch = spot_tools.on_draw_line(1)

@@ -105,13 +105,21 @@ def on_draw_line(n_clicks):
 
 
 def line_from_relayout(relayout):
-    """The ends (x0, y0, x1, y1) of the newest line drawn on the pattern, from its relayoutData."""
-    if not isinstance(relayout, dict) or not isinstance(relayout.get("shapes"), list):
+    """The ends (x0, y0, x1, y1) of the newest line drawn on the pattern, or of a drawn line
+    moved afterwards (``shapes[i].x0``… with i ≥ 1: shape 0 is the pattern's centre circle),
+    from the pattern's relayoutData."""
+    if not isinstance(relayout, dict):
         raise PreventUpdate
-    lines = [s for s in relayout["shapes"] if isinstance(s, dict) and s.get("type") == "line"]
-    if not lines:
-        raise PreventUpdate
-    s = lines[-1]
+    moved = sorted({k.split("].")[0] for k in relayout if k.startswith("shapes[") and "]." in k})
+    if not isinstance(relayout.get("shapes"), list) and len(moved) == 1 and moved[0] != "shapes[0":
+        s = {k: relayout.get(f"{moved[0]}].{k}") for k in ("x0", "y0", "x1", "y1")}
+    else:
+        if not isinstance(relayout.get("shapes"), list):
+            raise PreventUpdate
+        lines = [s for s in relayout["shapes"] if isinstance(s, dict) and s.get("type") == "line"]
+        if not lines:
+            raise PreventUpdate
+        s = lines[-1]
     try:
         vals = [round(float(s[k]), 2) for k in ("x0", "y0", "x1", "y1")]
     except (KeyError, TypeError, ValueError):
