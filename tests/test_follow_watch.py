@@ -132,3 +132,33 @@ def test_watch_bad_input_is_one_line(tmp_path):
                         "--substrate", "Pt(111)", "--parameter-from", str(tmp_path / "none.csv")],
                        capture_output=True, text=True, env=env, cwd=ROOT, timeout=60)
     assert r.returncode == 2 and "none.csv not found" in r.stderr and r.stderr.strip().count("\n") == 0
+
+
+@pytest.mark.slow
+def test_watch_waits_for_a_sidecar_written_after_the_frame(tmp_path):
+    from analysis.follow.watch import watch_folder
+
+    folder = tmp_path / "camera"
+    folder.mkdir()
+    side = tmp_path / "temps.csv"
+    side.write_text("frame,temperature_K\nf_a.tif,300\n")
+    lines, stop = [], threading.Event()
+    th = threading.Thread(target=watch_folder, args=(folder,), kwargs=dict(
+        energy_eV=200.0, substrate="Pt(111)", parameter_from=str(side), settle_s=0.1, say=lines.append,
+        stop=stop.is_set, wait_parameter_s=4.0), daemon=True)
+    th.start()
+    frames = _frames(3)
+    for (_, image), n in zip(frames, ("f_a.tif", "f_b.tif", "f_c.tif")):
+        (folder / n).write_bytes(_tif_bytes(image))
+    time.sleep(1.5)
+    with open(side, "a") as fh:  # f_b's row comes after its frame; f_c's never
+        fh.write("f_b.tif,310\n")
+    end = time.monotonic() + 120
+    while time.monotonic() < end and not any("skipped f_c.tif" in ln for ln in lines):
+        time.sleep(0.1)
+    stop.set()
+    th.join(timeout=30)
+    done = [ln for ln in lines if "segment" in ln]
+    assert [ln.split()[1] for ln in done] == ["f_a.tif", "f_b.tif"]
+    assert "temperature 300 K" in done[0] and "temperature 310 K" in done[1]
+    assert any("skipped f_c.tif" in ln and "not listed" in ln for ln in lines)

@@ -150,6 +150,8 @@ class _Parameter:
         self.name, self.unit = name, unit
         self.t0 = None
         kind = self.source.lower()
+        if kind == "times" and name == "parameter":
+            self.name, self.unit = "time", unit or "s"
         if kind not in ("names", "times"):
             from .parameters import read_parameter_file
 
@@ -186,12 +188,13 @@ def watch_folder(folder, *, energy_eV: float, substrate: str, parameter_from: st
                  name_pattern: str | None = None, parameter_name: str = "parameter", unit: str = "",
                  out_csv=None, out_json=None, existing: bool = False, settle_s: float = 0.25,
                  max_frames: int | None = None, idle_stop_s: float | None = None, say=print, stop=None,
-                 on_frame=None) -> int:
+                 on_frame=None, wait_parameter_s: float = 30.0) -> int:
     """Watch `folder` and analyse each complete new frame once; returns the frames analysed.
 
     Stops on KeyboardInterrupt (SIGINT), when `stop()` returns True, after `max_frames`
     frames, or after `idle_stop_s` seconds without a new frame; writes `out_json` (the
-    whole series) when it stops. `on_frame(live, line)` is called after each frame.
+    whole series) when it stops. `on_frame(live, line)` is called after each frame. A frame
+    that a sidecar does not list yet waits up to `wait_parameter_s` for the sidecar to grow.
 
     Parameters
     ----------
@@ -225,6 +228,8 @@ def watch_folder(folder, *, energy_eV: float, substrate: str, parameter_from: st
         Polled; True stops the watch.
     on_frame : callable(live, line), optional, keyword-only
         Called after each frame.
+    wait_parameter_s : float, keyword-only
+        Seconds a frame waits for a sidecar that does not list it yet.
 
     Returns
     -------
@@ -246,26 +251,37 @@ def watch_folder(folder, *, energy_eV: float, substrate: str, parameter_from: st
             csv.writer(csv_file).writerow([c if c != "parameter" else heading for c in CSV_COLUMNS])
             csv_file.flush()
     n_in = n_done = 0
+    held: list[tuple] = []
     last = time.monotonic()
     say(f"watching {Path(folder)} at {energy_eV:g} eV on {substrate}; Ctrl+C stops")
     try:
         while max_frames is None or n_in < max_frames:
             if stop is not None and stop():
                 break
-            got = files.next_ready(0.2)
-            if got is None:
+            got = files.next_ready(0.05 if held else 0.2)
+            if got is not None:
+                last = time.monotonic()
+                held.append((got[0], got[1], time.monotonic()))  # frames are taken in the order they came
+            if not held:
                 if idle_stop_s is not None and time.monotonic() - last > idle_stop_s:
                     break
                 continue
-            last = time.monotonic()
-            path, img = got
+            path, img, t_ready = held[0]
             if isinstance(img, str):
+                held.pop(0)
                 say(f"skipped {path.name}: {img}")
                 continue
-            t_ready = time.monotonic()
+            try:
+                value = par.value(n_in, path)
+            except SeriesError as err:
+                if par.source.lower() not in ("names", "times") and time.monotonic() - t_ready < wait_parameter_s:
+                    continue  # the sidecar may be written after the frame: wait for it, keep the order
+                held.pop(0)
+                say(f"skipped {path.name}: {err}")
+                continue
+            held.pop(0)
             n_in += 1
             try:
-                value = par.value(n_in - 1, path)
                 lines = live.add(img, value=value, name=path.name)
             except RecinetError as err:
                 say(f"skipped {path.name}: {err}")
