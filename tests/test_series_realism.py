@@ -1,5 +1,5 @@
 """Energy series through the realism layer (analysis.simulate.photograph): indexed as a whole
-by :func:`analysis.series.run_iv`, every beam followed, the curves scored against the truth.
+by :func:`analysis.series.pipeline.run_iv`, every beam followed, the curves scored against the truth.
 
 Inputs are our own renders, so every expected value is the truth given to the renderer: the
 superstructure, the photons of every beam at every energy (``truth["spots"][i]
@@ -103,12 +103,9 @@ def test_hexagonal_p2x2_series_read_as_a_whole_where_frames_misread():
     # single frames, read on their own, do not all see p(2×2) (the scenario is hard)
     alone = [index_series_frame(frames[i], energy_eV=float(E_HEX[i]), substrate=HEX).label
              for i in (2, 8, 14, 20)]
-    print(alone)
     run = run_iv(frames, substrate=HEX, energies=E_HEX)
-    print(run.indexing.label, run.indexing.geometry, run.indexing.joint["readings"][:3])
     assert run.indexing.label == "p(2×2), commensurate"
     wanted, matched, rps = _score(run, truths)
-    print(len(wanted), len(matched), np.median(rps), max(rps))
     assert len(matched) >= 0.95 * len(wanted)
     assert np.median(rps) <= 0.01 and max(rps) <= 0.2
     assert any(a != "p(2×2), commensurate" for a in alone)
@@ -164,3 +161,30 @@ def test_tracking_does_not_lock_on_a_hot_pixel_beside_a_spot():
     assert np.hypot(*(res.xy_px[mid, j] - [spot["x"], spot["y"]])) < 0.3
     ratio = res.intensity[mid, j] / np.median(res.intensity[:, j])
     assert abs(ratio - 1.0) < 0.05, ratio
+
+
+E_SQ = np.arange(70.0, 171.0, 5.0)
+GEOM_SQ = ScreenGeometry(250.4, 262.7, 300.0, distortion=0.2, rotation_deg=-6.0)
+
+
+def _check_view(effects, options, seed):
+    frames, truths = _render(SQUARE, "c(2x2)", E_SQ, GEOM_SQ, seed=seed, effects=effects, options=options,
+                             intensities=LayerIV(seed=5, photons=60000.0))
+    run = run_iv(frames, substrate=SQUARE, energies=E_SQ)
+    wanted, matched, rps = _score(run, truths)
+    assert run.indexing.label == "c(2×2), commensurate"
+    assert len(matched) >= 0.95 * len(wanted)
+    assert np.median(rps) <= 0.01 and max(rps) <= 0.2
+
+
+@pytest.mark.slow
+def test_series_with_the_beam_two_degrees_off_normal():
+    _check_view(["off_normal"], {"off_normal": {"tilt_deg": 2.0, "azimuth_deg": 35.0}}, seed=6)
+
+
+@pytest.mark.slow
+@pytest.mark.xfail(strict=True, reason="gap: the camera model (analysis.optics.ScreenGeometry) has no camera tilt; "
+                   "an 8° tilt four screen radii away bends the net by up to ~8 px at the screen edge (keystone), "
+                   "the joint camera cannot follow it and the spots read as an incommensurate net")
+def test_series_seen_by_a_tilted_camera():
+    _check_view(["keystone"], {"keystone": {"tilt_deg": 8.0, "azimuth_deg": 120.0, "distance_radii": 4.0}}, seed=7)
