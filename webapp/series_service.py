@@ -67,6 +67,20 @@ def frames_of(raw: bytes, filename: str):
 
     Frame names carry the upload's file name (``stack.tif#3``) or the zip member's;
     errors name the file the user chose. More than :data:`MAX_FRAMES` frames is refused.
+
+    Parameters
+    ----------
+    raw : bytes
+        The uploaded stack file.
+    filename : str
+        Its name.
+
+    Yields
+    ------
+    name : str
+        The frame's name.
+    frame : (M, N) ndarray of float64
+        Its pixels.
     """
 
     name = _short(filename)
@@ -93,7 +107,18 @@ def _preview(frame: np.ndarray) -> bytes:
 
 
 def preview_factor(width: int, height: int) -> int:
-    """How many times smaller than the frame its preview is (1 up to :data:`PREVIEW_SIDE` px)."""
+    """How many times smaller than the frame its preview is (1 up to :data:`PREVIEW_SIDE` px).
+
+    Parameters
+    ----------
+    width, height : int
+        Frame size, pixels.
+
+    Returns
+    -------
+    int
+        The downsampling factor (≥ 1).
+    """
     return max(1, math.ceil(max(width, height) / PREVIEW_SIDE))
 
 
@@ -102,6 +127,18 @@ def store_upload(raw: bytes, filename: str) -> dict:
 
     Only the first frame is decoded here (to refuse what is not an image at once);
     the rest is read by the run.
+
+    Parameters
+    ----------
+    raw : bytes
+        The uploaded file.
+    filename : str
+        Its name.
+
+    Returns
+    -------
+    dict
+        The keys above; ``sha`` is the SHA-256 of `raw`.
     """
     name = _short(filename)
     try:
@@ -124,7 +161,18 @@ def _raw(sha: str) -> bytes:
 
 
 def first_frame_view(sha: str) -> str | None:
-    """PNG data URL of the first frame of an uploaded series (before any run), or None."""
+    """PNG data URL of the first frame of an uploaded series (before any run), or None.
+
+    Parameters
+    ----------
+    sha : str
+        The upload's SHA-256 (:func:`store_upload`).
+
+    Returns
+    -------
+    str or None
+        ``data:image/png;base64,...``.
+    """
 
     png = _cache().get(("first", str(sha)))
     return None if png is None else "data:image/png;base64," + base64.b64encode(png).decode("ascii")
@@ -137,6 +185,18 @@ def read_energies(raw: bytes, filename: str) -> dict:
 
     Returns ``{"filename", "energy_eV", "current" or None, "frame" or None}`` (JSON-safe).
     Energies in frame order are checked at once (positive, steadily rising or falling).
+
+    Parameters
+    ----------
+    raw : bytes
+        The uploaded file.
+    filename : str
+        Its name (its suffix says CSV or JSON).
+
+    Returns
+    -------
+    dict
+        The keys above.
     """
 
     name = _short(filename)
@@ -250,6 +310,12 @@ def run_series(sha: str, filename: str, *, substrate: str, mode: str = "file", t
     mode : {"file", "step", "names"}, keyword-only
         Energies from `table` (:func:`read_energies`), from `start` + i·`step` (eV), or
         from a number in each frame's name (`pattern`, a regular expression).
+    table : dict, optional, keyword-only
+        What :func:`read_energies` returned.
+    start, step : float, optional, keyword-only
+        First energy and step, eV.
+    pattern : str, optional, keyword-only
+        Regular expression whose first group is the energy in a frame's name.
     index_frame : int or None, keyword-only
         The frame whose pattern is indexed (geometry, substrate net, overlayer domains);
         None: several frames are indexed together (:func:`analysis.series.joint.index_series_joint`).
@@ -257,7 +323,8 @@ def run_series(sha: str, filename: str, *, substrate: str, mode: str = "file", t
         Empty: follow the overlayer domains the indexing found; ``"none"``: substrate beams
         only; a matrix (``"2 0 / 0 2"``) or a Wood notation (``"c(2x2)"``): it and its
         symmetry-equivalent domains (:func:`analysis.series.overlayer_matrices` reads it).
-    progress : callable(fraction, text), optional
+    progress : callable(fraction, text), optional, keyword-only
+        Told how far the run is.
 
     Returns
     -------
@@ -348,7 +415,20 @@ def run_series(sha: str, filename: str, *, substrate: str, mode: str = "file", t
 
 
 def wood_notation_or_none(net, matrix) -> str | None:
-    """The Wood notation of `matrix` on `net` as text, or None when none exists."""
+    """The Wood notation of `matrix` on `net` as text, or None when none exists.
+
+    Parameters
+    ----------
+    net : Net2D
+        Real-space substrate net (Å).
+    matrix : (2, 2) array_like of float
+        Real-space superstructure matrix.
+
+    Returns
+    -------
+    str or None
+        E.g. ``"c(2×2)"``.
+    """
     try:
         w = wood_notation(net, matrix)
     except RecinetError:
@@ -379,7 +459,18 @@ def _load(key: str):
 
 
 def load_result(key: str):
-    """The :class:`analysis.series.IVResult` of a run (read once per process)."""
+    """The :class:`analysis.series.IVResult` of a run (read once per process).
+
+    Parameters
+    ----------
+    key : str
+        The run's key (from :func:`run_series`).
+
+    Returns
+    -------
+    IVResult
+        The run's result.
+    """
     return _load(str(key))
 
 
@@ -395,7 +486,20 @@ def _preview_url(key: str, i: int) -> str:
 
 
 def frame_view(key: str, i: int) -> str:
-    """PNG data URL of the preview of frame `i` of a run."""
+    """PNG data URL of the preview of frame `i` of a run.
+
+    Parameters
+    ----------
+    key : str
+        The run's key (from :func:`run_series`).
+    i : int
+        Frame index (0-based).
+
+    Returns
+    -------
+    str
+        ``data:image/png;base64,...``.
+    """
     return _preview_url(str(key), int(i))
 
 
@@ -406,7 +510,18 @@ def _groups(key: str):
 
 
 def groups_of(res) -> list:
-    """The equivalent-beam groups (:func:`analysis.series.average_equivalent`) of an IVResult or run key."""
+    """The equivalent-beam groups (:func:`analysis.series.average_equivalent`) of an IVResult or run key.
+
+    Parameters
+    ----------
+    res : IVResult or str
+        A result, or a run key.
+
+    Returns
+    -------
+    list of BeamGroup
+        In the order of the beams' equivalence classes.
+    """
 
     if isinstance(res, str):
         return _groups(res)
@@ -414,12 +529,36 @@ def groups_of(res) -> list:
 
 
 def export_csv(key: str, *, averaged: bool = False) -> str:
-    """The I(V) table as CSV (energy in eV first, one column per beam or per group)."""
+    """The I(V) table as CSV (energy in eV first, one column per beam or per group).
+
+    Parameters
+    ----------
+    key : str
+        The run's key (from :func:`run_series`).
+    averaged : bool, keyword-only
+        One column per group of equivalent beams.
+
+    Returns
+    -------
+    str
+        CSV text.
+    """
 
     return csv_text(load_result(key), averaged=averaged)
 
 
 def export_json(key: str) -> str:
-    """The whole run as JSON (:func:`analysis.series.result_to_dict`)."""
+    """The whole run as JSON (:func:`analysis.series.result_to_dict`).
+
+    Parameters
+    ----------
+    key : str
+        The run's key (from :func:`run_series`).
+
+    Returns
+    -------
+    str
+        JSON text.
+    """
 
     return json.dumps(result_to_dict(load_result(key)), indent=1, allow_nan=False)

@@ -50,7 +50,13 @@ MAX_MODEL_CELLS = 400  # substrate cells in one tried model's cell: beyond it th
 # --------------------------------------------------------------------------- demo images
 
 def demo_choices() -> list[dict]:
-    """Demo images beside the package: ``[{"label", "value"}]``, value = file name (no folder)."""
+    """Demo images beside the package: ``[{"label", "value"}]``, value = file name (no folder).
+
+    Returns
+    -------
+    list of dict
+        One entry per demo image, sorted by name.
+    """
     if not DEMO_DIR.is_dir():
         return []
     names = sorted(p.name for p in DEMO_DIR.iterdir() if p.suffix.lower() in _DEMO_SUFFIXES and p.is_file())
@@ -61,6 +67,18 @@ def demo_bytes(name: str) -> tuple[bytes, dict]:
     """Bytes of a demo image chosen from :func:`demo_choices`, and its truth JSON (or {}).
 
     The name is looked up in the listing, never joined to a path as given.
+
+    Parameters
+    ----------
+    name : str
+        A ``value`` from :func:`demo_choices`.
+
+    Returns
+    -------
+    raw : bytes
+        The image file.
+    truth : dict
+        Its truth JSON, or ``{}``.
     """
     known = {c["value"] for c in demo_choices()}
     if name not in known:
@@ -77,7 +95,18 @@ def demo_bytes(name: str) -> tuple[bytes, dict]:
 
 
 def demo_defaults(truth: dict) -> dict:
-    """Energy and substrate suggested by a demo's truth file, when it names them."""
+    """Energy and substrate suggested by a demo's truth file, when it names them.
+
+    Parameters
+    ----------
+    truth : dict
+        A demo's truth JSON.
+
+    Returns
+    -------
+    dict
+        ``energy_eV`` and ``substrate`` when the truth gives them.
+    """
     out = {}
     for key in ("energy_eV", "energy", "energy_ev"):
         if isinstance(truth.get(key), (int, float)):
@@ -106,6 +135,20 @@ def demo_defaults(truth: dict) -> dict:
 def decode_upload(contents: str | None, filename: str | None, *, max_bytes: int) -> bytes:
     """Raw bytes of a ``dcc.Upload`` data URL, refusing empty and oversize files before decoding.
 
+    Parameters
+    ----------
+    contents : str or None
+        The ``data:...;base64,...`` URL.
+    filename : str or None
+        The file's name, for messages.
+    max_bytes : int, keyword-only
+        Largest accepted file.
+
+    Returns
+    -------
+    bytes
+        The file's bytes.
+
     Examples
     --------
     >>> decode_upload("data:image/png;base64,aGVsbG8=", "x.png", max_bytes=100)
@@ -133,7 +176,20 @@ def decode_upload(contents: str | None, filename: str | None, *, max_bytes: int)
 
 
 def read_image(raw: bytes, *, name: str = "upload"):
-    """Decode image bytes through :func:`analysis.io.load_image` (all format and bomb checks live there)."""
+    """Decode image bytes through :func:`analysis.io.load_image` (all format and bomb checks live there).
+
+    Parameters
+    ----------
+    raw : bytes
+        The image file.
+    name : str, keyword-only
+        What messages call it.
+
+    Returns
+    -------
+    LoadedImage
+        The decoded frame.
+    """
 
     try:
         im = load_image(raw)
@@ -156,7 +212,18 @@ def _cached_array(sha: str, store_key: int) -> np.ndarray:
 
 
 def image_array(sha: str) -> np.ndarray:
-    """The (M, N) float64 pixels of a stored image, decoded once per process."""
+    """The (M, N) float64 pixels of a stored image, decoded once per process.
+
+    Parameters
+    ----------
+    sha : str
+        The image's SHA-256 (the store's key).
+
+    Returns
+    -------
+    (M, N) ndarray of float64
+        The pixels (read-only).
+    """
 
     return _cached_array(sha, id(runtime.get_store()))
 
@@ -164,13 +231,35 @@ def image_array(sha: str) -> np.ndarray:
 # --------------------------------------------------------------------------- parameters
 
 def check_energy(value) -> float:
-    """Electron energy from a form field, in eV (the pipeline's check: 5 to 5000 eV)."""
+    """Electron energy from a form field, in eV (the pipeline's check: 5 to 5000 eV).
+
+    Parameters
+    ----------
+    value : object
+        The field's value.
+
+    Returns
+    -------
+    float
+        The energy, eV.
+    """
 
     return pipeline.check_energy(value)
 
 
 def check_substrate(text):
-    """Substrate net from a preset like ``Pt(111)`` or a net like ``hexagonal:2.775``."""
+    """Substrate net from a preset like ``Pt(111)`` or a net like ``hexagonal:2.775``.
+
+    Parameters
+    ----------
+    text : str
+        The field's value.
+
+    Returns
+    -------
+    Net2D
+        The (1×1) real-space net, Å.
+    """
 
     if not isinstance(text, str) or len(text) > 120:
         raise NetError("Substrate must be a short text like 'Pt(111)' or 'hexagonal:2.775'.")
@@ -179,7 +268,18 @@ def check_substrate(text):
 
 def clean_edits(edits) -> dict:
     """Manual edits from the browser, checked: ``added`` [[x, y]], ``removed`` [[x, y]] (spots dropped,
-    found again by position), ``center`` [x, y] or None."""
+    found again by position), ``center`` [x, y] or None.
+
+    Parameters
+    ----------
+    edits : dict or None
+        The edits as the browser sent them.
+
+    Returns
+    -------
+    dict
+        ``{"added", "removed", "center"}`` with finite pixel coordinates.
+    """
     edits = edits if isinstance(edits, dict) else {}
 
     def point(p):
@@ -200,7 +300,18 @@ def clean_edits(edits) -> dict:
 # --------------------------------------------------------------------------- the analysis
 
 def calibration_of(result: dict | None):
-    """The fitted camera model (a ScreenGeometry dict) a saved result carries, or None."""
+    """The fitted camera model (a ScreenGeometry dict) a saved result carries, or None.
+
+    Parameters
+    ----------
+    result : dict or None
+        A result dict.
+
+    Returns
+    -------
+    dict or None
+        Its camera model as a ScreenGeometry dict.
+    """
     if not isinstance(result, dict):
         return None
     for key in ("geometry", "calibration"):
@@ -210,7 +321,22 @@ def calibration_of(result: dict | None):
 
 
 def record_key(sha: str, parameters: dict, edits: dict | None) -> str:
-    """A stable key for one (image, parameters, edits): the cache name of its analysis object."""
+    """A stable key for one (image, parameters, edits): the cache name of its analysis object.
+
+    Parameters
+    ----------
+    sha : str
+        The image's SHA-256.
+    parameters : dict
+        The analysis parameters.
+    edits : dict or None
+        The manual edits.
+
+    Returns
+    -------
+    str
+        A hex digest.
+    """
 
     blob = json.dumps(_normalised([sha, parameters or {}, clean_edits(edits)]), sort_keys=True, default=str)
     return hashlib.sha256(blob.encode()).hexdigest()
@@ -243,8 +369,21 @@ _CACHES: dict = {}  # folder name → (process id, diskcache.Cache)
 
 
 def job_cache(name: str, size_limit: int):
-    """diskcache in the data folder's job-cache subfolder `name`, opened once per process
-    (shared by workers and background jobs; the least recently used entries are evicted)."""
+    """The diskcache in the data folder's job-cache subfolder `name`, opened once per process
+    (shared by workers and background jobs; the least recently used entries are evicted).
+
+    Parameters
+    ----------
+    name : str
+        Subfolder name.
+    size_limit : int
+        Largest size of the cache, bytes.
+
+    Returns
+    -------
+    diskcache.Cache
+        The cache.
+    """
 
 
 
@@ -272,6 +411,32 @@ def analyze(image: np.ndarray, *, energy_eV: float, substrate: str, edits: dict 
 
     With `cache_key`, the analysis object is kept (without its background maps)
     so that trying a model or drawing a candidate later needs no new analysis.
+
+    Parameters
+    ----------
+    image : (M, N) ndarray of float64
+        The image's pixels.
+    energy_eV : float, keyword-only
+        Beam energy, eV.
+    substrate : str, keyword-only
+        E.g. ``"Pt(111)"`` or ``"hexagonal:2.775"``.
+    edits : dict, optional, keyword-only
+        Manual edits (:func:`clean_edits` checks them).
+    reference : (M, N) ndarray of float64, optional, keyword-only
+        A clean-substrate image from the same optics.
+    reference_energy_eV : float, optional, keyword-only
+        Its energy, eV.
+    calibration : dict, optional, keyword-only
+        A saved camera model (a ScreenGeometry dict).
+    progress : callable(fraction, message), optional, keyword-only
+        Told how far the analysis is.
+    cache_key : str, optional, keyword-only
+        Name under which the analysis object is cached (:func:`record_key`).
+
+    Returns
+    -------
+    dict
+        :func:`analysis.serialize.result_to_dict` of the analysis.
     """
 
     e = check_energy(energy_eV)
@@ -291,7 +456,18 @@ def analyze(image: np.ndarray, *, energy_eV: float, substrate: str, edits: dict 
 
 
 def result_object(record: dict):
-    """The analysis object behind a stored record: from the cache, else analysed again (same inputs)."""
+    """The analysis object behind a stored record: from the cache, else analysed again (same inputs).
+
+    Parameters
+    ----------
+    record : dict
+        A stored analysis record: ``sha`` (the image's SHA-256), ``parameters``, ``edits``.
+
+    Returns
+    -------
+    AnalysisResult
+        The analysis object.
+    """
 
     params = (record or {}).get("parameters") or {}
     sha = (record or {}).get("sha")
@@ -319,7 +495,18 @@ def result_object(record: dict):
 
 
 def summary_of(result: dict | None) -> str:
-    """One line for lists: the Wood notation, else the matrix, else the kind."""
+    """One line for lists: the Wood notation, else the matrix, else the kind.
+
+    Parameters
+    ----------
+    result : dict or None
+        A result dict.
+
+    Returns
+    -------
+    str
+        The line (empty without an overlayer).
+    """
     ov = (result or {}).get("overlayer") or {}
     if ov.get("wood"):
         return str(ov["wood"])
@@ -343,6 +530,18 @@ def try_model(text: str, record: dict) -> dict:
     Returns ``{"label", "matrices", "xy", "explained", "unexplained", "n_domains", "wood", "kind", "domains"}``;
     ``xy`` are the beams every domain of the model predicts, on the camera model, and ``domains``
     the same beams per domain as ``{"x", "y", "h", "k"}`` rows (drawn as the model's nets).
+
+    Parameters
+    ----------
+    text : str
+        The model as typed.
+    record : dict
+        A stored analysis record: ``sha`` (the image's SHA-256), ``parameters``, ``edits``.
+
+    Returns
+    -------
+    dict
+        The keys above.
     """
 
     if not isinstance(text, str) or not text.strip():
@@ -373,7 +572,20 @@ def try_model(text: str, record: dict) -> dict:
 
 
 def candidate_predictions(record: dict, pick: int) -> list[list]:
-    """Predicted beams (x, y, h, k dicts) of each domain of ranked candidate `pick`."""
+    """Predicted beams (x, y, h, k dicts) of each domain of ranked candidate `pick`.
+
+    Parameters
+    ----------
+    record : dict
+        A stored analysis record: ``sha`` (the image's SHA-256), ``parameters``, ``edits``.
+    pick : int
+        Rank of the candidate (0: the best).
+
+    Returns
+    -------
+    list of list of dict
+        Per domain, ``{"x", "y", "h", "k"}`` rows (pixels, substrate indices).
+    """
 
     obj = result_object(record)
     models = obj.index.models
@@ -386,7 +598,32 @@ def candidate_predictions(record: dict, pick: int) -> list[list]:
 
 def export_bundle(*, image_bytes: bytes, filename: str, parameters: dict, edits: dict, result: dict | None,
                   sample_name: str = "", notes: str = "", token: str | None = None) -> dict:
-    """A self-contained, re-importable JSON document of one analysis (the image included)."""
+    """A self-contained, re-importable JSON document of one analysis (the image included).
+
+    Parameters
+    ----------
+    image_bytes : bytes, keyword-only
+        The image file as uploaded.
+    filename : str, keyword-only
+        Its name.
+    parameters : dict, keyword-only
+        Energy, substrate and the other analysis parameters.
+    edits : dict, keyword-only
+        The manual edits.
+    result : dict or None, keyword-only
+        The result dict.
+    sample_name : str, keyword-only
+        The sample's name.
+    notes : str, keyword-only
+        Free notes.
+    token : str, optional, keyword-only
+        The share token of a saved analysis.
+
+    Returns
+    -------
+    dict
+        JSON-safe; :func:`read_bundle` reads it back.
+    """
 
     return {
         "format": EXPORT_FORMAT, "version": 1,
@@ -399,7 +636,20 @@ def export_bundle(*, image_bytes: bytes, filename: str, parameters: dict, edits:
 
 
 def read_bundle(raw: bytes | str, *, max_bytes: int) -> dict:
-    """Check an exported analysis and return it with the image bytes decoded under ``image["data"]``."""
+    """Check an exported analysis and return it with the image bytes decoded under ``image["data"]``.
+
+    Parameters
+    ----------
+    raw : bytes or str
+        The exported JSON.
+    max_bytes : int, keyword-only
+        Largest accepted image inside it.
+
+    Returns
+    -------
+    dict
+        The bundle, its image bytes decoded.
+    """
 
     if isinstance(raw, bytes):
         if len(raw) > max_bytes * 4 // 3 + 1_000_000:
@@ -442,7 +692,20 @@ def read_bundle(raw: bytes | str, *, max_bytes: int) -> dict:
 # --------------------------------------------------------------------------- small numeric helpers
 
 def reciprocal_parameters(a, b, gamma_deg):
-    """(a*, b*, γ*) in Å⁻¹ (no 2π) and degrees of the net (a, b, γ), or None when incomplete."""
+    """(a*, b*, γ*) in Å⁻¹ (no 2π) and degrees of the net (a, b, γ), or None when incomplete.
+
+    Parameters
+    ----------
+    a, b : float or None
+        Lattice constants, Å.
+    gamma_deg : float or None
+        Angle between them, degrees.
+
+    Returns
+    -------
+    tuple of float, or None
+        (a*, b*, γ*).
+    """
 
     try:
         rec = reciprocal(Net2D.from_parameters(float(a), float(b), float(gamma_deg)))
@@ -452,7 +715,18 @@ def reciprocal_parameters(a, b, gamma_deg):
 
 
 def substrate_vectors(sub: dict) -> np.ndarray:
-    """Real-space rows a1, a2 (Å) for drawing, from a result's substrate block (a along +x)."""
+    """Real-space rows a1, a2 (Å) for drawing, from a result's substrate block (a along +x).
+
+    Parameters
+    ----------
+    sub : dict
+        The result's ``substrate`` block (``a_angstrom``, ``b_angstrom``, ``gamma_deg``).
+
+    Returns
+    -------
+    (2, 2) ndarray of float64
+        Rows a1, a2, Å.
+    """
 
     try:
         return Net2D.from_parameters(float(sub["a_angstrom"]), float(sub["b_angstrom"]), float(sub["gamma_deg"])).vectors
@@ -462,7 +736,18 @@ def substrate_vectors(sub: dict) -> np.ndarray:
 
 
 def summary_matrix(overlayer: dict) -> str:
+    """The overlayer's matrix as one line of text, or empty.
 
+    Parameters
+    ----------
+    overlayer : dict
+        A result's ``overlayer`` block.
+
+    Returns
+    -------
+    str
+        E.g. ``"(2 0 / 0 2)"``.
+    """
     m = (overlayer or {}).get("matrix")
     if m is None:
         return ""
