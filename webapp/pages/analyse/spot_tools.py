@@ -38,6 +38,8 @@ TABLE_COLUMNS = (
     ("intensity", "intensity"), ("snr", "SNR"), ("fwhm_radial_px", "FWHM radial (px)"),
     ("fwhm_tangential_px", "FWHM tangential (px)"), ("fwhm_radial_bz_percent", "FWHM radial (% BZ)"),
     ("fwhm_tangential_bz_percent", "FWHM tangential (% BZ)"), ("fwhm_radial_invA", "FWHM radial (Å⁻¹)"),
+    ("fwhm_major_px", "FWHM long axis (px)"), ("fwhm_minor_px", "FWHM short axis (px)"),
+    ("axis_angle_deg", "long axis (° from +x)"),
     ("domain_size_A", "domain size (Å)"), ("flags", "flags"),
 )
 
