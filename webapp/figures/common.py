@@ -34,12 +34,34 @@ DOMAIN_STYLES = [(shape, DOMAIN_COLOURS[i % len(DOMAIN_COLOURS)]) for i, shape i
 
 
 def domain_colour(i: int) -> str:
-    """The colour of domain `i` (0-based) everywhere: pattern, real space, result panel, export."""
+    """The colour of domain `i` (0-based) everywhere: pattern, real space, result panel, export.
+
+    Parameters
+    ----------
+    i : int
+        Domain index (0-based).
+
+    Returns
+    -------
+    str
+        A CSS colour.
+    """
     return DOMAIN_COLOURS[int(i) % len(DOMAIN_COLOURS)]
 
 
 def domain_dash(i: int) -> str:
-    """The line style of domain `i`: solid for the first six, then another dash per round of colours."""
+    """The line style of domain `i`: solid for the first six, then another dash per round of colours.
+
+    Parameters
+    ----------
+    i : int
+        Domain index (0-based).
+
+    Returns
+    -------
+    str
+        A Plotly dash style.
+    """
     return DOMAIN_DASHES[(int(i) // len(DOMAIN_COLOURS)) % len(DOMAIN_DASHES)]
 
 
@@ -52,6 +74,16 @@ def hk_text(h: float, k: float) -> str:
 
     >>> hk_text(0.5, -1.0), hk_text(0.3333333, 0.0), hk_text(0.123, 1)
     ('(1/2, -1)', '(1/3, 0)', '(0.12, 1)')
+
+    Parameters
+    ----------
+    h, k : float
+        Beam indices in the substrate's reciprocal basis.
+
+    Returns
+    -------
+    str
+        The label.
     """
     def one(x):
         if x is None or not np.isfinite(x):
@@ -62,6 +94,20 @@ def hk_text(h: float, k: float) -> str:
 
 
 def num(x, fmt="{:.3g}"):
+    """A number as text, or an en dash when it is none.
+
+    Parameters
+    ----------
+    x : object
+        The value.
+    fmt : str
+        Format of a number.
+
+    Returns
+    -------
+    str
+        The text.
+    """
     try:
         return fmt.format(float(x))
     except (TypeError, ValueError):
@@ -69,6 +115,20 @@ def num(x, fmt="{:.3g}"):
 
 
 def empty_figure(message: str = "Drop a LEED image here or pick a demo image", *, height: int = 640) -> go.Figure:
+    """A blank figure with a message in its middle.
+
+    Parameters
+    ----------
+    message : str
+        The text shown.
+    height : int, keyword-only
+        Figure height, pixels.
+
+    Returns
+    -------
+    plotly.graph_objects.Figure
+        No axes, the message centred.
+    """
     fig = go.Figure()
     fig.update_layout(
         template="plotly_white", margin=dict(l=10, r=10, t=10, b=10), height=height,

@@ -15,7 +15,22 @@ SCALES = [("linear", "Linear"), ("log", "Log"), ("gamma", "Gamma")]
 _LOG_SPAN = 1000.0  # log scale maps [0, 1] to log1p(1000 x) / log1p(1000): three decades
 
 def downsample(data: np.ndarray, max_side: int = 1024) -> tuple[np.ndarray, int]:
-    """Block-mean `data` (M, N) so that its longer side is at most `max_side`; return it and the factor."""
+    """Block-mean `data` (M, N) so that its longer side is at most `max_side`; return it and the factor.
+
+    Parameters
+    ----------
+    data : (M, N) ndarray
+        The image.
+    max_side : int
+        Longest side of the result, pixels.
+
+    Returns
+    -------
+    small : ndarray of float64
+        The block means.
+    factor : int
+        The block size (1: unchanged).
+    """
     h, w = data.shape
     f = max(1, math.ceil(max(h, w) / max_side))
     if f == 1:
@@ -68,18 +83,55 @@ def display_levels(data: np.ndarray, *, scale: str = "linear", clip_pct=(0.5, 99
 
 
 def png_bytes(levels: np.ndarray) -> bytes:
+    """Display levels as a PNG file.
+
+    Parameters
+    ----------
+    levels : (M, N) ndarray of uint8
+        Grey levels.
+
+    Returns
+    -------
+    bytes
+        The PNG file.
+    """
     buf = io.BytesIO()
     Image.fromarray(np.ascontiguousarray(levels)).save(buf, format="PNG", compress_level=3)
     return buf.getvalue()
 
 
 def png_data_url(levels: np.ndarray) -> str:
+    """Display levels as a PNG data URL for the browser.
+
+    Parameters
+    ----------
+    levels : (M, N) ndarray of uint8
+        Grey levels.
+
+    Returns
+    -------
+    str
+        ``data:image/png;base64,...``.
+    """
     return "data:image/png;base64," + base64.b64encode(png_bytes(levels)).decode("ascii")
 
 
 def thumbnail_png(data: np.ndarray, *, side: int = 160) -> bytes:
     """A small PNG of the pattern for the list of saved analyses: the median (the screen's
-    background) is black and the spots bright, with a gamma of 0.5 lifting the faint ones."""
+    background) is black and the spots bright, with a gamma of 0.5 lifting the faint ones.
+
+    Parameters
+    ----------
+    data : (M, N) ndarray
+        The image.
+    side : int, keyword-only
+        Longest side of the thumbnail, pixels.
+
+    Returns
+    -------
+    bytes
+        The PNG file.
+    """
     small, _ = downsample(data, side)
     im = Image.fromarray(display_levels(small, scale="gamma", gamma=0.5, clip_pct=(50.0, 99.95)))
     im.thumbnail((side, side))

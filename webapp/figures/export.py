@@ -13,7 +13,18 @@ from .pattern import _domain_predictions, _spot_arrays, _substrate_points
 __all__ = ["spots_csv", "export_figure"]
 
 def spots_csv(result: dict) -> str:
-    """CSV of the detected spots: index, x_px, y_px, h, k, intensity, snr, then any further numeric fields."""
+    """CSV of the detected spots: index, x_px, y_px, h, k, intensity, snr, then any further numeric fields.
+
+    Parameters
+    ----------
+    result : dict
+        A result dict.
+
+    Returns
+    -------
+    str
+        CSV text.
+    """
     spots = (result or {}).get("spots") or []
     first = ["x", "y", "h", "k", "intensity", "snr"]
     extra = sorted({k for s in spots for k, v in s.items()
@@ -44,7 +55,21 @@ def export_figure(levels: np.ndarray, *, factor: int = 1, result: dict | None = 
     ----------
     levels : (M, N) ndarray of uint8
         Display levels (as shown), `factor` times smaller than the image.
-    fmt : {"png", "svg"}
+    factor : int, keyword-only
+        How many times smaller `levels` is than the image.
+    result : dict, optional, keyword-only
+        The result dict (spots, substrate, overlayer).
+    edits : dict, optional, keyword-only
+        The manual edits.
+    title_lines : sequence of str, keyword-only
+        Lines of the title.
+    fmt : {"png", "svg"}, keyword-only
+        File format.
+
+    Returns
+    -------
+    bytes
+        The file.
     """
     # matplotlib is loaded when a figure is first exported, not with every web worker (~0.3 s)
     from matplotlib.figure import Figure

@@ -21,6 +21,22 @@ def profile_figure(profile, unit: str = "px", *, log: bool = False, height: int 
     `unit` is one of :data:`PROFILE_UNITS`' values; momentum units fall back to px when the
     profile has no camera model. `log` draws the intensity on a log axis (faint, broad
     fractional beams beside sharp integer ones).
+
+    Parameters
+    ----------
+    profile : LineProfile or None
+        The profile.
+    unit : str
+        Distance unit of the axis.
+    log : bool, keyword-only
+        Log intensity axis.
+    height : int, keyword-only
+        Figure height, pixels.
+
+    Returns
+    -------
+    plotly.graph_objects.Figure
+        Intensity against distance.
     """
     if profile is None:
         return empty_figure("Draw a line on the pattern to see its profile", height=height)

@@ -45,6 +45,20 @@ def predicted_spots(result: dict, matrices, *, width: int, height: int) -> list[
 
     Returns one dict per matrix with ``xy`` (K, 2) px and ``hk`` (K, 2) fractional
     substrate indices; integer (substrate) beams are left out.
+
+    Parameters
+    ----------
+    result : dict
+        A result dict (its fitted reciprocal basis and centre in pixels).
+    matrices : sequence of (2, 2) array_like of float
+        Real-space superstructure matrices.
+    width, height : int, keyword-only
+        Image size, pixels.
+
+    Returns
+    -------
+    list of dict
+        One per matrix, as above.
     """
     sub = (result or {}).get("substrate") or {}
     a_star = sub.get("a_star_px")
@@ -90,8 +104,10 @@ def pattern_figure(source: str | None, *, width: int, height: int, factor: int =
     source : str or None
         PNG data URL of the display levels (from :func:`png_data_url`), `factor`
         times smaller than the image.
-    width, height : int
+    width, height : int, keyword-only
         Full image size in pixels.
+    factor : int, keyword-only
+        How many times smaller the display levels are than the image.
     result : dict, optional
         Analysis result in the serialized form (``center_px``, ``spots``, ``substrate``,
         ``overlayer``, ``predicted``...).
@@ -103,12 +119,19 @@ def pattern_figure(source: str | None, *, width: int, height: int, factor: int =
         The model being tried: ``{"domains": [[{x, y, h, k}...]...], "matrices": [...], "xy": [...]}``.
     candidate : dict, optional
         A ranked candidate to draw instead of the chosen overlayer.
+    editable : bool, keyword-only
+        Clicks add and remove spots.
+    revision : str, keyword-only
+        Plotly ``uirevision``: zoom and pan are kept while it stays the same.
     focus : int, optional
         A domain (0-based) brought forward: its net drawn thicker and last, the others dimmed.
 
-    Trace customdata: a detected spot is ``["spot", index, manual]``, a spot added by
-    hand ``["added", index]``; anything else (the image, nets, ticks) has none, so a
-    click there adds a spot.
+    Returns
+    -------
+    plotly.graph_objects.Figure
+        Trace customdata: a detected spot is ``["spot", index, manual]``, a spot added by
+        hand ``["added", index]``; anything else (the image, nets, ticks) has none, so a
+        click there adds a spot.
     """
     result = result or {}
     edits = edits or {}

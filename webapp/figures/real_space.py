@@ -20,6 +20,13 @@ def real_space_figure(substrate_vectors_A, domain_matrices, *, label: str = "") 
         Rows a1, a2 in Å.
     domain_matrices : sequence of (2, 2) array_like
         (b1, b2) = M (a1, a2) for each domain.
+    label : str, keyword-only
+        Legend name of the substrate's points (default ``"Substrate"``).
+
+    Returns
+    -------
+    plotly.graph_objects.Figure
+        Equal axes in Å.
     """
     a = np.asarray(substrate_vectors_A, dtype=float)
     mats = [np.asarray(m, dtype=float) for m in (domain_matrices or [])]

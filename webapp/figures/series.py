@@ -20,13 +20,35 @@ BEAM_COLOURS = ["#E69F00", "#56B4E9", "#009E73", "#D55E00", "#CC79A7", "#0072B2"
 
 
 def colour_of(picked: list[str]) -> dict:
-    """Each picked beam's colour, in the order picked."""
+    """Each picked beam's colour, in the order picked.
+
+    Parameters
+    ----------
+    picked : list of str
+        Beam labels, in the order picked.
+
+    Returns
+    -------
+    dict
+        Label → CSS colour.
+    """
     return {b: BEAM_COLOURS[i % len(BEAM_COLOURS)] for i, b in enumerate(picked)}
 
 
 
 def flag_text(bits: int) -> str:
-    """The names of the flags set in `bits`, or "none"."""
+    """The names of the flags set in `bits`, or "none".
+
+    Parameters
+    ----------
+    bits : int
+        Flag bits of one beam in one frame (``analysis.series.FLAG_NAMES``).
+
+    Returns
+    -------
+    str
+        Comma-separated names.
+    """
     names = [n.replace("_", " ") for b, n in FLAG_NAMES.items() if bits & b]
     return ", ".join(names) if names else "none"
 
@@ -38,6 +60,32 @@ def frame_figure(source: str, *, width: int, height: int, factor: int = 1, xy=No
     Beams integrated in this frame are open circles; beams seen but left out (masked,
     saturated, crowded) are crosses; picked beams take their curve's colour and a label.
     Each marker's customdata is ``["beam", label]``.
+
+    Parameters
+    ----------
+    source : str
+        PNG data URL of the frame's preview.
+    width, height : int, keyword-only
+        Frame size, pixels.
+    factor : int, keyword-only
+        How many times smaller the preview is.
+    xy : (K, 2) array_like of float, optional, keyword-only
+        Beam positions (x, y), pixels.
+    labels : sequence of str, keyword-only
+        Beam labels.
+    ok : (K,) array_like of bool, optional, keyword-only
+        Beams integrated in this frame.
+    flags : (K,) array_like of int, optional, keyword-only
+        Flag bits of each beam.
+    intensity : (K,) array_like of float, optional, keyword-only
+        Intensities, shown on hover.
+    picked : sequence of str, keyword-only
+        Labels of the picked beams.
+
+    Returns
+    -------
+    plotly.graph_objects.Figure
+        The frame and its beams.
     """
     f = max(1, int(factor))
     fig = go.Figure(go.Image(source=source, x0=(f - 1) / 2.0, y0=(f - 1) / 2.0, dx=f, dy=f, name="frame",
@@ -85,7 +133,24 @@ def frame_figure(source: str, *, width: int, height: int, factor: int = 1, xy=No
 
 
 def iv_figure(res, picked, *, average=None, energy_eV: float | None = None) -> go.Figure:
-    """I(V) of each picked beam (gaps where it is off the screen or flagged), optionally a group average."""
+    """I(V) of each picked beam (gaps where it is off the screen or flagged), optionally a group average.
+
+    Parameters
+    ----------
+    res : IVResult
+        The run's result.
+    picked : sequence of str
+        Labels of the beams drawn.
+    average : BeamGroup, optional, keyword-only
+        A group whose average is drawn too.
+    energy_eV : float, optional, keyword-only
+        The current frame's energy, marked by a vertical line.
+
+    Returns
+    -------
+    plotly.graph_objects.Figure
+        Intensity against energy (eV).
+    """
     fig = go.Figure()
     colours = colour_of(list(picked))
     for lab, col in colours.items():
