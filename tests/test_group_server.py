@@ -179,7 +179,9 @@ def analyse_demo(page: Page, demo: str, *, sample: str) -> dict:
     image, energy, substrate = r[ids.IMAGE]["data"], r[ids.ENERGY]["value"], r[ids.SUBSTRATE]["value"]
     state = {(ids.IMAGE, "data"): image, (ids.ENERGY, "value"): energy, (ids.SUBSTRATE, "value"): substrate,
              (ids.EDITS, "data"): r[ids.EDITS]["data"]}
-    record = page.call((ids.RUN, "n_clicks", 1), state, output=(ids.RESULT, "data"))[ids.RESULT]["data"]
+    r = page.call((ids.RUN, "n_clicks", 1), state, output=(ids.RESULT, "data"))
+    assert ids.RESULT in r, f"the analysis of {demo} failed: {json.dumps(r.get(ids.MESSAGE))[:400]}"
+    record = r[ids.RESULT]["data"]
     matrix = _truth(demo)["scenario"]["matrix"] or [[1, 0], [0, 1]]
     model = page.call((ids.MODEL_TRY, "n_clicks", 1), {**state, (ids.RESULT, "data"): record,
                                                        (ids.MODEL_TEXT, "value"): _matrix_text(matrix)},
