@@ -49,9 +49,9 @@ class CompleteFiles:
         from watchdog.events import FileSystemEventHandler
         from watchdog.observers import Observer
 
-        self.folder = Path(folder)
-        if not self.folder.is_dir():
-            raise SeriesError(f"Folder to watch {self.folder} does not exist or is not a folder.")
+        if not Path(folder).is_dir():
+            raise SeriesError(f"Folder to watch {folder} does not exist or is not a folder.")
+        self.folder = Path(folder).resolve()  # events then carry absolute paths
         self.settle_s, self.max_wait_s = float(settle_s), float(max_wait_s)
         self.events: queue.Queue = queue.Queue()
         self.pending: dict[Path, dict] = {}
