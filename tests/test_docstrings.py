@@ -56,18 +56,6 @@ PACKAGES = ("analysis", "webapp")
 NOT_YET = frozenset({
     "analysis.domain_size.sizes_along_axes",
     "analysis.spot_table.rows_to_csv",
-    "webapp.app.run",
-    "webapp.app.save_bundle",
-    "webapp.jobs.job_controls",
-    "webapp.jobs.make_manager",
-    "webapp.jobs.progress_reporter",
-    "webapp.key_limit.storage_uri",
-    "webapp.live_sessions.read_state",
-    "webapp.live_sessions.resolve_watch_folder",
-    "webapp.live_sessions.save_upload",
-    "webapp.live_sessions.session_dir",
-    "webapp.live_sessions.start_session",
-    "webapp.live_sessions.stop_session",
     "webapp.pages.analyse.export.on_export",
     "webapp.pages.analyse.export.on_save",
     "webapp.pages.analyse.job.on_new_image",
@@ -126,10 +114,6 @@ NOT_YET = frozenset({
     "webapp.pages.series.upload.mode_from_typing",
     "webapp.pages.series.upload.on_energy_upload",
     "webapp.pages.series.upload.on_series_upload",
-    "webapp.runtime.get_settings",
-    "webapp.runtime.get_store",
-    "webapp.runtime.reset",
-    "webapp.settings.load_settings",
 })
 
 

@@ -50,7 +50,13 @@ server.config["RECINET_MAX_UPLOAD_BYTES"] = settings.max_upload_bytes
 
 def nav_links() -> list:
     """A link to every registered page that gave an `order`, in that order (pages without one,
-    such as a saved analysis or the 404 page, are reached by their links only)."""
+    such as a saved analysis or the 404 page, are reached by their links only).
+
+    Returns
+    -------
+    list
+        Dash link components.
+    """
     pages = [p for p in dash.page_registry.values() if p.get("supplied_order") is not None]
     pages.sort(key=lambda p: (p["supplied_order"], p["module"]))
     return [html.A(p["name"], href=p["relative_path"]) for p in pages]
@@ -149,7 +155,20 @@ def _json(obj, status=200):
 
 
 def save_bundle(doc: dict, *, copied_from: str | None = None):
-    """Store the image and a new analysis from a checked export document; return the SavedAnalysis."""
+    """Store the image and a new analysis from a checked export document; return the SavedAnalysis.
+
+    Parameters
+    ----------
+    doc : dict
+        An export document checked by :func:`webapp.service.read_bundle`.
+    copied_from : str, optional, keyword-only
+        Share token of the analysis it was copied from.
+
+    Returns
+    -------
+    SavedAnalysis
+        The new row.
+    """
     im = service.read_image(doc["image"]["data"], name=doc["image"]["filename"])
     store = runtime.get_store()
     sha = store.put_image(doc["image"]["data"], filename=doc["image"]["filename"], width=im.data.shape[1],
@@ -213,7 +232,17 @@ def _headers(resp):
 
 
 def run(host: str = "127.0.0.1", port: int = 8050, debug: bool = False) -> None:
-    """Serve the app (``recinet serve``); SQLite and the job cache live in the data folder."""
+    """Serve the app (``recinet serve``); SQLite and the job cache live in the data folder.
+
+    Parameters
+    ----------
+    host : str
+        Address to listen on.
+    port : int
+        Port to listen on.
+    debug : bool
+        Dash's debug mode (reloads and error pages).
+    """
     s = runtime.get_settings()
     where = s.database_url if not s.database_url.startswith("sqlite") else str(s.data_dir)
     print(f"recinet: serving http://{host}:{port}/  (data: {where})", flush=True)

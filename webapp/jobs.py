@@ -46,7 +46,20 @@ class _OneResultPerJob:
 
 
 def make_manager(settings: Settings):
-    """Return ``(manager, celery_app_or_None)`` for ``Dash(background_callback_manager=...)``."""
+    """Return ``(manager, celery_app_or_None)`` for ``Dash(background_callback_manager=...)``.
+
+    Parameters
+    ----------
+    settings : Settings
+        The app's settings (:func:`webapp.settings.load_settings`).
+
+    Returns
+    -------
+    manager : DiskcacheManager or CeleryManager
+        Runs the background callbacks.
+    celery_app : celery.Celery or None
+        The Celery app when a broker is set.
+    """
     if settings.celery_broker:
         from celery import Celery  # pip install "celery[redis]"
         from dash import CeleryManager
@@ -75,6 +88,20 @@ def progress_reporter(set_progress, *, start: float = 0.0, span: float = 100.0):
     >>> r = progress_reporter(lambda v: seen.append(v), start=10, span=80)
     >>> r(0.5); r(3, 4); seen
     [('50', '100'), ('70', '100')]
+
+    Parameters
+    ----------
+    set_progress : callable
+        Dash's ``set_progress`` of a background callback.
+    start : float, keyword-only
+        Bar value at fraction 0.
+    span : float, keyword-only
+        Bar length of the whole work.
+
+    Returns
+    -------
+    callable
+        ``report(...)`` as above.
     """
     def report(*args, **_kw):
         try:
@@ -95,7 +122,22 @@ def progress_reporter(set_progress, *, start: float = 0.0, span: float = 100.0):
 def job_controls(run_id: str, cancel_id: str, progress_id: str) -> dict:
     """Keyword arguments of a background callback started by `run_id`: a progress bar
     (`progress_id`, shown only while it runs), the start button disabled and the stop
-    button (`cancel_id`) enabled meanwhile, and a click on stop cancelling it."""
+    button (`cancel_id`) enabled meanwhile, and a click on stop cancelling it.
+
+    Parameters
+    ----------
+    run_id : str
+        Id of the start button.
+    cancel_id : str
+        Id of the stop button.
+    progress_id : str
+        Id of the progress bar.
+
+    Returns
+    -------
+    dict
+        ``running``, ``progress``, ``cancel`` and ``background=True`` for ``dash.callback``.
+    """
     from dash import Input, Output
 
     return {

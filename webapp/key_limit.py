@@ -41,6 +41,16 @@ def storage_uri(settings: Settings) -> str:
     >>> s = Settings(Path("."), "sqlite://", Path("."), None, 1, "redis://127.0.0.1:6379/0")
     >>> storage_uri(s), storage_uri(Settings(Path("."), "sqlite://", Path("."), None, 1, None))
     ('redis://127.0.0.1:6379/0', 'memory://')
+
+    Parameters
+    ----------
+    settings : Settings
+        The app's settings (:func:`webapp.settings.load_settings`).
+
+    Returns
+    -------
+    str
+        A ``limits`` storage URI.
     """
     broker = settings.celery_broker or ""
     return broker if broker.startswith(("redis://", "rediss://", "unix://")) else "memory://"

@@ -45,14 +45,36 @@ def _root() -> Path:
 
 
 def session_dir(token: str) -> Path:
-    """The folder of session `token` (the token is checked; a bad one raises)."""
+    """The folder of session `token` (the token is checked; a bad one raises).
+
+    Parameters
+    ----------
+    token : str
+        The session's token.
+
+    Returns
+    -------
+    pathlib.Path
+        The folder.
+    """
     if not isinstance(token, str) or not _TOKEN.fullmatch(token):
         raise ParameterError("This live-series link is not valid.")
     return _root() / token
 
 
 def resolve_watch_folder(text: str) -> Path:
-    """The folder a user named, relative to ``RECINET_WATCH_ROOT``, or a one-line refusal."""
+    """The folder a user named, relative to ``RECINET_WATCH_ROOT``, or a one-line refusal.
+
+    Parameters
+    ----------
+    text : str
+        The folder as typed.
+
+    Returns
+    -------
+    pathlib.Path
+        The folder, inside ``RECINET_WATCH_ROOT``.
+    """
     root = runtime.get_settings().watch_root
     if root is None:
         raise ParameterError("Watching a folder on the server is off here (RECINET_WATCH_ROOT is not set); "
@@ -108,6 +130,18 @@ def start_session(cfg: dict, *, folder: str | None = None) -> str:
     """Check the settings, create a session and start watching; returns its token.
 
     `folder` None: the session watches its own upload folder (frames come by upload).
+
+    Parameters
+    ----------
+    cfg : dict
+        ``substrate``, ``energy_eV``, ``parameter_from``, ``name_pattern``, ``parameter_name``, ``unit``.
+    folder : str, optional, keyword-only
+        A folder under ``RECINET_WATCH_ROOT`` to watch.
+
+    Returns
+    -------
+    str
+        The session's token.
     """
     c = _check_config(cfg)
     watched = resolve_watch_folder(folder) if folder is not None else None
@@ -127,13 +161,31 @@ def start_session(cfg: dict, *, folder: str | None = None) -> str:
 
 
 def stop_session(token: str) -> None:
+    """Ask the session's watcher to stop (a ``stop`` file in its folder).
+
+    Parameters
+    ----------
+    token : str
+        The session's token.
+    """
     d = session_dir(token)
     if d.is_dir():
         (d / "stop").write_text("stop")
 
 
 def read_state(token: str) -> dict:
-    """The session's summary, or a one-line refusal for an unknown link."""
+    """The session's summary, or a one-line refusal for an unknown link.
+
+    Parameters
+    ----------
+    token : str
+        The session's token.
+
+    Returns
+    -------
+    dict
+        The session's state (status, lines, the series so far).
+    """
     d = session_dir(token)
     try:
         return json.loads((d / "state.json").read_text())
@@ -142,7 +194,22 @@ def read_state(token: str) -> dict:
 
 
 def save_upload(token: str, name: str, data: bytes) -> str:
-    """Put one uploaded frame into the session's folder (hidden name first, then renamed)."""
+    """Put one uploaded frame into the session's folder (hidden name first, then renamed).
+
+    Parameters
+    ----------
+    token : str
+        The session's token.
+    name : str
+        The frame's file name.
+    data : bytes
+        The file.
+
+    Returns
+    -------
+    str
+        The name it was saved under.
+    """
     from analysis.io import IMAGE_SUFFIXES
 
     d = session_dir(token) / "frames"

@@ -26,6 +26,13 @@ if hasattr(os, "register_at_fork"):
 
 
 def get_settings() -> Settings:
+    """The app's settings, read from the environment once per process.
+
+    Returns
+    -------
+    Settings
+        The settings.
+    """
     global _settings
     with _lock:
         if _settings is None:
@@ -34,6 +41,13 @@ def get_settings() -> Settings:
 
 
 def get_store() -> Store:
+    """The store of saved analyses, opened once per database URL.
+
+    Returns
+    -------
+    Store
+        The store.
+    """
     global _store
     s = get_settings()
     with _lock:
@@ -43,7 +57,13 @@ def get_store() -> Store:
 
 
 def reset(settings: Settings | None = None) -> None:
-    """Forget the singletons (tests point the app at a fresh data folder this way)."""
+    """Forget the singletons (tests point the app at a fresh data folder this way).
+
+    Parameters
+    ----------
+    settings : Settings, optional
+        Settings to use from now on; None reads them again when next asked.
+    """
     global _settings, _store
     with _lock:
         if _store is not None:

@@ -47,7 +47,18 @@ class Settings:
 
 
 def load_settings(env: dict | None = None) -> Settings:
-    """Settings from `env` (default ``os.environ``); creates the data folder when SQLite is used."""
+    """Settings from `env` (default ``os.environ``); creates the data folder when SQLite is used.
+
+    Parameters
+    ----------
+    env : dict, optional
+        The environment variables (``RECINET_*``).
+
+    Returns
+    -------
+    Settings
+        The settings.
+    """
     env = os.environ if env is None else env
     data_dir = Path(env.get("RECINET_DATA_DIR") or "recinet-data").expanduser().resolve()
     url = env.get("RECINET_DATABASE_URL") or ""
