@@ -19,7 +19,18 @@ _log = logging.getLogger("recinet.webapp")
 
 
 def fail(err: Exception) -> str:
-    """The one line a page shows for an error; unexpected ones are logged, never shown as a traceback."""
+    """The one line a page shows for an error; unexpected ones are logged, never shown as a traceback.
+
+    Parameters
+    ----------
+    err : Exception
+        The error.
+
+    Returns
+    -------
+    str
+        The line.
+    """
     if isinstance(err, RecinetError):
         return str(err)
     _log.exception("unexpected error in a callback")
@@ -27,14 +38,33 @@ def fail(err: Exception) -> str:
 
 
 def note(text: str | None, kind: str = "error"):
-    """A note under a control: ``kind`` is "error" (read out at once), "ok", "warn" or "wait"."""
+    """A note under a control: ``kind`` is "error" (read out at once), "ok", "warn" or "wait".
+
+    Parameters
+    ----------
+    text : str or None
+        The message; None or empty for no note.
+    kind : str
+        Its kind (sets its style, and for errors the alert role).
+
+    Returns
+    -------
+    dash.html.Div or None
+        The note.
+    """
     if not text:
         return None
     return html.Div(text, className=f"note note-{kind}", role="alert" if kind == "error" else None)
 
 
 def triggered() -> tuple[str | None, str]:
-    """(component id, "id.prop") of what fired the running callback; (None, "") outside one."""
+    """(component id, "id.prop") of what fired the running callback; (None, "") outside one.
+
+    Returns
+    -------
+    tuple of (str or None, str)
+        The id and the property.
+    """
     try:
         t = ctx.triggered
     except Exception:  # noqa: BLE001 - called as a plain function, outside a callback
@@ -46,7 +76,13 @@ def triggered() -> tuple[str | None, str]:
 
 
 def triggered_id() -> str | None:
-    """Component id of what fired the running callback (None outside one)."""
+    """Component id of what fired the running callback (None outside one).
+
+    Returns
+    -------
+    str or None
+        The id.
+    """
     return triggered()[0]
 
 
@@ -55,6 +91,18 @@ def safe_stem(name, default: str = "analysis") -> str:
 
     >>> safe_stem("Pt(111) O 2x2.v2.png"), safe_stem("../..", "series")
     ('Pt_111_O_2x2_v2', 'series')
+
+    Parameters
+    ----------
+    name : str or None
+        The name (e.g. the uploaded file's).
+    default : str
+        The stem when nothing is left.
+
+    Returns
+    -------
+    str
+        The stem.
     """
     text = str(name or "")
     base = text.rsplit(".", 1)[0] if re.search(r"\.[A-Za-z0-9]{1,5}$", text) else text

@@ -39,7 +39,18 @@ def _empty(message: str, height: int) -> go.Figure:
 
 
 def curves_figure(state: dict) -> go.Figure:
-    """Each family's summed intensity and the integer beams' against the parameter, segments shaded."""
+    """Each family's summed intensity and the integer beams' against the parameter, segments shaded.
+
+    Parameters
+    ----------
+    state : dict
+        The session's state (:func:`webapp.live_sessions.read_state`).
+
+    Returns
+    -------
+    plotly.graph_objects.Figure
+        Intensity against the parameter.
+    """
     par = state.get("parameter")
     if not par or not par.get("values"):
         return _empty("The beam intensities appear here as the frames arrive", 420)
@@ -71,7 +82,22 @@ def curves_figure(state: dict) -> go.Figure:
 
 
 def frame_figure(png: bytes | None, meta: dict | None, beams: list) -> go.Figure:
-    """The last frame (8-bit PNG, downsampled by meta['factor']) with its beams marked."""
+    """The last frame (8-bit PNG, downsampled by meta['factor']) with its beams marked.
+
+    Parameters
+    ----------
+    png : bytes or None
+        The frame's preview.
+    meta : dict or None
+        Its ``shape`` (rows, cols) and ``factor``.
+    beams : list of dict
+        The beams with their (x, y) pixels and labels.
+
+    Returns
+    -------
+    plotly.graph_objects.Figure
+        The frame.
+    """
     if not png or not meta:
         return _empty("The last frame appears here", 420)
     f = float(meta.get("factor", 1))
@@ -95,6 +121,20 @@ def frame_figure(png: bytes | None, meta: dict | None, beams: list) -> go.Figure
 
 
 def layout(session: str | None = None, **_query):
+    """The page: the session's settings, start and stop, uploads, the curves and the last frame.
+
+    Parameters
+    ----------
+    session : str, optional
+        A session token from the link ``/live?session=…``.
+    **_query
+        Other query parameters (ignored).
+
+    Returns
+    -------
+    dash.html.Div
+        The page body.
+    """
     root = runtime.get_settings().watch_root
     folder_note = (f"A folder inside {root.name}/ on the server." if root is not None
                    else "Watching server folders is off here (RECINET_WATCH_ROOT); upload the frames instead.")
@@ -170,7 +210,34 @@ def layout(session: str | None = None, **_query):
           State(ids.LIVE_PATTERN, "value"), prevent_initial_call=True)
 def on_start(_watch, _upload, folder, energy, substrate, param_from, param_name, unit, pattern,
              trigger: str | None = None):
-    """Start a session watching `folder` (under the root) or taking uploads."""
+    """Start a session watching `folder` (under the root) or taking uploads.
+
+    Parameters
+    ----------
+    _watch, _upload : int or None
+        Clicks of 'Watch the folder' and 'Start with uploads'.
+    folder : str or None
+        The folder under the watch root.
+    energy : float or None
+        Beam energy, eV.
+    substrate : str or None
+        E.g. ``"Pt(111)"``.
+    param_from : str
+        ``"names"`` or ``"times"``.
+    param_name, unit : str or None
+        What the parameter is.
+    pattern : str or None
+        Regular expression for the number in a file name.
+    trigger : str, optional
+        Which button fired (tests pass it).
+
+    Returns
+    -------
+    token : str or None
+        The new session's token.
+    message : str
+        What happened, in one line.
+    """
     which = trigger or ctx.triggered_id
     cfg = {"energy_eV": energy, "substrate": substrate, "parameter_from": param_from, "parameter_name": param_name,
            "unit": unit, "name_pattern": pattern or None}
@@ -185,6 +252,20 @@ def on_start(_watch, _upload, folder, energy, substrate, param_from, param_name,
 @callback(Output(ids.LIVE_MESSAGE, "children", allow_duplicate=True), Input(ids.LIVE_STOP, "n_clicks"),
           State(ids.LIVE_SESSION, "data"), prevent_initial_call=True)
 def on_stop(_n, token):
+    """Stop pressed: ask the session to stop.
+
+    Parameters
+    ----------
+    _n : int or None
+        The button's clicks.
+    token : str or None
+        The session's token.
+
+    Returns
+    -------
+    str
+        What happened, in one line.
+    """
     if not token:
         return "Nothing is running."
     try:
@@ -198,7 +279,24 @@ def on_stop(_n, token):
           Input(ids.LIVE_UPLOAD, "contents"), State(ids.LIVE_UPLOAD, "filename"), State(ids.LIVE_SESSION, "data"),
           prevent_initial_call=True)
 def on_upload(contents, filenames, token):
-    """Add the dropped frames to the session's folder (the watcher takes them from there)."""
+    """Add the dropped frames to the session's folder (the watcher takes them from there).
+
+    Parameters
+    ----------
+    contents : list of str or None
+        Data URLs of the dropped frames.
+    filenames : list of str or None
+        Their names.
+    token : str or None
+        The session's token.
+
+    Returns
+    -------
+    message : str
+        What was added or refused.
+    contents : None
+        Clears the upload.
+    """
     if not contents:
         return no_update, None
     if not token:
@@ -239,7 +337,20 @@ def _segments_table(state: dict):
           Output(ids.LIVE_SEGMENTS, "children"), Output(ids.LIVE_LOG, "children"), Output(ids.LIVE_LINK, "children"),
           Input(ids.LIVE_TICK, "n_intervals"), Input(ids.LIVE_SESSION, "data"))
 def on_tick(_n, token):
-    """Redraw from the session's summary (any web worker can read it)."""
+    """Redraw from the session's summary (any web worker can read it).
+
+    Parameters
+    ----------
+    _n : int
+        Ticks of the interval.
+    token : str or None
+        The session's token.
+
+    Returns
+    -------
+    tuple
+        Status, curves figure, frame figure, segments, log text and share link.
+    """
     if not token:
         return "No live series yet.", no_update, no_update, no_update, "", ""
     try:
@@ -271,7 +382,24 @@ def on_tick(_n, token):
           Input(ids.LIVE_EXPORT_CSV, "n_clicks"), Input(ids.LIVE_EXPORT_JSON, "n_clicks"),
           State(ids.LIVE_SESSION, "data"), prevent_initial_call=True)
 def on_export(_csv, _json, token, trigger: str | None = None):
-    """The beams so far as CSV, or the series as JSON (the whole record once stopped)."""
+    """The beams so far as CSV, or the series as JSON (the whole record once stopped).
+
+    Parameters
+    ----------
+    _csv, _json : int or None
+        Clicks of the two export buttons.
+    token : str or None
+        The session's token.
+    trigger : str, optional
+        Which button fired (tests pass it; the page reads it from the callback context).
+
+    Returns
+    -------
+    download : dict
+        The file for ``dcc.Download`` (or ``no_update``).
+    message : str
+        What went wrong (or ``no_update``).
+    """
     which = trigger or ctx.triggered_id
     if not token:
         return no_update, "Nothing to export yet."

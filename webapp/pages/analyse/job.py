@@ -17,7 +17,38 @@ __all__ = ["run_job", "on_stop", "on_new_image", "on_new_result"]
 
 def run_job(set_progress, n_clicks, edits, image, energy, substrate, source, reference=None, ref_energy=None,
             calibration_token=None):
-    """Background job: analyse the stored image with the parameters and edits -> (record, message)."""
+    """Background job: analyse the stored image with the parameters and edits -> (record, message).
+
+    Parameters
+    ----------
+    set_progress : callable
+        Dash's progress setter of the background callback.
+    n_clicks : int or None
+        The button's clicks.
+    edits : dict or None
+        The manual edits.
+    image : dict or None
+        The image store: ``sha``, ``filename``, ``width``, ``height``.
+    energy : float or None
+        Beam energy, eV.
+    substrate : str or None
+        E.g. ``"Pt(111)"``.
+    source : dict or None
+        The source store: ``readonly`` and the share token.
+    reference : dict, optional
+        The reference image store.
+    ref_energy : float, optional
+        Its energy, eV.
+    calibration_token : str, optional
+        Share token of a saved analysis whose camera model is reused.
+
+    Returns
+    -------
+    record : dict or None
+        The analysis store.
+    message : dash component or None
+        A note.
+    """
     trig, _ = triggered()
     if (source or {}).get("readonly") or not image:
         raise PreventUpdate
@@ -62,19 +93,47 @@ def run_job(set_progress, n_clicks, edits, image, energy, substrate, source, ref
 
 
 def on_stop(n_clicks):
-    """Stop pressed: the page forgets what the stopped run would have replaced -> (result, model, message)."""
+    """Stop pressed: the page forgets what the stopped run would have replaced -> (result, model, message).
+
+    Parameters
+    ----------
+    n_clicks : int or None
+        The button's clicks.
+
+    Returns
+    -------
+    tuple
+        (result, model, message) to show after the stop.
+    """
     if not n_clicks:
         raise PreventUpdate
     return None, None, note("Stopped: nothing was analysed. Press Analyse to start again.", "warn")
 
 
 def on_new_image(image):
-    """A new image forgets the model tried on the last one -> (model, model note, message)."""
+    """A new image forgets the model tried on the last one -> (model, model note, message).
+
+    Parameters
+    ----------
+    image : dict or None
+        The image store: ``sha``, ``filename``, ``width``, ``height``.
+
+    Returns
+    -------
+    tuple
+        (None, None, None): no model, no note, no message.
+    """
     return None, None, None
 
 
 def on_new_result(result):
-    """A new result (or none) forgets the candidate picked among the last one's -> pick."""
+    """A new result (or none) forgets the candidate picked among the last one's -> pick.
+
+    Parameters
+    ----------
+    result : dict or None
+        The analysis store.
+    """
     return None
 
 

@@ -29,7 +29,38 @@ def display_image(sha: str, scale: str, gamma: float, clip_lo: float, clip_hi: f
 
 
 def render_pattern(image, record, edits, model, scale, gamma, clip, overlays, pick, focus=None, source=None):
-    """The pattern figure with the chosen contrast and overlays; `focus` is the domain brought forward."""
+    """The pattern figure with the chosen contrast and overlays; `focus` is the domain brought forward.
+
+    Parameters
+    ----------
+    image : dict or None
+        The image store: ``sha``, ``filename``, ``width``, ``height``.
+    record : dict or None
+        The analysis store: ``sha``, ``parameters``, ``edits``, ``result``.
+    edits : dict or None
+        The manual edits (``sha``, ``rev``, ``added``, ``removed``, ``center``).
+    model : dict or None
+        The model being tried.
+    scale : str
+        Contrast scale of the display (e.g. ``"linear"``).
+    gamma : float
+        Display gamma.
+    clip : list of float
+        Percentiles mapped to black and white.
+    overlays : list of str
+        The overlays drawn.
+    pick : int or None
+        The candidate drawn instead of the best answer.
+    focus : int, optional
+        The domain brought forward.
+    source : dict or None
+        The source store: ``readonly`` and the share token.
+
+    Returns
+    -------
+    plotly.graph_objects.Figure
+        The pattern.
+    """
     if not image or not image.get("sha"):
         return figures.empty_figure()
     clip = clip or [0.5, 99.95]
@@ -52,7 +83,30 @@ def render_pattern(image, record, edits, model, scale, gamma, clip, overlays, pi
 
 
 def on_graph_event(click, relayout, undo, mode, edits, image, source):
-    """A click adds or drops a spot or sets the centre; dragging the centre circle moves it."""
+    """A click adds or drops a spot or sets the centre; dragging the centre circle moves it.
+
+    Parameters
+    ----------
+    click : dict or None
+        The pattern's clickData.
+    relayout : dict or None
+        The pattern's relayoutData (the centre circle dragged).
+    undo : int or None
+        Clicks of 'Undo all'.
+    mode : str
+        What a click does (add or drop a spot, set the centre).
+    edits : dict or None
+        The manual edits (``sha``, ``added``, ``removed``, ``center``).
+    image : dict or None
+        The image store: ``sha``, ``filename``, ``width``, ``height``.
+    source : dict or None
+        The source store: ``readonly`` and the share token.
+
+    Returns
+    -------
+    dict
+        The new edits.
+    """
     if (source or {}).get("readonly") or not image:
         raise PreventUpdate
     trig, prop = triggered()
@@ -114,7 +168,24 @@ def _pushed(ed: dict, snapshot: dict) -> list:
 
 
 def on_undo_last(n_clicks, edits, image, source):
-    """'Undo last edit': the edits as they were before the last click, drag or 'Undo all'."""
+    """'Undo last edit': the edits as they were before the last click, drag or 'Undo all'.
+
+    Parameters
+    ----------
+    n_clicks : int or None
+        The button's clicks.
+    edits : dict or None
+        The manual edits (``sha``, ``added``, ``removed``, ``center``).
+    image : dict or None
+        The image store: ``sha``, ``filename``, ``width``, ``height``.
+    source : dict or None
+        The source store: ``readonly`` and the share token.
+
+    Returns
+    -------
+    dict
+        The edits before the last change.
+    """
     if not n_clicks or (source or {}).get("readonly") or not image:
         raise PreventUpdate
     if not edits or edits.get("sha") != image["sha"] or not edits.get("history"):
@@ -143,6 +214,20 @@ def _center_from_relayout(relayout):
 
 
 def edit_summary(edits, image):
+    """One line counting the edits by hand on this image.
+
+    Parameters
+    ----------
+    edits : dict or None
+        The manual edits.
+    image : dict or None
+        The image store.
+
+    Returns
+    -------
+    str
+        The line (empty without edits).
+    """
     if not image or not edits or edits.get("sha") != image.get("sha"):
         return ""
     a, r, c = len(edits.get("added") or []), len(edits.get("removed") or []), edits.get("center")

@@ -63,6 +63,20 @@ def show_result(record, image, pick):
 
     With a candidate picked, the pattern draws that candidate: the panel says so at its top,
     and its Domains row lists the domains drawn (the buttons bring one domain's net forward).
+
+    Parameters
+    ----------
+    record : dict or None
+        The analysis store: ``sha``, ``parameters``, ``edits``, ``result``.
+    image : dict or None
+        The image store: ``sha``, ``filename``, ``width``, ``height``.
+    pick : int or None
+        The candidate picked.
+
+    Returns
+    -------
+    tuple
+        Result panel, candidate options, candidate list and real-space figure.
     """
     result = result_of(record, image)
     empty = figures.empty_figure("The cells appear after an analysis", height=300)
@@ -171,7 +185,13 @@ def _result_children(result, record, pick=None):
 
 
 def on_show_best(n_clicks):
-    """'Show the best answer' in the note -> no candidate picked."""
+    """'Show the best answer' in the note -> no candidate picked.
+
+    Parameters
+    ----------
+    n_clicks : int or None
+        The link's clicks.
+    """
     if not n_clicks:
         raise PreventUpdate
     return None
@@ -179,7 +199,24 @@ def on_show_best(n_clicks):
 
 def on_domain_focus(clicks, pick, record, current):
     """A domain button -> that domain brought forward (a second click: all alike); a new result
-    or another candidate -> none."""
+    or another candidate -> none.
+
+    Parameters
+    ----------
+    clicks : list of int or None
+        Clicks of each domain button.
+    pick : int or None
+        The candidate picked.
+    record : dict or None
+        The analysis store: ``sha``, ``parameters``, ``edits``, ``result``.
+    current : int or None
+        The domain brought forward now.
+
+    Returns
+    -------
+    int or None
+        The domain brought forward (None: all alike).
+    """
     trig = ctx.triggered_id if _in_callback() else None
     fired = {str(t.get("prop_id", "")).rsplit(".", 1)[0] for t in ctx.triggered} if _in_callback() else set()
     if fired & {ids.RESULT, ids.CANDIDATE_PICK}:  # a new answer or another candidate: all domains alike

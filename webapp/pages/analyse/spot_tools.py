@@ -45,7 +45,18 @@ TABLE_COLUMNS = (
 
 
 def tools_panels(*, readonly: bool = False):
-    """The two panels: the line profile, and the spot widths with the spot table."""
+    """The two panels: the line profile, and the spot widths with the spot table.
+
+    Parameters
+    ----------
+    readonly : bool, keyword-only
+        For a shared, read-only analysis.
+
+    Returns
+    -------
+    list
+        The two panels' components.
+    """
     def num(cid, value=None, hint="px"):  # plain text boxes: compact, read as numbers by the callbacks
         return dcc.Input(id=cid, type="text", inputMode="decimal", value=value, placeholder=hint, debounce=True,
                          maxLength=12, style={"width": "5.2rem"})
@@ -97,7 +108,18 @@ def tools_panels(*, readonly: bool = False):
 # ------------------------------------------------------------------------------ line profile
 
 def on_draw_line(n_clicks):
-    """Turn the pattern's drag into line drawing (until the pattern is redrawn)."""
+    """Turn the pattern's drag into line drawing (until the pattern is redrawn).
+
+    Parameters
+    ----------
+    n_clicks : int or None
+        The button's clicks.
+
+    Returns
+    -------
+    dict
+        A figure patch setting the drag mode to line drawing.
+    """
     if not n_clicks:
         raise PreventUpdate
     fig = Patch()
@@ -109,7 +131,18 @@ def on_draw_line(n_clicks):
 def line_from_relayout(relayout):
     """The ends (x0, y0, x1, y1) of the newest line drawn on the pattern, or of a drawn line
     moved afterwards (``shapes[i].x0``… with i ≥ 1: shape 0 is the pattern's centre circle),
-    from the pattern's relayoutData."""
+    from the pattern's relayoutData.
+
+    Parameters
+    ----------
+    relayout : dict or None
+        The pattern's relayoutData.
+
+    Returns
+    -------
+    tuple of float, or None
+        (x0, y0, x1, y1) in the figure's pixels; None when no line changed.
+    """
     if not isinstance(relayout, dict):
         raise PreventUpdate
     moved = sorted({k.split("].")[0] for k in relayout if k.startswith("shapes[") and "]." in k})
@@ -166,7 +199,30 @@ def _profile(image, record, x0, y0, x1, y1, width):
 
 
 def show_profile(x0, y0, x1, y1, width, unit, image, record, scale="linear"):
-    """The profile figure and a note (plain message for bad input)."""
+    """The profile figure and a note (plain message for bad input).
+
+    Parameters
+    ----------
+    x0, y0, x1, y1 : float or None
+        Ends of the line, image pixels.
+    width : float or None
+        Width averaged across the line, pixels.
+    unit : str or None
+        Distance unit of the axis.
+    image : dict or None
+        The image store: ``sha``, ``filename``, ``width``, ``height``.
+    record : dict or None
+        The analysis store: ``sha``, ``parameters``, ``edits``, ``result``.
+    scale : str
+        ``"linear"`` or ``"log"`` intensity axis.
+
+    Returns
+    -------
+    figure : plotly.graph_objects.Figure
+        The profile.
+    note : dash.html.Div or None
+        A message.
+    """
     log = scale == "log"
     try:
         p, msg = _profile(image, record, x0, y0, x1, y1, width)
@@ -182,6 +238,28 @@ def show_profile(x0, y0, x1, y1, width, unit, image, record, scale="linear"):
 
 
 def profile_csv(n_clicks, x0, y0, x1, y1, width, image, record):
+    """The line profile as a CSV download.
+
+    Parameters
+    ----------
+    n_clicks : int or None
+        The button's clicks.
+    x0, y0, x1, y1 : float or None
+        Ends of the line, image pixels.
+    width : float or None
+        Width averaged across the line, pixels.
+    image : dict or None
+        The image store.
+    record : dict or None
+        The analysis store.
+
+    Returns
+    -------
+    download : dict or None
+        The file for ``dcc.Download``.
+    note : dash.html.Div or None
+        A message.
+    """
     if not n_clicks:
         raise PreventUpdate
     try:
@@ -237,7 +315,22 @@ def _summary(rep):
 
 
 def show_widths(record, image):
-    """Summary (domain size, instrument response, method) and the table rows."""
+    """Summary (domain size, instrument response, method) and the table rows.
+
+    Parameters
+    ----------
+    record : dict or None
+        The analysis store: ``sha``, ``parameters``, ``edits``, ``result``.
+    image : dict or None
+        The image store: ``sha``, ``filename``, ``width``, ``height``.
+
+    Returns
+    -------
+    summary : dash component
+        The summary, or a message.
+    rows : list of dict
+        The spot table's rows.
+    """
     try:
         rep, rows = _widths(record, image)
     except Exception as err:  # noqa: BLE001
@@ -248,6 +341,22 @@ def show_widths(record, image):
 
 
 def table_csv(n_clicks, record, image):
+    """The spot table (with the domain-size estimate) as a CSV download.
+
+    Parameters
+    ----------
+    n_clicks : int or None
+        The button's clicks.
+    record : dict or None
+        The analysis store.
+    image : dict or None
+        The image store.
+
+    Returns
+    -------
+    dict
+        The file for ``dcc.Download``.
+    """
     if not n_clicks:
         raise PreventUpdate
     try:

@@ -14,17 +14,56 @@ __all__ = ["empty_edits", "result_of", "candidate"]
 
 
 def empty_edits(sha=None) -> dict:
-    """No edits by hand on the image `sha`."""
+    """No edits by hand on the image `sha`.
+
+    Parameters
+    ----------
+    sha : str, optional
+        The image's SHA-256.
+
+    Returns
+    -------
+    dict
+        ``{"sha", "rev": 0, "added": [], "removed": [], "center": None}``.
+    """
     return {"sha": sha, "rev": 0, "added": [], "removed": [], "center": None}
 
 
 def result_of(record, image):
+    """The result of `record` when it belongs to `image`, else None.
+
+    Parameters
+    ----------
+    record : dict or None
+        The analysis store.
+    image : dict or None
+        The image store.
+
+    Returns
+    -------
+    dict or None
+        The result dict.
+    """
     if not record or not image or record.get("sha") != image.get("sha"):
         return None
     return record.get("result")
 
 
 def candidate(result, pick):
+    """The ranked candidate `pick` of a result, or None.
+
+    Parameters
+    ----------
+    result : dict or None
+        A result dict.
+    pick : int or None
+        Rank of the candidate.
+
+    Returns
+    -------
+    dict or None
+        The candidate.
+    """
     if pick is None or not result:
         return None
     cands = result.get("candidates") or []

@@ -13,6 +13,20 @@ from .state import empty_edits
 __all__ = ["store_image", "on_upload", "on_reference"]
 
 def store_image(raw: bytes, filename: str) -> dict:
+    """Decode an uploaded image, keep it in the store and return the image store's data.
+
+    Parameters
+    ----------
+    raw : bytes
+        The file.
+    filename : str
+        Its name.
+
+    Returns
+    -------
+    dict
+        ``{"sha", "filename", "width", "height"}``.
+    """
     im = service.read_image(raw, name=filename)
     h, w = im.data.shape
     sha = runtime.get_store().put_image(raw, filename=filename, width=w, height=h,
@@ -21,7 +35,26 @@ def store_image(raw: bytes, filename: str) -> dict:
 
 
 def on_upload(contents, demo, filename, energy, substrate):
-    """A dropped file or a picked demo -> (image, record, edits, energy, substrate, sample, notes, note, contents)."""
+    """A dropped file or a picked demo -> (image, record, edits, energy, substrate, sample, notes, note, contents).
+
+    Parameters
+    ----------
+    contents : str or None
+        Data URL of the dropped file (an image or an exported analysis).
+    demo : str or None
+        A demo image picked.
+    filename : str or None
+        The dropped file's name.
+    energy : float or None
+        The energy typed so far, eV.
+    substrate : str or None
+        The substrate typed so far.
+
+    Returns
+    -------
+    tuple
+        The outputs listed above.
+    """
     keep = (no_update,) * 4
     trig, _ = triggered()
     try:
@@ -59,7 +92,24 @@ def on_upload(contents, demo, filename, energy, substrate):
 
 
 def on_reference(contents, demo, filename, energy):
-    """A reference image (dropped or a demo) -> (reference meta, note, reference energy, contents)."""
+    """A reference image (dropped or a demo) -> (reference meta, note, reference energy, contents).
+
+    Parameters
+    ----------
+    contents : str or None
+        Data URL of the dropped reference image.
+    demo : str or None
+        A demo picked as the reference.
+    filename : str or None
+        The dropped file's name.
+    energy : float or None
+        The reference energy typed so far, eV.
+
+    Returns
+    -------
+    tuple
+        (reference meta, note, reference energy, upload contents cleared).
+    """
     trig, _ = triggered()
     try:
         if trig == ids.REF_DEMO:
