@@ -56,27 +56,6 @@ PACKAGES = ("analysis", "webapp")
 NOT_YET = frozenset({
     "analysis.domain_size.sizes_along_axes",
     "analysis.spot_table.rows_to_csv",
-    "webapp.pages.analyse.export.on_export",
-    "webapp.pages.analyse.export.on_save",
-    "webapp.pages.analyse.layout.calibration_choices",
-    "webapp.pages.analyse.layout.workspace",
-    "webapp.pages.analyse.model.on_try_model",
-    "webapp.pages.series.export.on_export",
-    "webapp.pages.series.frames.frame_index",
-    "webapp.pages.series.frames.move_frame",
-    "webapp.pages.series.frames.render_frame",
-    "webapp.pages.series.frames.render_iv",
-    "webapp.pages.series.job.run_series_job",
-    "webapp.pages.series.layout.empty",
-    "webapp.pages.series.layout.layout",
-    "webapp.pages.series.results.beam_at_click",
-    "webapp.pages.series.results.groups_table",
-    "webapp.pages.series.results.on_result",
-    "webapp.pages.series.results.pick_beams",
-    "webapp.pages.series.results.summary_panel",
-    "webapp.pages.series.upload.mode_from_typing",
-    "webapp.pages.series.upload.on_energy_upload",
-    "webapp.pages.series.upload.on_series_upload",
 })
 
 

@@ -15,6 +15,30 @@ from .state import result_of
 __all__ = ["on_save", "on_export"]
 
 def on_save(n_clicks, record, image, sample, notes, source):
+    """Save the analysis with its image and show its share link.
+
+    Parameters
+    ----------
+    n_clicks : int or None
+        The save button's clicks.
+    record : dict or None
+        The analysis store.
+    image : dict or None
+        The image store.
+    sample : str or None
+        The sample's name.
+    notes : str or None
+        Free notes.
+    source : dict or None
+        The source store (a read-only page cannot save).
+
+    Returns
+    -------
+    note : dash.html.Div
+        What happened.
+    link : dash.html.Div or None
+        The share link.
+    """
     if not n_clicks:
         raise PreventUpdate
     if (source or {}).get("readonly"):
@@ -37,6 +61,32 @@ def on_save(n_clicks, record, image, sample, notes, source):
 
 
 def on_export(nj, nc, npng, nsvg, record, image, sample, notes, scale, gamma, clip):
+    """The analysis as a download: the re-importable JSON, the spots (CSV) or the figure (PNG, SVG).
+
+    Parameters
+    ----------
+    nj, nc, npng, nsvg : int or None
+        Clicks of the JSON, CSV, PNG and SVG buttons.
+    record : dict or None
+        The analysis store.
+    image : dict or None
+        The image store.
+    sample : str or None
+        The sample's name.
+    notes : str or None
+        Free notes.
+    scale : str
+        Contrast scale of the display.
+    gamma : float
+        Display gamma.
+    clip : list of float
+        Percentiles mapped to black and white.
+
+    Returns
+    -------
+    dict
+        The file for ``dcc.Download``.
+    """
     trig, _ = triggered()
     if trig is None or not image:
         raise PreventUpdate

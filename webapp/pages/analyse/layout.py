@@ -16,7 +16,34 @@ DEFAULT_OVERLAYS = ["spots", "substrate", "domains", "unexplained", "model"]
 def workspace(*, readonly: bool = False, image: dict | None = None, record: dict | None = None,
               energy=None, substrate: str = "Pt(111)", sample_name: str = "", notes: str = "",
               token: str | None = None, header=None):
-    """The page body: the pattern large on the left, the answer on the right."""
+    """The page body: the pattern large on the left, the answer on the right.
+
+    Parameters
+    ----------
+    readonly : bool, keyword-only
+        A shared analysis: no edits, no new analysis.
+    image : dict, optional, keyword-only
+        The image store to start with.
+    record : dict, optional, keyword-only
+        The analysis store to start with.
+    energy : float, optional, keyword-only
+        Beam energy shown, eV.
+    substrate : str, keyword-only
+        Substrate shown.
+    sample_name : str, keyword-only
+        The sample's name.
+    notes : str, keyword-only
+        Free notes.
+    token : str, optional, keyword-only
+        Share token of a saved analysis.
+    header : dash component, optional, keyword-only
+        Shown above the page.
+
+    Returns
+    -------
+    dash.html.Div
+        The page body.
+    """
     hide = {"display": "none"} if readonly else {}
     edits = (record or {}).get("edits") or empty_edits((image or {}).get("sha"))
     edits = {**empty_edits((image or {}).get("sha")), **edits, "sha": (image or {}).get("sha")}
@@ -168,7 +195,13 @@ def workspace(*, readonly: bool = False, image: dict | None = None, record: dict
 
 
 def calibration_choices() -> list[dict]:
-    """Saved analyses whose result carries a screen calibration, newest first."""
+    """Saved analyses whose result carries a screen calibration, newest first.
+
+    Returns
+    -------
+    list of dict
+        Dropdown options ``{"label", "value"}``, value the share token.
+    """
     try:
         saved = runtime.get_store().recent(40)
     except Exception:  # noqa: BLE001 - a list of choices must never break the page

@@ -13,6 +13,30 @@ from .state import result_of
 __all__ = ["on_try_model"]
 
 def on_try_model(n_clicks, n_submit, text, record, image, substrate):
+    """Draw and score a model typed by hand (a matrix or a Wood notation) on the analysed spots.
+
+    Parameters
+    ----------
+    n_clicks : int or None
+        The button's clicks.
+    n_submit : int or None
+        Enter pressed in the field.
+    text : str or None
+        The model typed.
+    record : dict or None
+        The analysis store.
+    image : dict or None
+        The image store.
+    substrate : str or None
+        The substrate field.
+
+    Returns
+    -------
+    model : dict or None
+        :func:`webapp.service.try_model` of the text.
+    note : dash.html.Div
+        Its counts, or what went wrong.
+    """
     if not n_clicks and not n_submit:
         raise PreventUpdate
     result = result_of(record, image)

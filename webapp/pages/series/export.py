@@ -12,6 +12,20 @@ __all__ = ["on_export"]
 
 
 def on_export(n_csv, n_avg, n_json, summary):
+    """The run as a download: the I(V) table per beam or per group (CSV), or the whole run (JSON).
+
+    Parameters
+    ----------
+    n_csv, n_avg, n_json : int or None
+        Clicks of the three export buttons.
+    summary : dict or None
+        The run's summary.
+
+    Returns
+    -------
+    dict
+        The file for ``dcc.Download``.
+    """
     trig = triggered_id()
     if trig is None or not summary:
         raise PreventUpdate

@@ -16,7 +16,20 @@ __all__ = ["frame_index", "move_frame", "render_frame", "render_iv"]
 
 
 def frame_index(frame, summary) -> int:
-    """The frame number on the slider, kept inside the run's frames."""
+    """The frame number on the slider, kept inside the run's frames.
+
+    Parameters
+    ----------
+    frame : int or None
+        The frame on the slider.
+    summary : dict or None
+        The run's summary (:func:`webapp.series_service.run_series`).
+
+    Returns
+    -------
+    int
+        A frame index between 0 and the last frame.
+    """
     n = int((summary or {}).get("n_frames") or 1)
     try:
         i = int(frame or 0)
@@ -26,7 +39,24 @@ def frame_index(frame, summary) -> int:
 
 
 def move_frame(prev, nxt, iv_click, summary, value):
-    """The slider's frame: 0 for a new run, one step back or on, or the energy clicked in the I(V) plot."""
+    """The slider's frame: 0 for a new run, one step back or on, or the energy clicked in the I(V) plot.
+
+    Parameters
+    ----------
+    prev, nxt : int or None
+        Clicks of the back and on buttons.
+    iv_click : dict or None
+        The I(V) plot's clickData.
+    summary : dict or None
+        The run's summary (:func:`webapp.series_service.run_series`).
+    value : int or None
+        The slider's value.
+
+    Returns
+    -------
+    int
+        The frame to show.
+    """
     trig = triggered_id()
     if not summary:
         if trig == ids.SERIES_RESULT:
@@ -50,7 +80,26 @@ def move_frame(prev, nxt, iv_click, summary, value):
 
 
 def render_frame(meta, summary, frame, picked):
-    """The frame on the slider with the followed beams drawn on it, and the label under the slider."""
+    """The frame on the slider with the followed beams drawn on it, and the label under the slider.
+
+    Parameters
+    ----------
+    meta : dict or None
+        The uploaded series (``sha``, ``filename``, ``width``, ``height``).
+    summary : dict or None
+        The run's summary (:func:`webapp.series_service.run_series`).
+    frame : int or None
+        The frame on the slider.
+    picked : list of str or None
+        The beams plotted.
+
+    Returns
+    -------
+    figure : plotly.graph_objects.Figure
+        The frame.
+    label : str
+        Frame number, name and energy.
+    """
     if not summary or (meta and summary.get("sha") != meta.get("sha")):
         if meta and meta.get("sha"):
             url = series_service.first_frame_view(meta["sha"])
@@ -77,7 +126,24 @@ def render_frame(meta, summary, frame, picked):
 
 
 def render_iv(summary, picked, group, frame):
-    """The I(V) curves of the picked beams, a group's average, and the energy of the frame on the slider."""
+    """The I(V) curves of the picked beams, a group's average, and the energy of the frame on the slider.
+
+    Parameters
+    ----------
+    summary : dict or None
+        The run's summary (:func:`webapp.series_service.run_series`).
+    picked : list of str or None
+        The beams plotted.
+    group : str or None
+        A group whose average is drawn.
+    frame : int or None
+        The frame on the slider.
+
+    Returns
+    -------
+    plotly.graph_objects.Figure
+        The curves.
+    """
     if not summary:
         return empty("The curves appear once the beams are followed")
     try:

@@ -15,7 +15,38 @@ __all__ = ["run_series_job"]
 
 def run_series_job(set_progress, n_clicks, meta, table, mode, start, step, pattern, substrate, index_frame,
                    overlayer=None):
-    """Background job: follow every beam of the uploaded series -> (summary, message)."""
+    """Background job: follow every beam of the uploaded series -> (summary, message).
+
+    Parameters
+    ----------
+    set_progress : callable
+        Dash's progress setter of the background callback.
+    n_clicks : int or None
+        The run button's clicks.
+    meta : dict or None
+        The uploaded series.
+    table : dict or None
+        The energy table read from an energy file.
+    mode : str
+        Where the energies come from: ``"file"``, ``"step"`` or ``"names"``.
+    start, step : float or None
+        First energy and step, eV.
+    pattern : str or None
+        Regular expression for the energy in a frame's name.
+    substrate : str or None
+        E.g. ``"Cu(100)"``.
+    index_frame : int or None
+        The frame to index alone (None: several together).
+    overlayer : str, optional
+        The overlayer typed (empty: as indexed; ``"none"``; a matrix or Wood notation).
+
+    Returns
+    -------
+    summary : dict or None
+        The run's summary.
+    message : dash component or None
+        A note.
+    """
     if not n_clicks:
         raise PreventUpdate
     if not meta or not meta.get("sha"):

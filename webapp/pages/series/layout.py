@@ -24,11 +24,36 @@ _ENERGY_MODES = [
 
 
 def empty(message: str, height: int = 520) -> go.Figure:
-    """The empty frame or I(V) plot with a message in it."""
+    """The empty frame or I(V) plot with a message in it.
+
+    Parameters
+    ----------
+    message : str
+        The text shown.
+    height : int
+        Figure height, pixels.
+
+    Returns
+    -------
+    plotly.graph_objects.Figure
+        A blank plot with the message.
+    """
     return figures.empty_figure(message, height=height)
 
 
 def layout(**_query):
+    """The series page: upload and energies, indexing and following, the frame and the I(V) curves.
+
+    Parameters
+    ----------
+    **_query
+        Query parameters of the URL (ignored).
+
+    Returns
+    -------
+    dash.html.Div
+        The page body.
+    """
     limit_mb = runtime.get_settings().max_upload_bytes / 1e6
     inputs = html.Div(className="panel", children=[
         html.H2("Series and energies"),

@@ -37,7 +37,18 @@ def _pm(v, u, digits=2, unit=""):
 
 
 def summary_panel(summary: dict):
-    """The facts of a run: frames and energies, the indexing, the calibration fitted from the series."""
+    """The facts of a run: frames and energies, the indexing, the calibration fitted from the series.
+
+    Parameters
+    ----------
+    summary : dict or None
+        The run's summary (:func:`webapp.series_service.run_series`).
+
+    Returns
+    -------
+    dash.html.Div
+        The facts.
+    """
     e = summary["energy_eV"]
     ix = summary["index"]
     seen = sum(1 for b in summary["beams"] if b["n_valid"])
@@ -88,7 +99,18 @@ def summary_panel(summary: dict):
 
 def groups_table(summary: dict):
     """One card per group of equivalent beams: its members' I(V) and their average in one small plot,
-    the members, and how well they agree (Pendry and reduced Zanazzi–Jona R-factors, common range)."""
+    the members, and how well they agree (Pendry and reduced Zanazzi–Jona R-factors, common range).
+
+    Parameters
+    ----------
+    summary : dict or None
+        The run's summary (:func:`webapp.series_service.run_series`).
+
+    Returns
+    -------
+    dash.html.Div
+        The cards.
+    """
     groups = summary.get("groups") or []
     if not groups:
         return html.P("No beam was followed long enough to compare.", className="muted")
@@ -134,7 +156,18 @@ def _group_label(g: dict) -> str:
 
 
 def on_result(summary):
-    """A new run -> slider (max, marks, disabled), beam options, group options and value, summary, groups."""
+    """A new run -> slider (max, marks, disabled), beam options, group options and value, summary, groups.
+
+    Parameters
+    ----------
+    summary : dict or None
+        The run's summary (:func:`webapp.series_service.run_series`).
+
+    Returns
+    -------
+    tuple
+        The outputs listed above.
+    """
     if not summary:  # a new upload: forget the last run
         return (1, None, True, [], [], None, html.P("No series followed yet.", className="muted"),
                 html.P("The groups appear once the beams are followed.", className="muted"))
@@ -154,7 +187,26 @@ def on_result(summary):
 
 
 def pick_beams(click, group, summary, frame, current):
-    """The beams in the plot: defaults for a new run, a group's members, or a clicked spot added."""
+    """The beams in the plot: defaults for a new run, a group's members, or a clicked spot added.
+
+    Parameters
+    ----------
+    click : dict or None
+        The frame figure's clickData.
+    group : str or None
+        A group picked.
+    summary : dict or None
+        The run's summary (:func:`webapp.series_service.run_series`).
+    frame : int or None
+        The frame on the slider.
+    current : list of str or None
+        The beams plotted now.
+
+    Returns
+    -------
+    list of str
+        The beams' labels.
+    """
     trig = triggered_id()
     if not summary:
         if trig == ids.SERIES_RESULT:
@@ -178,7 +230,22 @@ def pick_beams(click, group, summary, frame, current):
 
 
 def beam_at_click(click, summary, frame) -> str | None:
-    """The beam under a click on the frame: the marker's beam, else the nearest within 12 px."""
+    """The beam under a click on the frame: the marker's beam, else the nearest within 12 px.
+
+    Parameters
+    ----------
+    click : dict or None
+        The frame figure's clickData.
+    summary : dict or None
+        The run's summary (:func:`webapp.series_service.run_series`).
+    frame : int or None
+        The frame on the slider.
+
+    Returns
+    -------
+    str or None
+        The beam's label.
+    """
     if not click or not click.get("points"):
         return None
     p = click["points"][0]

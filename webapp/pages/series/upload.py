@@ -12,7 +12,18 @@ __all__ = ["on_series_upload", "on_energy_upload", "mode_from_typing"]
 
 
 def on_series_upload(payload):
-    """A dropped series (within the size limit) -> (meta, note, result reset, upload contents)."""
+    """A dropped series (within the size limit) -> (meta, note, result reset, upload contents).
+
+    Parameters
+    ----------
+    payload : dict or None
+        The dropped series (its name and contents).
+
+    Returns
+    -------
+    tuple
+        The outputs listed above.
+    """
     if not payload or not payload.get("contents"):
         raise PreventUpdate
     name = str(payload.get("filename") or "series")[:200]
@@ -27,7 +38,20 @@ def on_series_upload(payload):
 
 
 def on_energy_upload(contents, filename):
-    """A dropped energy file -> (energy table, note, energy mode, upload contents)."""
+    """A dropped energy file -> (energy table, note, energy mode, upload contents).
+
+    Parameters
+    ----------
+    contents : str or None
+        Data URL of the dropped energy file.
+    filename : str or None
+        Its name.
+
+    Returns
+    -------
+    tuple
+        The outputs listed above.
+    """
     if contents is None:
         raise PreventUpdate
     name = str(filename or "energies")[:200]
@@ -44,7 +68,20 @@ def on_energy_upload(contents, filename):
 
 
 def mode_from_typing(start, step, pattern):
-    """Typing a start and a step, or a file-name pattern, chooses that source of energies."""
+    """Typing a start and a step, or a file-name pattern, chooses that source of energies.
+
+    Parameters
+    ----------
+    start, step : float or None
+        First energy and step typed, eV.
+    pattern : str or None
+        A file-name pattern typed.
+
+    Returns
+    -------
+    str
+        The energy mode, ``"step"`` or ``"names"`` (no update otherwise).
+    """
     trig = triggered_id()
     if trig == ids.SERIES_NAME_PATTERN and pattern:
         return "names"
