@@ -61,6 +61,7 @@ def _shot(page, name):
 
 def test_live_page_follows_a_folder_as_it_fills(page, live_server, watch_root):
     page.goto(live_server + "/live")
+    page.wait_for_selector("#live-energy")  # the layout is drawn by the browser after the page loads
     assert page.locator("#nav a[href='/live']").count() == 1
     page.fill("#live-energy", "200")
     page.fill("#live-substrate", "Pt(111)")

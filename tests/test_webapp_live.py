@@ -57,7 +57,7 @@ def test_no_path_outside_the_root_is_accepted(live_env, tmp_path):
 
 def test_start_refuses_bad_input_with_one_line(live_env):
     from webapp import ids
-    from webapp.pages import live
+    from webapp.pages import live_view as live
 
     args = ("run1", 200, "Pt(111)", "names", "temperature", "K", None)
     tok, msg = live.on_start(1, None, "../x", *args[1:], trigger=ids.LIVE_WATCH)
@@ -82,7 +82,7 @@ def test_upload_session_analyses_dropped_frames(live_env):
     from analysis.optics import ScreenGeometry
     from analysis.simulate.parameter_series import OrderDisorderModel, render_parameter_series
     from webapp import ids, live_sessions
-    from webapp.pages import live
+    from webapp.pages import live_view as live
 
     tok, msg = live.on_start(None, 1, None, 200, "Pt(111)", "names", "temperature", "K", None,
                              trigger=ids.LIVE_UPLOAD_START)
@@ -122,7 +122,7 @@ def test_upload_session_analyses_dropped_frames(live_env):
 
 
 def test_curves_figure_draws_families_segments_and_the_fit(live_env):
-    from webapp.pages import live
+    from webapp.pages import live_view as live
 
     st = {"parameter": {"name": "temperature", "unit": "K", "values": [300.0, 350.0, 400.0, 450.0]},
           "families": [{"label": "(1/2,0)", "total": [9.0, 7.0, 1.0, 0.0], "present": [True, True, False, False]}],
