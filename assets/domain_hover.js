@@ -1,4 +1,4 @@
-// Hovering a domain in the result panel brings its net forward on the pattern at once, in the
+// Hovering (or tabbing to) a domain in the result panel brings its net forward on the pattern at once, in the
 // browser (no round trip): that domain's net and ticks drawn thick and opaque, the others faint.
 // Leaving the button puts the figure back as the server drew it (a click pins a domain there).
 (function () {
@@ -44,4 +44,7 @@
         var b = button(ev);
         if (b && !(ev.relatedTarget && b.contains(ev.relatedTarget))) { emphasise(null); }
     });
+    // the keyboard too: a domain button with the focus brings its net forward
+    document.addEventListener("focusin", function (ev) { var b = button(ev); if (b) { emphasise(indexOf(b)); } });
+    document.addEventListener("focusout", function (ev) { var b = button(ev); if (b) { emphasise(null); } });
 })();
