@@ -138,3 +138,27 @@ def test_curves_figure_draws_families_segments_and_the_fit(live_env):
     assert [a.text for a in fig.layout.annotations] == ["p(2×2), commensurate", "(1×1)"]
     assert fig.layout.xaxis.title.text == "temperature (K)"
     assert "as the frames arrive" in live.curves_figure({}).layout.annotations[0].text
+
+
+def test_uploads_only_into_an_upload_session_and_running_sessions_capped(live_env, monkeypatch):
+    from analysis.errors import ParameterError
+    from webapp import live_sessions
+
+    cfg = {"energy_eV": 200, "substrate": "Pt(111)", "parameter_from": "names", "parameter_name": "T", "unit": "K"}
+    watching = live_sessions.start_session(cfg, folder="run1")
+    try:
+        with pytest.raises(ParameterError, match="takes no uploads"):
+            live_sessions.save_upload(watching, "T_300K.tif", b"x")
+        monkeypatch.setattr(live_sessions, "MAX_RUNNING", 1)
+        with pytest.raises(ParameterError, match="running on this server already"):
+            live_sessions.start_session(cfg)
+    finally:
+        live_sessions.stop_session(watching)
+    monkeypatch.setattr(live_sessions, "MAX_RUNNING", 4)
+    up = live_sessions.start_session(cfg)
+    try:
+        monkeypatch.setattr(live_sessions, "MAX_SESSION_BYTES", 10)
+        with pytest.raises(ParameterError, match="at most 0 GB"):
+            live_sessions.save_upload(up, "T_300K.tif", b"x" * 11)
+    finally:
+        live_sessions.stop_session(up)

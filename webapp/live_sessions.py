@@ -36,6 +36,8 @@ __all__ = ["start_session", "stop_session", "read_state", "session_dir", "save_u
 
 IDLE_STOP_S = 1800.0  # a session with no new frame for half an hour stops
 MAX_FRAMES = 5000
+MAX_RUNNING = 4  # live series watching at once in one web worker (each is a thread of heavy work)
+MAX_SESSION_BYTES = 4_000_000_000  # frames uploaded into one session
 _TOKEN = re.compile(r"[A-Za-z0-9_-]{16,64}")
 _threads: dict[str, threading.Thread] = {}
 
@@ -145,6 +147,10 @@ def start_session(cfg: dict, *, folder: str | None = None) -> str:
     """
     c = _check_config(cfg)
     watched = resolve_watch_folder(folder) if folder is not None else None
+    running = sum(1 for th in list(_threads.values()) if th.is_alive())
+    if running >= MAX_RUNNING:
+        raise ParameterError(f"{running} live series are running on this server already (at most {MAX_RUNNING}); "
+                             "stop one first.")
     token = secrets.token_urlsafe(18)
     d = session_dir(token)
     (d / "frames").mkdir(parents=True)
@@ -213,8 +219,16 @@ def save_upload(token: str, name: str, data: bytes) -> str:
     from analysis.io import IMAGE_SUFFIXES
 
     d = session_dir(token) / "frames"
-    if not d.is_dir():
+    try:
+        mode = json.loads((d.parent / "config.json").read_text()).get("mode")
+    except (OSError, ValueError):
+        mode = None
+    if mode != "upload" or not d.is_dir():
         raise ParameterError("This live series takes no uploads (it watches a folder), or it was removed.")
+    used = sum(f.stat().st_size for f in d.iterdir() if f.is_file())
+    if used + len(data) > MAX_SESSION_BYTES:
+        raise ParameterError(f"This live series holds {used / 1e9:.1f} GB of frames already (at most "
+                             f"{MAX_SESSION_BYTES / 1e9:.0f} GB); start a new one.")
     base = Path(str(name)).name
     if Path(base).suffix.lower() not in IMAGE_SUFFIXES or base.startswith(".") or len(base) > 200:
         raise ParameterError(f"{base[:60]!r} is not an image file name ({', '.join(IMAGE_SUFFIXES)}).")
