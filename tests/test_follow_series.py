@@ -106,3 +106,31 @@ def test_mismatched_parameters_say_so():
     frames = [np.ones((32, 32)) * i for i in range(3)]
     with pytest.raises(SeriesError, match="lists only 2"):
         analyse_parameter_series(frames, substrate="Pt(111)", energy_eV=E, parameters=[1.0, 2.0])
+
+
+@pytest.mark.slow
+def test_a_folder_with_file_times_and_a_sidecar(tmp_path):
+    import os
+
+    import tifffile
+
+    from analysis.follow import read_parameter_file
+
+    t = [300.0, 320.0, 340.0, 360.0]
+    for i, (_, im) in enumerate(render_parameter_series(PT, [[[2, 0], [0, 2]]], t, model=OrderDisorderModel(tc=400.0),
+                                                        energy_eV=E, geometry=GEOM, rng=np.random.default_rng(3))):
+        p = tmp_path / f"shot{i + 1}.tif"  # natural order: shot2 before shot10
+        tifffile.imwrite(p, im.image)
+        os.utime(p, (1000.0 + 7.5 * i, 1000.0 + 7.5 * i))
+    (tmp_path / "notes.txt").write_text("not a frame")
+    res = analyse_parameter_series(tmp_path, substrate="Pt(111)", energy_eV=E, parameters="times", n_probe=2,
+                                   n_index=1)
+    # truth: the files' modification times, 7.5 s apart
+    assert res.trace.value.tolist() == [0.0, 7.5, 15.0, 22.5] and res.trace.name == "time"
+    assert res.trace.frame_names == ("shot1.tif", "shot2.tif", "shot3.tif", "shot4.tif")
+    side = tmp_path / "T.json"
+    side.write_text(json.dumps({"frame": [f"shot{i}.tif" for i in (4, 3, 2, 1)], "temperature_K": t[::-1]}))
+    res = analyse_parameter_series(tmp_path, substrate="Pt(111)", energy_eV=E, parameters=read_parameter_file(side),
+                                   n_probe=2, n_index=1)
+    assert res.trace.value.tolist() == t and res.trace.unit == "K"
+    assert res.segments[0].label.startswith("p(2×2)")
