@@ -116,6 +116,59 @@ def _candidate_vectors(hk: np.ndarray, integer: np.ndarray, a_star: np.ndarray, 
     return np.array(primary + ints + extra).reshape(-1, 2)
 
 
+def _substrate_rotation(a_star: np.ndarray) -> np.ndarray | None:
+    """The substrate's smallest rotation in hk units (acting on row vectors): 60° for a
+    hexagonal net, 90° for a square one, None for nets with only the 2-fold axis."""
+    la, lb = np.linalg.norm(a_star, axis=1)
+    if abs(la - lb) > 1e-3 * la:
+        return None
+    cosg = float(a_star[0] @ a_star[1]) / (la * lb)
+    if abs(abs(cosg) - 0.5) < 1e-3:
+        ang = math.radians(60.0)
+    elif abs(cosg) < 1e-3:
+        ang = math.radians(90.0)
+    else:
+        return None
+    rot = np.array([[math.cos(ang), math.sin(ang)], [-math.sin(ang), math.cos(ang)]])  # rows: g @ rot
+    return a_star @ rot @ np.linalg.inv(a_star)
+
+
+def _moire_seeds(hk: np.ndarray, integer: np.ndarray, a_star: np.ndarray, tol_g: float,
+                 intensity: np.ndarray | None, n_bright: int = 3):
+    """Bases (u, R u) of a layer that nearly coincides with the substrate (a moiré).
+
+    u is one of the brightest fractional beams lying within `_MOIRE_SEED_MISMATCH` of
+    |a*| of a first-order substrate beam (the layer's own first-order beams outshine its
+    satellites) and R the substrate's rotation: the layer is taken to share the
+    substrate's symmetry, so its net is not read off two satellites that happen to span
+    a skewed cell. Yields refined matrices M (continuous fits).
+    """
+    rot = _substrate_rotation(a_star)
+    frac = np.flatnonzero(~integer)
+    if rot is None or intensity is None or len(frac) < 6:
+        return
+    g_min = float(np.min(np.linalg.norm(a_star, axis=1)))
+    first = np.array([[1, 0], [0, 1], [1, 1], [1, -1], [-1, 0], [0, -1], [-1, -1], [-1, 1]], dtype=np.float64)
+    first = first[np.abs(np.linalg.norm(first @ a_star, axis=1) - g_min) < 1e-6 * g_min]
+    seen = []
+    for i in frac[np.argsort(-np.asarray(intensity, float)[frac], kind="stable")]:
+        d = np.min(np.linalg.norm((hk[i] - first) @ a_star, axis=1))
+        if d > _MOIRE_SEED_MISMATCH * g_min or d <= 2 * tol_g:
+            continue
+        b = np.array([hk[i], hk[i] @ rot])
+        if abs(np.linalg.det(b)) < 1e-9 or any(np.allclose(b[0] @ a_star, q, atol=tol_g) for q in seen):
+            continue
+        seen.extend(b @ a_star)
+        yield _refine_matrix(hk, np.linalg.inv(b).T, a_star, tol_g)
+        if len(seen) >= 2 * n_bright:
+            return
+
+
+#: a fractional beam this close to a first-order substrate beam (fraction of |a*|) may be a
+#: moiré layer's own first-order beam (as :data:`analysis.indexing.overlayers._MOIRE_MISMATCH`)
+_MOIRE_SEED_MISMATCH = 0.2
+
+
 def _candidate_matrices(hk: np.ndarray, integer: np.ndarray, a_star: np.ndarray, tol_g: float,
                         intensity: np.ndarray | None, *, max_det: float, max_denominator: int):
     """Overlayer matrices proposed by pairs of observed beam vectors, in search order.
@@ -136,6 +189,8 @@ def _candidate_matrices(hk: np.ndarray, integer: np.ndarray, a_star: np.ndarray,
     n_frac = int((~integer).sum())
     vecs = _candidate_vectors(hk, integer, a_star, tol_g, intensity)
     g_ref = float(np.min(np.linalg.norm(a_star, axis=1)))
+    for m in _moire_seeds(hk, integer, a_star, tol_g, intensity):
+        yield m, 2e-3, True
     for i in range(len(vecs)):
         for j in range(i + 1, len(vecs)):
             b = np.array([vecs[i], vecs[j]])

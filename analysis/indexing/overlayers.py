@@ -309,6 +309,71 @@ class _Scored:
         return len(self.all_domains)
 
 
+#: A layer whose first-order beams each lie within this fraction of |a*| (the shortest substrate
+#: beam) of a substrate beam forms a moiré with it (near coincidence: misfit and twist of a few
+#: per cent, e.g. a graphene-like layer on a close-packed metal).
+_MOIRE_MISMATCH = 0.2
+#: Highest order n of the moiré satellites h + n₁Δ₁ + n₂Δ₂ (max(|n₁|, |n₂|, |n₁ + n₂|) ≤ n).
+_MOIRE_ORDER = 4
+
+
+def _satellite_steps(bs: np.ndarray, a_star: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(D, V, 2) layer beams (hk units) that a multiple-scattering satellite adds to a substrate beam,
+    and (D,) which domains form a moiré.
+
+    Generally the first-order beams ± b1*, ± b2*, ± (b1* ± b2*). When the layer's first-order
+    beams nearly coincide with substrate beams (a moiré: b_i* = h_i + Δ_i with |Δ_i| small), the
+    double diffraction between the two nets puts beams at every h + n₁Δ₁ + n₂Δ₂, i.e. a substrate
+    beam plus the layer beam n₁b1* + n₂b2*, and several orders are seen (order ≤ `_MOIRE_ORDER`).
+
+    >>> a_star = np.eye(2)
+    >>> v, m = _satellite_steps(np.array([[[1.1, 0.0], [0.0, 1.1]]]), a_star)   # a moiré
+    >>> v.shape, m.tolist()
+    ((1, 60, 2), [True])
+    >>> v, m = _satellite_steps(np.array([[[0.5, 0.0], [0.0, 0.5]]]), a_star)   # a (2×2)
+    >>> v.shape, m.tolist()
+    ((1, 8, 2), [False])
+    """
+    first = np.stack([bs[:, 0], bs[:, 1], bs[:, 0] + bs[:, 1], bs[:, 0] - bs[:, 1]], axis=1)
+    first = np.concatenate([first, -first], axis=1)  # (D, 8, 2)
+    a_min = float(np.min(np.linalg.norm(a_star, axis=1)))
+    delta = (bs - np.rint(bs)) @ a_star  # (D, 2, 2) Å⁻¹
+    is_moire = np.all(np.linalg.norm(delta, axis=2) <= _MOIRE_MISMATCH * a_min, axis=1) & \
+        np.all(np.linalg.norm(np.rint(bs), axis=2) > 0, axis=1)
+    if not is_moire.any():
+        return first, is_moire
+    n = _MOIRE_ORDER
+    orders = np.array([(i, j) for i in range(-n, n + 1) for j in range(-n, n + 1)
+                       if (i, j) != (0, 0) and max(abs(i), abs(j), abs(i + j)) <= n], dtype=np.float64)
+    many = np.einsum("vi,dij->dvj", orders, bs)  # (D, V, 2)
+    # domains that are no moiré keep their first-order steps (padded by repeating them)
+    reps = -(-len(orders) // first.shape[1])
+    padded = np.tile(first, (1, reps, 1))[:, : len(orders)]
+    return np.where(is_moire[:, None, None], many, padded), is_moire
+
+
+def _distinct_nets(bs: np.ndarray, a_star: np.ndarray, tol_g: float) -> int:
+    """How many of the (D, 2, 2) reciprocal bases `bs` (hk units) span different nets, two nets
+    being the same when each basis vector of one lies within `tol_g` (Å⁻¹, twice over the
+    first shell) of a point of the other.
+
+    >>> bs = np.array([np.eye(2) * 1.1, [[0.0, 1.1], [-1.1, -1.1]], np.eye(2) * 0.5])
+    >>> _distinct_nets(bs, np.eye(2), 0.01)
+    2
+    """
+    reps: list[np.ndarray] = []
+    for b in bs:
+        inv_b = np.linalg.inv(b)
+        for r in reps:
+            q = r @ inv_b  # r's vectors in b's basis
+            if np.all(np.linalg.norm((q - np.rint(q)) @ b @ a_star, axis=1) <= tol_g) and \
+                    abs(abs(np.linalg.det(np.rint(q))) - 1.0) < 1e-9:
+                break
+        else:
+            reps.append(b)
+    return len(reps)
+
+
 def _score(ctx: _Context, matrix, *, all_domains: bool, satellites: bool, absent: bool = True) -> _Scored:
     """Explained / unexplained / absent counts and the score of one matrix with its domains.
 
@@ -329,9 +394,9 @@ def _score(ctx: _Context, matrix, *, all_domains: bool, satellites: bool, absent
     dist = np.hypot(dd[..., 0], dd[..., 1])  # (D, K) Å⁻¹
     expl = (dist <= tol_g) & frac[None, :]
     primary = expl.copy()
-    if satellites:  # a substrate beam plus a first-order beam of the layer (± b1*, b2*, b1* ± b2*)
-        v = np.stack([bs[:, 0], bs[:, 1], bs[:, 0] + bs[:, 1], bs[:, 0] - bs[:, 1]], axis=1)
-        v = np.concatenate([v, -v], axis=1)  # (D, 8, 2)
+    moire = np.zeros(len(mats), bool)
+    if satellites:  # a substrate beam plus a low-order beam of the layer
+        v, moire = _satellite_steps(bs, a_star)
         sh = hk[None, None] - v[:, :, None, :]
         dd = (sh - np.rint(sh)) @ a_star
         dist = np.minimum(dist, np.hypot(dd[..., 0], dd[..., 1]).min(axis=1))
@@ -347,7 +412,8 @@ def _score(ctx: _Context, matrix, *, all_domains: bool, satellites: bool, absent
             if gains[best] < (1 if not chosen else 2):
                 break
             chosen.append(best)
-            covered |= primary[best]
+            # a further domain must explain spots the chosen ones cannot, even as their satellites
+            covered |= expl[best]
         chosen = chosen or [0]
     by = np.full(len(hk), -1)
     by[ctx.integer] = -2
@@ -373,7 +439,9 @@ def _score(ctx: _Context, matrix, *, all_domains: bool, satellites: bool, absent
         li = np.log(np.clip(ctx.intensity, 1e-9, None))
         own_li, sat_li = li[own], li[sat_only]
     terms = overlayer_breakdown(explained=e_r, satellites=e_sat_r, unexplained=u_r, n_domains=len(chosen),
-                                det=det, miss=miss, own_log_i=own_li, satellite_log_i=sat_li)
+                                det=det, miss=miss, own_log_i=own_li, satellite_log_i=sat_li,
+                                moire=bool(moire[chosen].any()),
+                                symmetry_domains=_distinct_nets(bs, a_star, tol_g) if moire.any() else None)
     bound = terms.total  # A not counted yet: an upper bound of the score
     sc = _Scored(domains=[mats[i] for i in chosen], domain_ops=[names[i] for i in chosen], all_domains=mats,
                  explained=e, unexplained=u, satellites=e_sat, satellites_allowed=bool(satellites),

@@ -2,7 +2,7 @@
 
 Overlayer score (:data:`OVERLAYER_TERMS`; ranks the models for the fractional-order spots)::
 
-    score = E − ¼·S − U − (D − 1) − ½·|log₂ det M| − mean((miss/tol)²) + tanh(ΔlogI) − ½·A − H + P
+    score = E − ¼·S − U − (D − 1) − ½·|log₂ det M| − mean((miss/tol)²) + tanh(ΔlogI) + 2·Q − 2·Y − ½·A − H + P
 
 E     fractional spots the model explains; S of them only as multiple-scattering
       satellites (so a satellite-only spot counts ¾); U fractional spots left
@@ -14,6 +14,13 @@ miss  distance of each explained trusted spot to the nearest beam of its model
       (satellites included), in units of the matching tolerance.
 ΔlogI median log intensity of the layer's own beams minus that of its
       satellite-only spots (0 without satellites or intensities).
+Q, Y  for a layer that nearly coincides with the substrate (a moiré: its first-order beams
+      within 0.2 |a*| of substrate beams), whose satellites h + n₁Δ₁ + n₂Δ₂ of up to the
+      fourth order are allowed: every net of the moiré module then explains the same spots,
+      so Q = tanh(ΔlogI) again (the layer's own beams outshine the satellites) and
+      Y = 1 − D/D_sym, the share of the net's symmetry domains left out (a net of lower
+      symmetry than the substrate's, seen in one domain, is one of the module's nets, not
+      the layer). Both 0 for other layers.
 A     predicted fractional beams absent where a spot could have been seen.
 H     irrational handicap 1.5 + 0.05·E′ + 2·(D − 1) of an incommensurate model
       (E′: every spot explained, trusted or not): four free parameters can absorb a
@@ -84,6 +91,12 @@ OVERLAYER_TERMS = (
     Term("cell_size", -0.5, "|log₂ det M|", "the cell's area away from the substrate's, in octaves"),
     Term("miss", -1.0, "mean((miss/tol)²)", "mean squared miss of the explained spots, in tolerances"),
     Term("satellite_contrast", 1.0, "tanh(ΔlogI)", "the layer's own beams outshine its satellites"),
+    Term("moire_contrast", 2.0, "Q",
+         "in a moiré every net of the moiré module explains the same spots: the layer is the one whose "
+         "own beams outshine the satellites"),
+    Term("moire_symmetry", -2.0, "Y",
+         "in a moiré, a net of lower symmetry than the substrate's that shows only some of its "
+         "symmetry domains is one of the moiré module's many nets, not the layer"),
     Term("absent", -0.5, "A", "predicted fractional beams absent where a spot could be seen"),
     Term("irrational", -1.0, "H", "handicap of an incommensurate model, 1.5 + 0.05·E′ + 2·(D − 1)"),
     Term("populations", 1.0, "P", "gain of unequal domain populations, D·tanh(max(ln r − ln 2, 0))"),
@@ -189,7 +202,8 @@ class ScoreBreakdown:
 
 def overlayer_breakdown(*, explained: int, satellites: int, unexplained: int, n_domains: int, det: float,
                         miss: np.ndarray | None = None, own_log_i: np.ndarray | None = None,
-                        satellite_log_i: np.ndarray | None = None) -> ScoreBreakdown:
+                        satellite_log_i: np.ndarray | None = None, moire: bool = False,
+                        symmetry_domains: int | None = None) -> ScoreBreakdown:
     """The overlayer terms known before the absent beams are counted (A, H and P are 0).
 
     Parameters
@@ -204,6 +218,12 @@ def overlayer_breakdown(*, explained: int, satellites: int, unexplained: int, n_
         Miss of each explained trusted spot, in tolerances.
     own_log_i, satellite_log_i : ndarray of float, optional
         Log intensities of the layer's own beams and of its satellite-only spots.
+    moire : bool, optional
+        The layer nearly coincides with the substrate and its satellites of several orders were
+        allowed: the contrast then also counts as ``moire_contrast``, and the domains left out
+        of the net's `symmetry_domains` as ``moire_symmetry``.
+    symmetry_domains : int, optional
+        The number of symmetry domains of the net on the substrate.
 
     Returns
     -------
@@ -223,6 +243,10 @@ def overlayer_breakdown(*, explained: int, satellites: int, unexplained: int, n_
         values["miss"] = float(np.mean(miss**2))
     if own_log_i is not None and satellite_log_i is not None and len(own_log_i) and len(satellite_log_i):
         values["satellite_contrast"] = math.tanh(float(np.median(own_log_i) - np.median(satellite_log_i)))
+        if moire:
+            values["moire_contrast"] = values["satellite_contrast"]
+    if moire and symmetry_domains:
+        values["moire_symmetry"] = 1.0 - n_domains / symmetry_domains
     return ScoreBreakdown.of(OVERLAYER_TERMS, **values)
 
 
