@@ -1,5 +1,8 @@
 """The web app's only call sites into :mod:`analysis`, and the upload checks in front of them.
 
+The demo images (:mod:`webapp.demos`) and the JSON export of an analysis
+(:mod:`webapp.bundles`) live in their own modules; their names are handed out here too.
+
 Every function raises an :class:`analysis.errors.RecinetError` with a one-line
 message a page can show as it is; pages never call the core directly.
 """
@@ -15,8 +18,6 @@ import json
 import math
 import os
 import re
-from datetime import datetime, timezone
-from pathlib import Path
 
 import diskcache
 import numpy as np
@@ -31,103 +32,19 @@ from analysis.series.pipeline import overlayer_matrices
 from analysis.superstructure import format_matrix
 
 from . import runtime
+from .bundles import EXPORT_FORMAT, export_bundle, read_bundle  # handed out here too
+from .demos import DEMO_DIR, demo_bytes, demo_choices, demo_defaults  # handed out here too
 
 __all__ = [
     "result_object", "candidate_predictions", "record_key", "calibration_of",
-    "DEMO_DIR", "EXPORT_FORMAT", "demo_choices", "demo_bytes", "decode_upload", "read_image",
+    "DEMO_DIR", "EXPORT_FORMAT", "demo_choices", "demo_bytes", "demo_defaults", "decode_upload", "read_image",
     "image_array", "check_energy", "check_substrate", "analyze", "try_model", "summary_of",
     "export_bundle", "read_bundle", "clean_edits",
 ]
 
-DEMO_DIR = Path(__file__).resolve().parent.parent / "demo_images"
-EXPORT_FORMAT = "recinet-analysis"
-_DEMO_SUFFIXES = (".png", ".tif", ".tiff")
 _DATA_URL = re.compile(r"data:([\w.+/-]*)(;[\w=.+-]+)*;base64,", re.ASCII)
 MAX_EDITS = 500
 MAX_MODEL_CELLS = 400  # substrate cells in one tried model's cell: beyond it the drawing has ~10⁴ beams
-
-
-# --------------------------------------------------------------------------- demo images
-
-def demo_choices() -> list[dict]:
-    """Demo images beside the package: ``[{"label", "value"}]``, value = file name (no folder).
-
-    Returns
-    -------
-    list of dict
-        One entry per demo image, sorted by name.
-    """
-    if not DEMO_DIR.is_dir():
-        return []
-    names = sorted(p.name for p in DEMO_DIR.iterdir() if p.suffix.lower() in _DEMO_SUFFIXES and p.is_file())
-    return [{"label": n.rsplit(".", 1)[0].replace("_", " "), "value": n} for n in names]
-
-
-def demo_bytes(name: str) -> tuple[bytes, dict]:
-    """Bytes of a demo image chosen from :func:`demo_choices`, and its truth JSON (or {}).
-
-    The name is looked up in the listing, never joined to a path as given.
-
-    Parameters
-    ----------
-    name : str
-        A ``value`` from :func:`demo_choices`.
-
-    Returns
-    -------
-    raw : bytes
-        The image file.
-    truth : dict
-        Its truth JSON, or ``{}``.
-    """
-    known = {c["value"] for c in demo_choices()}
-    if name not in known:
-        raise ParameterError(f"Unknown demo image {str(name)[:80]!r}.")
-    path = DEMO_DIR / name
-    truth = {}
-    side = path.with_suffix(".json")
-    if side.is_file():
-        try:
-            truth = json.loads(side.read_text())
-        except (OSError, ValueError):
-            truth = {}
-    return path.read_bytes(), truth if isinstance(truth, dict) else {}
-
-
-def demo_defaults(truth: dict) -> dict:
-    """Energy and substrate suggested by a demo's truth file, when it names them.
-
-    Parameters
-    ----------
-    truth : dict
-        A demo's truth JSON.
-
-    Returns
-    -------
-    dict
-        ``energy_eV`` and ``substrate`` when the truth gives them.
-    """
-    out = {}
-    for key in ("energy_eV", "energy", "energy_ev"):
-        if isinstance(truth.get(key), (int, float)):
-            out["energy_eV"] = float(truth[key])
-            break
-    scen = truth.get("scenario") if isinstance(truth.get("scenario"), dict) else {}
-    if isinstance(scen.get("sample"), str):
-        out["sample_name"] = scen["sample"][:200]
-    for key in ("substrate_label", "substrate", "substrate_spec", "surface"):
-        v = truth.get(key)
-        if isinstance(v, str):
-            out["substrate"] = v
-            break
-        if isinstance(v, dict):
-            for kk in ("spec", "name", "label", "net"):
-                if isinstance(v.get(kk), str):
-                    out["substrate"] = v[kk]
-                    break
-            if "substrate" in out:
-                break
-    return out
 
 
 # --------------------------------------------------------------------------- uploads
@@ -592,101 +509,6 @@ def candidate_predictions(record: dict, pick: int) -> list[list]:
     if not (0 <= int(pick) < len(models)):
         raise ParameterError(f"There is no candidate {int(pick) + 1}.")
     return serialize.predicted_spots(predicted_beams(obj.index.substrate, models[int(pick)], obj.energy_eV))["domains"]
-
-
-# --------------------------------------------------------------------------- export / import
-
-def export_bundle(*, image_bytes: bytes, filename: str, parameters: dict, edits: dict, result: dict | None,
-                  sample_name: str = "", notes: str = "", token: str | None = None) -> dict:
-    """A self-contained, re-importable JSON document of one analysis (the image included).
-
-    Parameters
-    ----------
-    image_bytes : bytes, keyword-only
-        The image file as uploaded.
-    filename : str, keyword-only
-        Its name.
-    parameters : dict, keyword-only
-        Energy, substrate and the other analysis parameters.
-    edits : dict, keyword-only
-        The manual edits.
-    result : dict or None, keyword-only
-        The result dict.
-    sample_name : str, keyword-only
-        The sample's name.
-    notes : str, keyword-only
-        Free notes.
-    token : str, optional, keyword-only
-        The share token of a saved analysis.
-
-    Returns
-    -------
-    dict
-        JSON-safe; :func:`read_bundle` reads it back.
-    """
-
-    return {
-        "format": EXPORT_FORMAT, "version": 1,
-        "exported_at": datetime.now(timezone.utc).isoformat(timespec="seconds"),
-        "token": token, "sample_name": sample_name or "", "notes": notes or "",
-        "parameters": parameters or {}, "edits": edits or {}, "result": result,
-        "image": {"filename": filename, "sha256": hashlib.sha256(image_bytes).hexdigest(),
-                  "data_base64": base64.b64encode(image_bytes).decode("ascii")},
-    }
-
-
-def read_bundle(raw: bytes | str, *, max_bytes: int) -> dict:
-    """Check an exported analysis and return it with the image bytes decoded under ``image["data"]``.
-
-    Parameters
-    ----------
-    raw : bytes or str
-        The exported JSON.
-    max_bytes : int, keyword-only
-        Largest accepted image inside it.
-
-    Returns
-    -------
-    dict
-        The bundle, its image bytes decoded.
-    """
-
-    if isinstance(raw, bytes):
-        if len(raw) > max_bytes * 4 // 3 + 1_000_000:
-            raise ParameterError("The analysis file is larger than the upload limit.")
-        try:
-            raw = raw.decode("utf-8")
-        except UnicodeDecodeError:
-            raise ParameterError("The analysis file is not UTF-8 JSON.") from None
-    try:
-        doc = json.loads(raw)
-    except ValueError as err:
-        raise ParameterError(f"The analysis file is not valid JSON ({err.msg} at line {err.lineno}).") from None
-    if not isinstance(doc, dict) or doc.get("format") != EXPORT_FORMAT:
-        raise ParameterError(f"This JSON is not a recinet analysis export (no \"format\": \"{EXPORT_FORMAT}\").")
-    if doc.get("version") != 1:
-        raise ParameterError(f"Unknown analysis export version {doc.get('version')!r}; this build reads version 1.")
-    img = doc.get("image")
-    if not isinstance(img, dict) or not isinstance(img.get("data_base64"), str):
-        raise ParameterError("The analysis file holds no image.")
-    try:
-        data = base64.b64decode(img["data_base64"], validate=True)
-    except (binascii.Error, ValueError):
-        raise ParameterError("The image inside the analysis file is not valid base64.") from None
-    if len(data) > max_bytes:
-        raise ParameterError(f"The image inside the analysis file is {len(data) / 1e6:.1f} MB; the limit is {max_bytes / 1e6:.1f} MB.")
-    if img.get("sha256") and hashlib.sha256(data).hexdigest() != img["sha256"]:
-        raise ParameterError("The image inside the analysis file does not match its recorded hash.")
-    for key in ("parameters", "edits"):
-        if not isinstance(doc.get(key, {}), dict):
-            raise ParameterError(f"`{key}` in the analysis file must be an object.")
-    if doc.get("result") is not None and not isinstance(doc["result"], dict):
-        raise ParameterError("`result` in the analysis file must be an object.")
-    out = dict(doc)
-    out["image"] = {"filename": str(img.get("filename") or "image")[:255], "data": data}
-    out["sample_name"] = str(doc.get("sample_name") or "")
-    out["notes"] = str(doc.get("notes") or "")
-    return out
 
 
 # --------------------------------------------------------------------------- small numeric helpers
