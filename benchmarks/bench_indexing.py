@@ -15,7 +15,15 @@ Targets (issue): ≥ 95 % correct, ≤ 0.5 s median per 1024×1024 image on 2 co
 beams drop below the detection threshold, and prints for each wrong answer how many of the
 fractional beams were found.
 
-Run: ``python benchmarks/bench_indexing.py [--n 30] [--quick] [--dim]``.
+``--validation [DIR]`` runs the images drawn by a generator written apart from recinet
+(``../shared/validation/cases`` by default, or a fresh draw) in-process, each with and without
+its reference image, scores each answer with the validation's own scorer (imported from where
+it lies) and prints the fraction right, the median seconds per megapixel, and the ratio to the
+yardstick measured in the same run: the validation's general-purpose spot finding (scikit-image
+``blob_log`` in its ``baseline.py``) on the same image. Targets (issue): ≤ 0.5 s median per
+1 MP image without the reference, ≤ 0.8 s with it.
+
+Run: ``python benchmarks/bench_indexing.py [--n 30] [--quick] [--dim] [--validation [DIR]]``.
 """
 
 from __future__ import annotations
@@ -80,12 +88,72 @@ def make_case(i: int, dim: bool = False):
     return im.image, spec, energy, wood, kind, len(mats) or 1, t_render, n_frac
 
 
+VALIDATION = Path(__file__).resolve().parents[2] / "shared" / "validation"
+
+
+def run_validation(cases_dir: str) -> int:
+    """The validation cases in-process, with and without their reference images (see the module doc)."""
+    import json
+
+    from analysis.io import load_image
+    from analysis.serialize import result_to_dict
+
+    sys.path.insert(0, str(VALIDATION))
+    try:
+        import baseline  # the validation's yardstick: scikit-image blob_log
+        import check  # the validation's scorer
+    except ImportError as exc:
+        print(f"the validation set is not at {VALIDATION}: {exc}")
+        return 1
+    names = check.list_cases(cases_dir)
+    rows, res_t = [], {"with reference": [], "without": []}
+    right = {k: 0 for k in res_t}
+    yard = []
+    for name in names:
+        case = Path(cases_dir) / name
+        truth = json.loads((case / "truth.json").read_text())
+        mp = truth["width"] * truth["height"] / 1e6
+        img_path = case / truth["image"]
+        t0 = time.perf_counter()
+        baseline.detect_blob_log(baseline.preprocess(baseline.L.read_image(str(img_path))))
+        yard.append((time.perf_counter() - t0) / mp)
+        cells = []
+        for label, ref in (("with reference", True), ("without", False)):
+            kw = dict(reference=load_image(case / truth["reference"]["image"]),
+                      reference_energy_eV=truth["reference"]["energy_eV"]) if ref else {}
+            t0 = time.perf_counter()
+            try:
+                res = analyze_image(load_image(img_path), energy_eV=truth["energy_eV"],
+                                    substrate=check.substrate_cli(truth), **kw)
+                dt = time.perf_counter() - t0
+                ok = bool(check.score_case(result_to_dict(res), truth)["pass"])
+            except Exception as exc:  # a failure counts as wrong; the benchmark goes on
+                dt, ok = time.perf_counter() - t0, False
+                print(f"  {name} ({label}): {exc}")
+            res_t[label].append(dt / mp)
+            right[label] += ok
+            cells.append(f"{'ok' if ok else 'WRONG':5s} {dt:6.2f} s")
+        rows.append(f"{name:26s} {mp:4.2f} MP  blob_log {yard[-1] * mp:5.2f} s | with ref {cells[0]} | without {cells[1]}")
+    print("\n".join(rows))
+    y = statistics.median(yard)
+    print(f"\nyardstick (blob_log spot finding, same run): median {y:.3f} s per MP")
+    for label, target in (("with reference", 0.8), ("without", 0.5)):
+        med = statistics.median(res_t[label])
+        print(f"{label:15s}: right {right[label]}/{len(names)} = {right[label] / len(names):.1%}; median "
+              f"{med:.3f} s per MP (target ≤ {target} s); ratio to the yardstick {med / y:.2f}")
+    return 0
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--n", type=int, default=30, help="number of images (≥ 30 for the target)")
     ap.add_argument("--quick", action="store_true", help="10 images")
     ap.add_argument("--dim", action="store_true", help="poor light (no target)")
+    ap.add_argument("--validation", nargs="?", const=str(VALIDATION / "cases"), default=None, metavar="DIR",
+                    help="run the validation cases in DIR instead (default ../shared/validation/cases)")
     args = ap.parse_args(argv)
+    if args.validation:
+        return run_validation(args.validation)
     n = 10 if args.quick else args.n
     correct, times, renders, rows = 0, [], [], []
     for i in range(n):
