@@ -162,3 +162,20 @@ def test_uploads_only_into_an_upload_session_and_running_sessions_capped(live_en
             live_sessions.save_upload(up, "T_300K.tif", b"x" * 11)
     finally:
         live_sessions.stop_session(up)
+
+
+def test_a_session_whose_worker_ended_reads_as_stopped(live_env):
+    from webapp import live_sessions
+    from webapp.pages import live_view as live
+
+    token = "t" * 24
+    d = live_sessions.session_dir(token)
+    d.mkdir(parents=True)
+    (d / "state.json").write_text(json.dumps({"status": "watching", "message": "", "lines": [], "n_frames": 2,
+                                              "updated": time.time()}))
+    (d / "alive").touch()
+    assert live_sessions.read_state(token)["status"] == "watching"  # a fresh heartbeat
+    old = time.time() - 10 * 60
+    os.utime(d / "alive", (old, old))  # no heartbeat for ten minutes
+    status = live.on_tick(1, token)[0]
+    assert status.startswith("stopped: 2 frames") and "has ended" in status

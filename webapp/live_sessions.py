@@ -38,6 +38,8 @@ IDLE_STOP_S = 1800.0  # a session with no new frame for half an hour stops
 MAX_FRAMES = 5000
 MAX_RUNNING = 4  # live series watching at once in one web worker (each is a thread of heavy work)
 MAX_SESSION_BYTES = 4_000_000_000  # frames uploaded into one session
+_BEAT_S = 5.0  # the watching thread touches ``alive`` this often
+_GONE_S = 120.0  # no heartbeat for this long (a frame takes seconds): the thread is gone
 _TOKEN = re.compile(r"[A-Za-z0-9_-]{16,64}")
 _threads: dict[str, threading.Thread] = {}
 
@@ -194,9 +196,18 @@ def read_state(token: str) -> dict:
     """
     d = session_dir(token)
     try:
-        return json.loads((d / "state.json").read_text())
+        state = json.loads((d / "state.json").read_text())
     except (OSError, ValueError):
         raise ParameterError("No live series under this link (it may have been removed).") from None
+    if state.get("status") in ("starting", "watching"):
+        try:
+            beat = (d / "alive").stat().st_mtime
+        except OSError:
+            beat = state.get("updated", time.time())
+        if time.time() - beat > _GONE_S:  # the worker that ran it stopped without finishing the session
+            state["status"] = "stopped"
+            state["message"] = "stopped: the server process that watched for this series has ended"
+    return state
 
 
 def save_upload(token: str, name: str, data: bytes) -> str:
@@ -301,13 +312,22 @@ def _run(token: str, cfg: dict, folder: Path) -> None:
         except (OSError, ValueError, RecinetError):
             pass
 
+    beat = {"t": 0.0}
+
+    def should_stop():
+        now = time.time()
+        if now - beat["t"] > _BEAT_S:  # a heartbeat any worker can read
+            beat["t"] = now
+            (d / "alive").touch()
+        return (d / "stop").exists()
+
     status, message = "stopped", "stopped"
     try:
         watch_folder(folder, energy_eV=cfg["energy_eV"], substrate=cfg["substrate"],
                      parameter_from=cfg["parameter_from"], name_pattern=cfg["name_pattern"],
                      parameter_name=cfg["parameter_name"], unit=cfg["unit"], out_csv=d / "series.csv",
                      out_json=d / "series.json", existing=True, settle_s=0.25, max_frames=MAX_FRAMES,
-                     idle_stop_s=IDLE_STOP_S, say=say, stop=lambda: (d / "stop").exists(), on_frame=on_frame)
+                     idle_stop_s=IDLE_STOP_S, say=say, stop=should_stop, on_frame=on_frame)
     except (RecinetError, OSError) as err:
         status, message = "error", str(err)
         lines.append(message)

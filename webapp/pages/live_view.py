@@ -366,6 +366,9 @@ def on_tick(_n, token):
         pass
     segs = state.get("segments") or []
     status = f"{state.get('status', '')}: {state.get('n_frames', 0)} frames"
+    msg = state.get("message", "")
+    if state.get("status") == "error" or msg.startswith("stopped:"):
+        status += f" ({msg.removeprefix('stopped: ')})"
     if segs:
         status += f"; now {segs[-1]['label']}"
     tr = state.get("transition")
