@@ -83,6 +83,20 @@ class Net2D:
     def from_parameters(cls, a: float, b: float, gamma_deg: float, *, label: str = "") -> "Net2D":
         """Net with |a1| = a, |a2| = b, angle γ between them; a1 along +x.
 
+        Parameters
+        ----------
+        a, b : float
+            Lengths of a1 and a2 (Å for a real-space net).
+        gamma_deg : float
+            Angle between them, degrees.
+        label : str, keyword-only
+            Name kept with the net.
+
+        Returns
+        -------
+        Net2D
+            The net, a2 counter-clockwise from a1.
+
         Raises
         ------
         NetError
@@ -124,7 +138,13 @@ class Net2D:
         return 1 if np.linalg.det(self.vectors) > 0 else -1
 
     def parameters(self) -> tuple[float, float, float]:
-        """(a, b, γ in degrees)."""
+        """(a, b, γ in degrees).
+
+        Returns
+        -------
+        tuple of float
+            Lengths in the net's unit and the angle in degrees.
+        """
         return self.a, self.b, self.gamma_deg
 
     def points(self, hk: np.ndarray) -> np.ndarray:
@@ -143,7 +163,18 @@ class Net2D:
         return np.asarray(hk, dtype=np.float64).reshape(-1, 2) @ self.vectors
 
     def coordinates(self, xy: np.ndarray) -> np.ndarray:
-        """Inverse of :meth:`points`: (K, 2) Cartesian → (K, 2) coordinates in this basis."""
+        """Inverse of :meth:`points`: (K, 2) Cartesian → (K, 2) coordinates in this basis.
+
+        Parameters
+        ----------
+        xy : (K, 2) array_like of float
+            Cartesian points, in the net's unit.
+
+        Returns
+        -------
+        (K, 2) ndarray of float64
+            Their coordinates in the basis (a1, a2).
+        """
         return np.asarray(xy, dtype=np.float64).reshape(-1, 2) @ np.linalg.inv(self.vectors)
 
     def __repr__(self) -> str:

@@ -220,12 +220,37 @@ class ScreenGeometry:
         return (float(xy[0, 0]), float(xy[0, 1]))
 
     def to_dict(self) -> dict:
+        """The camera model as plain numbers (what :meth:`from_dict` reads).
+
+        Returns
+        -------
+        dict
+            One entry per field, by name.
+        """
         d = asdict(self)
         d.pop("extra", None)
         return d
 
     @classmethod
     def from_dict(cls, d: dict) -> "ScreenGeometry":
+        """A camera model from :meth:`to_dict`'s dict.
+
+        Parameters
+        ----------
+        d : dict
+            Field values by name: ``center_x_px``, ``center_y_px`` and ``scale_px`` are
+            needed, the others take their defaults.
+
+        Returns
+        -------
+        ScreenGeometry
+            The camera model.
+
+        Raises
+        ------
+        ParameterError
+            When `d` names a field that does not exist.
+        """
         names = {f for f in cls.__dataclass_fields__ if f != "extra"}
         unknown = set(d) - names
         if unknown:

@@ -101,6 +101,7 @@ class GaussianProfile:
         state : tuple of ndarray
             As returned by :meth:`evaluate`.
         u : (K, 2) ndarray of float64
+            Unit vector of each spot's radial direction (row, col).
         out : (K, 5, W, W) ndarray of float64, optional
             Written in place (may be a view of a larger array).
 
@@ -144,13 +145,16 @@ class GaussianProfile:
         amp, sigma_r, sigma_t : (K,) ndarray of float64
             Peak heights and widths (pixels) along `u` and across it.
         u : (K, 2) ndarray of float64
+            Unit vector of each spot's radial direction (row, col).
         half : int
+            Half-width of the windows, pixels.
         centre_rc : (K, 2) ndarray of int, optional
             Window centres (row, col); default the rounded `rc`.
 
         Returns
         -------
         (K, W, W) ndarray of float64
+            The values, W = 2 `half` + 1.
         """
         o = np.arange(-half, half + 1)
         at = np.rint(rc) if centre_rc is None else centre_rc
@@ -170,21 +174,70 @@ class GaussianProfile:
         return val
 
     def window_half_px(self, sigma_r, sigma_t) -> np.ndarray:
-        """Half-width (int64, pixels) beyond which a spot is below 10⁻⁹ of its peak (exp(−6.5²/2))."""
+        """Half-width (int64, pixels) beyond which a spot is below 10⁻⁹ of its peak (exp(−6.5²/2)).
+
+        Parameters
+        ----------
+        sigma_r, sigma_t : ndarray of float64
+            Widths along and across the spot's direction, pixels.
+
+        Returns
+        -------
+        ndarray of int64
+            The half-width, pixels.
+        """
         return np.ceil(6.5 * np.maximum(sigma_r, sigma_t)).astype(np.int64)
 
     def reach_px(self, sigma, ratio):
         """Distance (pixels) at which a spot of width `sigma` falls to 1/`ratio` of its peak
-        (0 where `ratio` ≤ 1): σ √(2 ln ratio)."""
+        (0 where `ratio` ≤ 1): σ √(2 ln ratio).
+
+        Parameters
+        ----------
+        sigma : float or ndarray of float64
+            Spot width σ, pixels.
+        ratio : float or ndarray of float64
+            Peak over the level sought.
+
+        Returns
+        -------
+        ndarray of float64
+            The distance, pixels.
+        """
         return sigma * np.sqrt(2.0 * np.log(np.maximum(ratio, 1.0)))
 
     def volume(self, amp, sigma_r, sigma_t):
-        """Integral 2π A σ_r σ_t of the spot over the plane."""
+        """Integral 2π A σ_r σ_t of the spot over the plane.
+
+        Parameters
+        ----------
+        amp : ndarray of float64
+            Peak heights.
+        sigma_r, sigma_t : ndarray of float64
+            Widths along and across the spot's direction, pixels.
+
+        Returns
+        -------
+        ndarray of float64
+            The volume (peak units × px²).
+        """
         return 2 * math.pi * amp * sigma_r * sigma_t
 
     def round_unit_values(self, d2, sigma):
         """Round unit-volume spot at squared distances `d2` (px²) from its centre:
         exp(−d²/2σ²) / (2πσ²), σ = `sigma` (px); the template of a profile-fitted intensity.
+
+        Parameters
+        ----------
+        d2 : ndarray of float64
+            Squared distances from the centre, px².
+        sigma : float or ndarray of float64
+            The width σ, pixels.
+
+        Returns
+        -------
+        ndarray of float64
+            The values, per px².
 
         Examples
         --------
@@ -196,21 +249,71 @@ class GaussianProfile:
         return np.exp(-d2 / (2.0 * sigma * sigma)) / (2.0 * math.pi * sigma * sigma)
 
     def fwhm(self, sigma):
-        """Full width at half maximum along an axis of width `sigma`."""
+        """Full width at half maximum along an axis of width `sigma`.
+
+        Parameters
+        ----------
+        sigma : float or ndarray of float64
+            Width σ, pixels.
+
+        Returns
+        -------
+        float or ndarray of float64
+            FWHM = 2 √(2 ln 2) σ, pixels.
+        """
         return _FWHM * sigma
 
     def sigma_of_fwhm(self, fwhm):
-        """The width `sigma` whose full width at half maximum is `fwhm` (inverse of :meth:`fwhm`)."""
+        """The width `sigma` whose full width at half maximum is `fwhm` (inverse of :meth:`fwhm`).
+
+        Parameters
+        ----------
+        fwhm : float or ndarray of float64
+            Full width at half maximum, pixels.
+
+        Returns
+        -------
+        float or ndarray of float64
+            σ, pixels.
+        """
         return fwhm / _FWHM
 
     def filtered(self, amp, sigma_r, sigma_t, sigma_px: float):
         """(A, σ_r, σ_t) of the spot convolved with a unit-sum round Gaussian of σ `sigma_px`
-        (the matched filter): a Gaussian again."""
+        (the matched filter): a Gaussian again.
+
+        Parameters
+        ----------
+        amp : ndarray of float64
+            Peak heights.
+        sigma_r, sigma_t : ndarray of float64
+            Widths along and across the spot's direction, pixels.
+        sigma_px : float
+            σ of the filter, pixels.
+
+        Returns
+        -------
+        tuple of ndarray of float64
+            (A, σ_r, σ_t) of the filtered spot.
+        """
         sr2, st2 = np.hypot(sigma_r, sigma_px), np.hypot(sigma_t, sigma_px)
         return amp * sigma_r * sigma_t / (sr2 * st2), sr2, st2
 
     def squared(self, amp, sigma_r, sigma_t):
-        """(A, σ_r, σ_t) of the square of the spot: a Gaussian again."""
+        """(A, σ_r, σ_t) of the square of the spot: a Gaussian again.
+
+        Parameters
+        ----------
+        amp : ndarray of float64
+            Peak heights.
+        sigma_r, sigma_t : ndarray of float64
+            Widths along and across the spot's direction, pixels.
+
+        Returns
+        -------
+        tuple of ndarray of float64
+            (A², σ_r/√2, σ_t/√2).
+        """
         return amp**2, sigma_r / math.sqrt(2), sigma_t / math.sqrt(2)
 
     def pixel_integrals(self, rc, sigma, amount, half: int):
@@ -228,6 +331,7 @@ class GaussianProfile:
         amount : (K,) ndarray of float64
             Volume of each spot (e.g. photons).
         half : int
+            Half-width of the windows, pixels.
 
         Returns
         -------

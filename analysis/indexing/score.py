@@ -163,7 +163,25 @@ class ScoreBreakdown:
 
     @classmethod
     def of(cls, terms: tuple, **values) -> "ScoreBreakdown":
-        """A breakdown from the values by term name; missing terms are 0."""
+        """A breakdown from the values by term name; missing terms are 0.
+
+        Parameters
+        ----------
+        terms : tuple of Term
+            The table.
+        **values
+            The value of each named term.
+
+        Returns
+        -------
+        ScoreBreakdown
+            The breakdown.
+
+        Raises
+        ------
+        ParameterError
+            When a name is not in the table.
+        """
         names = [t.name for t in terms]
         unknown = sorted(set(values) - set(names))
         if unknown:
@@ -185,15 +203,38 @@ class ScoreBreakdown:
         return float(s)
 
     def contributions(self) -> dict:
-        """Each term's share of the score (weight · value), by name."""
+        """Each term's share of the score (weight · value), by name.
+
+        Returns
+        -------
+        dict
+            ``{name: weight · value}`` in table order.
+        """
         return {t.name: t.weight * v + 0.0 for t, v in zip(self.terms, self.values)}  # + 0.0: no −0
 
     def replace(self, **values) -> "ScoreBreakdown":
-        """The same breakdown with some values changed."""
+        """The same breakdown with some values changed.
+
+        Parameters
+        ----------
+        **values
+            The new value of each named term.
+
+        Returns
+        -------
+        ScoreBreakdown
+            A new breakdown.
+        """
         return ScoreBreakdown.of(self.terms, **{**dict(zip((t.name for t in self.terms), self.values)), **values})
 
     def to_dict(self) -> dict:
-        """JSON-safe: ``{name: {"value", "weight", "contribution"}}`` in table order, and ``"total"``."""
+        """JSON-safe: ``{name: {"value", "weight", "contribution"}}`` in table order, and ``"total"``.
+
+        Returns
+        -------
+        dict
+            Plain JSON types.
+        """
         share = self.contributions()
         d = {t.name: {"value": v, "weight": t.weight, "contribution": share[t.name]}
              for t, v in zip(self.terms, self.values)}
