@@ -23,6 +23,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ..errors import FitError
 from .absences import PlaneGroupReading, read_plane_group
 from .overlayers import OverlayerModel, _context, evaluate_model, find_overlayers
 
@@ -43,6 +44,7 @@ SWITCH_MARGIN = 1.0
 _MAX_PHASES = 3
 _STARTS = 3
 _POOL = 20  # models listed by the wider search for starts
+_MISSING_SHARE = 0.15  # absent beams per explained spot above which a compromise cell is suspected
 _RATIONAL = ("commensurate", "coincidence")
 
 
@@ -92,7 +94,10 @@ def _grow(p1: OverlayerModel, fit, kw: dict, rel: np.ndarray) -> tuple[list, flo
         n_left = int((~integer & ~taken & rel).sum())
         if n_left < MIN_PHASE_SPOTS:
             break
-        cand = find_overlayers(hk, integer | taken, fit, n_results=_POOL // 2, **kw)
+        try:
+            cand = find_overlayers(hk, integer | taken, fit, n_results=_POOL // 2, **kw)
+        except FitError:  # a net too fine to enumerate: no further phase
+            break
         top = next((m for m in cand if m.kind in _RATIONAL), None)
         if top is None:
             break
@@ -113,10 +118,13 @@ def find_phases(fit, models: list, *, energy_eV: float, intensity=None, valid_ma
                 reliable=None) -> tuple[list, tuple]:
     """The phases of a pattern, dominant first, and the models with the dominant phase first.
 
-    The best model and the next rational ones (up to :data:`_STARTS` in all) each start
-    a set of phases (:func:`_grow`); the set with the best joint score is kept when it
-    beats the best model's own set by more than :data:`SWITCH_MARGIN` (two phases side
-    by side can make a compromise cell, whose beams cover both, score best alone). The
+    The best model starts a set of phases (:func:`_grow`). Two phases side by side can
+    make a compromise cell, whose beams cover both, score best alone; so when the best
+    model leaves spots unexplained, or misses beams (more than 15 % of the spots it
+    explains), rational cells that explain part of the spots cleanly (ranked by their
+    score without the spots they leave, from a wider search) start sets too, unless
+    even a perfect further phase could not lift them over the best set. A set led by
+    another model is kept when it beats the best set by more than :data:`SWITCH_MARGIN`. The
     phases are ordered by their share of the fractional intensity (by spots explained
     without intensities); the dominant one, evaluated on every spot, leads the models.
 
@@ -155,16 +163,22 @@ def find_phases(fit, models: list, *, energy_eV: float, intensity=None, valid_ma
     # rational cells that explain part of the spots cleanly may start a set of phases, ranked
     # by their score without the spots they leave (what they would score as one phase)
     pool = list(models[1:])
-    if max(best.unexplained, best.absent) >= MIN_PHASE_SPOTS or best.kind == "incommensurate":
-        pool += find_overlayers(hk, integer, fit, n_results=_POOL, **kw)
+    # (a few beams of one cell missing is common: weak beams; a compromise cell misses many)
+    if best.unexplained >= MIN_PHASE_SPOTS or best.absent >= max(MIN_PHASE_SPOTS, _MISSING_SHARE * best.explained):
+        try:
+            pool += find_overlayers(hk, integer, fit, n_results=_POOL, **kw)
+        except FitError:
+            pass
     starts = []
     for m in sorted((m for m in pool if m.kind in _RATIONAL), key=lambda m: -(m.score + m.score_terms["unexplained"])):
         if not _same_net(m, best) and not any(_same_net(m, o) for o in starts):
             starts.append(m)
-    starts = [best] + starts[: _STARTS - 1]
-    sets = [_grow(p1, fit, kw, rel) for p1 in starts]
-    chain, joint = sets[0]
-    for c, j in sets[1:]:
+    chain, joint = _grow(best, fit, kw, rel)
+    for p1 in starts[: _STARTS - 1]:
+        # each spot a further phase explains gains at most 2 (+1 explained, −1 no longer unexplained)
+        if p1.score + 2 * p1.score_terms["unexplained"] - PHASE_PENALTY <= joint + SWITCH_MARGIN:
+            continue
+        c, j = _grow(p1, fit, kw, rel)
         if len(c) > 1 and j > joint + SWITCH_MARGIN:
             chain, joint = c, j
     spots = [np.flatnonzero(m.explained_by >= 0) for m in chain]
