@@ -84,6 +84,18 @@ class Calibration:
 
         `distortion_measured` follows the fit (whether the distortion was among
         its free parameters) unless given.
+
+        Parameters
+        ----------
+        fit : GeometryFit
+            The fitted camera model.
+        **meta
+            Further fields (``substrate``, ``note``, ``image_shape``...).
+
+        Returns
+        -------
+        Calibration
+            The calibration.
         """
         meta.setdefault("created", _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0).isoformat())
         meta.setdefault("distortion_measured", "distortion" in fit.free)
@@ -97,10 +109,29 @@ class Calibration:
         return float(self.geometry.scale_px * math.sqrt(H2_OVER_2ME_EV_A2))
 
     def pixels_per_inv_A(self, energy_eV: float) -> float:
-        """Image pixels per Å⁻¹ (no 2π) near the centre at `energy_eV`."""
+        """Image pixels per Å⁻¹ (no 2π) near the centre at `energy_eV`.
+
+        Parameters
+        ----------
+        energy_eV : float
+            Electron energy, eV.
+
+        Returns
+        -------
+        float
+            Pixels per Å⁻¹.
+        """
         return float(self.geometry.scale_px * wavelength_A(energy_eV))
 
     def to_dict(self) -> dict:
+        """The calibration as plain JSON types (what :meth:`from_dict` reads).
+
+        Returns
+        -------
+        dict
+            Schema and version, the camera model, its uncertainties and the facts of the fit.
+        """
+
         def num(v):
             return None if v is None or (isinstance(v, float) and not math.isfinite(v)) else float(v)
 
@@ -124,7 +155,20 @@ class Calibration:
 
     @classmethod
     def from_dict(cls, d, *, source: str = "calibration") -> "Calibration":
-        """Inverse of :meth:`to_dict`; raises ParameterError naming what is wrong."""
+        """Inverse of :meth:`to_dict`; raises ParameterError naming what is wrong.
+
+        Parameters
+        ----------
+        d : dict
+            What :meth:`to_dict` wrote (read back from JSON).
+        source : str, keyword-only
+            What the messages call it (e.g. the file's name).
+
+        Returns
+        -------
+        Calibration
+            The calibration.
+        """
         if not isinstance(d, dict):
             raise ParameterError(f"{source}: expected a JSON object, got {type(d).__name__}.")
         if d.get("schema") != CALIBRATION_SCHEMA:
@@ -164,13 +208,34 @@ class Calibration:
             raise ParameterError(f"{source}: invalid calibration field ({exc}).") from None
 
     def save_json(self, path) -> Path:
-        """Write the calibration as indented JSON, whole or not at all; returns the path."""
+        """Write the calibration as indented JSON, whole or not at all; returns the path.
+
+        Parameters
+        ----------
+        path : str or os.PathLike
+            The file to write; its folder must exist.
+
+        Returns
+        -------
+        pathlib.Path
+            `path`.
+        """
         text = json.dumps(self.to_dict(), indent=2, allow_nan=False, ensure_ascii=False)
         return write_text_atomic(path, text + "\n")
 
     @classmethod
     def load_json(cls, path) -> "Calibration":
         """Read a file written by :meth:`save_json`.
+
+        Parameters
+        ----------
+        path : str or os.PathLike
+            The file.
+
+        Returns
+        -------
+        Calibration
+            The calibration.
 
         Raises
         ------

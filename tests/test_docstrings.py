@@ -56,12 +56,6 @@ PACKAGES = ("analysis", "webapp")
 #: Public functions and methods whose docstrings do not pass :data:`CHECKS` yet (module.qualname).
 NOT_YET = frozenset({
     "analysis.calibration.GeometryFit.predict",
-    "analysis.calibration_file.Calibration.from_dict",
-    "analysis.calibration_file.Calibration.from_fit",
-    "analysis.calibration_file.Calibration.load_json",
-    "analysis.calibration_file.Calibration.pixels_per_inv_A",
-    "analysis.calibration_file.Calibration.save_json",
-    "analysis.calibration_file.Calibration.to_dict",
     "analysis.domain_size.DomainSize.to_dict",
     "analysis.domain_size.sizes_along_axes",
     "analysis.follow.parameters.ParameterTable.value_of",
@@ -114,15 +108,6 @@ NOT_YET = frozenset({
     "analysis.spots.widths.SpotWidths.radial_unit",
     "webapp.key_limit.KeyGuessLimit.message",
     "webapp.key_limit.KeyGuessLimit.wait_s",
-    "webapp.store.Store.close",
-    "webapp.store.Store.count_analyses",
-    "webapp.store.Store.get_analysis",
-    "webapp.store.Store.image_bytes",
-    "webapp.store.Store.image_info",
-    "webapp.store.Store.put_image",
-    "webapp.store.Store.recent",
-    "webapp.store.Store.save_analysis",
-    "webapp.store.Store.thumbnail",
 })
 
 

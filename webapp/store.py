@@ -161,12 +161,30 @@ class Store:
         return self.engine
 
     def close(self) -> None:
+        """Close the database connections."""
         self.engine.dispose()
 
     # ---- images -------------------------------------------------------------------
     def put_image(self, data: bytes, *, filename: str, width: int, height: int,
                   thumbnail_png: bytes) -> str:
-        """Keep `data` once; return its SHA-256 (hex). A second put of the same bytes is a no-op."""
+        """Keep `data` once; return its SHA-256 (hex). A second put of the same bytes is a no-op.
+
+        Parameters
+        ----------
+        data : bytes
+            The image file as uploaded.
+        filename : str, keyword-only
+            Its name.
+        width, height : int, keyword-only
+            Its size, pixels.
+        thumbnail_png : bytes, keyword-only
+            A small PNG for the list of saved analyses.
+
+        Returns
+        -------
+        str
+            The SHA-256.
+        """
         if not isinstance(data, (bytes, bytearray)) or not data:
             raise ParameterError("`data` must be non-empty bytes.")
         sha = hashlib.sha256(data).hexdigest()
@@ -182,6 +200,18 @@ class Store:
         return sha
 
     def image_info(self, sha256: str) -> StoredImage | None:
+        """Name, size and upload time of a stored image, or None for an unknown hash.
+
+        Parameters
+        ----------
+        sha256 : str
+            The image's SHA-256 (hex).
+
+        Returns
+        -------
+        StoredImage or None
+            The image's facts.
+        """
         if not isinstance(sha256, str) or not SHA_RE.fullmatch(sha256):
             return None
         t = _ImageRow
@@ -191,10 +221,33 @@ class Store:
         return None if r is None else StoredImage(r.sha256, r.filename, r.width, r.height, _utc(r.created_at))
 
     def image_bytes(self, sha256: str) -> bytes | None:
-        """The uploaded bytes, or None for an unknown (or malformed) hash."""
+        """The uploaded bytes, or None for an unknown (or malformed) hash.
+
+        Parameters
+        ----------
+        sha256 : str
+            The image's SHA-256 (hex).
+
+        Returns
+        -------
+        bytes or None
+            The file.
+        """
         return self._image_column(sha256, _ImageRow.data)
 
     def thumbnail(self, sha256: str) -> bytes | None:
+        """The thumbnail PNG of a stored image, or None for an unknown hash.
+
+        Parameters
+        ----------
+        sha256 : str
+            The image's SHA-256 (hex).
+
+        Returns
+        -------
+        bytes or None
+            The PNG file.
+        """
         return self._image_column(sha256, _ImageRow.thumbnail_png)
 
     def _image_column(self, sha256, column):
@@ -207,7 +260,32 @@ class Store:
     def save_analysis(self, *, image_sha256: str, parameters: dict, edits: dict, result: dict | None,
                       sample_name: str = "", notes: str = "", summary: str = "",
                       copied_from: str | None = None) -> SavedAnalysis:
-        """Save a new analysis of a stored image and return it with its fresh share token."""
+        """Save a new analysis of a stored image and return it with its fresh share token.
+
+        Parameters
+        ----------
+        image_sha256 : str, keyword-only
+            The stored image's SHA-256.
+        parameters : dict, keyword-only
+            Energy, substrate and the other analysis parameters.
+        edits : dict, keyword-only
+            The manual edits.
+        result : dict or None, keyword-only
+            The result dict.
+        sample_name : str, keyword-only
+            The sample's name.
+        notes : str, keyword-only
+            Free notes.
+        summary : str, keyword-only
+            One line for the list of saved analyses.
+        copied_from : str, optional, keyword-only
+            Share token of the analysis it was copied from.
+
+        Returns
+        -------
+        SavedAnalysis
+            The new row.
+        """
         sample_name = "" if sample_name is None else str(sample_name).strip()
         notes = "" if notes is None else str(notes)
         if len(sample_name) > MAX_SAMPLE_CHARS:
@@ -242,17 +320,48 @@ class Store:
                              result, str(summary)[:200], sample_name, notes, copied_from, now)
 
     def get_analysis(self, token: str) -> SavedAnalysis | None:
-        """The analysis saved under `token`, or None (also for a malformed token)."""
+        """The analysis saved under `token`, or None (also for a malformed token).
+
+        Parameters
+        ----------
+        token : str
+            The share token.
+
+        Returns
+        -------
+        SavedAnalysis or None
+            The analysis.
+        """
         if not isinstance(token, str) or not TOKEN_RE.fullmatch(token):
             return None
         rows = self._select(_AnalysisRow.token == token, limit=1)
         return rows[0] if rows else None
 
     def recent(self, limit: int = 50, *, offset: int = 0) -> list[SavedAnalysis]:
-        """The newest saved analyses first."""
+        """The newest saved analyses first.
+
+        Parameters
+        ----------
+        limit : int
+            Most analyses returned.
+        offset : int, keyword-only
+            Analyses skipped (for pages of the list).
+
+        Returns
+        -------
+        list of SavedAnalysis
+            Newest first.
+        """
         return self._select(None, limit=max(1, min(int(limit), 500)), offset=max(0, int(offset)))
 
     def count_analyses(self) -> int:
+        """The number of saved analyses.
+
+        Returns
+        -------
+        int
+            The count.
+        """
         with self._eng().connect() as conn:
             return int(conn.execute(sa.select(sa.func.count()).select_from(_AnalysisRow)).scalar())
 
