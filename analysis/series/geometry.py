@@ -151,11 +151,29 @@ def fit_series_geometry(energy_eV, g_par, xy_px, *, initial: ScreenGeometry,
         r = (model - xy).ravel()
         return np.where(np.isfinite(r), r, 1e3)
 
+    # exact derivatives of the model (optics.project_derivatives: d/d ln s for the scale)
+    from ..optics import GEOMETRY_PARAMETERS, project_derivatives, wavelength_A
+
+    lam_ref = wavelength_A(e_ref)
+    cols = [GEOMETRY_PARAMETERS.index("log_scale" if n == "scale_px" else n) for n in names]
+    i_scale = names.index("scale_px") if "scale_px" in names else None
+
+    def jac(p):
+        try:
+            g = geom_of(p)
+        except ParameterError:
+            return np.zeros((2 * e.size, len(names)))
+        _, _, dg = project_derivatives(g_ref, lam_ref, g)
+        j = dg[:, :, cols].reshape(-1, len(names))
+        if i_scale is not None:
+            j[:, i_scale] /= g.scale_px
+        return np.where(np.isfinite(j), j, 0.0)
+
     x_scale = np.array([1.0 if n.endswith("_px") and n != "scale_px" else
                         max(abs(base["scale_px"]) * 0.01, 1.0) if n == "scale_px" else
                         0.01 if n == "distortion" else 0.1 for n in names])
     try:
-        sol = least_squares(resid, x0, bounds=(lo, hi), loss="soft_l1", f_scale=f_scale_px,
+        sol = least_squares(resid, x0, jac=jac, bounds=(lo, hi), loss="soft_l1", f_scale=f_scale_px,
                             x_scale=x_scale, max_nfev=200 * len(names))
     except (ValueError, np.linalg.LinAlgError) as exc:
         raise FitError(f"Screen-geometry fit failed ({exc}).") from None
@@ -164,13 +182,8 @@ def fit_series_geometry(energy_eV, g_par, xy_px, *, initial: ScreenGeometry,
     r = resid(sol.x).reshape(-1, 2)
     dist = np.hypot(r[:, 0], r[:, 1])
     inl = dist <= max(5.0 * f_scale_px, 3.0 * float(np.median(dist)) + 1e-9)
-    cols = []  # plain Jacobian of the residuals (the solver's is scaled by the robust loss)
-    for i, h in enumerate(1e-4 * x_scale):
-        xp, xm = sol.x.copy(), sol.x.copy()
-        xp[i] = min(xp[i] + h, hi[i])
-        xm[i] = max(xm[i] - h, lo[i])
-        cols.append((resid(xp) - resid(xm)) / (xp[i] - xm[i]))
-    j = np.column_stack(cols).reshape(-1, 2, len(names))[inl].reshape(-1, len(names))
+    # plain Jacobian of the residuals (the solver's is scaled by the robust loss)
+    j = jac(sol.x).reshape(-1, 2, len(names))[inl].reshape(-1, len(names))
     dof = max(2 * int(inl.sum()) - len(names), 1)
     s2 = float(np.sum(r[inl] ** 2)) / dof
     try:

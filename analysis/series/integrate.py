@@ -122,20 +122,35 @@ def _despike(data: np.ndarray, n: int, hi_px: float, bg: np.ndarray, sd: np.ndar
     return np.where(spike, second, p)
 
 
-def _despike_windows(data: np.ndarray, bg: np.ndarray, sd: np.ndarray) -> None:
-    """:func:`_despike` on (K, w, w) windows, in place (the peak search then cannot lock on a
-    hot pixel beside a spot); `bg` and `sd` (K,) the background level and noise of each."""
-    up = np.concatenate([data[:, :1], data[:, :-1]], axis=1)
-    down = np.concatenate([data[:, 1:], data[:, -1:]], axis=1)
-    left = np.concatenate([data[:, :, :1], data[:, :, :-1]], axis=2)
-    right = np.concatenate([data[:, :, 1:], data[:, :, -1:]], axis=2)
-    second = np.maximum(np.minimum(np.maximum(up, down), np.maximum(left, right)),
-                        np.maximum(np.minimum(up, down), np.minimum(left, right)))
-    b = np.where(np.isfinite(bg), bg, 0.0)[:, None, None]
-    noise = _SPIKE_SIGMAS * np.where(np.isfinite(sd), sd, 0.0)[:, None, None]
-    spike = data - b > _SPIKE_RATIO * np.maximum(second - b, 0.0) + noise
-    if spike.any():
-        data[spike] = second[spike]
+def _despike_windows(data: np.ndarray, bg: np.ndarray, sd: np.ndarray, rounds: int = 3) -> None:
+    """Spikes that are the brightest pixel of their (K, w, w) window replaced in place by
+    their second-brightest 4-neighbour (:func:`_despike`'s test), up to `rounds` per window.
+
+    Only a spike brighter than the spot's peak can pull the peak search off the spot, and
+    such a spike is its window's brightest pixel; dimmer ones are cleaned where the aperture
+    is summed. `bg` and `sd` (K,) are the background level and noise of each window.
+    """
+    k_all, w, _ = data.shape
+    flat = data.reshape(k_all, -1)
+    rows = np.arange(k_all)
+    b_all = np.where(np.isfinite(bg), bg, 0.0)
+    n_all = _SPIKE_SIGMAS * np.where(np.isfinite(sd), sd, 0.0)
+    for _ in range(rounds):
+        top = np.argmax(flat[rows], axis=1)
+        r, c = top // w, top % w
+        inner = (r > 0) & (r < w - 1) & (c > 0) & (c < w - 1)
+        rows, r, c = rows[inner], r[inner], c[inner]
+        if not rows.size:
+            return
+        nb = np.stack([data[rows, r - 1, c], data[rows, r + 1, c], data[rows, r, c - 1], data[rows, r, c + 1]])
+        nb.sort(axis=0)
+        second = nb[2]
+        b = b_all[rows]
+        spike = data[rows, r, c] - b > _SPIKE_RATIO * np.maximum(second - b, 0.0) + n_all[rows]
+        rows, r, c = rows[spike], r[spike], c[spike]
+        if not rows.size:
+            return
+        data[rows, r, c] = second[spike]
 
 
 @dataclass(frozen=True, eq=False)
@@ -403,7 +418,8 @@ def _integrate(frame: np.ndarray, rc: np.ndarray, mask: np.ndarray | None, satur
     a_data, a_use, a_d2 = data[:, j_a:], usable[:, j_a:], d2[:, j_a:]
     sel = (a_d2 >= r_in * r_in) & (a_d2 <= r_out * r_out) & a_use
     mean, sd, keep = _robust(a_data, sel)
-    p_data, p_use, p_d2 = _despike(data, n_p, r_out + margin, mean, sd), usable[:, :n_p], d2[:, :n_p]
+    p_data = _despike(data, n_p, r_out + margin, mean, sd)
+    p_use, p_d2 = usable[:, :n_p], d2[:, :n_p]
     ap = p_d2 <= radius_px * radius_px
     flags = np.zeros(k, dtype=np.uint8)
     if inside is None:

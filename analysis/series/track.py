@@ -485,9 +485,9 @@ def _refine(win: _Windows, rc_pred: np.ndarray, search_px: np.ndarray, radius_px
     flat = win.data.reshape(k, -1)
     bg, noise, _ = _robust(flat[:, ring], win.usable.reshape(k, -1)[:, ring])
     noise = np.maximum(noise, 1e-6)
-    _despike_windows(win.data, bg, noise)  # hot pixels and cosmic-ray hits out first
     # peak search: 3×3 box sums (separable) in the central (2s+1)² part of the window only
     s = min(int(math.ceil(float(np.max(search_px, initial=0.0)))) + 1, h - 1)
+    _despike_windows(win.data, bg, noise)  # a hot pixel brighter than the spot cannot pull the search
     lo, hi = h - s - 1, h + s + 2
     v = win.data[:, lo:hi, lo:hi] - bg[:, None, None]
     v[~win.usable[:, lo:hi, lo:hi]] = 0.0
