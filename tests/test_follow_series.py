@@ -34,7 +34,7 @@ def temperature_run():
         PT, [[[2, 0], [0, 2]]], t, model=model, energy_eV=E, geometry=GEOM, rng=np.random.default_rng(1),
         drift_px_per_frame=(0.03, -0.02))]
     return t, analyse_parameter_series(frames, substrate="Pt(111)", energy_eV=E, parameters=t, name="temperature",
-                                       unit="K", n_probe=6, n_index=1)
+                                       unit="K", n_probe=6)  # n_index=2: frames indexed jointly
 
 
 @pytest.mark.slow
@@ -49,6 +49,8 @@ def test_order_disorder_tc_within_two_percent(temperature_run):
     assert json.loads(json.dumps(res.to_dict(transition=auto)))["order_disorder"]["tc"] == pytest.approx(fit.tc)
     # the ordered phase is read as p(2×2) and ends near Tc; the (1×1) above it
     assert "p(2×2)" in res.segments[0].label
+    # camera and segment read from two frames at once (analysis.series.joint)
+    assert res.reference.joint is not None and res.segments[0].indexing.joint is not None
     assert res.segments[-1].families == () and 390.0 < res.segments[-1].value_range[0] < 450.0
 
 
