@@ -68,17 +68,46 @@ class ParameterSeriesResult:
     n_spots: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.int64))
 
     def segment_of(self, frame: int) -> Segment | None:
+        """The segment that holds `frame`, or None.
+
+        Parameters
+        ----------
+        frame : int
+            Frame index (0-based).
+
+        Returns
+        -------
+        Segment or None
+            The segment.
+        """
         return next((s for s in self.segments if s.first <= frame <= s.last), None)
 
     def switches(self) -> list[dict]:
-        """Each boundary between segments: the frames either side and the parameter midway."""
+        """Each boundary between segments: the frames either side and the parameter midway.
+
+        Returns
+        -------
+        list of dict
+            One per boundary, in frame order.
+        """
         v = self.trace.value
         return [{"after_frame": a.last, "before_frame": b.first, "value": float(0.5 * (v[a.last] + v[b.first])),
                  "from": a.label, "to": b.label}
                 for a, b in zip(self.segments[:-1], self.segments[1:])]
 
     def family_curve(self, family) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """(value, summed intensity, its σ) of one family (label or position)."""
+        """(value, summed intensity, its σ) of one family (label or position).
+
+        Parameters
+        ----------
+        family : str or int
+            The family's label or its position in ``families``.
+
+        Returns
+        -------
+        value, intensity, sigma : (F,) ndarray of float64
+            The parameter of each frame, the family's summed intensity and its uncertainty.
+        """
         labels = [f.label for f in self.families]
         if isinstance(family, str):
             if family not in labels:
@@ -93,7 +122,20 @@ class ParameterSeriesResult:
 
     def order_disorder(self, family=None, **kw):
         """:func:`analysis.follow.fit_order_disorder` on a family's summed intensity against
-        the parameter (default: the first family present in the first frames)."""
+        the parameter (default: the first family present in the first frames).
+
+        Parameters
+        ----------
+        family : str or int, optional
+            The family's label or position.
+        **kw
+            Passed to :func:`analysis.follow.fit_order_disorder`.
+
+        Returns
+        -------
+        OrderDisorderFit
+            The fit (Tc with its uncertainty).
+        """
         from .transition import fit_order_disorder
 
         if not self.families:
@@ -106,7 +148,13 @@ class ParameterSeriesResult:
 
     def transition(self):
         """The order–disorder fit when the parameter is a temperature (unit K or named so) and
-        the first family's intensity vanishes inside the range measured; else None."""
+        the first family's intensity vanishes inside the range measured; else None.
+
+        Returns
+        -------
+        OrderDisorderFit or None
+            The fit.
+        """
         tr = self.trace
         if not (tr.unit == "K" or tr.name.strip().lower() in ("temperature", "t")) or not self.families:
             return None
@@ -120,7 +168,18 @@ class ParameterSeriesResult:
         return fit if v.size and v.min() < fit.tc < v.max() else None
 
     def to_dict(self, **kw) -> dict:
-        """JSON-safe record (see :mod:`analysis.follow.export`)."""
+        """JSON-safe record (see :mod:`analysis.follow.export`).
+
+        Parameters
+        ----------
+        **kw
+            Passed to :func:`analysis.follow.export.result_to_dict`.
+
+        Returns
+        -------
+        dict
+            Plain JSON types.
+        """
         from .export import result_to_dict
 
         return result_to_dict(self, **kw)
@@ -261,7 +320,22 @@ class LiveSeries:
     # -- frames
     def add(self, frame, *, value: float, name: str = "") -> list[dict]:
         """Analyse one frame; returns the lines of the frames analysed now (several when
-        frames waited for the first indexing, none while still waiting)."""
+        frames waited for the first indexing, none while still waiting).
+
+        Parameters
+        ----------
+        frame : (M, N) ndarray or LoadedImage
+            The frame.
+        value : float, keyword-only
+            Its parameter.
+        name : str, keyword-only
+            Its name (file name).
+
+        Returns
+        -------
+        list of dict
+            The rows of the frames analysed now.
+        """
         name = name or f"frame {len(self.lines) + len(self.waiting)}"
         arr = _frame_array(frame)
         if arr.ndim != 2:
@@ -402,7 +476,18 @@ class LiveSeries:
 
     # -- results
     def result(self, *, segment_indexing: Callable | None = None) -> ParameterSeriesResult:
-        """The series so far: trace, families, presence, segments (each with an indexing)."""
+        """The series so far: trace, families, presence, segments (each with an indexing).
+
+        Parameters
+        ----------
+        segment_indexing : callable(segment, total, families), optional, keyword-only
+            Indexes each segment (default: none).
+
+        Returns
+        -------
+        ParameterSeriesResult
+            The series so far.
+        """
         if self.follower is None or not len(self.follower):
             why = f" ({self.waiting[-1][3]})" if self.waiting else ""
             raise SeriesError(f"No frame of the series could be indexed yet{why}.")

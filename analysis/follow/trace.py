@@ -234,14 +234,35 @@ class BeamFollower:
         return len(self.rows)
 
     def add_beams(self, beams: BeamSet) -> None:
-        """Follow `beams` (a larger set holding the current beams first) from the next frame on."""
+        """Follow `beams` (a larger set holding the current beams first) from the next frame on.
+
+        Parameters
+        ----------
+        beams : BeamSet
+            The beams, the ones followed now first.
+        """
         k = len(self.beams)
         if len(beams) < k or not np.allclose(beams.hk[:k], self.beams.hk):
             raise ParameterError("`beams` must begin with the beams already followed, in their order.")
         self.beams = beams
 
     def add(self, frame, *, value: float, name: str = "") -> dict:
-        """Measure one frame; returns its row (intensities, widths, flags, geometry)."""
+        """Measure one frame; returns its row (intensities, widths, flags, geometry).
+
+        Parameters
+        ----------
+        frame : (M, N) ndarray or LoadedImage
+            The frame.
+        value : float, keyword-only
+            Its parameter.
+        name : str, keyword-only
+            Its name (file name).
+
+        Returns
+        -------
+        dict
+            The frame's row.
+        """
         sat = self.saturation_level
         if sat is None:
             sat = getattr(frame, "saturation_level", None)  # a LoadedImage knows its full scale
@@ -305,7 +326,20 @@ class BeamFollower:
                                    scale_px=float(scale))
 
     def result(self, *, name: str = "parameter", unit: str = "") -> ParameterTrace:
-        """Everything measured so far as a :class:`ParameterTrace` (beams added late are NaN before)."""
+        """Everything measured so far as a :class:`ParameterTrace` (beams added late are NaN before).
+
+        Parameters
+        ----------
+        name : str, keyword-only
+            What the parameter is.
+        unit : str, keyword-only
+            Its unit.
+
+        Returns
+        -------
+        ParameterTrace
+            Every frame and beam so far.
+        """
         if not self.rows:
             raise SeriesError("The series holds no frames.")
         k = len(self.beams)

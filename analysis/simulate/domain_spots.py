@@ -65,12 +65,29 @@ class DomainBroadening:
         self.matrices = np.asarray(pattern.overlayers, dtype=np.float64)
 
     def sizes_A(self) -> np.ndarray:
-        """(S, 2) domain extents N_j |b_j| in Å, per size of the ensemble (domain 0's net)."""
+        """(S, 2) domain extents N_j |b_j| in Å, per size of the ensemble (domain 0's net).
+
+        Returns
+        -------
+        (S, 2) ndarray of float64
+            Extents along b1 and b2, Å.
+        """
         b = self.matrices[0] @ np.asarray(self.pattern.substrate.vectors, float)
         return self.cells * np.hypot(b[:, 0], b[:, 1])[None]
 
     def half_px(self, sigma_max: float) -> int:
-        """Window half-width: 6 σ plus five times the smallest domain's FWHM in pixels at the centre."""
+        """Window half-width: 6 σ plus five times the smallest domain's FWHM in pixels at the centre.
+
+        Parameters
+        ----------
+        sigma_max : float
+            Largest instrument σ of the spots, pixels.
+
+        Returns
+        -------
+        int
+            The half-width, pixels.
+        """
         geom, e = self.pattern.geometry, self.pattern.energy_eV
         _, jac, _ = pixel_derivatives(np.zeros((1, 2)), e, geom)
         px_per_invA = float(np.sqrt(abs(np.linalg.det(jac[0]))))
@@ -80,7 +97,26 @@ class DomainBroadening:
         return int(min(math.ceil(6.0 * sigma_max + 5.0 * dom_px), self.max_half_px))
 
     def pixel_integrals(self, rc, sigma, amount, half: int):
-        """As :meth:`analysis.profiles.GaussianProfile.pixel_integrals`, fractional beams broadened."""
+        """As :meth:`analysis.profiles.GaussianProfile.pixel_integrals`, fractional beams broadened.
+
+        Parameters
+        ----------
+        rc : (K, 2) ndarray of float64
+            Spot centres (row, col), pixels.
+        sigma : (K,) ndarray of float64
+            Instrument widths σ, pixels.
+        amount : (K,) ndarray of float64
+            Volume of each spot (photons).
+        half : int
+            Half-width of the windows, pixels.
+
+        Returns
+        -------
+        rows, cols : (K, W) ndarray of int64
+            Pixel rows and columns of each window.
+        values : (K, W, W) ndarray of float64
+            The pixel integrals.
+        """
         from scipy.ndimage import gaussian_filter
 
         rc = np.asarray(rc, dtype=np.float64).reshape(-1, 2)

@@ -53,7 +53,22 @@ class GunShadow:
 
     @classmethod
     def scaled(cls, screen_radius: float, *, arm_angle_deg: float = 235.0, offset_px=(0.0, 0.0)) -> "GunShadow":
-        """A typical gun for a screen of radius `screen_radius` px (disk 7 %, arm 5 % of it)."""
+        """A typical gun for a screen of radius `screen_radius` px (disk 7 %, arm 5 % of it).
+
+        Parameters
+        ----------
+        screen_radius : float
+            Screen radius, pixels.
+        arm_angle_deg : float, keyword-only
+            Image direction of the holder arm from the gun, degrees.
+        offset_px : (dx, dy), keyword-only
+            Offset of the gun from the pattern centre, pixels.
+
+        Returns
+        -------
+        GunShadow
+            The gun.
+        """
         return cls(float(offset_px[0]), float(offset_px[1]), 0.07 * screen_radius, arm_angle_deg,
                    0.05 * screen_radius)
 
@@ -64,7 +79,13 @@ class GunShadow:
         ----------
         x, y : ndarray of float
             Broadcastable pixel coordinates.
-        center_px : (x, y) of the pattern centre.
+        center_px : (x, y)
+            The pattern centre, pixels.
+
+        Returns
+        -------
+        ndarray of float64
+            The signed distance, pixels.
         """
         cx, cy = center_px[0] + self.offset_x_px, center_px[1] + self.offset_y_px
         dx, dy = x - cx, y - cy
@@ -78,6 +99,18 @@ class GunShadow:
         return np.minimum(disk, arm)
 
     def to_dict(self, center_px=None) -> dict:
+        """The gun as plain numbers (for a frame's truth).
+
+        Parameters
+        ----------
+        center_px : (x, y), optional
+            The pattern centre: the gun's centre is then given too.
+
+        Returns
+        -------
+        dict
+            The fields, and ``center_px`` of the gun.
+        """
         d = dataclasses.asdict(self)
         if center_px is not None:
             d["center_px"] = [center_px[0] + self.offset_x_px, center_px[1] + self.offset_y_px]

@@ -114,6 +114,13 @@ class SpotShape:
                 f"axis_deg={self.axis_deg}, supersample={self.supersample})")
 
     def to_dict(self) -> dict:
+        """The shape as plain numbers (for a frame's truth).
+
+        Returns
+        -------
+        dict
+            ``tail_beta``, ``elongation``, ``axis_deg``, ``supersample``.
+        """
         return {"tail_beta": self.tail_beta, "elongation": self.elongation, "axis_deg": self.axis_deg,
                 "supersample": self.supersample}
 
@@ -122,6 +129,16 @@ class SpotShape:
 
         Gaussian: 6 e σ. Tailed: where a round spot keeps all but 0.5 % of its light,
         R = α √(200^(1/(β−1)) − 1), times e; both capped at `max_half_px`.
+
+        Parameters
+        ----------
+        sigma_max : float
+            Largest spot σ, pixels.
+
+        Returns
+        -------
+        int
+            The half-width, pixels.
         """
         reach = 6.0 * sigma_max
         if self.tail_beta is not None:
@@ -169,12 +186,14 @@ class SpotShape:
         amount : (K,) ndarray of float64
             Volume of each spot (photons).
         half : int
+            Half-width of the windows, pixels.
 
         Returns
         -------
         rows, cols : (K, W) ndarray of int64
             Pixel rows and columns of each window (around the rounded centre).
         values : (K, W, W) ndarray of float64
+            The pixel integrals.
         """
         if self.tail_beta is None and self.elongation == 1.0:
             return GAUSSIAN.pixel_integrals(rc, sigma, amount, half)
