@@ -85,13 +85,14 @@ def _analyse(spec, mats, axes, energy, *, tilt_deg=None, residual=0.0, seed=0):
     return analyze_image(ph.analysis_input, energy_eV=energy, substrate=spec, calibration=calib)
 
 
-def _absent_without_glides(res, monkeypatch) -> int:
-    """The best model's A term with every glide exemption switched off."""
+def _absent_without_glides(res, monkeypatch, matrix=None) -> int:
+    """The A term of `matrix` (default: the best model's) with every glide exemption switched off."""
     import analysis.indexing.overlayers as ov
 
     monkeypatch.setattr(ov, "glide_excused", lambda ctx, mats, hk: np.zeros(len(hk), bool))
-    f, best = res.index.substrate, res.index.best
-    raw = ov.evaluate_model(f.hk, f.integer, f, best.matrix, energy_eV=res.energy_eV, intensity=res.intensity,
+    f = res.index.substrate
+    m = res.index.best.matrix if matrix is None else matrix
+    raw = ov.evaluate_model(f.hk, f.integer, f, m, energy_eV=res.energy_eV, intensity=res.intensity,
                             valid_mask=res.measurement.valid, reliable=res.trusted)
     monkeypatch.undo()
     return raw.absent
@@ -176,3 +177,22 @@ def test_no_glide_is_read_where_the_odd_beams_are_bright():
     res = _analyse("Cu(100)", [np.array([[2, 0], [0, 2]])], [[]], 120.0)
     pg = res.index.plane_group
     assert pg.groups == () and pg.glide_lines == () and pg.tested_domains == (0,)
+
+
+@pytest.mark.slow
+def test_a_cell_too_large_reads_no_glide_from_the_beams_it_lacks(monkeypatch):
+    # c(2×2) rendered without glides: p(2×2) lacks every (h/2, 0) and (0, k/2) beam, as a p2gg
+    # (2×2) would, but also half of its other beams, so the absences are the lattice's, not a glide's
+    from analysis.indexing.absences import read_plane_group
+    from analysis.indexing.overlayers import _context, evaluate_model
+
+    res = _analyse("Cu(100)", [np.array([[1, 1], [-1, 1]])], [[]], 120.0)
+    _check_model(res.index.best, [np.array([[1, 1], [-1, 1]])], "c(2×2)", "commensurate")
+    f = res.index.substrate
+    ctx = _context(f.hk, f.integer, f, res.energy_eV, res.intensity, res.measurement.valid, 2.5,
+                   reliable=res.trusted)
+    pg = read_plane_group(ctx, [np.eye(2) * 2])
+    assert pg.glide_lines == () and pg.tested_domains == ()
+    big = evaluate_model(f.hk, f.integer, f, np.eye(2) * 2, energy_eV=res.energy_eV, intensity=res.intensity,
+                         valid_mask=res.measurement.valid, reliable=res.trusted)
+    assert big.absent >= 8 and big.absent == _absent_without_glides(res, monkeypatch, np.eye(2) * 2)

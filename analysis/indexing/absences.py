@@ -41,7 +41,7 @@ WEAK_FRACTION = 0.25
 median intensity of the domain's other seen fractional beams (our choice: at 2–3° off
 normal the lifted beams stay below a few per cent of the allowed ones in the renders)."""
 
-MIN_SEEN_FRACTION = 0.6
+MIN_SEEN_FRACTION = 0.7
 """A domain is tested only when at least this fraction of its allowed beams that could be
 seen was found (the domain is there and its beams are visible)."""
 
