@@ -83,6 +83,23 @@ class Edits:
 
     @classmethod
     def from_dict(cls, d: dict | None) -> "Edits":
+        """Edits from :meth:`to_dict`'s dict, checked.
+
+        Parameters
+        ----------
+        d : dict or None
+            ``added_xy``, ``removed_xy`` ((x, y) pixel pairs), ``center_xy``, ``pick_px``.
+
+        Returns
+        -------
+        Edits
+            The edits (none for an empty `d`).
+
+        Raises
+        ------
+        ParameterError
+            When a point is not a finite (x, y) pair.
+        """
         if not d:
             return cls()
         if not isinstance(d, dict):
@@ -110,6 +127,13 @@ class Edits:
                    pick_px=float(d.get("pick_px", 6.0)))
 
     def to_dict(self) -> dict:
+        """The edits as plain JSON types (what :meth:`from_dict` reads).
+
+        Returns
+        -------
+        dict
+            Plain JSON types.
+        """
         return {"added_xy": [list(p) for p in self.added_xy], "removed_xy": [list(p) for p in self.removed_xy],
                 "center_xy": None if self.center_xy is None else list(self.center_xy), "pick_px": self.pick_px}
 

@@ -69,7 +69,13 @@ class LineProfile:
         return int(self.distance_px.shape[0])
 
     def to_dict(self) -> dict:
-        """JSON-safe columns (NaN as None)."""
+        """JSON-safe columns (NaN as None).
+
+        Returns
+        -------
+        dict
+            One list per column.
+        """
 
         def col(a):
             return None if a is None else [None if not math.isfinite(v) else float(v) for v in a]
@@ -79,7 +85,13 @@ class LineProfile:
                 "intensity": col(self.intensity), "width_px": self.width_px}
 
     def to_csv(self) -> str:
-        """The profile as CSV text, one row per sample (empty cells where a value is missing)."""
+        """The profile as CSV text, one row per sample (empty cells where a value is missing).
+
+        Returns
+        -------
+        str
+            CSV text with a header line.
+        """
         names = ["x", "y", "distance_px", "distance_invA", "distance_bz_percent", "intensity"]
         d = self.to_dict()
         out = io.StringIO()

@@ -83,7 +83,18 @@ class ParameterTrace:
         return ((self.flags & BLOCKING_FLAGS) == 0) & np.isfinite(self.intensity)
 
     def curve(self, beam) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """(value, intensity, sigma) of one beam (label, (h, k) or index); NaN where left out."""
+        """(value, intensity, sigma) of one beam (label, (h, k) or index); NaN where left out.
+
+        Parameters
+        ----------
+        beam : str, (h, k) or int
+            The beam's label, indices or position.
+
+        Returns
+        -------
+        value, intensity, sigma : (F,) ndarray of float64
+            The parameter of each frame, the beam's intensity and its uncertainty.
+        """
         j = beam if isinstance(beam, (int, np.integer)) else self.beams.index(beam)
         ok = self.valid[:, j]
         return self.value.copy(), np.where(ok, self.intensity[:, j], np.nan), np.where(ok, self.sigma[:, j], np.nan)

@@ -57,11 +57,29 @@ class OrderDisorderFit:
     tc_spread: float = 0.0
 
     def model(self, t) -> np.ndarray:
-        """The fitted intensity at temperatures `t`."""
+        """The fitted intensity at temperatures `t`.
+
+        Parameters
+        ----------
+        t : float or array_like of float
+            Temperatures, in the unit of the fit.
+
+        Returns
+        -------
+        ndarray of float64
+            The intensity.
+        """
         return _model(np.asarray(t, dtype=np.float64), self.amplitude, self.tc, self.beta, self.background,
                       self.slope, self.t_mean)
 
     def to_dict(self) -> dict:
+        """The fit's numbers (Tc, β, amplitude, background, their uncertainties).
+
+        Returns
+        -------
+        dict
+            Plain JSON types.
+        """
         return {"tc": self.tc, "tc_sigma": self.tc_sigma, "beta": self.beta, "beta_sigma": self.beta_sigma,
                 "amplitude": self.amplitude, "background": self.background, "slope": self.slope,
                 "chi2_red": self.chi2_red, "n_points": self.n_points, "tc_spread": self.tc_spread}

@@ -91,7 +91,18 @@ class CompleteFiles:
 
     def next_ready(self, timeout_s: float = 0.1):
         """The next complete file as ``(path, LoadedImage)``; ``(path, error text)`` for a file
-        given up on; None when nothing is ready within `timeout_s`."""
+        given up on; None when nothing is ready within `timeout_s`.
+
+        Parameters
+        ----------
+        timeout_s : float
+            Longest wait, seconds.
+
+        Returns
+        -------
+        tuple or None
+            As above.
+        """
         from ..io import _natural_key, load_image
 
         end = time.monotonic() + timeout_s
@@ -135,6 +146,7 @@ class CompleteFiles:
                 pass
 
     def close(self) -> None:
+        """Stop watching the folder."""
         self.observer.stop()
         self.observer.join(timeout=5)
 

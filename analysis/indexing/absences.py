@@ -75,6 +75,13 @@ class GlideLine:
     filled: np.ndarray
 
     def to_dict(self) -> dict:
+        """The glide line: its domain, axis and the beams that show it.
+
+        Returns
+        -------
+        dict
+            Plain JSON types.
+        """
         return {"domain": int(self.domain), "axis": [int(v) for v in self.axis],
                 "missing_beams": np.asarray(self.missing, float).tolist(),
                 "weak_beams": [{"h": float(r[0]), "k": float(r[1]), "relative_intensity": float(r[2])}
@@ -115,6 +122,13 @@ class PlaneGroupReading:
         return " or ".join(self.groups) if self.groups else None
 
     def to_dict(self) -> dict:
+        """The reading: symbol, allowed groups, cell, glide lines and the axes left open.
+
+        Returns
+        -------
+        dict
+            Plain JSON types.
+        """
         return {"symbol": self.symbol, "groups": list(self.groups), "cell": self.cell,
                 "glide_lines": [g.to_dict() for g in self.glide_lines],
                 "tested_domains": [int(d) for d in self.tested_domains], "note": self.note,

@@ -71,6 +71,13 @@ class Phase:
     plane_group: PlaneGroupReading
 
     def to_dict(self) -> dict:
+        """The phase as the JSON's ``overlayer.phases`` entries write it.
+
+        Returns
+        -------
+        dict
+            Plain JSON types.
+        """
         m = self.model
         return {"kind": m.kind, "matrix": np.asarray(m.matrix, float).tolist(),
                 "domains": [np.asarray(d, float).tolist() for d in m.domains], "n_domains": m.n_domains,

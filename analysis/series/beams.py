@@ -67,7 +67,18 @@ class BeamSet:
         return int(self.hk.shape[0])
 
     def index(self, label_or_hk) -> int:
-        """Position of a beam given its label ``"(1,0)"`` or its (h, k)."""
+        """Position of a beam given its label ``"(1,0)"`` or its (h, k).
+
+        Parameters
+        ----------
+        label_or_hk : str or (h, k)
+            The beam.
+
+        Returns
+        -------
+        int
+            Its position in the set.
+        """
         if isinstance(label_or_hk, str):
             key = label_or_hk.replace(" ", "")
             if key in self.labels:
@@ -89,10 +100,16 @@ class BeamSet:
         substrate : Net2D
             Real-space substrate net, Å.
         hk : (K, 2) array_like of float
+            The beams' indices in the substrate's reciprocal basis.
         azimuth_deg : float, keyword-only
             Counter-clockwise rotation of the sample axes in the optics' frame.
         symmetry : str, keyword-only
             As for :func:`symmetry_ops`.
+
+        Returns
+        -------
+        BeamSet
+            The beams with their equivalence classes.
         """
         hk = np.asarray(hk, dtype=np.float64).reshape(-1, 2)
         c, s = math.cos(math.radians(azimuth_deg)), math.sin(math.radians(azimuth_deg))
