@@ -88,6 +88,12 @@ def test_exposure_series_p2x2_then_sqrt3():
     step = dose[1] - dose[0]
     sw = [s for s in res.switches() if s["from"].startswith("p(2×2)") and s["to"].startswith("(√3")]
     assert len(sw) == 1 and lo - step <= sw[0]["value"] <= hi + step
+    # the p(2×2) beams are brightest where the first phase is complete: truth θ from 0.25 ML
+    # (its ideal coverage) to 0.28 ML (where it starts to give way), ± one dose step
+    top = next(p for p in res.family_peaks() if p["family"] == res.segments[i22].families[0])
+    a, b = (-model.dose_scale * math.log(1 - th / model.theta_sat) for th in (model.theta_first,
+                                                                             model.theta_switch[0]))
+    assert a - step <= top["value"] <= b + step
     # presence per frame against the truth where the truth is clear
     share = np.array([model.shares(d) for d in dose])
     col = {f.label: n for n, f in enumerate(res.families)}

@@ -124,6 +124,7 @@ def result_to_dict(result, *, transition=None) -> dict:
         "present": result.present,
         "segments": segs,
         "switches": result.switches(),
+        "family_peaks": result.family_peaks(),
         "drift": tr.drift,
         "intensity": tr.intensity, "sigma": tr.sigma, "background_per_px": tr.background_per_px,
         "width_radial_px": tr.width_radial_px, "width_tangential_px": tr.width_tangential_px,

@@ -95,6 +95,33 @@ class ParameterSeriesResult:
                  "from": a.label, "to": b.label}
                 for a, b in zip(self.segments[:-1], self.segments[1:])]
 
+    def family_peaks(self) -> list[dict]:
+        """Where each family is brightest: the parameter of its largest summed intensity
+        (a parabola through it and its neighbours in frame order when they are measured),
+        e.g. the exposure at which an ordered phase is complete.
+
+        Returns
+        -------
+        list of dict
+            ``family``, ``frame``, ``value`` (the parameter at the peak) and ``intensity``.
+        """
+        out = []
+        v = self.trace.value
+        for n, fam in enumerate(self.families):
+            y = self.family_intensity[:, n]
+            if not np.any(np.isfinite(y)):
+                continue
+            i = int(np.nanargmax(y))
+            peak = float(v[i])
+            if 0 < i < len(y) - 1 and np.all(np.isfinite(y[i - 1:i + 2])):
+                x3, y3 = v[i - 1:i + 2], y[i - 1:i + 2]
+                if x3[0] < x3[1] < x3[2] or x3[0] > x3[1] > x3[2]:
+                    a, b, _ = np.polyfit(x3, y3, 2)
+                    if a < 0:
+                        peak = float(np.clip(-b / (2 * a), min(x3[0], x3[2]), max(x3[0], x3[2])))
+            out.append({"family": fam.label, "frame": i, "value": peak, "intensity": float(y[i])})
+        return out
+
     def family_curve(self, family) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """(value, summed intensity, its σ) of one family (label or position).
 

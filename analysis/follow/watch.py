@@ -325,9 +325,13 @@ def watch_folder(folder, *, energy_eV: float, substrate: str, parameter_from: st
             csv_file.close()
     if n_done:
         res = live.result()
+        u = f" {par.unit}" if par.unit else ""
+        for pk in res.family_peaks():
+            say(f"{pk['family']} family brightest at {par.name} {pk['value']:.4g}{u} (frame {pk['frame']})")
+        for sw in res.switches():
+            say(f"switch at {par.name} {sw['value']:.4g}{u}: {sw['from']} → {sw['to']}")
         fit = res.transition()
         if fit is not None:
-            u = f" {par.unit}" if par.unit else ""
             say(f"order–disorder fit of the {next(s.families[0] for s in res.segments if s.families)} family: "
                 f"Tc = {fit.tc:.4g}{u} ± {fit.tc_sigma:.2g} (statistics) ± {fit.tc_spread:.2g} (refits), "
                 f"2β = {2 * fit.beta:.3g}")
