@@ -721,7 +721,10 @@ def find_overlayers(hk: np.ndarray, integer: np.ndarray, substrate_fit: Substrat
             continue
         scored.append((sc, kt))
     models = _prefer_simple([_describe(ctx, sc, kind_tol=kt) for sc, kt in scored[: n_results + 1]])
-    models.sort(key=lambda mm: -mm.score)
+    models = [mm if _significant(mm) else dataclasses.replace(
+        mm, notes=mm.notes + (f"not significant: {int(mm.score_terms['explained'])} spots explained, "
+                              f"fewer than a net with its free parameters fits by chance",)) for mm in models]
+    models.sort(key=lambda mm: (not _significant(mm), -mm.score))  # "none" before a chance fit
     out, keys = [], []
     for mm in models:
         key = (mm.wood, mm.n_domains, mm.kind) if mm.wood else (mm.n_domains, mm.kind, _lattice_key(mm.matrix))
@@ -765,6 +768,25 @@ def _lead_with_plainest_domain(ctx: _Context, mm: OverlayerModel) -> OverlayerMo
                                domain_ops=[mm.domain_ops[i] for i in order], wood=w.text, wood_note=w.note,
                                explained_by=by, details=dataclasses.replace(mm.details, wood_notation=w),
                                **_net_facts(ctx.net, mm.domains[k], mm.kind))
+
+
+#: Fewest trusted fractional spots a model must explain to count as an overlayer: an irrational
+#: basis has four free parameters, so it fits any two spots exactly (and, with the many bases
+#: tried, often three); a rational matrix is one of a discrete family and may rest on two.
+_MIN_EXPLAINED = {"incommensurate": 4, "coincidence": 3, "commensurate": 2}
+
+
+def _significant(mm: OverlayerModel) -> bool:
+    """Whether a model explains more fractional spots than its freedom fits by chance.
+
+    >>> from types import SimpleNamespace as NS
+    >>> terms = {"explained": 2.0}
+    >>> _significant(NS(kind="incommensurate", score_terms=terms)), _significant(NS(kind="commensurate", score_terms=terms))
+    (False, True)
+    """
+    if mm.kind == "none":
+        return True
+    return mm.score_terms["explained"] >= _MIN_EXPLAINED.get(mm.kind, 2)
 
 
 def _prefer_simple(models: list[OverlayerModel]) -> list[OverlayerModel]:
