@@ -273,7 +273,22 @@ class GeometryFit:
         return int(len(self.residuals_px))
 
     def predict(self, k_par, energy_eV: float, **kw) -> np.ndarray:
-        """(K, 2) (x, y) pixels of beams `k_par` (Å⁻¹, no 2π) at `energy_eV`."""
+        """(K, 2) (x, y) pixels of beams `k_par` (Å⁻¹, no 2π) at `energy_eV`.
+
+        Parameters
+        ----------
+        k_par : (K, 2) array_like of float
+            Outgoing parallel momentum, Å⁻¹ without 2π.
+        energy_eV : float
+            Electron energy, eV.
+        **kw
+            ``relativistic``, as for :func:`analysis.optics.momentum_to_pixels`.
+
+        Returns
+        -------
+        (K, 2) ndarray of float64
+            (x, y) pixels; NaN for beams that miss the screen.
+        """
         return momentum_to_pixels(k_par, energy_eV, self.geometry, **kw)[0]
 
 

@@ -153,6 +153,14 @@ class DomainSize:
     extra: dict = field(default_factory=dict)
 
     def to_dict(self) -> dict:
+        """The estimate in plain JSON types (NaN as None), sizes in Å.
+
+        Returns
+        -------
+        dict
+            Sizes, widths, counts, method and message.
+        """
+
         def f(v):
             v = float(v)
             return v if math.isfinite(v) else None

@@ -52,11 +52,24 @@ class WidthReport:
     axes: tuple = ()
 
     def to_dict(self) -> dict:
+        """The domain size and the extents along the domain axes, as plain JSON types.
+
+        Returns
+        -------
+        dict
+            ``domain_size``, ``along_domain_axes``, ``instrument_fwhm_px``.
+        """
         return {"domain_size": self.domain.to_dict(), "along_domain_axes": list(self.axes),
                 "instrument_fwhm_px": list(self.domain.instrument_fwhm_px)}
 
     def axes_text(self) -> str:
-        """One line: each domain's extents along b1 and b2 ('' when none resolves)."""
+        """One line: each domain's extents along b1 and b2 ('' when none resolves).
+
+        Returns
+        -------
+        str
+            The line.
+        """
         parts = []
         for a in self.axes:
             b1, b2 = a["size_b1_angstrom"], a["size_b2_angstrom"]

@@ -55,25 +55,8 @@ PACKAGES = ("analysis", "webapp")
 
 #: Public functions and methods whose docstrings do not pass :data:`CHECKS` yet (module.qualname).
 NOT_YET = frozenset({
-    "analysis.calibration.GeometryFit.predict",
-    "analysis.domain_size.DomainSize.to_dict",
     "analysis.domain_size.sizes_along_axes",
-    "analysis.follow.parameters.ParameterTable.value_of",
-    "analysis.series.geometry.SeriesCalibration.to_dict",
-    "analysis.series.index_frames.SeriesIndexing.to_dict",
-    "analysis.series.track.IVResult.curve",
-    "analysis.series.track.IVResult.overlap_eV",
-    "analysis.simulate.parameter_series.ExposureModel.coverage",
-    "analysis.simulate.parameter_series.ExposureModel.shares",
-    "analysis.simulate.parameter_series.OrderDisorderModel.fractional_share",
-    "analysis.simulate.parameter_series.OrderDisorderModel.order_squared",
-    "analysis.simulate.pattern.Pattern.labels",
-    "analysis.spot_table.WidthReport.axes_text",
-    "analysis.spot_table.WidthReport.to_dict",
     "analysis.spot_table.rows_to_csv",
-    "analysis.spots.widths.SpotWidths.radial_unit",
-    "webapp.key_limit.KeyGuessLimit.message",
-    "webapp.key_limit.KeyGuessLimit.wait_s",
 })
 
 

@@ -87,7 +87,13 @@ class KeyGuessLimit:
         self.item = parse(f"{WRONG_KEYS_PER_MINUTE}/minute")
 
     def wait_s(self) -> int:
-        """Seconds this request's address must wait before its next try; 0 when it may try now."""
+        """Seconds this request's address must wait before its next try; 0 when it may try now.
+
+        Returns
+        -------
+        int
+            Seconds.
+        """
         addr = _client_address()
         try:
             if self.ext.limiter.test(self.item, "access-key", addr):
@@ -107,6 +113,18 @@ class KeyGuessLimit:
 
     @staticmethod
     def message(wait_s: int) -> str:
+        """What a refused visitor reads.
+
+        Parameters
+        ----------
+        wait_s : int
+            Seconds to wait.
+
+        Returns
+        -------
+        str
+            One line.
+        """
         return (f"Too many wrong access keys from your address ({WRONG_KEYS_PER_MINUTE} a minute are allowed): "
                 f"try again in {wait_s} s.")
 

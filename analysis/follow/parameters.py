@@ -82,7 +82,20 @@ class ParameterTable:
         return f"{self.name} ({self.unit})" if self.unit else self.name
 
     def value_of(self, i: int, frame_name: str) -> float:
-        """The value of frame `i` named `frame_name` (by name when the sidecar lists names)."""
+        """The value of frame `i` named `frame_name` (by name when the sidecar lists names).
+
+        Parameters
+        ----------
+        i : int
+            Frame index (0-based).
+        frame_name : str
+            The frame's file name.
+
+        Returns
+        -------
+        float
+            The parameter.
+        """
         if self.frame is not None and not all(re.fullmatch(r"[+-]?\d+", f or "") for f in self.frame):
             key = Path(str(frame_name)).name.lower()
             for j, f in enumerate(self.frame):

@@ -60,7 +60,13 @@ class SeriesCalibration:
         return self.geometry.scale_px * math.sqrt(H2_OVER_2ME_EV_A2)
 
     def to_dict(self) -> dict:
-        """JSON-safe summary; ``"geometry"`` can be read back by ScreenGeometry.from_dict."""
+        """JSON-safe summary; ``"geometry"`` can be read back by ScreenGeometry.from_dict.
+
+        Returns
+        -------
+        dict
+            Plain JSON types.
+        """
         unc = dict(self.uncertainty)
         if "scale_px" in unc:
             unc["scale_px_sqrt_eV_A"] = unc["scale_px"] * math.sqrt(H2_OVER_2ME_EV_A2)

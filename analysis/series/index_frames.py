@@ -89,7 +89,13 @@ class SeriesIndexing:
         return f"{name}, {self.kind}" + (f", {n} domains" if n > 1 else "")
 
     def to_dict(self) -> dict:
-        """JSON-safe summary (the mask left out)."""
+        """JSON-safe summary (the mask left out).
+
+        Returns
+        -------
+        dict
+            Plain JSON types.
+        """
         return json_safe({
             "frame": self.frame, "frame_name": self.frame_name, "energy_eV": self.energy_eV,
             "superstructure": self.label, "kind": self.kind, "wood": self.wood, "matrix_text": self.matrix_text,

@@ -93,14 +93,31 @@ class IVResult:
         return ((self.flags & BLOCKING_FLAGS) == 0) & np.isfinite(self.intensity)
 
     def curve(self, beam) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """(energy_eV, intensity, sigma) of one beam (label, (h, k) or index); NaN where left out."""
+        """(energy_eV, intensity, sigma) of one beam (label, (h, k) or index); NaN where left out.
+
+        Parameters
+        ----------
+        beam : str, (h, k) or int
+            The beam's label, indices or position.
+
+        Returns
+        -------
+        energy_eV, intensity, sigma : (F,) ndarray of float64
+            Energies (eV), the beam's intensity and its uncertainty.
+        """
         j = beam if isinstance(beam, (int, np.integer)) else self.beams.index(beam)
         ok = self.valid[:, j]
         return (self.energy_eV.copy(), np.where(ok, self.intensity[:, j], np.nan),
                 np.where(ok, self.sigma[:, j], np.nan))
 
     def overlap_eV(self) -> np.ndarray:
-        """(K,) energy range in eV covered by each beam's valid points (sum of the steps between them)."""
+        """(K,) energy range in eV covered by each beam's valid points (sum of the steps between them).
+
+        Returns
+        -------
+        (K,) ndarray of float64
+            Energy ranges, eV.
+        """
         e = self.energy_eV
         ok = self.valid
         both = ok[1:] & ok[:-1]

@@ -87,7 +87,18 @@ class OrderDisorderModel:
     broadening: float = 0.5
 
     def order_squared(self, t: float) -> float:
-        """⟨m²⟩: (1 − T/Tc′)^(2β) averaged over Tc′ ~ N(Tc, (rounding·Tc)²)."""
+        """⟨m²⟩: (1 − T/Tc′)^(2β) averaged over Tc′ ~ N(Tc, (rounding·Tc)²).
+
+        Parameters
+        ----------
+        t : float
+            Temperature, K.
+
+        Returns
+        -------
+        float
+            ⟨m²⟩ in [0, 1].
+        """
         w = self.rounding * self.tc
         if w <= 0:
             return max(1.0 - t / self.tc, 0.0) ** (2 * self.beta)
@@ -98,7 +109,18 @@ class OrderDisorderModel:
         return float(np.sum(wt * m2) / np.sum(wt))
 
     def fractional_share(self, t: float) -> float:
-        """Fractional beam photons relative to full order (long- plus short-range order)."""
+        """Fractional beam photons relative to full order (long- plus short-range order).
+
+        Parameters
+        ----------
+        t : float
+            Temperature, K.
+
+        Returns
+        -------
+        float
+            The share (1 at full order).
+        """
         sro = self.short_range * math.exp(-abs(t - self.tc) / (self.short_range_width * self.tc))
         return self.order_squared(t) + sro
 
@@ -138,10 +160,33 @@ class ExposureModel:
     spot_sigma_px: float = 1.6
 
     def coverage(self, dose: float) -> float:
+        """Coverage after `dose`: θ_sat (1 − exp(−dose / dose_scale)).
+
+        Parameters
+        ----------
+        dose : float
+            Exposure, in the unit of ``dose_scale`` (e.g. L).
+
+        Returns
+        -------
+        float
+            Coverage, monolayers.
+        """
         return self.theta_sat * (1.0 - math.exp(-dose / self.dose_scale))
 
     def shares(self, dose: float) -> tuple[float, float]:
-        """(first phase, second phase) beam strength relative to a complete layer."""
+        """(first phase, second phase) beam strength relative to a complete layer.
+
+        Parameters
+        ----------
+        dose : float
+            Exposure, in the unit of ``dose_scale`` (e.g. L).
+
+        Returns
+        -------
+        tuple of float
+            The two shares, each in [0, 1].
+        """
         th = self.coverage(dose)
         lo, hi = self.theta_switch
         first = min(th / self.theta_first, 1.0) ** 2

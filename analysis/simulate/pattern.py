@@ -86,7 +86,18 @@ class Pattern:
         return int(self.domains.shape[1])
 
     def labels(self, *, max_denominator: int = 12) -> list[str]:
-        """Index labels like ``"(1/2, 0)"`` for every beam (see :func:`hk_label`)."""
+        """Index labels like ``"(1/2, 0)"`` for every beam (see :func:`hk_label`).
+
+        Parameters
+        ----------
+        max_denominator : int, keyword-only
+            Largest denominator written as a fraction.
+
+        Returns
+        -------
+        list of str
+            One label per beam.
+        """
         return [hk_label(h, k, max_denominator=max_denominator) for h, k in self.hk]
 
 

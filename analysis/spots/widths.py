@@ -81,7 +81,13 @@ class SpotWidths:
         return int(self.xy_px.shape[0])
 
     def radial_unit(self) -> np.ndarray:
-        """(K, 2) unit vectors (x, y_down) from `center_xy` to each spot ((1, 0) at the centre)."""
+        """(K, 2) unit vectors (x, y_down) from `center_xy` to each spot ((1, 0) at the centre).
+
+        Returns
+        -------
+        (K, 2) ndarray of float64
+            Unit vectors (x, y).
+        """
         return _radial_units(self.xy_px, self.center_xy)
 
 
