@@ -453,6 +453,17 @@ def test_each_colour_and_line_style_means_one_thing(webapp_env):
     assert len(domain_colours) == 6
 
 
+def test_the_exported_figure_draws_the_domains_as_nets(webapp_env):
+    from webapp import figures
+
+    levels = np.zeros((128, 128), dtype=np.uint8)  # the 512 px pattern shown 4 times smaller
+    svg = figures.export_figure(levels, factor=4, result=_two_domain_result(), fmt="svg").decode()
+    # each domain's net as a line in its own colour (matplotlib writes colours in lower case)
+    for i in (0, 1):
+        assert f"stroke: {figures.domain_colour(i).lower()}" in svg
+    assert "domain 2" in svg and "a1*" in svg
+
+
 def test_a_focused_domain_comes_forward(webapp_env):
     from webapp import figures
 

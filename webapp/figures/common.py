@@ -65,9 +65,6 @@ def domain_dash(i: int) -> str:
     return DOMAIN_DASHES[(int(i) // len(DOMAIN_COLOURS)) % len(DOMAIN_DASHES)]
 
 
-_MPL_MARKERS = {"circle-open": "o", "square-open": "s", "diamond-open": "D", "triangle-up-open": "^",
-                "pentagon-open": "p", "hexagon-open": "h", "triangle-down-open": "v", "star-open": "*"}
-
 
 def hk_text(h: float, k: float) -> str:
     """``(1/2, -1)``: indices as small fractions, or 2 decimals when not one.

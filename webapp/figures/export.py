@@ -7,8 +7,9 @@ import io
 
 import numpy as np
 
-from .common import _MPL_MARKERS, DOMAIN_STYLES, PALETTE
-from .pattern import _domain_predictions, _spot_arrays, _substrate_points
+from .common import INTEGER_SPOT_COLOUR, SUBSTRATE_COLOUR, UNEXPLAINED_COLOUR, domain_colour
+from .pattern import (_absent, _domain_matrices, _domain_net_points, _domain_predictions, _spot_arrays,
+                      _spot_domains, _substrate_points, net_lines)
 
 __all__ = ["spots_csv", "export_figure"]
 
@@ -49,7 +50,8 @@ def _csv_value(v):
 
 def export_figure(levels: np.ndarray, *, factor: int = 1, result: dict | None = None,
                   edits: dict | None = None, title_lines=(), fmt: str = "png") -> bytes:
-    """An annotated figure (matplotlib, Agg) of the pattern with spots, substrate net and domains.
+    """An annotated figure (matplotlib, Agg) of the pattern drawn as on the page: the substrate and
+    each domain as its reciprocal net, the spots tinted by their domain, absent beams as ticks.
 
     Parameters
     ----------
@@ -81,23 +83,40 @@ def export_figure(levels: np.ndarray, *, factor: int = 1, result: dict | None = 
     ax.imshow(levels, cmap="gray", extent=(-0.5, w - 0.5, h - 0.5, -0.5), interpolation="nearest")
     center = (edits or {}).get("center") or result.get("center_px")
     sub = result.get("substrate") or {}
+    sub_hk = sub_xy = np.zeros((0, 2))
+
+    def lines(x, y, **kw):  # net_lines' None-separated polylines as one matplotlib line
+        ax.plot([np.nan if v is None else v for v in x], [np.nan if v is None else v for v in y], **kw)
+
     if sub.get("a_star_px") is not None and center is not None:
-        _, xy = _substrate_points(result, center, w, h)
-        ax.scatter(xy[:, 0], xy[:, 1], marker="+", s=60, c=PALETTE["vermillion"], linewidths=1.2, label="substrate net")
+        sub_hk, sub_xy = _substrate_points(result, center, w, h)
+        lines(*net_lines(sub_xy, sub_hk), color=SUBSTRATE_COLOUR, lw=0.6, alpha=0.45, label="substrate net")
         for i, v in enumerate(np.asarray(sub["a_star_px"], dtype=float)):
             tip = (center[0] + v[0], center[1] + v[1])
             ax.annotate("", xy=tip, xytext=(center[0], center[1]),
-                        arrowprops=dict(arrowstyle="->", color=PALETTE["vermillion"], lw=1.5))
+                        arrowprops=dict(arrowstyle="->", color=SUBSTRATE_COLOUR, lw=1.5))
             u = v / max(np.hypot(*v), 1e-9)
-            ax.text(tip[0] + 14 * u[0] * factor, tip[1] + 14 * u[1] * factor, f"a{i + 1}*", color=PALETTE["vermillion"],
-                    ha="center", va="center", fontsize=9, fontweight="bold")
-    for i, p in enumerate(_domain_predictions(result, result.get("overlayer") or {}, w, h)):
-        sym, col = DOMAIN_STYLES[i % len(DOMAIN_STYLES)]
-        ax.scatter(p["xy"][:, 0], p["xy"][:, 1], marker=_MPL_MARKERS[sym], s=110, facecolors="none",
-                   edgecolors=col, linewidths=1.4, label=f"domain {i + 1}")
-    _, sxy = _spot_arrays(result)
+            ax.text(tip[0] + 14 * u[0] * factor, tip[1] + 14 * u[1] * factor, f"a{i + 1}*", color=SUBSTRATE_COLOUR,
+                    ha="center", va="center", fontsize=9, fontweight="bold",
+                    bbox=dict(facecolor="black", alpha=0.6, pad=1.5, lw=0))
+    overlayer = result.get("overlayer") or {}
+    preds = _domain_predictions(result, overlayer, w, h)
+    mats = _domain_matrices(overlayer)
+    spots, sxy = _spot_arrays(result)
+    for i, p in enumerate(preds):
+        col = domain_colour(i)
+        if i < len(mats):
+            n_xy, n_idx = _domain_net_points(p, mats[i], sub_hk, sub_xy)
+            lines(*net_lines(n_xy, n_idx), color=col, lw=0.8, alpha=0.7, label=f"domain {i + 1}")
+        absent = _absent(p["xy"], sxy)
+        if absent.any():
+            ax.scatter(p["xy"][absent, 0], p["xy"][absent, 1], marker="|", s=30, c=col, alpha=0.55, linewidths=1.0)
     if len(sxy):
-        ax.scatter(sxy[:, 0], sxy[:, 1], marker="o", s=40, facecolors="none", edgecolors=PALETTE["sky"],
+        owner = _spot_domains(spots, sxy, preds, use_own=True)
+        colours = [domain_colour(d) if d is not None else
+                   (INTEGER_SPOT_COLOUR if s.get("kind") == "integer" else UNEXPLAINED_COLOUR)
+                   for s, d in zip(spots, owner)]
+        ax.scatter(sxy[:, 0], sxy[:, 1], marker="o", s=40, facecolors="none", edgecolors=colours,
                    linewidths=1.0, label="detected spots")
     ax.set_xlim(-0.5, w - 0.5)
     ax.set_ylim(h - 0.5, -0.5)
