@@ -110,6 +110,7 @@ def estimate_center_from_pairs(xy_px, *, sigma_px=None, tol_px: float | None = N
     Returns
     -------
     CenterEstimate
+        The centre (x, y) in pixels, its uncertainty and the pairs used.
 
     Raises
     ------
@@ -341,6 +342,7 @@ def fit_geometry(xy_px, k_par=None, energy_eV=None, *, hk=None, substrate: Net2D
     Returns
     -------
     GeometryFit
+        The camera model, its parameter uncertainties and the residuals (pixels).
 
     Raises
     ------
@@ -524,6 +526,7 @@ def calibrate_from_reference(xy_px, substrate: Net2D, energy_eV: float, *, cente
     Returns
     -------
     fit : GeometryFit
+        The camera model fitted to the indexed spots, with its uncertainties.
     hk : (K, 2) ndarray of float64
         Assigned integer indices (NaN for unmatched spots).
 

@@ -199,6 +199,7 @@ def widths_in_momentum(widths: SpotWidths, *, energy_eV: float, geometry: Screen
     Returns
     -------
     BeamWidths
+        Widths in Å⁻¹ (no 2π) and in per cent of |a*|.
 
     Examples
     --------

@@ -249,6 +249,7 @@ def reduce_net(net: Net2D, *, tol: float = 2e-4) -> tuple[Net2D, np.ndarray]:
     Returns
     -------
     reduced : Net2D
+        The reduced basis (same lattice).
     op : (2, 2) ndarray of int64
         ``reduced.vectors == op @ net.vectors``; det op = +1.
 
@@ -349,6 +350,7 @@ def conventional_cell(net: Net2D, *, tol: float = 2e-4) -> tuple[Net2D, np.ndarr
     Returns
     -------
     cell : Net2D
+        The conventional cell.
     op : (2, 2) ndarray of int64
         ``cell.vectors == op @ net.vectors``; det op is 1, or 2 for a
         centered rectangular net.

@@ -142,6 +142,7 @@ def line_profile(image, start_xy, end_xy, *, width_px: float = 1.0, step_px: flo
     Returns
     -------
     LineProfile
+        Distances along the line (pixels, and Å⁻¹ or % of |a*| when given) and the intensities.
 
     Raises
     ------

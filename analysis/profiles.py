@@ -74,6 +74,7 @@ class GaussianProfile:
         Returns
         -------
         values : (K, W, W) ndarray of float64
+            The spots' values at the pixel centres of each window.
         state : tuple of ndarray
             Per-spot arrays (leading axis K) for :meth:`derivatives`.
 

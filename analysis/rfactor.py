@@ -315,6 +315,7 @@ def r_factor(curves_a: Sequence[tuple], curves_b: Sequence[tuple], *, kind: str 
     Returns
     -------
     RFactor
+        The value and each beam's R-factor.
 
     Examples
     --------

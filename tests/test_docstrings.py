@@ -35,6 +35,7 @@ CHECKS = {
     "PR04": "every documented parameter has a type (shapes, dtypes and units go there)",
     "PR07": "every documented parameter has a description",
     "RT01": "a Returns section when the function returns a value",
+    "RT03": "every returned value has a description",
     "YD01": "a Yields section for a generator",
 }
 

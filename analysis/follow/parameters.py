@@ -248,6 +248,7 @@ def read_parameter_file(path, *, column: str | None = None) -> ParameterTable:
     Returns
     -------
     ParameterTable
+        The values in frame order, with name, unit and the sidecar's frame names.
 
     Raises
     ------

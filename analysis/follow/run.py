@@ -615,6 +615,7 @@ def analyse_parameter_series(frames, *, substrate, energy_eV: float, parameters=
     Returns
     -------
     ParameterSeriesResult
+        The trace of every beam, the families, their presence, the segments and their structures.
 
     Raises
     ------

@@ -115,6 +115,7 @@ def fit_order_disorder(t, intensity, sigma=None, *, beta: float | None = None, s
     Returns
     -------
     OrderDisorderFit
+        Tc, β and the background with their uncertainties.
 
     Raises
     ------

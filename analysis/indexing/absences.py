@@ -318,6 +318,7 @@ def read_plane_group(ctx, mats) -> PlaneGroupReading:
     Returns
     -------
     PlaneGroupReading
+        The plane-group symbol, the groups allowed, the glide lines and the open axes.
     """
     mats = [np.asarray(m, float) for m in mats]
     lines, tested, cell, status, table = _glides(ctx, mats)

@@ -36,6 +36,7 @@ def smooth_curve(energy_eV, intensity, *, fwhm_eV: float) -> np.ndarray:
     Returns
     -------
     (F,) ndarray of float64
+        The smoothed curve (NaN where the input is).
 
     Examples
     --------

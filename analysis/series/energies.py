@@ -90,6 +90,7 @@ def check_energies(energy_eV, names: Sequence[str] | None = None) -> np.ndarray:
     Returns
     -------
     (F,) ndarray of float64
+        The energies, eV.
 
     Raises
     ------
@@ -301,7 +302,8 @@ def energies_from_names(names: Sequence[str], *, pattern: str = DEFAULT_NAME_PAT
 
     Returns
     -------
-    (F,) ndarray of float64, checked by :func:`check_energies`.
+    (F,) ndarray of float64
+        The energies (eV), checked by :func:`check_energies`.
 
     Raises
     ------

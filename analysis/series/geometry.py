@@ -101,6 +101,7 @@ def fit_series_geometry(energy_eV, g_par, xy_px, *, initial: ScreenGeometry,
     Returns
     -------
     SeriesCalibration
+        The camera model fitted over all frames, its uncertainties and the residual RMS (pixels).
 
     Raises
     ------

@@ -130,6 +130,7 @@ def index_series_frame(frame, *, energy_eV: float, substrate: str | Net2D, frame
     Returns
     -------
     SeriesIndexing
+        The frame's camera model, substrate net, overlayer domains and label.
 
     Raises
     ------

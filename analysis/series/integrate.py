@@ -543,6 +543,7 @@ def integrate_spots(frame: np.ndarray, xy_px, *, radius_px: float = 5.0, annulus
     Returns
     -------
     SpotIntegrals
+        Intensities, their σ, local backgrounds and flags, one per spot.
 
     Examples
     --------

@@ -294,6 +294,7 @@ def track_series(frames, beams: BeamSet, geometry: ScreenGeometry, *, energies=N
     Returns
     -------
     IVResult
+        Every beam's intensity, σ, position and flags per frame, with the energies and the geometry.
 
     Raises
     ------

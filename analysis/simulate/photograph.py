@@ -205,6 +205,7 @@ def photograph(pattern: Pattern, *, rng: np.random.Generator, effects=(), option
     Returns
     -------
     Photograph
+        The image, its truth (every spot and artefact), the masks and the encoded file when compressed.
 
     Examples
     --------

@@ -279,6 +279,7 @@ def add_glare(light, *, center_px, sigma_px, photons_per_px: float, angle_deg: f
     Returns
     -------
     (rows, cols) ndarray of float64
+        The light with the patch.
 
     Examples
     --------
@@ -320,6 +321,7 @@ def bloom_columns(electrons, *, full_well_e: float) -> np.ndarray:
     Returns
     -------
     (rows, cols) ndarray of float64
+        The charge after blooming, electrons.
 
     Examples
     --------
@@ -387,6 +389,7 @@ def expose(light, rng: np.random.Generator, *, gain_adu_per_e: float, offset_adu
     Returns
     -------
     (rows, cols) ndarray of uint8 or uint16
+        Camera counts.
 
     Examples
     --------
@@ -484,6 +487,7 @@ def add_cosmic_rays(image, rng: np.random.Generator, *, n: int, length_px=(1.0, 
     Returns
     -------
     image : (rows, cols) ndarray of the input dtype
+        The frame with the tracks.
     tracks : list of dict
         ``x0``, ``y0``, ``x1``, ``y1`` (ends, pixels), ``charge_e`` and ``rc``
         (the (row, col) pixels it lit).

@@ -161,6 +161,7 @@ def warp_image(image, h, *, shape=None, order: int = 3, conserve: bool = True, c
     Returns
     -------
     (rows, cols) ndarray of float64 (bool for a bool input with order 0)
+        The resampled image.
 
     Examples
     --------
@@ -262,6 +263,7 @@ def keystone(image, truth: dict, *, tilt_deg: float, azimuth_deg: float, distanc
     Returns
     -------
     image : (rows, cols) ndarray of float64
+        The frame as the tilted camera sees it.
     truth : dict
         Positions moved (:func:`map_truth`); ``truth["keystone"]`` holds the parameters.
 

@@ -56,6 +56,7 @@ def judge_spots(table, sigma_px: float, *, narrow: float = 0.5, wide: float = 3.
     Returns
     -------
     reasons : (K,) ndarray of object (str)
+        Why each spot is rejected; ``""`` for a spot kept.
 
     Examples
     --------

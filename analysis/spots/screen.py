@@ -120,6 +120,7 @@ def find_screen(image, *, circle_xyr=None, ellipse=None, margin_px: float = 3.0)
     Returns
     -------
     ScreenMask
+        The mask of the screen's pixels, its centre, semi-axes and how it was found.
 
     Examples
     --------

@@ -166,6 +166,7 @@ def fit_spot_widths(image, xy_px, *, sigma_px: float, center_xy, mask=None, satu
     Returns
     -------
     SpotWidths
+        Major, minor, radial and tangential FWHM of each spot (pixels), its axis angle and amplitude, and whether the fit held.
 
     Examples
     --------

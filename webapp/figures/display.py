@@ -57,6 +57,7 @@ def display_levels(data: np.ndarray, *, scale: str = "linear", clip_pct=(0.5, 99
     Returns
     -------
     (M, N) ndarray of uint8
+        Grey levels for the display.
 
     Examples
     --------
