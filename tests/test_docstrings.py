@@ -32,6 +32,7 @@ CHECKS = {
     "SS03": "the summary ends with a full stop",
     "PR01": "every parameter of the signature is documented",
     "PR02": "no documented parameter is missing from the signature",
+    "PR03": "parameters documented in the signature's order",
     "PR04": "every documented parameter has a type (shapes, dtypes and units go there)",
     "PR07": "every documented parameter has a description",
     "RT01": "a Returns section when the function returns a value",

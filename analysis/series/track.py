@@ -272,15 +272,15 @@ def track_series(frames, beams: BeamSet, geometry: ScreenGeometry, *, energies=N
         the strong spots.
     spot_sigma_px : float, optional, keyword-only
         Gaussian σ of the spots, pixels.
-    gain : float, keyword-only
-        Frame units per detected count.
-    saturation_level : float, optional, keyword-only
-        Full-scale pixel value.
     search_px : float, keyword-only
         Largest distance between prediction and refined position, px (also cut to 45 %
         of the distance to the nearest other beam).
     min_snr : float, keyword-only
         Peak signal-to-noise needed to refine a position.
+    gain : float, keyword-only
+        Frame units per detected count.
+    saturation_level : float, optional, keyword-only
+        Full-scale pixel value.
     fit : sequence of str, keyword-only
         Geometry parameters refitted (see :func:`fit_series_geometry`); empty: keep `geometry`.
     normalise_current : bool, keyword-only

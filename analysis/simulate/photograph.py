@@ -179,6 +179,10 @@ def photograph(pattern: Pattern, *, rng: np.random.Generator, effects=(), option
         Size of the frame (the other sizes are in its pixels).
     spot_sigma_px : float or (K,) array_like, keyword-only
         Gaussian σ of each spot, pixels.
+    intensities : (K,) array_like or callable(Pattern) -> (K,), optional, keyword-only
+        Photons per beam; a callable is asked for the final pattern (after
+        ``off_normal`` or a new frame changed the beams). Default
+        :func:`analysis.simulate.default_intensities`.
     screen_radius_px : float, optional, keyword-only
         As for :func:`analysis.simulate.render_image`.
     screen_center_px : (x, y), optional, keyword-only
@@ -197,10 +201,6 @@ def photograph(pattern: Pattern, *, rng: np.random.Generator, effects=(), option
         Dark level (as for :func:`analysis.simulate.render_image`).
     bit_depth : {8, 16}, keyword-only
         Bits per pixel.
-    intensities : (K,) array_like or callable(Pattern) -> (K,), optional
-        Photons per beam; a callable is asked for the final pattern (after
-        ``off_normal`` or a new frame changed the beams). Default
-        :func:`analysis.simulate.default_intensities`.
 
     Returns
     -------
