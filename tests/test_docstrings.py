@@ -65,6 +65,8 @@ NOT_YET = frozenset({
 def _public_functions(package: str) -> dict:
     """``{"module.qualname": function}`` for every function in an ``__all__`` under `package`,
     and the public methods (class and static ones included) of the classes listed there."""
+    if package == "webapp":  # pages register themselves with the app, which must exist first
+        importlib.import_module("webapp.app")
     pkg = importlib.import_module(package)
     names = [package] + [m.name for m in pkgutil.walk_packages(pkg.__path__, package + ".")
                          if not any(part.startswith("_") for part in m.name.split("."))]
