@@ -36,6 +36,7 @@ __all__ = ["index_series_joint"]
 
 _TOL_PX = 2.5  # matching tolerance of a spot to its beam, px (the single-frame indexing's)
 _SPOT_FLOOR_PX = 0.05  # no camera fits better than this (spot centres are not exact)
+_SAME_CAMERA_PX = 0.25  # a camera refit that moves no spot further leaves the pooled beams as they were
 _READINGS_PER_FRAME = 4  # substrate readings each frame offers to the joint fit
 _ACCEPTANCE_DEG = 52.0  # screen half-angle, common practice (≈ 50–55° for rear-view optics; from memory)
 _ACCEPTANCE_SIGMA_DEG = 5.0  # its spread between instruments (common practice)
@@ -254,12 +255,27 @@ def _overlayer(pool, geom, a_star, hint, n_frames):
     return models[0], lab, fit
 
 
+def _moved_px(pool, g1: ScreenGeometry, g2: ScreenGeometry) -> float:
+    """The largest shift, px, between where two cameras put the momenta of the pooled spots."""
+    e, xy = pool[0], pool[1]
+    k = pixels_to_momentum_e(xy, e, g1)
+    ok = np.all(np.isfinite(k), axis=1)
+    if not ok.any():
+        return 0.0
+    g_ref = k[ok] * (wavelength_A(e[ok]) / wavelength_A(100.0))[:, None]
+    a = momentum_to_pixels(g_ref, 100.0, dataclasses.replace(g1, acceptance_deg=89.0))[0]
+    b = momentum_to_pixels(g_ref, 100.0, dataclasses.replace(g2, acceptance_deg=89.0))[0]
+    d = np.hypot(*(a - b).T)
+    return float(np.nanmax(d)) if np.isfinite(d).any() else float("inf")
+
+
 def _evaluate(pool, reading, hint, frames, geom):
     """Score one substrate reading whose camera `geom` fits the substrate beams of all frames:
     its overlayer on the pooled beams, the camera refitted with every spot the model explains."""
     geom0, a_star = reading
     n_frames = len(frames)
     model, lab, fit = _overlayer(pool, geom, a_star, hint, n_frames)
+    first = geom
     for _ in range(2):  # refit the camera with every spot the model explains, then look again
         assigned = _assign(pool, geom, a_star, model)
         ok = np.all(np.isfinite(assigned), axis=1)
@@ -267,7 +283,8 @@ def _evaluate(pool, reading, hint, frames, geom):
         if new is None:
             break
         geom = new
-    model, lab, fit = _overlayer(pool, geom, a_star, hint, n_frames)
+    if _moved_px(pool, first, geom) > _SAME_CAMERA_PX:  # the search again only where the beams moved
+        model, lab, fit = _overlayer(pool, geom, a_star, hint, n_frames)
     if model is None:
         return None
     assigned = _assign(pool, geom, a_star, model)
