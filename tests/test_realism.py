@@ -416,8 +416,6 @@ SPOT_GAPS = {
 }
 
 READ_GAPS = {
-    "off_normal": "incidence 2–5° off normal: no reading of the substrate net fits (the camera model has no "
-                  "incident k∥: ±g beams no longer share their midpoint, the pattern is off the gun)",
     "keystone": "camera 6–11° off the screen axis: no reading of the substrate net fits (the camera model "
                 "has no perspective term)",
     "elongated_spots": "split elongated spots: the wrong overlayer is read",

@@ -22,7 +22,7 @@ from ..lattice import lattice_points, screen_g_max
 from ..nets import Net2D, classify_net, reciprocal
 from ..optics import ScreenGeometry, local_jacobian, pixels_to_momentum, wavelength_A
 from ..superstructure import same_lattice
-from .camera_refit import _refine
+from .camera_refit import _MIN_SPOTS_FOR_INCIDENCE, _refine
 from .matching import _is_rational, _match, _nn_spacing, _screen_xy, _seen
 from .score import ScoreBreakdown, substrate_breakdown
 
@@ -192,38 +192,56 @@ def fit_substrate(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity
                            "cannot be found (set it by hand, or check that the beam hits at normal incidence).")
     fit_lattice = (geometry is not None) if fit_lattice is None else fit_lattice
     lam = wavelength_A(energy_eV)
-    r = np.hypot(xy[:, 0] - center[0], xy[:, 1] - center[1])
-    r_max = float(r.max()) * 1.03 + tol_px
-    r_min = 0.0
     tree = cKDTree(xy)
     prior = geometry.scale_px if geometry is not None else _scale_prior(screen_radius_px)
     prior_sigma = 0.03 if geometry is not None else float(screen_prior_sigma)
 
-    order = [i for i in np.argsort(r) if r[i] > 3 * tol_px]
-    near = order[:n_candidates]
-    bright = sorted(order, key=lambda i: -inten[i])[:n_candidates]
-    expected = []
-    if reference_a_star_px is not None and len(order):
-        for q in center + _short_beams(reference_a_star_px):
-            d, j = tree.query(q)
-            if np.isfinite(d) and d <= 0.1 * float(np.hypot(q[0] - center[0], q[1] - center[1])) and r[j] > 3 * tol_px:
-                expected.append(int(j))
-    cands = list(dict.fromkeys(expected + near + bright))
-    fits: list[SubstrateFit] = []
-    tried_inv: list[np.ndarray] = []  # inverses of the start bases tried
-    for a_star in _hint_variants(hint):
-        short = _distinct_short_vectors(a_star)
-        for i in cands:
-            v = np.array([xy[i, 0] - center[0], center[1] - xy[i, 1]])  # y up
-            for e in short:
-                start = _similarity_basis(a_star, e, v)
-                if tried_inv and _any_same_lattice(start, np.array(tried_inv), 0.08):
-                    continue  # a symmetry-equivalent start was tried already
-                tried_inv.append(np.linalg.inv(start))
-                f = _try_substrate(xy, tree, inten, energy_eV, a_star, e, v, center, geometry, lam, tol_px,
-                                   r_max, r_min, valid_mask, prior, prior_sigma, fit_lattice, hint)
-                if f is not None and not any(_same_reading(f, g) for g in fits):
-                    fits.append(f)
+    def readings(center):
+        r = np.hypot(xy[:, 0] - center[0], xy[:, 1] - center[1])
+        r_max = float(r.max()) * 1.03 + tol_px
+        r_min = 0.0
+        order = [i for i in np.argsort(r) if r[i] > 3 * tol_px]
+        near = order[:n_candidates]
+        bright = sorted(order, key=lambda i: -inten[i])[:n_candidates]
+        expected = []
+        if reference_a_star_px is not None and len(order):
+            for q in center + _short_beams(reference_a_star_px):
+                d, j = tree.query(q)
+                if np.isfinite(d) and d <= 0.1 * float(np.hypot(q[0] - center[0], q[1] - center[1])) and \
+                        r[j] > 3 * tol_px:
+                    expected.append(int(j))
+        cands = list(dict.fromkeys(expected + near + bright))
+        found: list[SubstrateFit] = []
+        tried_inv: list[np.ndarray] = []  # inverses of the start bases tried
+        for a_star in _hint_variants(hint):
+            short = _distinct_short_vectors(a_star)
+            for i in cands:
+                v = np.array([xy[i, 0] - center[0], center[1] - xy[i, 1]])  # y up
+                for e in short:
+                    start = _similarity_basis(a_star, e, v)
+                    if tried_inv and _any_same_lattice(start, np.array(tried_inv), 0.08):
+                        continue  # a symmetry-equivalent start was tried already
+                    tried_inv.append(np.linalg.inv(start))
+                    f = _try_substrate(xy, tree, inten, energy_eV, a_star, e, v, center, geometry, lam, tol_px,
+                                       r_max, r_min, valid_mask, prior, prior_sigma, fit_lattice, hint)
+                    if f is not None and not any(_same_reading(f, g) for g in found):
+                        found.append(f)
+        return found
+
+    fits = readings(center)
+    if not fits and center_px is None and geometry is None:
+        # off normal incidence the ±g pairs no longer share their midpoint (the radial law bends
+        # them apart) and the specular beam leaves the gun: start from the bright spots near the
+        # middle instead, each taken as the specular (0,0) beam; the readings then fit the incidence
+        r0 = np.hypot(xy[:, 0] - center[0], xy[:, 1] - center[1])
+        middle = np.flatnonzero(r0 <= 0.3 * float(r0.max()))
+        for j in middle[np.argsort(-inten[middle], kind="stable")][:3]:
+            fits = readings(xy[j])
+            if fits:
+                fits = [dataclasses.replace(f, notes=tuple(f.notes) + (
+                    "the centre from ±g pairs gave no reading: started from a bright spot near the middle "
+                    "as the specular beam",)) for f in fits]
+                break
     if not fits:
         raise FitError(f"No reading of the {classify_net(hint)} substrate net "
                        f"({hint.label or 'given'}) fits the {len(xy)} spots.")
@@ -365,6 +383,8 @@ def _try_substrate(xy, tree, inten, energy_eV, a_star, e, v, center, geometry, l
             pi, oj = _match(pred, tree, tol)
         if len(pi) < 2 or np.linalg.matrix_rank(hk_all[pi]) < 2:
             return None
+        if n_stage >= 2 and len(pi) >= _MIN_SPOTS_FOR_INCIDENCE:  # the beam may be off normal
+            free = free + ("incidence_x", "incidence_y")
         geom, lattice, _, _ = _refine(xy[oj], hk_all[pi], energy_eV, geom, lattice, free,
                                       fit_lattice and rad == np.inf, rtol=1e-6)
     pred = _screen_xy(hk_all @ lattice, energy_eV, geom)
@@ -372,6 +392,8 @@ def _try_substrate(xy, tree, inten, energy_eV, a_star, e, v, center, geometry, l
     if len(pi) < 3:
         return None
     last = free_geo + (("ellipticity",) if geometry is None else ())
+    if len(pi) >= _MIN_SPOTS_FOR_INCIDENCE:
+        last = last + ("incidence_x", "incidence_y")
     geom, lattice, res, sig = _refine(xy[oj], hk_all[pi], energy_eV, geom, lattice, last, fit_lattice)
     pred = _screen_xy(hk_all @ lattice, energy_eV, geom)
     pi, oj = _match(pred, tree, tol_px)
