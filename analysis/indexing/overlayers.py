@@ -721,10 +721,13 @@ def find_overlayers(hk: np.ndarray, integer: np.ndarray, substrate_fit: Substrat
             continue
         scored.append((sc, kt))
     models = _prefer_simple([_describe(ctx, sc, kind_tol=kt) for sc, kt in scored[: n_results + 1]])
-    models = [mm if _significant(mm) else dataclasses.replace(
-        mm, notes=mm.notes + (f"not significant: {int(mm.score_terms['explained'])} spots explained, "
-                              f"fewer than a net with its free parameters fits by chance",)) for mm in models]
-    models.sort(key=lambda mm: (not _significant(mm), -mm.score))  # "none" before a chance fit
+    chance = {id(mm): _chance_explained(ctx, mm) for mm in models}
+    significant = {id(mm): _significant(mm, chance[id(mm)]) for mm in models}
+    models = [mm if significant[id(mm)] else dataclasses.replace(
+        mm, notes=mm.notes + (f"not significant: {int(mm.score_terms['explained'])} spots explained, where "
+                              f"{chance[id(mm)]:.1f} would fall on its beams by chance (or fewer than a net "
+                              f"with its free parameters fits)",)) for mm in models]
+    models.sort(key=lambda mm: (not _significant(mm, _chance_explained(ctx, mm)), -mm.score))  # "none" first
     out, keys = [], []
     for mm in models:
         key = (mm.wood, mm.n_domains, mm.kind) if mm.wood else (mm.n_domains, mm.kind, _lattice_key(mm.matrix))
@@ -776,17 +779,43 @@ def _lead_with_plainest_domain(ctx: _Context, mm: OverlayerModel) -> OverlayerMo
 _MIN_EXPLAINED = {"incommensurate": 4, "coincidence": 3, "commensurate": 2}
 
 
-def _significant(mm: OverlayerModel) -> bool:
-    """Whether a model explains more fractional spots than its freedom fits by chance.
+def _significant(mm: OverlayerModel, chance: float = 0.0) -> bool:
+    """Whether a model explains more fractional spots than its freedom fits by chance, and
+    clearly more than stray spots put on its beams by chance (`chance`, the expected number:
+    :func:`_chance_explained`; "clearly": by three Poisson σ).
 
     >>> from types import SimpleNamespace as NS
     >>> terms = {"explained": 2.0}
     >>> _significant(NS(kind="incommensurate", score_terms=terms)), _significant(NS(kind="commensurate", score_terms=terms))
     (False, True)
+    >>> _significant(NS(kind="commensurate", score_terms={"explained": 40.0}), chance=30.0)
+    False
     """
     if mm.kind == "none":
         return True
-    return mm.score_terms["explained"] >= _MIN_EXPLAINED.get(mm.kind, 2)
+    e = mm.score_terms["explained"]
+    return e >= _MIN_EXPLAINED.get(mm.kind, 2) and e >= chance + 3.0 * math.sqrt(chance)
+
+
+def _chance_explained(ctx: _Context, mm: OverlayerModel) -> float:
+    """Expected number of the trusted fractional spots that would land on a model's beams
+    by chance if they were strewn evenly over the screen: their number times the share of
+    reciprocal space within the matching tolerance of a predicted beam. Per substrate
+    cell a domain of |det M| = m puts m − 1 fractional beams, and a model with satellites
+    one more per satellite step (:func:`_satellite_steps`).
+    """
+    if mm.kind == "none":
+        return 0.0
+    rel = ctx.reliable if ctx.reliable is not None else np.ones(len(ctx.hk), bool)
+    n = int((~ctx.integer & rel).sum())
+    mats = [np.asarray(d, dtype=np.float64) for d in mm.domains]
+    per_cell = sum(max(abs(float(np.linalg.det(m))) - 1.0, 0.0) for m in mats)
+    if mm.score_terms["satellites"] > 0:  # its satellites explain spots: their positions count too
+        bs = np.linalg.inv(np.array(mats)).transpose(0, 2, 1)
+        per_cell += len(mats) * _satellite_steps(bs, ctx.a_star)[0].shape[1]
+    cell = abs(float(np.linalg.det(ctx.a_star)))
+    share = min(1.0, per_cell * math.pi * ctx.tol_g**2 / cell)
+    return n * share
 
 
 def _prefer_simple(models: list[OverlayerModel]) -> list[OverlayerModel]:
