@@ -247,6 +247,8 @@ def _glides(ctx, mats):
         if allowed.sum() < 2 or found[allowed].sum() < 2 or found[allowed].mean() < MIN_SEEN_FRACTION:
             continue
         ref = float(np.median(inten[allowed & found]))
+        if not ref > 0:  # no brightness to compare with
+            continue
         # filled: another domain produces the beam and cannot extinguish it there
         others = member & ~may_vanish
         others[:, d] = False
