@@ -400,8 +400,9 @@ def result_object(record: dict):
         ref = image_array(params["reference_sha256"])
     cal = None
     if params.get("calibration_from"):
-        saved = runtime.get_store().get_analysis(params["calibration_from"])
-        cal = calibration_of(saved.result if saved else None)
+        from webapp import calibrations
+
+        cal = calibrations.resolve(runtime.get_store(), params["calibration_from"])
     analyze(image_array(sha), energy_eV=params.get("energy_eV"), substrate=params.get("substrate", ""),
             edits=record.get("edits"), reference=ref, reference_energy_eV=params.get("reference_energy_eV"),
             calibration=cal, cache_key=key)

@@ -13,9 +13,10 @@ functions that tests call directly):
 - ``results`` the result panel, the other candidates and the real-space drawing
 - ``model``   trying a typed model
 - ``export``  saving with a share link and the exports
+- ``calibration`` named calibrations: saved, picked by name, their provenance shown
 """
 
-from . import export, job, layout, model, pattern, results, state, upload
+from . import calibration, export, job, layout, model, pattern, results, state, upload
 from .export import on_export, on_save
 from .job import on_new_image, on_new_result, on_stop, run_job
 from .layout import DEFAULT_OVERLAYS, workspace
@@ -28,5 +29,5 @@ __all__ = [
     "workspace", "DEFAULT_OVERLAYS", "on_upload", "on_reference", "render_pattern", "display_image",
     "on_graph_event", "on_undo_last", "edit_summary", "run_job", "on_stop", "on_new_image", "on_new_result", "show_result",
     "on_try_model", "on_save", "on_export",
-    "export", "job", "layout", "model", "pattern", "results", "state", "upload",
+    "calibration", "export", "job", "layout", "model", "pattern", "results", "state", "upload",
 ]

@@ -7,7 +7,7 @@ from dash.exceptions import PreventUpdate
 
 from analysis.errors import ParameterError
 from analysis.timelimit import time_limit
-from webapp import ids, runtime, service
+from webapp import calibrations, ids, runtime, service
 from webapp.jobs import job_controls, progress_reporter
 from webapp.pages.common import fail, note, triggered
 
@@ -40,7 +40,8 @@ def run_job(set_progress, n_clicks, edits, image, energy, substrate, source, ref
     ref_energy : float, optional
         Its energy, eV.
     calibration_token : str, optional
-        Share token of a saved analysis whose camera model is reused.
+        A named calibration (``"cal:<key>"``) or the share token of a saved analysis whose camera
+        model is reused.
 
     Returns
     -------
@@ -68,8 +69,7 @@ def run_job(set_progress, n_clicks, edits, image, energy, substrate, source, ref
             ref = service.image_array(reference["sha"])
             ref_e = service.check_energy(ref_energy if ref_energy not in (None, "") else e)
         if calibration_token:
-            saved = runtime.get_store().get_analysis(calibration_token)
-            cal = service.calibration_of(saved.result if saved else None)
+            cal = calibrations.resolve(runtime.get_store(), calibration_token)
             if cal is None:
                 raise ParameterError("The chosen calibration is no longer available; pick another or none.")
         params = {"energy_eV": e, "substrate": substrate.strip()}

@@ -4,8 +4,9 @@ from __future__ import annotations
 
 from dash import dcc, html
 
-from webapp import figures, ids, runtime, service
+from webapp import figures, ids, service
 
+from .calibration import calibration_choices
 from .spot_tools import tools_panels
 from .state import empty_edits
 
@@ -129,6 +130,18 @@ def workspace(*, readonly: bool = False, image: dict | None = None, record: dict
                 dcc.Dropdown(id=ids.CALIBRATION, options=calibration_choices(), placeholder="fit it on this image",
                              className="grow"),
             ]),
+            html.Div(id=ids.CAL_INFO),
+            html.Div(className="row", children=[
+                html.Label("Keep the camera model of this analysis as", htmlFor=ids.CAL_NAME),
+            ]),
+            html.Div(className="row", children=[
+                dcc.Input(id=ids.CAL_NAME, type="text", placeholder="calibration name", maxLength=80, className="grow"),
+                dcc.Input(id=ids.CAL_CAMERA, type="text", placeholder="camera", maxLength=80),
+                dcc.Input(id=ids.CAL_E_LO, type="number", placeholder="from eV", style={"width": "6em"}),
+                dcc.Input(id=ids.CAL_E_HI, type="number", placeholder="to eV", style={"width": "6em"}),
+                html.Button("Save this calibration", id=ids.CAL_SAVE, className="small"),
+            ]),
+            html.Div(id=ids.CAL_NOTE, **{"aria-live": "polite"}),
         ]),
         html.Div(className="row", children=[
             html.Button("Analyse", id=ids.RUN, className="primary"),
@@ -192,24 +205,3 @@ def workspace(*, readonly: bool = False, image: dict | None = None, record: dict
         dcc.Store(id=ids.SOURCE, data={"readonly": bool(readonly), "token": token}),
         left, right,
     ])
-
-
-def calibration_choices() -> list[dict]:
-    """Saved analyses whose result carries a screen calibration, newest first.
-
-    Returns
-    -------
-    list of dict
-        Dropdown options ``{"label", "value"}``, value the share token.
-    """
-    try:
-        saved = runtime.get_store().recent(40)
-    except Exception:  # noqa: BLE001 - a list of choices must never break the page
-        return []
-    out = []
-    for a in saved:
-        if service.calibration_of(a.result) is not None:
-            label = f"{a.sample_name or a.image_filename} · {a.created_at:%Y-%m-%d}"
-            out.append({"label": label[:80], "value": a.token})
-    return out
-
