@@ -165,3 +165,10 @@ LIVE_LINK = "live-link"
 LIVE_EXPORT_CSV = "live-export-csv"
 LIVE_EXPORT_JSON = "live-export-json"
 LIVE_DOWNLOAD = "live-download"
+
+# compare page (/compare?a=TOKEN&b=TOKEN)
+COMPARE_A = "compare-a"
+COMPARE_B = "compare-b"
+COMPARE_BODY = "compare-body"
+COMPARE_LINK = "compare-link"
+COMPARE_TABLE = "compare-table"
