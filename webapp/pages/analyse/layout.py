@@ -66,6 +66,17 @@ def workspace(*, readonly: bool = False, image: dict | None = None, record: dict
                             tooltip={"placement": "bottom"}),
         ]),
         html.Div(className="control wide", children=[
+            html.Label("Turn the view (clockwise)", htmlFor=ids.ROTATE),
+            dcc.RadioItems(id=ids.ROTATE, inline=True, value=0,
+                           options=[{"label": f"{r}°", "value": r} for r in (0, 90, 180, 270)]),
+            dcc.Checklist(id=ids.VIEW_OPTIONS, inline=True, value=[], options=[
+                {"label": "mirror left–right", "value": "mirror"},
+                {"label": "minus the estimated background", "value": "minus_bg"},
+            ]),
+            html.Span("The view only: positions, results and exports stay in the camera's frame.",
+                      className="muted"),
+        ]),
+        html.Div(className="control wide", children=[
             html.Label("Show"),
             dcc.Checklist(id=ids.OVERLAYS, options=[{"label": l, "value": v} for v, l in figures.OVERLAY_CHOICES],
                           value=DEFAULT_OVERLAYS, inline=True),

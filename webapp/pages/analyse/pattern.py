@@ -9,26 +9,54 @@ import numpy as np
 from dash import Input, Output, State, callback
 from dash.exceptions import PreventUpdate
 
+from analysis.spots import measure_image
 from webapp import figures, ids, service
+from webapp.figures.orient import clean_view, orient_figure, orient_levels, to_camera
 from webapp.pages.common import fail, triggered
 
 from .state import candidate, empty_edits, result_of
 
-__all__ = ["display_image", "render_pattern", "on_graph_event", "on_undo_last", "edit_summary"]
+__all__ = ["display_image", "background_image", "render_pattern", "camera_point", "on_graph_event", "on_undo_last",
+           "edit_summary"]
 
 MAX_UNDO = 50  # edits remembered for "Undo last edit"
 
+@functools.lru_cache(maxsize=4)
+def background_image(sha: str) -> np.ndarray:
+    """The smooth background the spot search estimates on a stored image (second pass, spots left out).
+
+    Parameters
+    ----------
+    sha : str
+        The image's SHA-256 (the store's key).
+
+    Returns
+    -------
+    (M, N) ndarray of float64
+        The background, camera values (read-only).
+    """
+    bg = np.asarray(measure_image(service.image_array(sha), accept=False).background.background, dtype=np.float64)
+    bg.flags.writeable = False
+    return bg
+
+
 @functools.lru_cache(maxsize=16)
-def display_image(sha: str, scale: str, gamma: float, clip_lo: float, clip_hi: float) -> tuple[str, int]:
-    """PNG data URL of a stored image at the chosen contrast, and its downsampling factor."""
+def display_image(sha: str, scale: str, gamma: float, clip_lo: float, clip_hi: float,
+                  rotate_deg: int = 0, mirror: bool = False, minus_background: bool = False) -> tuple[str, int]:
+    """PNG data URL of a stored image at the chosen contrast, turned and mirrored as displayed
+    (optionally minus the estimated background), and its downsampling factor."""
     data = service.image_array(sha)
+    if minus_background:
+        data = data - background_image(sha)
+    data = orient_levels(data, rotate_deg=rotate_deg, mirror=mirror)
     small, f = figures.downsample(data, 1024)
     levels = figures.display_levels(small, scale=scale, clip_pct=(clip_lo, clip_hi), gamma=gamma)
     return figures.png_data_url(levels), f
 
 
 
-def render_pattern(image, record, edits, model, scale, gamma, clip, overlays, pick, focus=None, source=None):
+def render_pattern(image, record, edits, model, scale, gamma, clip, overlays, pick, focus=None, rotate=0,
+                   view=None, source=None):
     """The pattern figure with the chosen contrast and overlays; `focus` is the domain brought forward.
 
     Parameters
@@ -53,6 +81,11 @@ def render_pattern(image, record, edits, model, scale, gamma, clip, overlays, pi
         The candidate drawn instead of the best answer.
     focus : int, optional
         The domain brought forward.
+    rotate : int, optional
+        Clockwise turn of the display, degrees (0, 90, 180, 270).
+    view : list of str, optional
+        ``"mirror"`` mirrors the display left–right, ``"minus_bg"`` shows the image minus
+        the background the spot search estimated. Markers follow; coordinates stay the camera's.
     source : dict or None
         The source store: ``readonly`` and the share token.
 
@@ -64,8 +97,11 @@ def render_pattern(image, record, edits, model, scale, gamma, clip, overlays, pi
     if not image or not image.get("sha"):
         return figures.empty_figure()
     clip = clip or [0.5, 99.95]
+    view = [v for v in (view or []) if isinstance(v, str)]
+    rot, mirror = clean_view(rotate, "mirror" in view)
     try:
-        url, f = display_image(image["sha"], scale or "linear", float(gamma or 0.5), float(clip[0]), float(clip[1]))
+        url, f = display_image(image["sha"], scale or "linear", float(gamma or 0.5), float(clip[0]), float(clip[1]),
+                               rot, mirror, "minus_bg" in view)
     except Exception as err:  # noqa: BLE001
         return figures.empty_figure(fail(err))
     result = result_of(record, image)
@@ -76,13 +112,40 @@ def render_pattern(image, record, edits, model, scale, gamma, clip, overlays, pi
             cand = {**cand, "predicted": service.candidate_predictions(record, pick)}
         except Exception as err:  # noqa: BLE001 - fall back to the local linear prediction
             fail(err)
-    return figures.pattern_figure(url, width=image["width"], height=image["height"], factor=f, result=result,
-                                  overlays=overlays or [], edits=ed, model=model,
-                                  candidate=cand, focus=focus if isinstance(focus, int) else None,
-                                  editable=not (source or {}).get("readonly"), revision=image["sha"])
+    fig = figures.pattern_figure(url, width=image["width"], height=image["height"], factor=f, result=result,
+                                 overlays=overlays or [], edits=ed, model=model,
+                                 candidate=cand, focus=focus if isinstance(focus, int) else None,
+                                 editable=not (source or {}).get("readonly"),
+                                 revision=f"{image['sha']}:{rot}:{int(mirror)}")
+    return orient_figure(fig, width=image["width"], height=image["height"], rotate_deg=rot, mirror=mirror)
 
 
-def on_graph_event(click, relayout, undo, mode, edits, image, source):
+def camera_point(x, y, image, rotate=0, view=None):
+    """Camera pixels of a point given on the (turned, mirrored) display.
+
+    Parameters
+    ----------
+    x, y : float
+        Display x and y, pixels.
+    image : dict
+        The image store (``width``, ``height``).
+    rotate : int, optional
+        Clockwise turn of the display, degrees.
+    view : list of str, optional
+        The view options (``"mirror"``).
+
+    Returns
+    -------
+    (float, float)
+        Camera x (column) and y (row), pixels.
+    """
+    rot, mirror = clean_view(rotate, "mirror" in (view or []))
+    cx, cy = to_camera(float(x), float(y), width=image["width"], height=image["height"], rotate_deg=rot,
+                       mirror=mirror)
+    return float(cx), float(cy)
+
+
+def on_graph_event(click, relayout, undo, mode, edits, image, source, rotate=0, view=None):
     """A click adds or drops a spot or sets the centre; dragging the centre circle moves it.
 
     Parameters
@@ -101,6 +164,10 @@ def on_graph_event(click, relayout, undo, mode, edits, image, source):
         The image store: ``sha``, ``filename``, ``width``, ``height``.
     source : dict or None
         The source store: ``readonly`` and the share token.
+    rotate : int, optional
+        Clockwise turn of the display, degrees (clicks are turned back to camera pixels).
+    view : list of str, optional
+        The view options (``"mirror"``).
 
     Returns
     -------
@@ -122,7 +189,7 @@ def on_graph_event(click, relayout, undo, mode, edits, image, source):
         c = _center_from_relayout(relayout)
         if c is None:
             raise PreventUpdate
-        ed["center"] = c
+        ed["center"] = [round(v, 2) for v in camera_point(c[0], c[1], image, rotate, view)]
     else:
         if not click or not click.get("points") or mode == "none":
             raise PreventUpdate
@@ -130,7 +197,7 @@ def on_graph_event(click, relayout, undo, mode, edits, image, source):
         x, y = p.get("x"), p.get("y")
         if x is None or y is None:
             raise PreventUpdate
-        x, y = float(x), float(y)
+        x, y = camera_point(x, y, image, rotate, view)
         if not (-0.5 <= x <= image["width"] - 0.5 and -0.5 <= y <= image["height"] - 0.5):
             raise PreventUpdate
         cd = p.get("customdata")
@@ -239,13 +306,15 @@ callback(
     Output(ids.GRAPH, "figure"),
     Input(ids.IMAGE, "data"), Input(ids.RESULT, "data"), Input(ids.EDITS, "data"), Input(ids.MODEL, "data"),
     Input(ids.SCALE, "value"), Input(ids.GAMMA, "value"), Input(ids.CLIP, "value"), Input(ids.OVERLAYS, "value"),
-    Input(ids.CANDIDATE_PICK, "value"), Input(ids.DOMAIN_FOCUS, "data"), State(ids.SOURCE, "data"),
+    Input(ids.CANDIDATE_PICK, "value"), Input(ids.DOMAIN_FOCUS, "data"), Input(ids.ROTATE, "value"),
+    Input(ids.VIEW_OPTIONS, "value"), State(ids.SOURCE, "data"),
 )(render_pattern)
 
 callback(
     Output(ids.EDITS, "data"),
     Input(ids.GRAPH, "clickData"), Input(ids.GRAPH, "relayoutData"), Input(ids.UNDO_EDITS, "n_clicks"),
     State(ids.CLICK_MODE, "value"), State(ids.EDITS, "data"), State(ids.IMAGE, "data"), State(ids.SOURCE, "data"),
+    State(ids.ROTATE, "value"), State(ids.VIEW_OPTIONS, "value"),
     prevent_initial_call=True,
 )(on_graph_event)
 

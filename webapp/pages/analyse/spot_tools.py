@@ -10,6 +10,7 @@ from __future__ import annotations
 import functools
 import math
 
+import numpy as np
 from dash import Input, Output, Patch, State, callback, dash_table, dcc, html
 from dash.exceptions import PreventUpdate
 
@@ -23,6 +24,7 @@ from webapp.pages.common import fail, note, safe_stem
 
 from webapp.figures.common import PALETTE
 from webapp.figures.line_profile import PROFILE_UNITS, profile_figure
+from webapp.figures.orient import clean_view, to_camera
 
 from .state import result_of
 
@@ -128,7 +130,7 @@ def on_draw_line(n_clicks):
     return fig
 
 
-def line_from_relayout(relayout):
+def line_from_relayout(relayout, image=None, rotate=0, view=None):
     """The ends (x0, y0, x1, y1) of the newest line drawn on the pattern, or of a drawn line
     moved afterwards (``shapes[i].x0``… with i ≥ 1: shape 0 is the pattern's centre circle),
     from the pattern's relayoutData.
@@ -137,11 +139,18 @@ def line_from_relayout(relayout):
     ----------
     relayout : dict or None
         The pattern's relayoutData.
+    image : dict, optional
+        The image store (``width``, ``height``): needed to turn a line drawn on a turned or
+        mirrored view back to camera pixels.
+    rotate : int, optional
+        Clockwise turn of the view, degrees.
+    view : list of str, optional
+        The view options (``"mirror"``).
 
     Returns
     -------
     tuple of float, or None
-        (x0, y0, x1, y1) in the figure's pixels; None when no line changed.
+        (x0, y0, x1, y1) in camera pixels; None when no line changed.
     """
     if not isinstance(relayout, dict):
         raise PreventUpdate
@@ -161,6 +170,11 @@ def line_from_relayout(relayout):
         raise PreventUpdate from None
     if not all(map(math.isfinite, vals)):
         raise PreventUpdate
+    rot, mirror = clean_view(rotate, "mirror" in (view or []))
+    if (rot or mirror) and isinstance(image, dict) and image.get("width"):
+        xs, ys = to_camera(np.array(vals[0::2]), np.array(vals[1::2]), width=image["width"],
+                           height=image["height"], rotate_deg=rot, mirror=mirror)
+        vals = [round(float(v), 2) for v in (xs[0], ys[0], xs[1], ys[1])]
     return tuple(vals)
 
 
@@ -374,7 +388,8 @@ def table_csv(n_clicks, record, image):
 callback(Output(ids.GRAPH, "figure", allow_duplicate=True), Input(ids.PROFILE_DRAW, "n_clicks"),
          prevent_initial_call=True)(on_draw_line)
 callback(Output(ids.PROFILE_X0, "value"), Output(ids.PROFILE_Y0, "value"), Output(ids.PROFILE_X1, "value"),
-         Output(ids.PROFILE_Y1, "value"), Input(ids.GRAPH, "relayoutData"),
+         Output(ids.PROFILE_Y1, "value"), Input(ids.GRAPH, "relayoutData"), State(ids.IMAGE, "data"),
+         State(ids.ROTATE, "value"), State(ids.VIEW_OPTIONS, "value"),
          prevent_initial_call=True)(line_from_relayout)
 callback(Output(ids.PROFILE_GRAPH, "figure"), Output(ids.PROFILE_NOTE, "children"),
          Input(ids.PROFILE_X0, "value"), Input(ids.PROFILE_Y0, "value"), Input(ids.PROFILE_X1, "value"),
