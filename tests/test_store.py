@@ -107,3 +107,68 @@ def test_processes_writing_at_once_lose_nothing(store_url):
         a = s.get_analysis(token)
         assert a.parameters == {"worker": worker, "i": i} and a.result == {"n": worker * 1000 + i}
     assert s.image_info(hashlib.sha256(b"shared image").hexdigest()) is not None
+
+
+def _saved(s, sha, name, notes="", summary=""):
+    return s.save_analysis(image_sha256=sha, parameters={}, edits={}, result=None, sample_name=name, notes=notes,
+                           summary=summary)
+
+
+def test_search_by_sample_name_notes_and_wood_notation(store_url):
+    s = Store(store_url)
+    sha = _image(s)
+    pt = _saved(s, sha, "Pt(111) run 7", notes="oxygen dose 3 L at 300 K", summary="p(2×2)")
+    ru = _saved(s, sha, "Ru(0001) B", notes="after anneal", summary="(√3×√3)R30°")
+    cu = _saved(s, sha, "Cu(100) 50%", notes="CO exposure", summary="c(2×2)")
+    found = lambda q: {a.token for a in s.recent(50, query=q)}  # noqa: E731
+    assert found("pt(111)") == {pt.token}  # any case
+    assert found("OXYGEN") == {pt.token}  # in the notes
+    assert found("anneal ru") == {ru.token}  # every word must match
+    assert found("anneal pt") == set()
+    # Wood notation (E. A. Wood, J. Appl. Phys. 35, 1306 (1964)) as typed on a keyboard
+    assert found("sqrt3xsqrt3") == {ru.token} and found("(√3×√3)R30°") == {ru.token} and found("r30") == {ru.token}
+    assert found("p(2x2)") == {pt.token} and found("2x2") == {pt.token, cu.token}
+    assert found("%") == {cu.token}  # a LIKE wildcard is searched as a character
+    assert found("") == {pt.token, ru.token, cu.token}
+    assert s.count_analyses(query="2x2") == 2
+
+
+def test_delete_is_recoverable_then_purged_after_30_days(store_url):
+    from datetime import datetime, timedelta, timezone
+
+    s = Store(store_url)
+    sha = _image(s)
+    keep, gone = _saved(s, sha, "kept"), _saved(s, sha, "deleted one", summary="p(2×1)")
+    assert s.delete_analysis(gone.token) is True
+    assert s.delete_analysis(gone.token) is False  # already deleted
+    assert s.delete_analysis("not a token!") is False
+    assert [a.token for a in s.recent(10)] == [keep.token] and s.count_analyses() == 1
+    assert s.get_analysis(gone.token) is None  # its link stops working
+    assert s.recent(10, query="2x1") == []
+    (d,) = s.deleted()
+    assert d.token == gone.token and d.deleted_at is not None and d.sample_name == "deleted one"
+    assert s.restore_analysis(gone.token) is True and s.restore_analysis(gone.token) is False
+    assert s.get_analysis(gone.token).sample_name == "deleted one" and s.deleted() == []
+    s.delete_analysis(gone.token)
+    now = datetime.now(timezone.utc)
+    assert s.purge_deleted(now=now + timedelta(days=29)) == 0  # still inside the 30 days
+    assert s.purge_deleted(now=now + timedelta(days=31)) == 1
+    assert s.deleted() == [] and s.restore_analysis(gone.token) is False
+    assert [a.token for a in s.recent(10)] == [keep.token]
+
+
+def test_old_database_gains_the_deleted_column(tmp_path):
+    import sqlite3
+
+    url = f"sqlite:///{tmp_path / 'old.sqlite3'}"
+    s = Store(url)
+    old = _saved(s, _image(s), "from before")
+    s.close()
+    con = sqlite3.connect(tmp_path / "old.sqlite3")  # the table as it was before deletion existed
+    con.execute("DROP INDEX ix_analyses_deleted_at")
+    con.execute("ALTER TABLE analyses DROP COLUMN deleted_at")
+    con.commit()
+    con.close()
+    s = Store(url)
+    assert [a.token for a in s.recent(5)] == [old.token]
+    assert s.delete_analysis(old.token) and s.deleted()[0].token == old.token

@@ -53,6 +53,7 @@ def get_store() -> Store:
     with _lock:
         if _store is None or _store.url != s.database_url:
             _store = Store(s.database_url)
+            _store.purge_deleted()  # on start-up: deleted analyses past their keeping time go for good
         return _store
 
 

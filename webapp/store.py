@@ -19,7 +19,7 @@ import re
 import secrets
 import time
 from dataclasses import dataclass
-from datetime import datetime, timezone
+from datetime import datetime, timedelta, timezone
 
 import sqlalchemy as sa
 from sqlalchemy import event
@@ -27,12 +27,15 @@ from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
 
 from analysis.errors import ParameterError
 
-__all__ = ["Store", "SavedAnalysis", "StoredImage", "TOKEN_RE", "SHA_RE", "MAX_SAMPLE_CHARS", "MAX_NOTES_CHARS"]
+__all__ = ["Store", "SavedAnalysis", "StoredImage", "TOKEN_RE", "SHA_RE", "MAX_SAMPLE_CHARS", "MAX_NOTES_CHARS",
+           "KEEP_DELETED_DAYS", "search_terms"]
 
 TOKEN_RE = re.compile(r"[A-Za-z0-9_-]{16,64}")
 SHA_RE = re.compile(r"[0-9a-f]{64}")
 MAX_SAMPLE_CHARS = 200
 MAX_NOTES_CHARS = 20_000
+KEEP_DELETED_DAYS = 30  # a deleted analysis can be restored this long, then it is purged
+MAX_QUERY_CHARS = 200
 
 
 class _Base(DeclarativeBase):
@@ -63,6 +66,7 @@ class _AnalysisRow(_Base):
     notes: Mapped[str] = mapped_column(sa.Text, default="")
     copied_from: Mapped[str | None] = mapped_column(sa.String(64), nullable=True)
     created_at: Mapped[datetime] = mapped_column(sa.DateTime(timezone=True), index=True)
+    deleted_at: Mapped[datetime | None] = mapped_column(sa.DateTime(timezone=True), nullable=True, index=True)
 
 
 @dataclass(frozen=True)
@@ -89,10 +93,58 @@ class SavedAnalysis:
     notes: str
     copied_from: str | None
     created_at: datetime
+    deleted_at: datetime | None = None
 
 
 def _utc(dt: datetime) -> datetime:
     return dt if dt.tzinfo else dt.replace(tzinfo=timezone.utc)
+
+
+_TIMES = re.compile(r"(?<=[0-9)\]])\s*[xX*]\s*(?=[0-9(√s])")
+
+
+def search_terms(query: str) -> list[tuple[str, ...]]:
+    """The words of a search, each with the spellings it also matches (lower case).
+
+    A Wood notation may be typed with ``x`` for ``×`` and ``sqrt`` for ``√``; both forms
+    are searched.
+
+    Parameters
+    ----------
+    query : str
+        What was typed (at most 200 characters are used).
+
+    Returns
+    -------
+    list of tuple of str
+        One tuple of spellings per word; a saved analysis matches when every word matches.
+
+    Examples
+    --------
+    >>> search_terms("Pt oxygen (sqrt3xsqrt3)R30")
+    [('pt',), ('oxygen',), ('(sqrt3xsqrt3)r30', '(√3×√3)r30')]
+    >>> search_terms("2x2")
+    [('2x2', '2×2')]
+    """
+    out = []
+    for word in str(query or "")[:MAX_QUERY_CHARS].split():
+        w = word.lower()
+        wood = _TIMES.sub("×", w.replace("sqrt", "√")).replace("°", "")
+        out.append((w,) if wood == w else (w, wood))
+    return out
+
+
+def _add_missing_columns(eng: sa.Engine) -> None:
+    """Columns added after a database was made (``create_all`` leaves existing tables alone)."""
+    have = {c["name"] for c in sa.inspect(eng).get_columns("analyses")}
+    if "deleted_at" not in have:
+        kind = "TIMESTAMP WITH TIME ZONE" if eng.dialect.name == "postgresql" else "DATETIME"
+        try:
+            with eng.begin() as conn:
+                conn.exec_driver_sql(f"ALTER TABLE analyses ADD COLUMN deleted_at {kind}")
+        except (sa.exc.OperationalError, sa.exc.ProgrammingError):  # another process added it first
+            if "deleted_at" not in {c["name"] for c in sa.inspect(eng).get_columns("analyses")}:
+                raise
 
 
 def _make_engine(url: str) -> sa.Engine:
@@ -153,6 +205,7 @@ class Store:
                 if attempt == 4:
                     raise
                 time.sleep(0.2 * (attempt + 1))
+        _add_missing_columns(self.engine)
 
     def _eng(self) -> sa.Engine:
         if os.getpid() != self._pid:  # forked job process: never share the parent's connections
@@ -320,7 +373,7 @@ class Store:
                              result, str(summary)[:200], sample_name, notes, copied_from, now)
 
     def get_analysis(self, token: str) -> SavedAnalysis | None:
-        """The analysis saved under `token`, or None (also for a malformed token).
+        """The analysis saved under `token`, or None (also for a malformed token or a deleted analysis).
 
         Parameters
         ----------
@@ -337,8 +390,8 @@ class Store:
         rows = self._select(_AnalysisRow.token == token, limit=1)
         return rows[0] if rows else None
 
-    def recent(self, limit: int = 50, *, offset: int = 0) -> list[SavedAnalysis]:
-        """The newest saved analyses first.
+    def recent(self, limit: int = 50, *, offset: int = 0, query: str = "") -> list[SavedAnalysis]:
+        """The newest saved analyses first (deleted ones left out).
 
         Parameters
         ----------
@@ -346,35 +399,133 @@ class Store:
             Most analyses returned.
         offset : int, keyword-only
             Analyses skipped (for pages of the list).
+        query : str, keyword-only
+            Words that must each appear in the sample name, the notes or the one-line result
+            (Wood notation or matrix), ignoring case; see :func:`search_terms`.
 
         Returns
         -------
         list of SavedAnalysis
             Newest first.
         """
-        return self._select(None, limit=max(1, min(int(limit), 500)), offset=max(0, int(offset)))
+        return self._select(self._matching(query), limit=max(1, min(int(limit), 500)), offset=max(0, int(offset)))
 
-    def count_analyses(self) -> int:
-        """The number of saved analyses.
+    def count_analyses(self, *, query: str = "") -> int:
+        """The number of saved analyses (not deleted), or of those matching `query`.
+
+        Parameters
+        ----------
+        query : str, keyword-only
+            As for :meth:`recent`.
 
         Returns
         -------
         int
             The count.
         """
+        q = sa.select(sa.func.count()).select_from(_AnalysisRow).where(self._matching(query))
         with self._eng().connect() as conn:
-            return int(conn.execute(sa.select(sa.func.count()).select_from(_AnalysisRow)).scalar())
+            return int(conn.execute(q).scalar())
 
-    def _select(self, where, *, limit: int, offset: int = 0) -> list[SavedAnalysis]:
+    @staticmethod
+    def _matching(query: str):
+        a = _AnalysisRow
+        cond = [a.deleted_at.is_(None)]
+        for spellings in search_terms(query):
+            cond.append(sa.or_(*[sa.func.lower(col).contains(w, autoescape=True)
+                                 for w in spellings for col in (a.sample_name, a.notes, a.summary)]))
+        return sa.and_(*cond)
+
+    def delete_analysis(self, token: str) -> bool:
+        """Mark a saved analysis deleted: it leaves the list and its link, and can be restored
+        for :data:`KEEP_DELETED_DAYS` days.
+
+        Parameters
+        ----------
+        token : str
+            The share token.
+
+        Returns
+        -------
+        bool
+            True when an analysis was deleted now.
+        """
+        return self._set_deleted(token, datetime.now(timezone.utc))
+
+    def restore_analysis(self, token: str) -> bool:
+        """Bring a deleted analysis back (before it is purged).
+
+        Parameters
+        ----------
+        token : str
+            The share token.
+
+        Returns
+        -------
+        bool
+            True when an analysis was restored now.
+        """
+        return self._set_deleted(token, None)
+
+    def _set_deleted(self, token, when) -> bool:
+        if not isinstance(token, str) or not TOKEN_RE.fullmatch(token):
+            return False
+        a = _AnalysisRow
+        was = a.deleted_at.is_(None) if when is not None else a.deleted_at.is_not(None)
+        with self._eng().begin() as conn:
+            n = conn.execute(sa.update(a).where(a.token == token, was).values(deleted_at=when)).rowcount
+        return bool(n)
+
+    def deleted(self, limit: int = 100) -> list[SavedAnalysis]:
+        """The deleted analyses still kept, most recently deleted first.
+
+        Parameters
+        ----------
+        limit : int
+            Most analyses returned.
+
+        Returns
+        -------
+        list of SavedAnalysis
+            With `deleted_at` set.
+        """
+        return self._select(_AnalysisRow.deleted_at.is_not(None), limit=max(1, min(int(limit), 500)),
+                            by_deletion=True)
+
+    def purge_deleted(self, *, days: float = KEEP_DELETED_DAYS, now: datetime | None = None) -> int:
+        """Remove for good the analyses deleted more than `days` ago (the images stay).
+
+        Parameters
+        ----------
+        days : float, keyword-only
+            How long a deleted analysis is kept.
+        now : datetime, optional, keyword-only
+            The time to count from (default: now, UTC).
+
+        Returns
+        -------
+        int
+            The number removed.
+        """
+        cut = (_utc(now) if now is not None else datetime.now(timezone.utc)) - timedelta(days=float(days))
+        a = _AnalysisRow
+        with self._eng().begin() as conn:
+            return int(conn.execute(sa.delete(a).where(a.deleted_at.is_not(None), a.deleted_at < cut)).rowcount)
+
+    def _select(self, where, *, limit: int, offset: int = 0, by_deletion: bool = False) -> list[SavedAnalysis]:
         a, i = _AnalysisRow, _ImageRow
+        order = (a.deleted_at.desc(),) if by_deletion else ()
         q = (sa.select(a.token, a.image_sha256, i.filename, i.width, i.height, a.parameters, a.edits, a.result,
-                       a.summary, a.sample_name, a.notes, a.copied_from, a.created_at)
+                       a.summary, a.sample_name, a.notes, a.copied_from, a.created_at, a.deleted_at)
              .join(i, i.sha256 == a.image_sha256)
-             .order_by(a.created_at.desc(), a.id.desc()).limit(limit).offset(offset))
+             .order_by(*order, a.created_at.desc(), a.id.desc()).limit(limit).offset(offset))
         if where is not None:
             q = q.where(where)
+        if not by_deletion:
+            q = q.where(a.deleted_at.is_(None))
         with self._eng().connect() as conn:
             rows = conn.execute(q).all()
         return [SavedAnalysis(r.token, r.image_sha256, r.filename, r.width, r.height, r.parameters or {},
                               r.edits or {}, r.result, r.summary, r.sample_name, r.notes, r.copied_from,
-                              _utc(r.created_at)) for r in rows]
+                              _utc(r.created_at), None if r.deleted_at is None else _utc(r.deleted_at))
+                for r in rows]
