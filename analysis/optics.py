@@ -174,6 +174,11 @@ class ScreenGeometry:
     incidence_x, incidence_y : float
         sin θ vector of the specular (0,0) beam in image axes (x right, y up):
         λ k_in∥ for a primary beam off the surface normal; 0 at normal incidence.
+    perspective_x, perspective_y : float
+        Keystone of a camera looking at the screen off its axis: the image point q
+        (relative to the centre, after the ellipse) goes to q / (1 + p·q / scale_px),
+        the projective part of a homography that keeps the centre (dimensionless;
+        about tan(tilt) · scale / camera distance along the tilt). 0 on the axis.
     """
 
     center_x_px: float
@@ -186,6 +191,8 @@ class ScreenGeometry:
     acceptance_deg: float = 52.0
     incidence_x: float = 0.0
     incidence_y: float = 0.0
+    perspective_x: float = 0.0
+    perspective_y: float = 0.0
     extra: dict = field(default_factory=dict, compare=False)
 
     def __post_init__(self):
@@ -197,6 +204,9 @@ class ScreenGeometry:
             raise ParameterError(f"`ellipticity` must be positive, got {self.ellipticity}.")
         if not (0.0 < self.acceptance_deg <= 90.0):
             raise ParameterError(f"`acceptance_deg` must be in (0, 90], got {self.acceptance_deg}.")
+        if not math.hypot(self.perspective_x, self.perspective_y) < 0.5:
+            raise ParameterError(f"The perspective (keystone) must be below 0.5, got "
+                                 f"({self.perspective_x}, {self.perspective_y}).")
         if not math.hypot(self.incidence_x, self.incidence_y) < 0.5:
             raise ParameterError(f"The incidence (sin θ of the specular beam) must be below 0.5 (30°), got "
                                  f"({self.incidence_x}, {self.incidence_y}).")
@@ -325,9 +335,16 @@ def project(k_par, lam: float, geom) -> tuple[np.ndarray, np.ndarray]:
         st_ok = np.where(st <= 1.0, st, np.nan)
         ratio = np.where(st_ok > 0, _radial(st_ok, geom.distortion) / np.where(st_ok > 0, st_ok, 1.0), 1.0)
     xy_up = (geom.scale_px * ratio)[:, None] * w @ _ellipse(geom).T
+    p = _perspective(geom)
+    if p.any():
+        xy_up = xy_up / (1.0 + xy_up @ p / geom.scale_px)[:, None]
     xy = np.column_stack([geom.center_x_px + xy_up[:, 0], geom.center_y_px - xy_up[:, 1]])
     xy[~visible] = np.nan
     return xy, visible
+
+
+def _perspective(geom) -> np.ndarray:
+    return np.array([getattr(geom, "perspective_x", 0.0), getattr(geom, "perspective_y", 0.0)], dtype=np.float64)
 
 
 def _incidence(geom) -> np.ndarray:
@@ -375,6 +392,9 @@ def pixels_to_momentum(xy_px: np.ndarray, energy_eV: float, geom: ScreenGeometry
     """
     p = np.asarray(xy_px, dtype=np.float64).reshape(-1, 2)
     up = np.column_stack([p[:, 0] - geom.center_x_px, geom.center_y_px - p[:, 1]])
+    persp = _perspective(geom)
+    if persp.any():  # out = q / (1 + p·q/s)  ⇔  q = out / (1 − p·out/s)
+        up = up / (1.0 - up @ persp / geom.scale_px)[:, None]
     up = up @ np.linalg.inv(_ellipse(geom)).T
     r = np.hypot(up[:, 0], up[:, 1])
     st = _radial_inverse(r / geom.scale_px, geom.distortion)
@@ -408,9 +428,9 @@ def local_jacobian(energy_eV: float, geom: ScreenGeometry, *, relativistic: bool
 
 #: Parameters of :func:`pixel_derivatives`, in its column order: centre (px), ln scale,
 #: rotation (deg), distortion R/L, the ellipse pair (e1, e2) = (ε − 1)(cos 2β, sin 2β), and the
-#: incidence (sin θ vector of the specular beam, image axes).
+#: incidence (sin θ vector of the specular beam, image axes) and the perspective (keystone).
 GEOMETRY_PARAMETERS = ("center_x_px", "center_y_px", "log_scale", "rotation_deg", "distortion", "e1", "e2",
-                       "incidence_x", "incidence_y")
+                       "incidence_x", "incidence_y", "perspective_x", "perspective_y")
 
 
 def pixel_derivatives(k_par: np.ndarray, energy_eV: float, geom: ScreenGeometry, *,
@@ -434,7 +454,7 @@ def pixel_derivatives(k_par: np.ndarray, energy_eV: float, geom: ScreenGeometry,
         As :func:`momentum_to_pixels` (NaN beyond the screen).
     d_k : (K, 2, 2) ndarray
         d(x, y)/d(k_x, k_y), pixels per Å⁻¹.
-    d_geom : (K, 2, 9) ndarray
+    d_geom : (K, 2, 11) ndarray
         d(x, y)/d(parameter) for the parameters named in :data:`GEOMETRY_PARAMETERS`.
         Both are NaN where the beam misses the screen.
 
@@ -479,7 +499,7 @@ def project_derivatives(k_par, lam: float, geom) -> tuple[np.ndarray, np.ndarray
     d_k = flip[None, :, None] * np.einsum("ij,kjl->kil", e, dv_dw @ (lam * rot))
     xy_up = v @ e.T
     xy = np.column_stack([geom.center_x_px + xy_up[:, 0], geom.center_y_px - xy_up[:, 1]])
-    d_geom = np.zeros((len(k), 2, 9))
+    d_geom = np.zeros((len(k), 2, 11))
     d_geom[:, 0, 0] = 1.0
     d_geom[:, 1, 1] = 1.0
     d_geom[:, :, 2] = flip * xy_up
@@ -498,6 +518,24 @@ def project_derivatives(k_par, lam: float, geom) -> tuple[np.ndarray, np.ndarray
     d_t = flip[None, :, None] * np.einsum("ij,kjl->kil", e, dv_dw)  # ∂(x, y)/∂t
     d_geom[:, :, 7] = d_t[:, :, 0]
     d_geom[:, :, 8] = d_t[:, :, 1]
+    persp = _perspective(geom)
+    if persp.any():  # out = q / (1 + p·q/s): ∂out/∂q = (I − out pᵀ/s) / den, ∂out/∂p = −out qᵀ / (s den)
+        q = xy_up
+        den = 1.0 + q @ persp / sc_px
+        out = q / den[:, None]
+        chain = (np.eye(2)[None] - out[:, :, None] * persp[None, None, :] / sc_px) / den[:, None, None]
+        fl = np.diag(flip)
+        # the columns so far are flip · ∂q/∂·: map them through flip · chain · flip
+        m_all = np.einsum("ij,kjl,lm->kim", fl, chain, fl)
+        d_k = np.einsum("kij,kjl->kil", m_all, d_k)
+        d_geom[:, :, 2:9] = np.einsum("kij,kjl->kil", m_all, d_geom[:, :, 2:9])
+        d_geom[:, :, 2] = flip * out  # out ∝ s (den does not depend on s)
+        xy = np.column_stack([geom.center_x_px + out[:, 0], geom.center_y_px - out[:, 1]])
+    else:
+        q, den, out = xy_up, np.ones(len(k)), xy_up
+    dp = -out[:, :, None] * q[:, None, :] / (sc_px * den[:, None, None])  # also at p = 0
+    d_geom[:, :, 9] = flip * dp[:, :, 0]
+    d_geom[:, :, 10] = flip * dp[:, :, 1]
     xy[~visible] = np.nan
     d_k[~visible] = np.nan
     d_geom[~visible] = np.nan

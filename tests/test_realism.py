@@ -416,9 +416,6 @@ SPOT_GAPS = {
 }
 
 READ_GAPS = {
-    "keystone": "camera 6–11° off the screen axis: no reading of the substrate net fits (the camera model "
-                "has no perspective term)",
-    "elongated_spots": "split elongated spots: the wrong overlayer is read",
 }
 
 

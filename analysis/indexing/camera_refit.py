@@ -80,13 +80,21 @@ def _bounded_lm(fun, jac, x0: np.ndarray, lo: np.ndarray, hi: np.ndarray, *, max
 
 
 _GEOM_COLUMN = {"center_x_px": 0, "center_y_px": 1, "scale_px": 2, "rotation_deg": 3, "distortion": 4,
-                "incidence_x": 7, "incidence_y": 8}
+                "incidence_x": 7, "incidence_y": 8, "perspective_x": 9, "perspective_y": 10}
 
 #: Prior width of the incidence (sin θ of the specular beam): a sample aligned to within
 #: about 2° of normal incidence (common practice). A fitted incidence of this size costs
 #: as much as one spot coordinate off by `_INCIDENCE_PRIOR_PX`.
 _INCIDENCE_PRIOR = math.sin(math.radians(2.0))
 _INCIDENCE_PRIOR_PX = 1.0
+#: Prior width of the perspective (keystone) term: a camera within about 10° of the screen axis
+#: at a few screen radii (tan 10° / 3 ≈ 0.06; common practice for a viewport camera).
+_PERSPECTIVE_PRIOR = 0.06
+#: The free names that carry a prior, with its width.
+_PRIORS = {"incidence_x": _INCIDENCE_PRIOR, "incidence_y": _INCIDENCE_PRIOR,
+           "perspective_x": _PERSPECTIVE_PRIOR, "perspective_y": _PERSPECTIVE_PRIOR}
+#: The camera's off-axis terms, freed when enough spots carry them.
+OFF_AXIS = ("incidence_x", "incidence_y", "perspective_x", "perspective_y")
 _MIN_SPOTS_FOR_INCIDENCE = 12
 
 
@@ -149,8 +157,10 @@ def _refine(xy, hk, energy_eV, geom, lattice, free, fit_lattice, *, rtol: float 
         return hk if overlayer is None else overlayer.hk(p[n_geo + n_lat:].reshape(2, 2))
 
     p0 = [math.log(base[n]) if n == "scale_px" else base[n] for n in names]
-    lo = [0.0 if n == "distortion" else -0.1 if n.startswith("incidence_") else -np.inf for n in names]
-    hi = [0.9 if n == "distortion" else 0.1 if n.startswith("incidence_") else np.inf for n in names]
+    lo = [0.0 if n == "distortion" else -0.1 if n.startswith("incidence_") else -0.3 if n.startswith("perspective_")
+          else -np.inf for n in names]
+    hi = [0.9 if n == "distortion" else 0.1 if n.startswith("incidence_") else 0.3 if n.startswith("perspective_")
+          else np.inf for n in names]
     if ell:
         e, b = base["ellipticity"] - 1.0, math.radians(2 * base["ellipse_deg"])
         p0 += [e * math.cos(b), e * math.sin(b)]
@@ -169,8 +179,8 @@ def _refine(xy, hk, energy_eV, geom, lattice, free, fit_lattice, *, rtol: float 
 
     lam = wavelength_A(energy_eV)
 
-    inc = [i for i, n in enumerate(names) if n.startswith("incidence_")]
-    w_inc = _INCIDENCE_PRIOR_PX / _INCIDENCE_PRIOR
+    inc = [i for i, n in enumerate(names) if n in _PRIORS]
+    w_inc = np.array([_INCIDENCE_PRIOR_PX / _PRIORS[names[i]] for i in inc])
 
     def resid(p):  # the camera fields as a plain namespace: no validation in the loop
         d, lat = unpack(p)
@@ -314,7 +324,7 @@ def refine_with_model(xy_px: np.ndarray, energy_eV: float, fit: SubstrateFit, mo
     free = ("center_x_px", "center_y_px", "rotation_deg") if fit.scale_source == "calibration" else \
         ("center_x_px", "center_y_px", "scale_px", "rotation_deg", "distortion", "ellipticity")
     if int(trusted.sum()) >= _MIN_SPOTS_FOR_INCIDENCE:  # many spots at several radii tell a tilt from a shift
-        free = free + ("incidence_x", "incidence_y")
+        free = free + OFF_AXIS[:2]  # (a keystone the substrate reading found is kept)
     joint = None
     if model.kind == "incommensurate":
         tol_g = float(model.details.tol_g if model.details is not None else

@@ -22,7 +22,7 @@ from ..lattice import lattice_points, screen_g_max
 from ..nets import Net2D, classify_net, reciprocal
 from ..optics import ScreenGeometry, local_jacobian, pixels_to_momentum, wavelength_A
 from ..superstructure import same_lattice
-from .camera_refit import _MIN_SPOTS_FOR_INCIDENCE, _refine
+from .camera_refit import _MIN_SPOTS_FOR_INCIDENCE, OFF_AXIS, _refine
 from .matching import _is_rational, _match, _nn_spacing, _screen_xy, _seen
 from .score import ScoreBreakdown, substrate_breakdown
 
@@ -233,15 +233,16 @@ def fit_substrate(xy_px: np.ndarray, energy_eV: float, hint: Net2D, *, intensity
         # off normal incidence the ±g pairs no longer share their midpoint (the radial law bends
         # them apart) and the specular beam leaves the gun: start from the bright spots near the
         # middle instead, each taken as the specular (0,0) beam; the readings then fit the incidence
+        # (a camera off the screen axis bends them apart too: there the gun's centre stays put)
         r0 = np.hypot(xy[:, 0] - center[0], xy[:, 1] - center[1])
         middle = np.flatnonzero(r0 <= 0.3 * float(r0.max()))
-        for j in middle[np.argsort(-inten[middle], kind="stable")][:3]:
-            fits = readings(xy[j])
-            if fits:
-                fits = [dataclasses.replace(f, notes=tuple(f.notes) + (
-                    "the centre from ±g pairs gave no reading: started from a bright spot near the middle "
-                    "as the specular beam",)) for f in fits]
-                break
+        starts = ([("the gun's centre", np.asarray(center_guess, dtype=np.float64))] if center_guess is not None
+                  else []) + [("a bright spot near the middle as the specular beam", xy[j])
+                              for j in middle[np.argsort(-inten[middle], kind="stable")][:3]]
+        for what, c in starts:  # every start: the readings compete by their scores below
+            fits += [dataclasses.replace(f, notes=tuple(f.notes) + (
+                f"the centre from ±g pairs gave no reading: started from {what}",)) for f in readings(c)
+                if not any(_same_reading(f, g) for g in fits)]
     if not fits:
         raise FitError(f"No reading of the {classify_net(hint)} substrate net "
                        f"({hint.label or 'given'}) fits the {len(xy)} spots.")
@@ -340,6 +341,22 @@ def _same_reading(f: SubstrateFit, g: SubstrateFit) -> bool:
                 and abs(f.geometry.center_y_px - g.geometry.center_y_px) < 3)
 
 
+def _one_ring(hk: np.ndarray, a_star: np.ndarray) -> bool:
+    """True when the beams `hk` (integer indices) all lie on one ring |g| (within 5 %) and the
+    specular (0,0) beam is not among them (seen beside the gun, it says the beam is off normal).
+
+    >>> a = np.eye(2)
+    >>> _one_ring(np.array([[1, 0], [0, 1], [-1, 0]]), a), _one_ring(np.array([[1, 0], [1, 1]]), a)
+    (True, False)
+    >>> _one_ring(np.array([[1, 0], [0, 1], [0, 0]]), a)
+    False
+    """
+    g = np.linalg.norm(np.asarray(hk, dtype=np.float64) @ a_star, axis=1)
+    if not len(g) or float(g.min()) < 1e-12:
+        return False
+    return float(g.max()) <= 1.05 * float(g.min())
+
+
 def _try_substrate(xy, tree, inten, energy_eV, a_star, e, v, center, geometry, lam, tol_px, r_max, r_min,
                    valid_mask, prior, prior_sigma, fit_lattice, hint):
     """One reading: spot vector v (px, y up) is the beam e of the hint net."""
@@ -384,7 +401,9 @@ def _try_substrate(xy, tree, inten, energy_eV, a_star, e, v, center, geometry, l
         if len(pi) < 2 or np.linalg.matrix_rank(hk_all[pi]) < 2:
             return None
         if n_stage >= 2 and len(pi) >= _MIN_SPOTS_FOR_INCIDENCE:  # the beam may be off normal
-            free = free + ("incidence_x", "incidence_y")
+            free = free + OFF_AXIS[:2]
+        elif n_stage >= 3 and len(pi) >= 6 and geometry is None and _one_ring(hk_all[pi], a_star):
+            free = free + OFF_AXIS[2:]  # one ring: a keystone (with its prior)
         geom, lattice, _, _ = _refine(xy[oj], hk_all[pi], energy_eV, geom, lattice, free,
                                       fit_lattice and rad == np.inf, rtol=1e-6)
     pred = _screen_xy(hk_all @ lattice, energy_eV, geom)
@@ -392,8 +411,12 @@ def _try_substrate(xy, tree, inten, energy_eV, a_star, e, v, center, geometry, l
     if len(pi) < 3:
         return None
     last = free_geo + (("ellipticity",) if geometry is None else ())
+    # the incidence and the keystone bend a pattern much alike: several rings tell an incidence
+    # (the radial law), one ring of beams is bent by a keystone only (off normal it is not round)
     if len(pi) >= _MIN_SPOTS_FOR_INCIDENCE:
-        last = last + ("incidence_x", "incidence_y")
+        last = last + OFF_AXIS[:2]
+    elif len(pi) >= 6 and geometry is None and _one_ring(hk_all[pi], a_star):
+        last = last + OFF_AXIS[2:]
     geom, lattice, res, sig = _refine(xy[oj], hk_all[pi], energy_eV, geom, lattice, last, fit_lattice)
     pred = _screen_xy(hk_all @ lattice, energy_eV, geom)
     pi, oj = _match(pred, tree, tol_px)
