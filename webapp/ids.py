@@ -105,6 +105,18 @@ SOURCE = "source-token"
 
 # recent page
 RECENT_LIST = "recent-list"
+RECENT_SEARCH = "recent-search"
+RECENT_COUNT = "recent-count"
+RECENT_NOTE = "recent-note"
+RECENT_NAV = "recent-nav"
+RECENT_DELETE = "recent-delete"  # pattern-matching type, one per card
+RECENT_RESTORE = "recent-restore"  # pattern-matching type, one per deleted analysis
+RECENT_CONFIRM = "recent-confirm"
+RECENT_PENDING = "recent-pending"
+RECENT_CHANGED = "recent-changed"
+RECENT_PAGE = "recent-page"
+RECENT_DELETED_VIEW = "recent-deleted-view"
+RECENT_DELETED_LIST = "recent-deleted-list"
 
 # energy-series page
 SERIES_UPLOAD = "series-upload"
