@@ -55,3 +55,20 @@ def test_click_on_turned_view_edits_in_camera_pixels():
         mp.setattr(pattern, "triggered", lambda: (pattern.ids.GRAPH, "graph.clickData"))
         ed = pattern.on_graph_event(click, None, None, "spots", None, image, None, 90, [])
     assert ed["added"] == [[10.0, 20.0]]
+
+
+def test_background_view_of_a_flat_image_keeps_the_picture_and_says_why(monkeypatch):
+    from webapp.pages.analyse import pattern
+
+    flat = np.zeros((8, 8))  # too small for the spot search's screen: no background estimate
+    monkeypatch.setattr(pattern.service, "image_array", lambda sha: flat)
+    pattern.display_image.cache_clear()
+    pattern.background_image.cache_clear()
+    image = {"sha": "f" * 64, "width": 8, "height": 8}
+    fig = pattern.render_pattern(image, None, None, None, "linear", 0.5, [0.5, 99.95], [], None, None, 0,
+                                 ["minus_bg"], None)
+    assert any(t.type == "image" for t in fig.data)
+    notes = [a.text for a in fig.layout.annotations if a.text]
+    assert len(notes) == 1 and notes[0].startswith("No background view: ") and "\n" not in notes[0]
+    pattern.display_image.cache_clear()
+    pattern.background_image.cache_clear()

@@ -99,9 +99,15 @@ def render_pattern(image, record, edits, model, scale, gamma, clip, overlays, pi
     clip = clip or [0.5, 99.95]
     view = [v for v in (view or []) if isinstance(v, str)]
     rot, mirror = clean_view(rotate, "mirror" in view)
+    bg_note = None
     try:
+        if "minus_bg" in view:
+            try:
+                background_image(image["sha"])
+            except Exception as err:  # noqa: BLE001 - the plain image is shown instead, with the reason
+                bg_note = "No background view: " + fail(err)
         url, f = display_image(image["sha"], scale or "linear", float(gamma or 0.5), float(clip[0]), float(clip[1]),
-                               rot, mirror, "minus_bg" in view)
+                               rot, mirror, "minus_bg" in view and bg_note is None)
     except Exception as err:  # noqa: BLE001
         return figures.empty_figure(fail(err))
     result = result_of(record, image)
@@ -117,7 +123,11 @@ def render_pattern(image, record, edits, model, scale, gamma, clip, overlays, pi
                                  candidate=cand, focus=focus if isinstance(focus, int) else None,
                                  editable=not (source or {}).get("readonly"),
                                  revision=f"{image['sha']}:{rot}:{int(mirror)}")
-    return orient_figure(fig, width=image["width"], height=image["height"], rotate_deg=rot, mirror=mirror)
+    fig = orient_figure(fig, width=image["width"], height=image["height"], rotate_deg=rot, mirror=mirror)
+    if bg_note:
+        fig.add_annotation(text=bg_note, xref="paper", yref="paper", x=0.0, y=0.0, xanchor="left", yanchor="bottom",
+                           showarrow=False, font=dict(color="#fff"), bgcolor="rgba(160,40,20,0.85)")
+    return fig
 
 
 def camera_point(x, y, image, rotate=0, view=None):
