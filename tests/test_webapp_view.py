@@ -72,3 +72,13 @@ def test_background_view_of_a_flat_image_keeps_the_picture_and_says_why(monkeypa
     assert len(notes) == 1 and notes[0].startswith("No background view: ") and "\n" not in notes[0]
     pattern.display_image.cache_clear()
     pattern.background_image.cache_clear()
+
+
+def test_line_drawn_on_turned_view_is_profiled_in_camera_pixels():
+    from webapp.pages.analyse import spot_tools
+
+    image = {"sha": "s", "width": 200, "height": 100}
+    # camera (10, 20) -> display (79, 10) and camera (110, 60) -> display (39, 110), turned 90° (as above)
+    relayout = {"shapes": [{"type": "circle"}, {"type": "line", "x0": 79.0, "y0": 10.0, "x1": 39.0, "y1": 110.0}]}
+    assert spot_tools.line_from_relayout(relayout, image, 90, []) == (10.0, 20.0, 110.0, 60.0)
+    assert spot_tools.line_from_relayout(relayout) == (79.0, 10.0, 39.0, 110.0)  # unturned: as drawn
