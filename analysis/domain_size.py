@@ -339,6 +339,7 @@ def sizes_along_axes(beams: BeamWidths, integer, domain_index, axes, *,
         Per domain, its net vectors b1, b2 as rows in the momentum frame's axes (Å; only their
         directions are used).
     shape_factor : float, keyword-only
+        K of L = K / Δk (default the Scherrer-type factor :data:`SCHERRER_K`).
 
     Returns
     -------

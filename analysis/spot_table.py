@@ -275,6 +275,9 @@ def rows_to_csv(rows: list[dict], *, domain: DomainSize | None = None, axes_text
         From :func:`spot_rows`.
     domain : DomainSize, optional, keyword-only
         The domain-size estimate of the same analysis.
+    axes_text : str, keyword-only
+        The extents along the domains' net vectors in words (:meth:`WidthReport.axes_text`);
+        written as a comment line after the estimate when given.
 
     Returns
     -------

@@ -56,10 +56,7 @@ CORE_EXAMPLES = (
 PACKAGES = ("analysis", "webapp")
 
 #: Public functions and methods whose docstrings do not pass :data:`CHECKS` yet (module.qualname).
-NOT_YET = frozenset({
-    "analysis.domain_size.sizes_along_axes",
-    "analysis.spot_table.rows_to_csv",
-})
+NOT_YET = frozenset()
 
 
 def _public_functions(package: str) -> dict:
