@@ -1,5 +1,6 @@
-"""Several clients saving at once over HTTP on loopback, to two server processes sharing one database
-(a SQLite file; and PostgreSQL when RECINET_TEST_PG_URL is set)."""
+"""Several clients at once over HTTP on loopback, to two server processes sharing one database
+(a SQLite file; and PostgreSQL when RECINET_TEST_PG_URL is set): saving, and analysing as
+background jobs, trying a model and saving."""
 
 from __future__ import annotations
 
@@ -51,8 +52,10 @@ def two_servers(tmp_path, store_url):
     try:
         for _ in range(2):
             port = _free_port()
+            log = open(tmp_path / f"server-{len(procs)}.log", "w")  # read when a test fails
             p = subprocess.Popen([sys.executable, "-c", _SERVE, str(port)], cwd=ROOT, env=env,
-                                 stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True)
+                                 stdout=subprocess.PIPE, stderr=log, text=True)
+            log.close()
             procs.append(p)
             ports.append(port)
         for p in procs:
@@ -133,3 +136,55 @@ def test_clients_saving_at_once_lose_nothing_and_mix_nothing(two_servers):
     listed = store.recent(500)
     assert len({a.image_sha256 for a in listed}) == 1 + N_CLIENTS * (N_SAVES - 1)
     assert time.monotonic() - t0 < 180
+
+
+N_ANALYSTS = 8
+ANALYST_LIMIT_S = 420  # 8 analyses of 1024² demo images at once on a shared 2-core machine
+
+
+@pytest.mark.slow
+def test_eight_clients_analyse_try_a_model_and_save_at_once(two_servers, tmp_path):
+    """Eight page loads, four on each server process: each picks a demo image, analyses it as a
+    background job, tries the renderer's matrix and saves, all at once. Each gets its own answer
+    (checked against the demo's truth, demo_images/*.json), none is lost, none waits forever."""
+    from test_group_server import DEMOS, Page, analyse_demo, check_analysis
+
+    from webapp.store import Store
+
+    ports, url = two_servers
+    got: dict[int, dict] = {}
+    errors: list[str] = []
+    start = threading.Barrier(N_ANALYSTS)
+
+    def client(c: int):
+        try:
+            page = Page(f"http://127.0.0.1:{ports[c % 2]}")
+            start.wait(timeout=60)
+            got[c] = analyse_demo(page, DEMOS[c % len(DEMOS)], sample=f"analyst {c}")
+        except BaseException as err:  # noqa: BLE001 - reported below
+            import traceback
+
+            errors.append(f"client {c}: " + "".join(traceback.format_exception(err))[-1500:])
+
+    t0 = time.monotonic()
+    threads = [threading.Thread(target=client, args=(c,), daemon=True) for c in range(N_ANALYSTS)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join(timeout=max(1.0, ANALYST_LIMIT_S - (time.monotonic() - t0)))
+    assert not any(t.is_alive() for t in threads), f"clients still waiting after {ANALYST_LIMIT_S} s"
+    logs = "".join(line for f in sorted(tmp_path.glob("server-*.log"))
+                   for line in f.read_text(errors="replace").splitlines(True) if "Traceback" in line or "Error" in line)
+    assert not errors, f"{len(errors)} of {N_ANALYSTS} failed; finished: {sorted(got)}\n" + "\n".join(errors[:2]) + logs[-3000:]
+    assert sorted(got) == list(range(N_ANALYSTS))
+    for c, g in got.items():
+        check_analysis(DEMOS[c % len(DEMOS)], g, sample=f"analyst {c}")
+        assert g["model"]["explained"] >= 0 and g["read"]["parameters"]["energy_eV"] == g["record"]["parameters"]["energy_eV"]
+    assert len({g["token"] for g in got.values()}) == N_ANALYSTS  # a link each
+
+    store = Store(url)  # the one database behind both servers holds exactly these, each image once
+    listed = store.recent(100)
+    assert {a.token for a in listed} == {g["token"] for g in got.values()}
+    assert len({a.image_sha256 for a in listed}) == min(N_ANALYSTS, len(DEMOS))
+    store.close()
+    print(f"8 clients analysed, tried a model and saved in {time.monotonic() - t0:.1f} s")

@@ -17,6 +17,7 @@ import hashlib
 import os
 import re
 import secrets
+import threading
 import time
 from dataclasses import dataclass
 from datetime import datetime, timedelta, timezone
@@ -147,6 +148,29 @@ def _add_missing_columns(eng: sa.Engine) -> None:
                 raise
 
 
+# SQLite keeps its lock bookkeeping per process, shared by every connection to a file. A job process
+# forked while another thread of the server was inside a transaction inherits that bookkeeping with
+# the write lock marked as held by a connection that will never let go: its own transactions then
+# wait out the busy timeout and fail with "database is locked" (seen with eight clients analysing at
+# once, tests/test_webapp_concurrency.py). So a fork waits until no thread is in a transaction.
+_FORK_GUARD = threading.RLock()
+
+
+def _release_guard(conn) -> None:
+    if conn.info.pop("fork_guard", False):
+        _FORK_GUARD.release()
+
+
+def _fresh_guard_in_child() -> None:
+    global _FORK_GUARD
+    _FORK_GUARD = threading.RLock()
+
+
+if hasattr(os, "register_at_fork"):
+    os.register_at_fork(before=lambda: _FORK_GUARD.acquire(), after_in_parent=lambda: _FORK_GUARD.release(),
+                        after_in_child=_fresh_guard_in_child)
+
+
 def _make_engine(url: str) -> sa.Engine:
     if url.startswith("sqlite"):
         eng = sa.create_engine(url, connect_args={"timeout": 30})
@@ -159,7 +183,18 @@ def _make_engine(url: str) -> sa.Engine:
 
         @event.listens_for(eng, "begin")
         def _on_begin(conn):
-            conn.exec_driver_sql("BEGIN IMMEDIATE")
+            _FORK_GUARD.acquire()  # no fork while this process is inside a transaction (see _FORK_GUARD)
+            conn.info["fork_guard"] = True
+            try:
+                conn.exec_driver_sql("BEGIN IMMEDIATE")
+            except BaseException:
+                _release_guard(conn)
+                raise
+
+        @event.listens_for(eng, "commit")
+        @event.listens_for(eng, "rollback")
+        def _on_end(conn):
+            _release_guard(conn)
 
         return eng
     return sa.create_engine(url, pool_pre_ping=True)
@@ -209,6 +244,10 @@ class Store:
 
     def _eng(self) -> sa.Engine:
         if os.getpid() != self._pid:  # forked job process: never share the parent's connections
+            # ... and never close them either: closing an inherited SQLite connection in the child
+            # would drop the child's own file locks (POSIX locks go with any close of the file).
+            # The old pool is kept, unused.
+            self._inherited_pools = [*getattr(self, "_inherited_pools", ()), self.engine.pool]
             self.engine.dispose(close=False)
             self._pid = os.getpid()
         return self.engine
