@@ -9,6 +9,9 @@ from __future__ import annotations
 import secrets
 import threading
 
+import diskcache
+from dash import DiskcacheManager, Input, Output
+
 from .settings import Settings
 
 __all__ = ["make_manager", "progress_reporter", "job_controls"]
@@ -61,17 +64,14 @@ def make_manager(settings: Settings):
         The Celery app when a broker is set.
     """
     if settings.celery_broker:
-        from celery import Celery  # pip install "celery[redis]"
-        from dash import CeleryManager
+        from celery import Celery  # optional (pip install "celery[redis]"): only with a broker set
+        from dash import CeleryManager  # needs celery installed, so only here
 
         class _Celery(_OneResultPerJob, CeleryManager):
             pass
 
         celery_app = Celery("recinet", broker=settings.celery_broker, backend=settings.celery_broker)
         return _Celery(celery_app), celery_app
-    import diskcache
-    from dash import DiskcacheManager
-
     class _Diskcache(_OneResultPerJob, DiskcacheManager):
         pass
 
@@ -138,8 +138,6 @@ def job_controls(run_id: str, cancel_id: str, progress_id: str) -> dict:
     dict
         ``running``, ``progress``, ``cancel`` and ``background=True`` for ``dash.callback``.
     """
-    from dash import Input, Output
-
     return {
         "background": True,
         "progress": [Output(progress_id, "value"), Output(progress_id, "max")],

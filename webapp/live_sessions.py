@@ -28,6 +28,11 @@ import numpy as np
 
 from analysis.errors import ParameterError, RecinetError
 from analysis.files import write_text_atomic
+from analysis.follow.watch import watch_folder
+from analysis.io import IMAGE_SUFFIXES
+from analysis.jsonsafe import json_safe
+from analysis.nets import parse_substrate
+from webapp.figures import display_levels, downsample, png_bytes
 
 from . import runtime
 
@@ -96,14 +101,10 @@ def resolve_watch_folder(text: str) -> Path:
 
 
 def _write_json(path: Path, obj) -> None:
-    from analysis.jsonsafe import json_safe
-
     write_text_atomic(path, json.dumps(json_safe(obj)), mode=0o644)
 
 
 def _check_config(cfg: dict) -> dict:
-    from analysis.nets import parse_substrate
-
     try:
         e = float(cfg.get("energy_eV"))
     except (TypeError, ValueError):
@@ -227,8 +228,6 @@ def save_upload(token: str, name: str, data: bytes) -> str:
     str
         The name it was saved under.
     """
-    from analysis.io import IMAGE_SUFFIXES
-
     d = session_dir(token) / "frames"
     try:
         mode = json.loads((d.parent / "config.json").read_text()).get("mode")
@@ -282,8 +281,6 @@ def _state(live, lines: list, status: str, message: str, cfg: dict) -> dict:
 
 
 def _run(token: str, cfg: dict, folder: Path) -> None:
-    from analysis.follow.watch import watch_folder
-
     d = session_dir(token)
     lines: list[str] = []
     holder = {"live": None, "t": 0.0}
@@ -299,7 +296,6 @@ def _run(token: str, cfg: dict, folder: Path) -> None:
         holder["live"] = live
         _write_json(d / "state.json", _state(live, lines, "watching", lines[-1] if lines else "", cfg))
         try:
-            from webapp.figures import display_levels, downsample, png_bytes
 
             frame = live.follower.last_frame
             if frame is not None:

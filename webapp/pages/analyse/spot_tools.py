@@ -7,6 +7,8 @@ Thin: the callbacks read the stores, call :mod:`analysis.profile_line` and
 
 from __future__ import annotations
 
+import json
+
 import functools
 import math
 
@@ -290,7 +292,6 @@ def profile_csv(n_clicks, x0, y0, x1, y1, width, image, record):
 
 @functools.lru_cache(maxsize=8)
 def _widths_cached(sha: str, key: str, record_json: str):
-    import json
 
     record = json.loads(record_json)
     obj = service.result_object(record)
@@ -300,7 +301,6 @@ def _widths_cached(sha: str, key: str, record_json: str):
 
 
 def _widths(record, image):
-    import json
 
     result = result_of(record, image)
     if result is None:
