@@ -56,7 +56,7 @@ def test_compare_two_saved_analyses(page, live_server, fresh_store):
     page.on("console", lambda m: errors.append(m.text) if m.type == "error" else None)
 
     page.goto(live_server + "/")
-    assert page.locator("#nav a[href='/compare']").count() == 1  # the nav lists the page
+    page.wait_for_selector("#nav a[href='/compare']")  # the nav lists the page
 
     page.goto(f"{live_server}/compare?a={a.token}&b={b.token}")
     page.wait_for_selector("#compare-table")
@@ -79,6 +79,16 @@ def test_compare_two_saved_analyses(page, live_server, fresh_store):
     assert abs(box_a["width"] - box_b["width"]) < 2 and abs(box_a["height"] - box_b["height"]) < 2
     SHOTS.mkdir(parents=True, exist_ok=True)
     page.screenshot(path=str(SHOTS / "compare.png"), full_page=True)
+
+    # from the read-only view of A: "Compare with another", then B picked by hand
+    page.goto(f"{live_server}/analysis/{a.token}")
+    page.click("#compare-from")
+    page.wait_for_selector("#compare-a")
+    page.click("#compare-b")
+    page.get_by_text("pt111_PX-9_sqrt7_two_domains · (√7×√7)R19.1°", exact=False).last.click()
+    page.wait_for_selector("#compare-table")
+    assert _rows(page)["Wood notation"]["b"] == tb["scenario"]["wood_notation"]
+    assert page.get_attribute("#compare-link", "href") == f"/compare?a={a.token}&b={b.token}"
 
     # the same analysis on both sides: nothing differs
     page.goto(f"{live_server}/compare?a={a.token}&b={a.token}")

@@ -27,6 +27,8 @@ def layout(token: str | None = None, **_query):
                f"{a.created_at:%Y-%m-%d %H:%M} UTC", className="muted"),
         html.P(a.notes, className="notes-text") if a.notes else None,
         html.A("Copy to edit", href=f"/?copy={a.token}", id=ids.COPY_TO_EDIT, className="button"),
+        " ",
+        html.A("Compare with another", href=f"/compare?a={a.token}", id=ids.COMPARE_FROM, className="button"),
     ])
     return workspace(readonly=True, image=image, record=record, energy=p.get("energy_eV"),
                                substrate=p.get("substrate", ""), sample_name=a.sample_name, notes=a.notes,
