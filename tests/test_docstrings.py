@@ -18,6 +18,7 @@ from __future__ import annotations
 import importlib
 import inspect
 import pkgutil
+import sys
 import textwrap
 
 import pytest
@@ -69,10 +70,14 @@ def _public_functions(package: str) -> dict:
                          if not any(part.startswith("_") for part in m.name.split("."))]
     out = {}
     for name in names:
-        mod = importlib.import_module(name)
+        # Dash loaded the page modules itself, as "pages.<name>": importing them again under
+        # "webapp.pages.<name>" would register every page twice (and break the app's later tests)
+        loaded = sys.modules.get("pages." + name[len("webapp.pages."):]) if name.startswith("webapp.pages.") else None
+        mod = loaded or importlib.import_module(name)
+        name = mod.__name__
         for attr in getattr(mod, "__all__", ()):
             obj = getattr(mod, attr)
-            if inspect.isfunction(obj) and obj.__module__.split(".")[0] == package:
+            if inspect.isfunction(obj) and obj.__module__.split(".")[0] in (package, "pages"):
                 out.setdefault(f"{obj.__module__}.{obj.__qualname__}", obj)
             elif inspect.isclass(obj) and obj.__module__ == name:  # its public methods
                 for key, member in vars(obj).items():
