@@ -91,3 +91,14 @@ def test_a_name_is_taken_once_even_by_clients_saving_at_once(store_url):
     assert all("exists already" in e for e in errors)
     [kept] = cals.list_calibrations(s)
     assert kept.key == done[0].key and kept.geometry == done[0].geometry
+
+
+def test_the_page_says_when_the_energy_lies_outside_the_range(fresh_store):
+    from dash_helpers import text_of
+    from webapp.pages.analyse.calibration import on_pick_calibration
+
+    cal = cals.save_calibration(fresh_store, name="B", energy_range_eV=(100, 250), geometry=_geometry(), provenance=PROV)
+    inside, outside = text_of(on_pick_calibration(cal.value, 130)), text_of(on_pick_calibration(cal.value, 60))
+    assert "clean Cu(100) 80 eV.png" in inside and "meant for" not in inside
+    assert "It is meant for 100–250 eV; this image is at 60 eV." in outside
+    assert "no longer available" in text_of(on_pick_calibration("cal:gone", 130))

@@ -117,13 +117,15 @@ def on_save_calibration(n_clicks, name, camera, e_lo, e_hi, record, image, sourc
         calibration_choices(), cal.value
 
 
-def on_pick_calibration(value):
-    """Show where the picked calibration came from.
+def on_pick_calibration(value, energy=None):
+    """Show where the picked calibration came from, and say so when the energy lies outside its range.
 
     Parameters
     ----------
     value : str or None
         The dropdown value.
+    energy : float, optional
+        The beam energy typed for the image, eV.
 
     Returns
     -------
@@ -138,7 +140,17 @@ def on_pick_calibration(value):
         cal = calibrations.get_calibration(runtime.get_store(), value)
     except Exception as err:  # noqa: BLE001
         return note(fail(err))
-    return calibration_info(cal) if cal else note("This calibration is no longer available; pick another.")
+    if cal is None:
+        return note("This calibration is no longer available; pick another.")
+    try:
+        e = float(energy)
+    except (TypeError, ValueError):
+        e = None
+    warn = None
+    if e is not None and not cal.energy_min_eV <= e <= cal.energy_max_eV:
+        warn = note(f"It is meant for {cal.energy_min_eV:g}–{cal.energy_max_eV:g} eV; this image is at {e:g} eV.",
+                    "warn")
+    return [calibration_info(cal), warn]
 
 
 callback(
@@ -151,5 +163,5 @@ callback(
 
 callback(
     Output(ids.CAL_INFO, "children"),
-    Input(ids.CALIBRATION, "value"),
+    Input(ids.CALIBRATION, "value"), Input(ids.ENERGY, "value"),
 )(on_pick_calibration)
