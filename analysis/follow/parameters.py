@@ -23,6 +23,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import SeriesError
+from ..series.energies import numbers_in_names
 
 __all__ = [
     "ParameterTable",
@@ -336,21 +337,9 @@ def parameters_from_names(names: Sequence[str], *, pattern: str = DEFAULT_PARAME
     >>> parameters_from_names(["d=0,5L shot.png"], pattern=r"d=(\\d+(?:,\\d+)?)").value.tolist()
     [0.5]
     """
-    try:
-        rx = re.compile(pattern)
-    except re.error as exc:
-        raise SeriesError(f"File-name pattern {pattern!r} is not a valid regular expression ({exc}).") from None
-    out = []
-    for i, n in enumerate(names):
-        stem = re.sub(r"#\d+$", "", Path(str(n)).name)
-        stem = re.sub(r"\.(tiff?|png|jpe?g|bmp)$", "", stem, flags=re.I)
-        m = None
-        for m in rx.finditer(stem):
-            pass
-        if m is None:
-            raise SeriesError(f"No {name} in the name of frame {i} ({n}) with pattern {pattern!r}; "
-                              "give a parameter file or use the file times instead.")
-        out.append(_number(m.group(1) if rx.groups else m.group(0), f"name of frame {i} ({n})"))
+    texts = numbers_in_names(names, pattern, what=name,
+                             instead="give a parameter file or use the file times instead")
+    out = [_number(t, f"name of frame {i} ({n})") for i, (t, n) in enumerate(zip(texts, names))]
     return ParameterTable(check_parameters(out, names, what=name), name, unit, None, "file names")
 
 

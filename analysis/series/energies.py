@@ -26,6 +26,7 @@ __all__ = [
     "EnergyTable",
     "read_energy_file",
     "energies_from_names",
+    "numbers_in_names",
     "energies_from_start_step",
     "check_energies",
     "DEFAULT_NAME_PATTERN",
@@ -317,6 +318,41 @@ def energies_from_names(names: Sequence[str], *, pattern: str = DEFAULT_NAME_PAT
     >>> energies_from_names(["E=60 eV, take 2.png"], pattern=r"E=(\\d+)").tolist()
     [60.0]
     """
+    texts = numbers_in_names(names, pattern, what="energy", instead="give an energy file or a start and step instead")
+    out = [_to_float(t, f"name of {_frame_text(i, names)}") for i, t in enumerate(texts)]
+    return check_energies(out, names)
+
+
+def numbers_in_names(names: Sequence[str], pattern: str, *, what: str, instead: str) -> list[str]:
+    """The text of the last match of `pattern` (its first group, or the whole match) in each
+    file name, a ``#i`` page suffix, the folders and an image extension left out.
+
+    Parameters
+    ----------
+    names : sequence of str
+        File names.
+    pattern : str
+        Regular expression.
+    what : str
+        What the number is, for the message when a name holds none (e.g. ``"energy"``).
+    instead : str
+        What the user can do instead, for that message.
+
+    Returns
+    -------
+    list of str
+        One text per name (still to be read as a number).
+
+    Raises
+    ------
+    SeriesError
+        An invalid pattern, or a name without a match.
+
+    Examples
+    --------
+    >>> numbers_in_names(["a_1.5K.png", "dir/a_2K.tif#3"], r"(\d+(?:\.\d+)?)K", what="temperature", instead="")
+    ['1.5', '2']
+    """
     try:
         rx = re.compile(pattern)
     except re.error as exc:
@@ -329,10 +365,10 @@ def energies_from_names(names: Sequence[str], *, pattern: str = DEFAULT_NAME_PAT
         for m in rx.finditer(stem):
             pass  # the last match
         if m is None:
-            raise SeriesError(f"No energy in the name of {_frame_text(i, names)} with pattern {pattern!r}; "
-                              "give an energy file or a start and step instead.")
-        out.append(_to_float(m.group(1) if rx.groups else m.group(0), f"name of {_frame_text(i, names)}"))
-    return check_energies(out, names)
+            raise SeriesError(f"No {what} in the name of {_frame_text(i, names)} with pattern {pattern!r}; "
+                              f"{instead}.")
+        out.append(m.group(1) if rx.groups else m.group(0))
+    return out
 
 
 def energies_from_start_step(n_frames: int, *, start_eV: float, step_eV: float) -> np.ndarray:
