@@ -266,7 +266,7 @@ def resolve(store, value: str | None) -> dict | None:
     dict or None
         The ScreenGeometry dict, or None when nothing (left) stands behind the value.
     """
-    from webapp import service
+    from webapp import service  # service imports this module: a top-level import would be circular
 
     if not value:
         return None

@@ -400,7 +400,7 @@ def result_object(record: dict):
         ref = image_array(params["reference_sha256"])
     cal = None
     if params.get("calibration_from"):
-        from webapp import calibrations
+        from webapp import calibrations  # it imports service: a top-level import would be circular
 
         cal = calibrations.resolve(runtime.get_store(), params["calibration_from"])
     analyze(image_array(sha), energy_eV=params.get("energy_eV"), substrate=params.get("substrate", ""),
