@@ -536,3 +536,15 @@ def test_a_clean_surface_with_hot_pixels_dust_and_stray_spots_reads_clean(seed):
     d = result_to_dict(res)
     assert d["overlayer"]["kind"] == "none"
     assert sum(s["kind"] == "unexplained" for s in d["spots"]) >= 1
+
+
+@pytest.mark.parametrize("fa, fb", [(1.038, 1.015), (1.015, 1.038), (0.97, 1.0)])
+def test_named_constants_a_few_per_cent_off_still_read_c2x2(fa, fb):
+    # a strained film or an alloy: the substrate named with a and b a few per cent off their true
+    # values (and not by the same factor, so the camera scale cannot take it up). Cu(110) c(2×2)
+    # was read as another cell on a mis-shaped net; the truth is the render's c(2×2).
+    sub = parse_substrate("Cu(110)")
+    im, _ = render(sub, all_domain_matrices(sub, "c(2x2)"), energy=130.0)
+    spec = f"rectangular:{sub.a * fa:.4f},{sub.b * fb:.4f}"
+    best = analyze_image(im.image, energy_eV=130.0, substrate=spec).index.best
+    assert (best.wood, best.kind, best.n_domains) == ("c(2×2)", "commensurate", 1)

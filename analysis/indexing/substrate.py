@@ -404,6 +404,10 @@ def _try_substrate(xy, tree, inten, energy_eV, a_star, e, v, center, geometry, l
             free = free + OFF_AXIS[:2]
         elif n_stage >= 3 and len(pi) >= 6 and geometry is None and _one_ring(hk_all[pi], a_star):
             free = free + OFF_AXIS[2:]  # one ring: a keystone (with its prior)
+        if n_stage >= 2 and len(pi) >= 8 and geometry is None and not _one_ring(hk_all[pi], a_star):
+            # an oval image, or a named net whose a/b is a little off (a strained film): both
+            # stretch the net along one direction, and the outer rings leave the tolerance first
+            free = free + ("ellipticity",)
         geom, lattice, _, _ = _refine(xy[oj], hk_all[pi], energy_eV, geom, lattice, free,
                                       fit_lattice and rad == np.inf, rtol=1e-6)
     pred = _screen_xy(hk_all @ lattice, energy_eV, geom)
