@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import math
 import secrets
+import time
 from dataclasses import dataclass
 from datetime import datetime, timezone
 
@@ -100,7 +101,14 @@ class NamedCalibration:
 def _ready(store) -> sa.Engine:
     eng = store._eng()  # the store's fork-safe engine
     if getattr(store, "_calibrations_table", None) is not eng:
-        _Base.metadata.create_all(eng)
+        for attempt in range(5):  # clients saving together may race to create the table
+            try:
+                _Base.metadata.create_all(eng)
+                break
+            except (sa.exc.IntegrityError, sa.exc.ProgrammingError, sa.exc.OperationalError):
+                if attempt == 4:
+                    raise
+                time.sleep(0.2 * (attempt + 1))
         store._calibrations_table = eng
     return eng
 
