@@ -179,13 +179,13 @@ def _refine(xy, hk, energy_eV, geom, lattice, free, fit_lattice, *, rtol: float 
 
     lam = wavelength_A(energy_eV)
 
-    inc = [i for i, n in enumerate(names) if n in _PRIORS]
-    w_inc = np.array([_INCIDENCE_PRIOR_PX / _PRIORS[names[i]] for i in inc])
+    with_prior = [i for i, n in enumerate(names) if n in _PRIORS]
+    w_prior = np.array([_INCIDENCE_PRIOR_PX / _PRIORS[names[i]] for i in with_prior])
 
     def resid(p):  # the camera fields as a plain namespace: no validation in the loop
         d, lat = unpack(p)
         r = np.nan_to_num((project(hk_of(p) @ lat, lam, SimpleNamespace(**d))[0] - xy).ravel(), nan=1e3)
-        return np.concatenate([r, w_inc * p[inc]]) if inc else r
+        return np.concatenate([r, w_prior * p[with_prior]]) if with_prior else r
 
     cols = [_GEOM_COLUMN[n] for n in names] + ([5, 6] if ell else [])
 
@@ -200,9 +200,9 @@ def _refine(xy, hk, energy_eV, geom, lattice, free, fit_lattice, *, rtol: float 
             parts.append(np.einsum("kij,kjq->kiq", d_k, np.einsum("kcq,cj->kjq", d_hk_b0, lat)))
         j = np.concatenate(parts, axis=2).reshape(2 * len(hk_p), -1)
         j[~np.isfinite(xy_.ravel())] = 0.0
-        if inc:  # the prior's rows
-            prior = np.zeros((len(inc), j.shape[1]))
-            prior[np.arange(len(inc)), inc] = w_inc
+        if with_prior:  # the prior's rows
+            prior = np.zeros((len(with_prior), j.shape[1]))
+            prior[np.arange(len(with_prior)), with_prior] = w_prior
             j = np.vstack([j, prior])
         return np.nan_to_num(j)
 

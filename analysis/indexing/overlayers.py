@@ -721,13 +721,16 @@ def find_overlayers(hk: np.ndarray, integer: np.ndarray, substrate_fit: Substrat
             continue
         scored.append((sc, kt))
     models = _prefer_simple([_describe(ctx, sc, kind_tol=kt) for sc, kt in scored[: n_results + 1]])
-    chance = {id(mm): _chance_explained(ctx, mm) for mm in models}
-    significant = {id(mm): _significant(mm, chance[id(mm)]) for mm in models}
-    models = [mm if significant[id(mm)] else dataclasses.replace(
-        mm, notes=mm.notes + (f"not significant: {int(mm.score_terms['explained'])} spots explained, where "
-                              f"{chance[id(mm)]:.1f} would fall on its beams by chance (or fewer than a net "
-                              f"with its free parameters fits)",)) for mm in models]
-    models.sort(key=lambda mm: (not _significant(mm, _chance_explained(ctx, mm)), -mm.score))  # "none" first
+    judged = []  # (significant, model), each model's chance computed once
+    for mm in models:
+        chance = _chance_explained(ctx, mm)
+        ok = _significant(mm, chance)
+        judged.append((ok, mm if ok else dataclasses.replace(
+            mm, notes=mm.notes + (f"not significant: {int(mm.score_terms['explained'])} spots explained, where "
+                                  f"{chance:.1f} would fall on its beams by chance (or fewer than a net "
+                                  f"with its free parameters fits)",))))
+    judged.sort(key=lambda t: (not t[0], -t[1].score))  # "none" before a chance fit
+    models = [mm for _, mm in judged]
     out, keys = [], []
     for mm in models:
         key = (mm.wood, mm.n_domains, mm.kind) if mm.wood else (mm.n_domains, mm.kind, _lattice_key(mm.matrix))

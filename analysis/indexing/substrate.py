@@ -400,11 +400,12 @@ def _try_substrate(xy, tree, inten, energy_eV, a_star, e, v, center, geometry, l
             pi, oj = _match(pred, tree, tol)
         if len(pi) < 2 or np.linalg.matrix_rank(hk_all[pi]) < 2:
             return None
+        one_ring = _one_ring(hk_all[pi], a_star)
         if n_stage >= 2 and len(pi) >= _MIN_SPOTS_FOR_INCIDENCE:  # the beam may be off normal
             free = free + OFF_AXIS[:2]
-        elif n_stage >= 3 and len(pi) >= 6 and geometry is None and _one_ring(hk_all[pi], a_star):
+        elif n_stage >= 3 and len(pi) >= 6 and geometry is None and one_ring:
             free = free + OFF_AXIS[2:]  # one ring: a keystone (with its prior)
-        if n_stage >= 2 and len(pi) >= 8 and geometry is None and not _one_ring(hk_all[pi], a_star):
+        if n_stage >= 2 and len(pi) >= 8 and geometry is None and not one_ring:
             # an oval image, or a named net whose a/b is a little off (a strained film): both
             # stretch the net along one direction, and the outer rings leave the tolerance first
             free = free + ("ellipticity",)
