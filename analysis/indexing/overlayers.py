@@ -591,18 +591,30 @@ def _population_test(hk: np.ndarray, by: np.ndarray, intensity: np.ndarray, ops,
     cls = cls.ravel()
     dom = by[sel]
 
-    def resid_var(cols):
-        x = np.column_stack(cols)
-        beta, *_ = np.linalg.lstsq(x, li, rcond=None)
-        r = li - x @ beta
-        return float(r @ r) / max(len(li) - np.linalg.matrix_rank(x), 1)
+    # least squares on class and domain indicators, with the class effects absorbed first
+    # (the within-class transformation, exact for indicator columns): only the few domain
+    # columns are fitted, however many classes there are
+    n_cls = int(cls.max()) + 1
+    count = np.bincount(cls, minlength=n_cls).astype(float)
 
-    c_cols = [(cls == c).astype(float) for c in np.unique(cls)]
-    d_cols = [(dom == d).astype(float) for d in np.unique(dom)[1:]]
-    if len(li) - np.linalg.matrix_rank(np.column_stack(c_cols + d_cols)) < 4:
+    def within(v):  # v minus its class mean, for a vector or the columns of a matrix
+        sums = np.zeros((n_cls,) + v.shape[1:])
+        np.add.at(sums, cls, v)
+        return v - (sums / count.reshape((-1,) + (1,) * (v.ndim - 1)))[cls]
+
+    r0 = within(li)
+    doms = np.unique(dom)
+    d = within((dom[:, None] == doms[None, 1:]).astype(float))
+    rank_d = int(np.linalg.matrix_rank(d)) if d.shape[1] else 0
+    if len(li) - (n_cls + rank_d) < 4:
         return None  # too few spots per class to tell
-    v0 = resid_var(c_cols)
-    v1 = resid_var(c_cols + d_cols) if d_cols else v0
+    v0 = float(r0 @ r0) / max(len(li) - n_cls, 1)
+    if d.shape[1]:
+        beta, *_ = np.linalg.lstsq(d, r0, rcond=None)
+        r1 = r0 - d @ beta
+        v1 = float(r1 @ r1) / max(len(li) - n_cls - rank_d, 1)
+    else:
+        v1 = v0
     # measured spot intensities scatter by ~10 % between equivalent beams (common practice for
     # LEED: screen and camera non-uniformity), so differences of a few per cent between domains
     # are no evidence of unequal populations, however precise the counts
