@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import math
 import time
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -189,6 +190,19 @@ def _as_image(image) -> LoadedImage:
     return load_image(image)
 
 
+def _measure_reference(reference, shape, sigma_px, min_snr):
+    """The reference image's spots, or the ImageError/FitError that makes it unusable (returned,
+    not raised: a reference that cannot be used never stops the analysis)."""
+    try:
+        ref_img = _as_image(reference)
+        if ref_img.shape != shape:
+            raise ImageError(f"it is {ref_img.shape[1]}×{ref_img.shape[0]} px but the image is "
+                             f"{shape[1]}×{shape[0]} px; use one from the same camera.")
+        return measure_image(ref_img, sigma_px=sigma_px, min_snr=min_snr)
+    except (ImageError, FitError) as err:
+        return err
+
+
 def _local_intensity(img: np.ndarray, bg: np.ndarray, x: float, y: float, half: int = 4) -> float:
     r, c = int(round(y)), int(round(x))
     r0, r1 = max(0, r - half), min(img.shape[0], r + half + 1)
@@ -291,9 +305,25 @@ def analyze_image(image, *, energy_eV: float, substrate: str | Net2D, reference=
     ed = edits if isinstance(edits, Edits) else Edits.from_dict(edits)
     img = _as_image(image)
     timings = {}
+    re_ = None
+    if reference is not None:
+        if reference_energy_eV is None:
+            raise ParameterError("A reference image needs its energy (reference energy in eV).")
+        re_ = check_energy(reference_energy_eV, "reference energy")
     say(0.05, "finding the screen, the gun shadow and the spots")
-    meas = measure_image(img, sigma_px=sigma_px, min_snr=min_snr)
-    timings["spots"] = time.perf_counter() - t0
+    # the reference is measured on the machine's other core while the image is: the two
+    # measurements share nothing, and most of their time is spent in numpy outside the GIL
+    with ThreadPoolExecutor(max_workers=1) as pool:
+        ref_job = (pool.submit(_measure_reference, reference, img.shape, sigma_px, min_snr)
+                   if reference is not None else None)
+        try:
+            meas = measure_image(img, sigma_px=sigma_px, min_snr=min_snr)
+        except BaseException:
+            if ref_job is not None:
+                ref_job.cancel()
+            raise
+        timings["spots"] = time.perf_counter() - t0
+        ref_meas = ref_job.result() if ref_job is not None else None
     xy, inten, snr, manual, trusted = _apply_edits(meas, img.data, ed)
     if len(xy) < 3:
         raise FitError(f"Only {len(xy)} spots found (signal-to-noise ≥ {min_snr:g}); an ordered surface shows "
@@ -306,16 +336,10 @@ def analyze_image(image, *, energy_eV: float, substrate: str | Net2D, reference=
             raise ParameterError(f"`calibration` must be a Calibration or ScreenGeometry, got {type(calibration).__name__}.")
         source = "calibration"
     if reference is not None:
-        if reference_energy_eV is None:
-            raise ParameterError("A reference image needs its energy (reference energy in eV).")
-        re_ = check_energy(reference_energy_eV, "reference energy")
         say(0.3, "calibrating the camera on the reference image")
         try:  # a reference that cannot be used never stops the analysis: it goes on without it
-            ref_img = _as_image(reference)
-            if ref_img.shape != img.shape:
-                raise ImageError(f"it is {ref_img.shape[1]}×{ref_img.shape[0]} px but the image is "
-                                 f"{img.shape[1]}×{img.shape[0]} px; use one from the same camera.")
-            ref_meas = measure_image(ref_img, sigma_px=sigma_px, min_snr=min_snr)
+            if isinstance(ref_meas, Exception):
+                raise ref_meas
             gfit, _ = calibrate_from_reference(ref_meas.spots.xy, hint, re_)
         except (ImageError, FitError) as err:
             warnings.append(f"The reference image was not used: {err}")
