@@ -60,6 +60,11 @@ def _bounded_lm(fun, jac, x0: np.ndarray, lo: np.ndarray, hi: np.ndarray, *, max
             except np.linalg.LinAlgError:
                 mu *= 10.0
                 continue
+            # the linear model's own forecast of the gain, |r|² − |r + J s|²: when even that is
+            # below the tolerance the fit has converged (an accepted step would gain no more, and
+            # smaller steps less)
+            if -(2.0 * float(g @ step) + float(step @ jtj @ step)) <= rtol * max(cost, 1e-300):
+                break
             x_new = np.clip(x + step, lo, hi)
             r_new = fun(x_new)
             c_new = float(r_new @ r_new)
