@@ -53,10 +53,15 @@ def _bounded_lm(fun, jac, x0: np.ndarray, lo: np.ndarray, hi: np.ndarray, *, max
         jtj = j.T @ j
         g = j.T @ r
         d = np.maximum(np.diag(jtj), 1e-12 * max(float(np.max(np.diag(jtj))), 1e-300))
+        # a parameter held at a bound by a gradient pushing it out stays there this step (the
+        # step of the others is then a true descent step, not a clipped one: no zig-zag)
+        held = ((x <= lo) & (g > 0)) | ((x >= hi) & (g < 0))
+        free = ~held
         accepted = False
         for _ in range(12):
+            step = np.zeros_like(x)
             try:
-                step = -np.linalg.solve(jtj + mu * np.diag(d), g)
+                step[free] = -np.linalg.solve((jtj + mu * np.diag(d))[np.ix_(free, free)], g[free])
             except np.linalg.LinAlgError:
                 mu *= 10.0
                 continue
