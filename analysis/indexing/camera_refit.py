@@ -246,13 +246,10 @@ def _lattice_sigma(lat: np.ndarray, cov: np.ndarray, n_mc: int = 400) -> dict:
         draws = rng.multivariate_normal(lat.ravel(), cov, size=n_mc, method="eigh")
     except (ValueError, np.linalg.LinAlgError):  # pragma: no cover
         return {}
-    vals = []
-    for d in draws:
-        real = np.linalg.inv(d.reshape(2, 2)).T
-        a, b = np.linalg.norm(real, axis=1)
-        g = math.degrees(math.acos(np.clip(real[0] @ real[1] / (a * b), -1, 1)))
-        vals.append((a, b, g))
-    s = np.std(np.array(vals), axis=0, ddof=1)
+    real = np.linalg.inv(draws.reshape(-1, 2, 2)).transpose(0, 2, 1)  # each draw's real net, rows a, b
+    a, b = np.linalg.norm(real[:, 0], axis=1), np.linalg.norm(real[:, 1], axis=1)
+    g = np.degrees(np.arccos(np.clip(np.einsum("ij,ij->i", real[:, 0], real[:, 1]) / (a * b), -1, 1)))
+    s = np.std(np.column_stack([a, b, g]), axis=0, ddof=1)
     return {"a_A": float(s[0]), "b_A": float(s[1]), "gamma_deg": float(s[2])}
 
 
