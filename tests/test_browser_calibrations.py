@@ -85,3 +85,66 @@ def test_save_a_named_calibration_see_where_it_came_from_and_use_it(page, live_s
     assert saved.result["calibration_source"] == "calibration"
     page.screenshot(path=str(SHOTS / "calibration-picked.png"), full_page=True)
     assert not errors, errors
+
+
+def test_rename_delete_and_restore_a_named_calibration(page, live_server, fresh_store):
+    from analysis.optics import ScreenGeometry
+    from webapp import calibrations
+
+    geom = ScreenGeometry(512.0, 500.0, 600.0, distortion=0.2).to_dict()
+    a = calibrations.save_calibration(fresh_store, name="Chamber A", camera="CCD 1", energy_range_eV=(60, 200),
+                                      geometry=geom, provenance={"source": "reference"})
+    calibrations.save_calibration(fresh_store, name="Chamber B", energy_range_eV=(60, 200), geometry=geom,
+                                  provenance={})
+    errors = []
+    page.on("console", lambda m: errors.append(m.text) if m.type == "error" else None)
+    page.goto(live_server + "/")
+    page.wait_for_selector("#upload input[type=file]", state="attached")
+    page.get_by_text("Reference image and calibration (optional)").click()
+
+    def note_says(text):
+        page.wait_for_function("t => (document.querySelector('#calibration-note') || {}).innerText?.includes(t)",
+                               arg=text)
+
+    # nothing picked: one line, nothing changed
+    page.click("#calibration-rename")
+    note_says("Pick a named calibration above first")
+    _pick(page, "calibration-pick", a.label())
+    page.wait_for_selector("#calibration-facts")
+    # bad names: empty, then one another calibration has
+    page.click("#calibration-rename")
+    note_says("Type the new name")
+    page.fill("#calibration-new-name", "Chamber B")
+    page.click("#calibration-rename")
+    note_says("exists already")
+    assert {c.name for c in calibrations.list_calibrations(fresh_store)} == {"Chamber A", "Chamber B"}
+    page.fill("#calibration-new-name", "Chamber A (MCP 2)")
+    page.click("#calibration-rename")
+    note_says("Renamed 'Chamber A' to 'Chamber A (MCP 2)'")
+    page.wait_for_function("document.querySelector('#calibration-facts').innerText.includes('Chamber A (MCP 2)')")
+    assert "Chamber A (MCP 2)" in page.inner_text("#calibration-pick")  # the dropdown shows the new label
+    assert calibrations.get_calibration(fresh_store, a.value).name == "Chamber A (MCP 2)"
+
+    # Delete asks first; cancelling keeps it
+    dialogs = []
+    page.once("dialog", lambda d: (dialogs.append(d.message), d.dismiss()))
+    page.click("#calibration-delete")
+    page.wait_for_timeout(800)
+    assert dialogs and "Chamber A (MCP 2)" in dialogs[0] and "30 days" in dialogs[0]
+    assert calibrations.get_calibration(fresh_store, a.value) is not None
+    page.once("dialog", lambda d: d.accept())
+    page.click("#calibration-delete")
+    note_says("Deleted the calibration")
+    assert calibrations.get_calibration(fresh_store, a.value) is None
+    page.get_by_text("Recently deleted calibrations (restorable for 30 days)").click()
+    row = page.locator("#calibration-deleted-list .deleted-row:has-text('Chamber A (MCP 2)')")
+    assert "kept until" in row.inner_text()
+    SHOTS.mkdir(parents=True, exist_ok=True)
+    page.screenshot(path=str(SHOTS / "calibration-deleted.png"), full_page=True)
+    row.locator("button").click()
+    note_says("Restored")
+    restored = calibrations.get_calibration(fresh_store, a.value)
+    assert restored.name == "Chamber A (MCP 2)" and restored.geometry == geom  # nothing lost
+    _pick(page, "calibration-pick", restored.label())
+    page.wait_for_selector("#calibration-facts")
+    assert not errors, errors

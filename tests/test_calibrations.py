@@ -102,3 +102,69 @@ def test_the_page_says_when_the_energy_lies_outside_the_range(fresh_store):
     assert "clean Cu(100) 80 eV.png" in inside and "meant for" not in inside
     assert "It is meant for 100–250 eV; this image is at 60 eV." in outside
     assert "no longer available" in text_of(on_pick_calibration("cal:gone", 130))
+
+
+def test_rename_keeps_the_model_and_refuses_empty_or_taken_names(store_url):
+    s = Store(store_url)
+    a = cals.save_calibration(s, name="A", energy_range_eV=(60, 60), geometry=_geometry(610.0), provenance=PROV)
+    b = cals.save_calibration(s, name="B", energy_range_eV=(60, 60), geometry=_geometry(620.0), provenance={})
+    got = cals.rename_calibration(s, a.value, "  Chamber   A ")
+    assert got.name == "Chamber A" and got.key == a.key and got.geometry == a.geometry and got.provenance == PROV
+    assert cals.rename_calibration(s, a.value, "Chamber A").name == "Chamber A"  # its own name: no clash
+    for new, msg in (("", "Type the new name"), ("   ", "Type the new name"), ("B", "exists already"),
+                     ("x" * 81, "at most 80 characters")):
+        with pytest.raises(ParameterError, match=msg) as e:
+            cals.rename_calibration(s, a.value, new)
+        assert "\n" not in str(e.value)
+    with pytest.raises(ParameterError, match="no longer available"):
+        cals.rename_calibration(s, "cal:nothing-here", "C")
+    # nothing lost: both still there under their names, each with its own model
+    by_name = {c.name: c for c in cals.list_calibrations(s)}
+    assert set(by_name) == {"Chamber A", "B"}
+    assert by_name["B"].geometry == b.geometry and by_name["Chamber A"].geometry == a.geometry
+
+
+def test_delete_is_recoverable_then_purged_after_30_days(store_url):
+    from datetime import datetime, timedelta, timezone
+
+    s = Store(store_url)
+    a = cals.save_calibration(s, name="A", energy_range_eV=(60, 60), geometry=_geometry(), provenance={})
+    b = cals.save_calibration(s, name="B", energy_range_eV=(60, 60), geometry=_geometry(), provenance={})
+    assert cals.delete_calibration(s, a.value) is True
+    assert cals.delete_calibration(s, a.value) is False  # deleted once
+    assert [c.name for c in cals.list_calibrations(s)] == ["B"]
+    assert cals.get_calibration(s, a.value) is None and cals.resolve(s, a.value) is None  # cannot be picked
+    [gone] = cals.deleted_calibrations(s)
+    assert gone.key == a.key and gone.deleted_at.tzinfo is not None
+    # its name stays reserved while it can come back
+    with pytest.raises(ParameterError, match="deleted calibration is still named 'A'"):
+        cals.save_calibration(s, name="A", energy_range_eV=(60, 60), geometry=_geometry(), provenance={})
+    with pytest.raises(ParameterError, match="deleted calibration is still named 'A'"):
+        cals.rename_calibration(s, b.value, "A")
+    assert cals.restore_calibration(s, a.value) is True and cals.restore_calibration(s, a.value) is False
+    assert cals.get_calibration(s, a.value).geometry == a.geometry
+    # kept 30 days (KEEP_DELETED_DAYS), then purged
+    cals.delete_calibration(s, a.value)
+    soon = datetime.now(timezone.utc) + timedelta(days=29)
+    assert cals.purge_deleted_calibrations(s, now=soon) == 0 and len(cals.deleted_calibrations(s)) == 1
+    assert cals.purge_deleted_calibrations(s, now=soon + timedelta(days=2)) == 1
+    assert cals.deleted_calibrations(s) == [] and cals.restore_calibration(s, a.value) is False
+    assert [c.name for c in cals.list_calibrations(s)] == ["B"]
+
+
+def test_an_old_calibrations_table_gains_the_deleted_column(tmp_path):
+    import sqlalchemy as sa
+
+    url = f"sqlite:///{tmp_path / 'old.sqlite3'}"
+    eng = sa.create_engine(url)
+    with eng.begin() as c:  # the table as the first version made it
+        c.exec_driver_sql("CREATE TABLE calibrations (id INTEGER PRIMARY KEY, key VARCHAR(64) UNIQUE, "
+                          "name VARCHAR(80) UNIQUE, camera VARCHAR(80), energy_min_eV FLOAT, energy_max_eV FLOAT, "
+                          "geometry JSON, provenance JSON, created_at DATETIME)")
+        c.exec_driver_sql("INSERT INTO calibrations VALUES (1, 'k0123456789abcdef', 'old one', '', 60, 60, "
+                          "'{\"scale_px\": 600}', '{}', '2026-01-02 03:04:05')")
+    eng.dispose()
+    s = Store(url)
+    [old] = cals.list_calibrations(s)
+    assert old.name == "old one" and old.deleted_at is None
+    assert cals.delete_calibration(s, old.value) and cals.deleted_calibrations(s)[0].name == "old one"

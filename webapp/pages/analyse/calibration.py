@@ -1,17 +1,23 @@
 """Named calibrations on the analyse page: save the camera model of the analysis under a name, pick one
-by name, and see where the picked one came from."""
+by name, see where the picked one came from, rename or delete it (asking first; 'Recently deleted
+calibrations' brings it back for 30 days)."""
 
 from __future__ import annotations
 
-from dash import Input, Output, State, callback, html, no_update
+from datetime import timedelta
+
+from dash import ALL, Input, Output, State, callback, ctx, html, no_update
 from dash.exceptions import PreventUpdate
 
 from webapp import calibrations, ids, runtime, service
+from webapp.store import KEEP_DELETED_DAYS
 from webapp.pages.common import fail, note
 
 from .state import result_of
 
-__all__ = ["calibration_choices", "calibration_info", "on_save_calibration", "on_pick_calibration"]
+__all__ = ["calibration_choices", "calibration_info", "on_save_calibration", "on_pick_calibration",
+           "deleted_calibration_rows", "on_rename_calibration", "on_ask_delete_calibration",
+           "on_confirm_delete_calibration", "on_restore_calibration"]
 
 
 def calibration_choices() -> list[dict]:
@@ -153,6 +159,164 @@ def on_pick_calibration(value, energy=None):
     return [calibration_info(cal), warn]
 
 
+def deleted_calibration_rows() -> list:
+    """The deleted calibrations still kept: name, camera and range, when each goes for good, 'Restore'.
+
+    Returns
+    -------
+    list of dash components
+        One row each, or a line saying there are none.
+    """
+    try:
+        gone = calibrations.deleted_calibrations(runtime.get_store())
+    except Exception as err:  # noqa: BLE001 - a database fault must not break the page
+        return [note(fail(err))]
+    if not gone:
+        return [html.P("No calibration deleted in the last 30 days.", className="muted")]
+    return [html.Div(className="row deleted-row", children=[
+        html.Span(c.label()),
+        html.Span(f"deleted {c.deleted_at:%Y-%m-%d %H:%M} UTC, kept until "
+                  f"{c.deleted_at + timedelta(days=KEEP_DELETED_DAYS):%Y-%m-%d}", className="muted"),
+        html.Button("Restore", id={"type": ids.CAL_RESTORE, "key": c.key}, className="small"),
+    ]) for c in gone]
+
+
+def _picked_named(value, source):
+    """The named calibration picked, or a one-line note why there is none to change."""
+    if (source or {}).get("readonly"):
+        return None, note("A shared analysis is read-only: open the analyse page to manage calibrations.")
+    if not value or not str(value).startswith(calibrations.PREFIX):
+        return None, note("Pick a named calibration above first (a saved analysis's camera model has no name "
+                          "to change).")
+    cal = calibrations.get_calibration(runtime.get_store(), value)
+    if cal is None:
+        return None, note("This calibration is no longer available; pick another.")
+    return cal, None
+
+
+def on_rename_calibration(n_clicks, new_name, value, energy, source):
+    """'Rename' -> the picked calibration under the typed name -> (note, options, facts).
+
+    Parameters
+    ----------
+    n_clicks : int or None
+        The button's clicks.
+    new_name : str or None
+        As typed.
+    value : str or None
+        The calibration picked.
+    energy : float or None
+        The beam energy typed (for the facts' range line), eV.
+    source : dict or None
+        The source store (a read-only page changes nothing).
+
+    Returns
+    -------
+    tuple
+        (note, dropdown options, facts of the picked calibration).
+    """
+    if not n_clicks:
+        raise PreventUpdate
+    try:
+        cal, why = _picked_named(value, source)
+        if cal is None:
+            return why, no_update, no_update
+        new = calibrations.rename_calibration(runtime.get_store(), value, new_name)
+    except Exception as err:  # noqa: BLE001
+        return note(fail(err)), no_update, no_update
+    return note(f"Renamed {cal.name!r} to {new.name!r}.", "ok"), calibration_choices(), \
+        on_pick_calibration(value, energy)
+
+
+def on_ask_delete_calibration(n_clicks, value, source):
+    """'Delete' -> ask first -> (dialog shown, its message, note).
+
+    Parameters
+    ----------
+    n_clicks : int or None
+        The button's clicks.
+    value : str or None
+        The calibration picked.
+    source : dict or None
+        The source store.
+
+    Returns
+    -------
+    tuple
+        (dialog shown, message, note).
+    """
+    if not n_clicks:
+        raise PreventUpdate
+    try:
+        cal, why = _picked_named(value, source)
+    except Exception as err:  # noqa: BLE001
+        return False, no_update, note(fail(err))
+    if cal is None:
+        return False, no_update, why
+    return True, (f"Delete the calibration '{cal.name}'? It leaves the list (analyses made with it keep their "
+                  f"results); 'Recently deleted calibrations' brings it back for {KEEP_DELETED_DAYS} days."), None
+
+
+def on_confirm_delete_calibration(submitted, value, source):
+    """The deletion was confirmed: mark it deleted -> (note, options, picked value, deleted rows).
+
+    Parameters
+    ----------
+    submitted : int or None
+        Clicks of the dialog's OK.
+    value : str or None
+        The calibration picked.
+    source : dict or None
+        The source store.
+
+    Returns
+    -------
+    tuple
+        (note, dropdown options, dropdown value, deleted rows).
+    """
+    if not submitted:
+        raise PreventUpdate
+    try:
+        cal, why = _picked_named(value, source)
+        if cal is None:
+            return why, no_update, no_update, no_update
+        calibrations.delete_calibration(runtime.get_store(), value)
+    except Exception as err:  # noqa: BLE001
+        return note(fail(err)), no_update, no_update, no_update
+    return note(f"Deleted the calibration {cal.name!r}. 'Recently deleted calibrations' below brings it back.",
+                "ok"), calibration_choices(), None, deleted_calibration_rows()
+
+
+def on_restore_calibration(clicks, source):
+    """A 'Restore' button -> that calibration back in the list -> (note, options, deleted rows).
+
+    Parameters
+    ----------
+    clicks : list of int or None
+        The Restore buttons' clicks.
+    source : dict or None
+        The source store.
+
+    Returns
+    -------
+    tuple
+        (note, dropdown options, deleted rows).
+    """
+    trig = ctx.triggered_id
+    if not isinstance(trig, dict) or not ctx.triggered[0].get("value"):
+        raise PreventUpdate
+    if (source or {}).get("readonly"):
+        return note("A shared analysis is read-only: open the analyse page to manage calibrations."), \
+            no_update, no_update
+    try:
+        ok = calibrations.restore_calibration(runtime.get_store(), str(trig.get("key")))
+    except Exception as err:  # noqa: BLE001
+        return note(fail(err)), no_update, no_update
+    msg = note("Restored: the calibration is back in the list above.", "ok") if ok else \
+        note("That calibration is no longer kept (deleted over 30 days ago) or was restored already.")
+    return msg, calibration_choices(), deleted_calibration_rows()
+
+
 callback(
     Output(ids.CAL_NOTE, "children"), Output(ids.CALIBRATION, "options"), Output(ids.CALIBRATION, "value"),
     Input(ids.CAL_SAVE, "n_clicks"),
@@ -165,3 +329,33 @@ callback(
     Output(ids.CAL_INFO, "children"),
     Input(ids.CALIBRATION, "value"), Input(ids.ENERGY, "value"),
 )(on_pick_calibration)
+
+callback(
+    Output(ids.CAL_NOTE, "children", allow_duplicate=True), Output(ids.CALIBRATION, "options", allow_duplicate=True),
+    Output(ids.CAL_INFO, "children", allow_duplicate=True),
+    Input(ids.CAL_RENAME, "n_clicks"),
+    State(ids.CAL_NEW_NAME, "value"), State(ids.CALIBRATION, "value"), State(ids.ENERGY, "value"),
+    State(ids.SOURCE, "data"),
+    prevent_initial_call=True,
+)(on_rename_calibration)
+
+callback(
+    Output(ids.CAL_CONFIRM, "displayed"), Output(ids.CAL_CONFIRM, "message"),
+    Output(ids.CAL_NOTE, "children", allow_duplicate=True),
+    Input(ids.CAL_DELETE, "n_clicks"), State(ids.CALIBRATION, "value"), State(ids.SOURCE, "data"),
+    prevent_initial_call=True,
+)(on_ask_delete_calibration)
+
+callback(
+    Output(ids.CAL_NOTE, "children", allow_duplicate=True), Output(ids.CALIBRATION, "options", allow_duplicate=True),
+    Output(ids.CALIBRATION, "value", allow_duplicate=True), Output(ids.CAL_DELETED_LIST, "children"),
+    Input(ids.CAL_CONFIRM, "submit_n_clicks"), State(ids.CALIBRATION, "value"), State(ids.SOURCE, "data"),
+    prevent_initial_call=True,
+)(on_confirm_delete_calibration)
+
+callback(
+    Output(ids.CAL_NOTE, "children", allow_duplicate=True), Output(ids.CALIBRATION, "options", allow_duplicate=True),
+    Output(ids.CAL_DELETED_LIST, "children", allow_duplicate=True),
+    Input({"type": ids.CAL_RESTORE, "key": ALL}, "n_clicks"), State(ids.SOURCE, "data"),
+    prevent_initial_call=True,
+)(on_restore_calibration)

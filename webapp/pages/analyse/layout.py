@@ -6,7 +6,7 @@ from dash import dcc, html
 
 from webapp import figures, ids, service
 
-from .calibration import calibration_choices
+from .calibration import calibration_choices, deleted_calibration_rows
 from .spot_tools import tools_panels
 from .state import empty_edits
 
@@ -143,6 +143,14 @@ def workspace(*, readonly: bool = False, image: dict | None = None, record: dict
             ]),
             html.Div(id=ids.CAL_INFO),
             html.Div(className="row", children=[
+                html.Label("The named calibration picked above:", htmlFor=ids.CAL_NEW_NAME),
+                dcc.Input(id=ids.CAL_NEW_NAME, type="text", placeholder="new name", maxLength=80, className="grow"),
+                html.Button("Rename", id=ids.CAL_RENAME, className="small"),
+                html.Button("Delete", id=ids.CAL_DELETE, className="small",
+                            title="Delete (recoverable for 30 days)"),
+            ]),
+            dcc.ConfirmDialog(id=ids.CAL_CONFIRM),
+            html.Div(className="row", children=[
                 html.Label("Keep the camera model of this analysis as", htmlFor=ids.CAL_NAME),
             ]),
             html.Div(className="row", children=[
@@ -153,6 +161,10 @@ def workspace(*, readonly: bool = False, image: dict | None = None, record: dict
                 html.Button("Save this calibration", id=ids.CAL_SAVE, className="small"),
             ]),
             html.Div(id=ids.CAL_NOTE, **{"aria-live": "polite"}),
+            html.Details(children=[
+                html.Summary("Recently deleted calibrations (restorable for 30 days)"),
+                html.Div(deleted_calibration_rows(), id=ids.CAL_DELETED_LIST),
+            ]),
         ]),
         html.Div(className="row", children=[
             html.Button("Analyse", id=ids.RUN, className="primary"),
