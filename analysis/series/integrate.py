@@ -88,13 +88,13 @@ def _square_offsets(half: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
 
 @functools.lru_cache(maxsize=16)
 def _neighbour_columns(hi_px: float, n: int) -> np.ndarray:
-    """(n, 4) columns of the 4 nearest neighbours (up, down, left, right) of each of the
-    first `n` pixels of :func:`_disk_offsets` (`hi_px`); a neighbour outside the disk is
-    the pixel itself."""
+    """(4 n,) columns of the 4 nearest neighbours of the first `n` pixels of
+    :func:`_disk_offsets` (`hi_px`): all up-neighbours first, then down, left and right (one
+    contiguous block per direction); a neighbour outside the disk is the pixel itself."""
     dy, dx = _disk_offsets(hi_px)[:2]
     at = {(int(a), int(b)): i for i, (a, b) in enumerate(zip(dy, dx))}
-    out = np.array([[at.get((int(dy[i]) + a, int(dx[i]) + b), i) for a, b in ((-1, 0), (1, 0), (0, -1), (0, 1))]
-                    for i in range(n)], dtype=np.int64).reshape(n, 4)
+    out = np.array([[at.get((int(dy[i]) + a, int(dx[i]) + b), i) for i in range(n)]
+                    for a, b in ((-1, 0), (1, 0), (0, -1), (0, 1))], dtype=np.int64).reshape(4 * n)
     out.flags.writeable = False
     return out
 
@@ -109,11 +109,12 @@ _SPIKE_SIGMAS = 6.0
 def _despike(data: np.ndarray, n: int, hi_px: float, bg: np.ndarray, sd: np.ndarray) -> np.ndarray:
     """The first `n` columns of the disk pixels `data` (K, ≥ n) with single-pixel spikes (hot
     pixels, cosmic-ray hits) replaced by their second-brightest 4-neighbour."""
+    k = data.shape[0]
     p = data[:, :n]
-    nb = data[:, _neighbour_columns(hi_px, n)]  # (K, n, 4)
-    hi1, lo1 = np.maximum(nb[..., 0], nb[..., 1]), np.minimum(nb[..., 0], nb[..., 1])
-    hi2, lo2 = np.maximum(nb[..., 2], nb[..., 3]), np.minimum(nb[..., 2], nb[..., 3])
-    second = np.maximum(np.minimum(hi1, hi2), np.maximum(lo1, lo2))
+    nb = np.take(data, _neighbour_columns(hi_px, n), axis=1).reshape(k, 4, n)  # up, down, left, right
+    hi1, lo1 = np.maximum(nb[:, 0], nb[:, 1]), np.minimum(nb[:, 0], nb[:, 1])
+    hi2, lo2 = np.maximum(nb[:, 2], nb[:, 3]), np.minimum(nb[:, 2], nb[:, 3])
+    second = np.maximum(np.minimum(hi1, hi2, out=hi1), np.maximum(lo1, lo2, out=lo1), out=hi1)
     b = np.where(np.isfinite(bg), bg, 0.0)[:, None]
     noise = _SPIKE_SIGMAS * np.where(np.isfinite(sd), sd, 0.0)[:, None]
     spike = p - b > _SPIKE_RATIO * np.maximum(second - b, 0.0) + noise
@@ -287,32 +288,35 @@ def _robust(values: np.ndarray, select: np.ndarray) -> tuple[np.ndarray, np.ndar
     """Per-row clipped mean, clipped standard deviation and the pixels kept, (K, n) in.
 
     Three passes of a 3σ clip (pixels of neighbouring spots and hot pixels drop out). The
-    sums are float64 row dot products with the kept set. A row whose kept set did not
-    change in a pass has converged (the next pass would repeat it exactly), so the last
-    pass runs only on the rows still changing.
+    sums are float64 row dot products with the kept set (:func:`_rowdot`). A
+    row whose kept set did not change in a pass has converged (the next pass would repeat it
+    exactly), so the last pass runs only on the rows still changing.
     """
     k = values.shape[0]
-    v = values.reshape(k, -1)
+    v = np.ascontiguousarray(values.reshape(k, -1))
     sel = select.reshape(k, -1)
     v2 = v * v
 
     def clip(v, v2, sel, keep):
         kf = keep.astype(np.float64)
-        n = kf.sum(axis=1)
-        s1 = np.einsum("kn,kn->k", v, kf)
-        s2 = np.einsum("kn,kn->k", v2, kf)
+        n = _count(keep).astype(np.float64)
+        s1 = _rowdot(v, kf)
+        s2 = _rowdot(v2, kf)
         mean = s1 / np.maximum(n, 1.0)
         sd = np.sqrt(np.maximum(s2 - s1 * mean, 0.0) / np.maximum(n - 1.0, 1.0))
         t = 3.0 * sd + 1e-12
-        return mean, sd, sel & (v >= (mean - t)[:, None]) & (v <= (mean + t)[:, None])
+        new = v >= (mean - t)[:, None]
+        new &= v <= (mean + t)[:, None]
+        new &= sel
+        return mean, sd, new, n
 
-    _, _, keep1 = clip(v, v2, sel, sel)
-    mean, sd, keep = clip(v, v2, sel, keep1)
+    _, _, keep1, _ = clip(v, v2, sel, sel)
+    mean, sd, keep, _ = clip(v, v2, sel, keep1)
     moving = np.flatnonzero(np.any(keep != keep1, axis=1))
     if moving.size:
-        m3, s3, k3 = clip(v[moving], v2[moving], sel[moving], keep[moving])
+        m3, s3, k3, _ = clip(v[moving], v2[moving], sel[moving], keep[moving])
         mean[moving], sd[moving], keep[moving] = m3, s3, k3
-    n = np.count_nonzero(keep, axis=1)
+    n = _count(keep)
     return np.where(n > 0, mean, 0.0), np.where(n > 1, sd, np.inf), keep
 
 
@@ -345,8 +349,17 @@ class SpotIntegrals:
 
 
 def _rowdot(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """Row-wise dot product of two (K, n) arrays, (K,)."""
-    return np.einsum("kn,kn->k", a, b)
+    """Row-wise dot product of two (K, n) arrays, (K,) float64 (one BLAS dot per row: about
+    twice as fast as ``einsum("kn,kn->k")`` on the windows of a frame)."""
+    return np.matmul(a[:, None, :], b[:, :, None])[:, 0, 0]
+
+
+def _count(flags: np.ndarray) -> np.ndarray:
+    """(K,) int64 count of the True values in each row of a (K, n) bool array: a byte sum
+    in 16-bit accumulators when a row cannot overflow them (several times faster than
+    ``count_nonzero(axis=1)`` on rows of a few hundred pixels)."""
+    acc = np.uint16 if flags.shape[1] < 65536 else np.int64
+    return flags.view(np.uint8).sum(axis=1, dtype=acc).astype(np.int64)
 
 
 def _normal_equations(cols: list, wts: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -433,8 +446,8 @@ def _integrate(frame: np.ndarray, rc: np.ndarray, mask: np.ndarray | None, satur
     if saturation_level is not None:
         flags[np.any(apu & (p_data >= saturation_level), axis=1)] |= FLAG_SATURATED
     apf = apu.astype(np.float64)
-    n_ap = np.count_nonzero(apu, axis=1)
-    n_keep = np.count_nonzero(keep, axis=1).astype(np.float64)
+    n_ap = _count(apu)
+    n_keep = _count(keep).astype(np.float64)
     p_dim = 1 if background == "annulus" else 3
     enough = n_keep >= max(6, 2 * p_dim)
     if p_dim == 1:  # the clipped mean is the least-squares constant on the kept pixels

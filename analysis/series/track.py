@@ -527,24 +527,35 @@ def _refine(win: _Windows, rc_pred: np.ndarray, search_px: np.ndarray, radius_px
     ob = np.arange(-b, b + 1)
     ri = pr[:, None] + ob[None, :]
     ci = pc[:, None] + ob[None, :]
-    okr, okc = (ri >= 0) & (ri < w), (ci >= 0) & (ci < w)
-    ri, ci = np.clip(ri, 0, w - 1), np.clip(ci, 0, w - 1)
-    sel = (np.arange(k) * (w * w))[:, None, None] + ri[:, :, None] * w + ci[:, None, :]
-    pos = flat.take(sel) - bg[:, None, None]
-    np.maximum(pos, 0.0, out=pos)
-    pos[~(win.usable.reshape(-1).take(sel) & okr[:, :, None] & okc[:, None, :])] = 0.0
+    if k and min(pr.min(), pc.min()) >= b and max(pr.max(), pc.max()) < w - b:
+        # every box lies inside its window: one gather of (2b+1)² squares, no index arrays
+        from numpy.lib.stride_tricks import sliding_window_view
+
+        at = (np.arange(k), pr - b, pc - b)
+        pos = sliding_window_view(win.data, (2 * b + 1, 2 * b + 1), axis=(1, 2))[at]
+        pos -= bg[:, None, None]
+        np.maximum(pos, 0.0, out=pos)
+        pos[~sliding_window_view(win.usable, (2 * b + 1, 2 * b + 1), axis=(1, 2))[at]] = 0.0
+    else:
+        okr, okc = (ri >= 0) & (ri < w), (ci >= 0) & (ci < w)
+        ri, ci = np.clip(ri, 0, w - 1), np.clip(ci, 0, w - 1)
+        sel = (np.arange(k) * (w * w))[:, None, None] + ri[:, :, None] * w + ci[:, None, :]
+        pos = flat.take(sel) - bg[:, None, None]
+        np.maximum(pos, 0.0, out=pos)
+        pos[~(win.usable.reshape(-1).take(sel) & okr[:, :, None] & okc[:, None, :])] = 0.0
     rows = (win.row0[:, None] + ri).astype(np.float64)  # (K, m)
     cols = (win.col0[:, None] + ci).astype(np.float64)
     c = np.column_stack([win.row0 + pr, win.col0 + pc]).astype(np.float64)
     sigma = np.full(k, np.nan)
     r2 = radius_px * radius_px
+    ones = np.ones(2 * b + 1)
     with np.errstate(invalid="ignore", divide="ignore"):
         for it in range(3):
             dr, dc = rows - c[:, 0, None], cols - c[:, 1, None]
             dr2, dc2 = dr * dr, dc * dc
             wgt = pos * (dr2[:, :, None] + dc2[:, None, :] <= r2)
-            w_r, w_c = wgt.sum(axis=2), wgt.sum(axis=1)  # (K, m) marginals
-            tot = w_r.sum(axis=1)
+            w_r, w_c = wgt @ ones, ones @ wgt  # (K, m) marginals, as matrix products (BLAS)
+            tot = w_r @ ones
             good = tot > 0
             new_r, new_c = _rowdot(w_r, rows) / tot, _rowdot(w_c, cols) / tot
             if it == 2:
