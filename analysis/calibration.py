@@ -32,7 +32,7 @@ from .calibration_file import CALIBRATION_SCHEMA, CALIBRATION_VERSION, Calibrati
 from .errors import FitError, ParameterError
 from .lattice import lattice_points, screen_g_max
 from .nets import Net2D, reciprocal
-from .optics import ScreenGeometry, momentum_to_pixels, wavelength_A
+from .optics import ScreenGeometry, momentum_to_pixels, pixels_to_momentum, wavelength_A
 
 __all__ = [
     "CenterEstimate",
@@ -616,3 +616,107 @@ def calibrate_from_reference(xy_px, substrate: Net2D, energy_eV: float, *, cente
         raise FitError(f"The reference spots do not index as {substrate!r} at {energy_eV} eV: {n_ok} of {len(p)} "
                        f"indexed, RMS {fit.rms_px:.2g} px; check the substrate and energy.")
     return fit, assign
+
+
+#: Camera fields a calibration fixes for the images measured with it (the centre and the
+#: azimuth are fitted again on each image, so their uncertainty is in that fit's own σ)
+HELD_BY_CALIBRATION = ("scale_px", "distortion", "ellipticity", "ellipse_deg")
+
+
+def _net_constants(xy_px: np.ndarray, hk: np.ndarray, energy_eV: float, geom: ScreenGeometry) -> np.ndarray:
+    """(a, b, γ) of the real net whose reciprocal basis best maps `hk` onto the spots' momenta."""
+    k = pixels_to_momentum(xy_px, energy_eV, geom)
+    rec, *_ = np.linalg.lstsq(hk, k, rcond=None)
+    real = np.linalg.inv(rec).T
+    a, b = np.linalg.norm(real, axis=1)
+    return np.array([a, b, math.degrees(math.acos(float(np.clip(real[0] @ real[1] / (a * b), -1, 1))))])
+
+
+def _moved(geometry: ScreenGeometry, q: np.ndarray) -> ScreenGeometry:
+    """`geometry` with its internal parameters set to `q` (incidence and keystone kept)."""
+    g = _geometry_from_internal(q, geometry.acceptance_deg)
+    return dataclasses.replace(g, incidence_x=geometry.incidence_x, incidence_y=geometry.incidence_y,
+                               perspective_x=geometry.perspective_x, perspective_y=geometry.perspective_y)
+
+
+#: The internal parameters (:func:`_internal_from_geometry`) a calibration holds: the mean
+#: scale, the distortion and the ellipticity (e1, e2)
+_HELD_INTERNAL = (2, 3, 5, 6)
+
+
+def calibration_sigma(xy_px, hk, energy_eV: float, geometry: ScreenGeometry, uncertainty: dict,
+                      covariance=None) -> dict:
+    """σ of a, b (Å) and γ (deg) of a net measured through a calibration, from the
+    calibration's own uncertainty alone (the fields it holds: :data:`HELD_BY_CALIBRATION`).
+
+    With the calibration fit's `covariance` (internal parameters, as
+    :attr:`GeometryFit.covariance`) the constants' derivatives are propagated through it,
+    correlations included (the scale and the distortion are strongly anticorrelated in a
+    calibration fit). Without it (an older file) each held field is moved by its 1-σ and
+    the changes add in quadrature: an upper estimate. The statistical σ of the image's own
+    fit adds to either in quadrature.
+
+    Parameters
+    ----------
+    xy_px : (K, 2) array_like
+        Substrate spots, (x, y) pixels.
+    hk : (K, 2) array_like
+        Their integer indices.
+    energy_eV : float
+        Electron energy, eV.
+    geometry : ScreenGeometry
+        The camera model the net was measured with.
+    uncertainty : dict of str to float
+        1-σ of the calibration's fields (:attr:`Calibration.uncertainty`).
+    covariance : (7, 7) array_like, optional
+        Covariance of the calibration fit's internal parameters.
+
+    Returns
+    -------
+    dict
+        ``a_A``, ``b_A``, ``gamma_deg``; empty when the spots cannot carry a net.
+
+    Examples
+    --------
+    >>> from analysis.optics import momentum_to_pixels
+    >>> g = ScreenGeometry(256.0, 256.0, 300.0)
+    >>> hk = np.array([[1, 0], [0, 1], [-1, 0], [0, -1], [1, 1], [-1, -1]], float)
+    >>> xy, _ = momentum_to_pixels(hk / 2.5, 100.0, g)
+    >>> s = calibration_sigma(xy, hk, 100.0, g, {"scale_px": 3.0})  # a 1 % scale: a ≈ 1 % of 2.5 Å
+    >>> print(round(s["a_A"], 3))
+    0.025
+    """
+    xy = np.asarray(xy_px, dtype=np.float64).reshape(-1, 2)
+    hk = np.asarray(hk, dtype=np.float64).reshape(-1, 2)
+    if len(xy) < 3 or np.linalg.matrix_rank(hk) < 2:
+        return {}
+    base = _net_constants(xy, hk, energy_eV, geometry)
+    cov = None if covariance is None else np.asarray(covariance, dtype=np.float64)
+    if cov is not None and cov.shape == (7, 7) and np.all(np.isfinite(cov)):
+        q0 = _internal_from_geometry(geometry)
+        jac = np.zeros((3, len(_HELD_INTERNAL)))
+        for n, i in enumerate(_HELD_INTERNAL):
+            h = 1e-4 * q0[i] if i == 2 else 1e-5
+            up, down = q0.copy(), q0.copy()
+            up[i] += h
+            down[i] -= h
+            jac[:, n] = (_net_constants(xy, hk, energy_eV, _moved(geometry, up))
+                         - _net_constants(xy, hk, energy_eV, _moved(geometry, down))) / (2 * h)
+        held = cov[np.ix_(_HELD_INTERNAL, _HELD_INTERNAL)]
+        sd = np.sqrt(np.clip(np.einsum("ij,jk,ik->i", jac, held, jac), 0.0, None))
+        return {"a_A": float(sd[0]), "b_A": float(sd[1]), "gamma_deg": float(sd[2])}
+    var = np.zeros(3)
+    for name in HELD_BY_CALIBRATION:
+        s = float(uncertainty.get(name) or 0.0)
+        if not (math.isfinite(s) and s > 0):
+            continue
+        value = getattr(geometry, name) + s
+        if name == "distortion":
+            value = min(value, 0.95)
+        try:
+            moved = dataclasses.replace(geometry, **{name: value})
+        except ParameterError:  # a field at the edge of its range: one-sided the other way
+            moved = dataclasses.replace(geometry, **{name: getattr(geometry, name) - s})
+        var += (_net_constants(xy, hk, energy_eV, moved) - base) ** 2
+    sd = np.sqrt(var)
+    return {"a_A": float(sd[0]), "b_A": float(sd[1]), "gamma_deg": float(sd[2])}

@@ -18,6 +18,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING
 
+import numpy as np
+
 from .errors import ParameterError
 from .files import write_text_atomic
 from .optics import H2_OVER_2ME_EV_A2, ScreenGeometry, wavelength_A
@@ -57,6 +59,10 @@ class Calibration:
         then holds at that angle only. Files without the field read as True.
     n_rings : int
         Distinct beam lengths |g| among the calibration spots (0: not known).
+    covariance : (7, 7) ndarray or None
+        Covariance of the fit's internal parameters (centre x, y, mean scale, distortion,
+        rotation, ellipticity e1, e2): the σ of lattice constants measured through this
+        calibration keeps their correlations (None in files written without it).
 
     Examples
     --------
@@ -77,6 +83,7 @@ class Calibration:
     created: str = ""
     distortion_measured: bool = True
     n_rings: int = 0
+    covariance: np.ndarray | None = None
 
     @classmethod
     def from_fit(cls, fit: GeometryFit, **meta) -> "Calibration":
@@ -99,6 +106,8 @@ class Calibration:
         """
         meta.setdefault("created", _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0).isoformat())
         meta.setdefault("distortion_measured", "distortion" in fit.free)
+        cov = np.asarray(fit.covariance, dtype=np.float64)
+        meta.setdefault("covariance", cov if cov.shape == (7, 7) else None)
         return cls(geometry=fit.geometry, uncertainty=dict(fit.uncertainty), energies_eV=tuple(fit.energies_eV),
                    n_spots=fit.n_spots, rms_px=float(fit.rms_px), **meta)
 
@@ -140,6 +149,8 @@ class Calibration:
             "version": CALIBRATION_VERSION,
             "geometry": self.geometry.to_dict(),
             "uncertainty": {k: num(v) for k, v in self.uncertainty.items()},
+            "covariance": None if self.covariance is None else [[num(v) for v in row] for row in
+                                                                 np.asarray(self.covariance).tolist()],
             "distortion_measured": bool(self.distortion_measured),
             "n_rings": int(self.n_rings),
             "energies_eV": [float(v) for v in self.energies_eV],
@@ -203,7 +214,7 @@ class Calibration:
                        image_shape=None if shape is None else tuple(int(v) for v in shape),
                        substrate=str(d.get("substrate", "")), note=str(d.get("note", "")),
                        created=str(d.get("created", "")), distortion_measured=measured,
-                       n_rings=int(d.get("n_rings", 0)))
+                       n_rings=int(d.get("n_rings", 0)), covariance=_covariance(d.get("covariance")))
         except (TypeError, ValueError) as exc:
             raise ParameterError(f"{source}: invalid calibration field ({exc}).") from None
 
@@ -253,3 +264,13 @@ class Calibration:
             raise ParameterError(f"{p.name}: not a JSON calibration file ({exc.__class__.__name__}: "
                                  f"{str(exc).splitlines()[0]}).") from None
         return cls.from_dict(d, source=p.name)
+
+
+def _covariance(value) -> np.ndarray | None:
+    """The calibration file's 7×7 covariance, or None (absent, or not a finite 7×7 table)."""
+    if value is None:
+        return None
+    cov = np.array([[float("nan") if v is None else float(v) for v in row] for row in value], dtype=np.float64)
+    if cov.shape != (7, 7):
+        raise ValueError(f"covariance must be 7×7, got {cov.shape[0]}×{cov.shape[1] if cov.ndim > 1 else 0}")
+    return cov if np.all(np.isfinite(cov)) else None

@@ -8,6 +8,7 @@ crystallographic (Å⁻¹, no 2π).
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import time
 from concurrent.futures import ThreadPoolExecutor
@@ -15,7 +16,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .calibration import Calibration, calibrate_from_reference
+from .calibration import Calibration, calibrate_from_reference, calibration_sigma
 from .errors import FitError, ImageError, ParameterError
 from .indexing import IndexResult, index_pattern, model_from_matrix
 from .io import LoadedImage, load_image
@@ -203,6 +204,28 @@ def _measure_reference(reference, shape, sigma_px, min_snr):
         return err
 
 
+def _with_camera_sigma(idx: IndexResult, xy: np.ndarray, energy_eV: float, camera_sigma: dict,
+                       camera_cov=None) -> IndexResult:
+    """The index result with the lattice constants' σ widened by the calibration's own
+    uncertainty (:func:`analysis.calibration.calibration_sigma`), in quadrature."""
+    fit = idx.substrate
+    stat = fit.sigma or {}
+    if stat.get("a_A") is None:  # the lattice was not measured (constants from the substrate given)
+        return idx
+    cam = calibration_sigma(xy[fit.integer], np.rint(fit.hk[fit.integer]), energy_eV, fit.geometry, camera_sigma,
+                            camera_cov)
+    if not cam:
+        return idx
+    sigma = dict(stat)
+    for key in ("a_A", "b_A", "gamma_deg"):
+        if stat.get(key) is not None:
+            sigma[key] = float(math.hypot(stat[key], cam[key]))
+    sigma["calibration"] = cam
+    fit2 = dataclasses.replace(fit, sigma=sigma)
+    cands = [fit2 if c is fit else c for c in idx.substrate_candidates]
+    return dataclasses.replace(idx, substrate=fit2, substrate_candidates=cands)
+
+
 def _local_intensity(img: np.ndarray, bg: np.ndarray, x: float, y: float, half: int = 4) -> float:
     r, c = int(round(y)), int(round(x))
     r0, r1 = max(0, r - half), min(img.shape[0], r + half + 1)
@@ -330,8 +353,11 @@ def analyze_image(image, *, energy_eV: float, substrate: str | Net2D, reference=
                        f"at least the first-order substrate spots. Check the energy, exposure and screen.")
     geometry, source, ref_geom, warnings = None, "none", None, []
     azimuth = ref_centre = None
+    camera_sigma, camera_cov = {}, None  # what a calibration or reference says of the camera fields it holds
     if calibration is not None:
         geometry = calibration.geometry if isinstance(calibration, Calibration) else calibration
+        if isinstance(calibration, Calibration):
+            camera_sigma, camera_cov = dict(calibration.uncertainty), calibration.covariance
         if not isinstance(geometry, ScreenGeometry):
             raise ParameterError(f"`calibration` must be a Calibration or ScreenGeometry, got {type(calibration).__name__}.")
         source = "calibration"
@@ -349,6 +375,7 @@ def analyze_image(image, *, energy_eV: float, substrate: str | Net2D, reference=
             azimuth = reciprocal(hint).vectors @ local_jacobian(e, ref_geom).T
             if "distortion" in gfit.free:
                 geometry, source = ref_geom, "reference"
+                camera_sigma, camera_cov = dict(gfit.uncertainty), gfit.covariance
             else:
                 warnings.append("The reference image shows one ring of substrate beams: it fixes the centre and "
                                 "the azimuth of the net; the camera scale and distortion come from this image, "
@@ -370,6 +397,8 @@ def analyze_image(image, *, energy_eV: float, substrate: str | Net2D, reference=
                         screen_radius_px=(0.45 * min(img.shape) if framed else screen.radius_px),
                         screen_prior_sigma=0.3 if framed else 0.15,
                         valid_mask=meas.valid, tol_px=tol_px, reliable=trusted, azimuth_a_star_px=azimuth)
+    if geometry is not None and camera_sigma:
+        idx = _with_camera_sigma(idx, xy, e, camera_sigma, camera_cov)
     timings["total"] = time.perf_counter() - t0
     if idx.substrate.confidence < 0.8:
         warnings.append(f"The substrate reading is uncertain ({idx.substrate.confidence:.0%}); "

@@ -20,7 +20,9 @@ Schema (``"schema": "recinet.analysis"``, ``"version": 1``), keys kept stable:
 * ``substrate``: ``net`` (plane-net type), ``a_star_px`` (rows a1*, a2* as
   pixel displacements at the centre: the local derivative of the camera
   model; always a primitive basis), ``a_angstrom``, ``b_angstrom``,
-  ``gamma_deg`` (+ ``sigma``), ``reciprocal_invA`` (rows, Å⁻¹, no 2π),
+  ``gamma_deg`` (+ ``sigma``; measured through a calibration or reference, the σ
+  counts the calibration's own uncertainty, given alone in ``sigma.from_calibration``),
+  ``reciprocal_invA`` (rows, Å⁻¹, no 2π),
   ``lattice_source``, ``confidence``.
 * ``overlayer``: ``kind`` (none/commensurate/coincidence/incommensurate),
   ``matrix`` (real space, substrate basis), ``domains`` (every domain found,
@@ -195,7 +197,11 @@ def result_to_dict(result) -> dict:
         "a_angstrom": net.a, "b_angstrom": net.b, "gamma_deg": net.gamma_deg,
         "sigma": {"a_angstrom": _f(sig.get("a_A")), "b_angstrom": _f(sig.get("b_A")),
                   "gamma_deg": _f(sig.get("gamma_deg")), "center_x_px": _f(sig.get("center_x_px")),
-                  "center_y_px": _f(sig.get("center_y_px")), "scale_px": _f(sig.get("scale_px"))},
+                  "center_y_px": _f(sig.get("center_y_px")), "scale_px": _f(sig.get("scale_px")),
+                  # the part of the σ above that the calibration's own uncertainty makes
+                  "from_calibration": None if not sig.get("calibration") else {
+                      "a_angstrom": _f(sig["calibration"]["a_A"]), "b_angstrom": _f(sig["calibration"]["b_A"]),
+                      "gamma_deg": _f(sig["calibration"]["gamma_deg"])}},
         "a_star_invA": a_star, "b_star_invA": b_star, "gamma_star_deg": gamma_star,
         "reciprocal_invA": fit.reciprocal_net.vectors.tolist(),
         "reciprocal_convention": "crystallographic, a_i·a*_j = δ_ij, no 2π",
