@@ -6,8 +6,8 @@ import numpy as np
 import plotly.graph_objects as go
 from scipy.spatial import cKDTree
 
-from .common import (GUN_COLOUR, INTEGER_SPOT_COLOUR, MODEL_COLOUR, SCREEN_COLOUR, SUBSTRATE_COLOUR,
-                     UNEXPLAINED_COLOUR, domain_colour, domain_dash, hk_text, num)
+from .common import (GUN_COLOUR, INTEGER_SPOT_COLOUR, MODEL_COLOUR, PHASE_COLOUR, SCREEN_COLOUR,
+                     SUBSTRATE_COLOUR, UNEXPLAINED_COLOUR, domain_colour, domain_dash, hk_text, num)
 
 __all__ = ["OVERLAY_CHOICES", "pattern_figure", "predicted_spots", "net_lines"]
 
@@ -223,8 +223,17 @@ def pattern_figure(source: str | None, *, width: int, height: int, factor: int =
                                  marker=dict(symbol="circle-open", size=12, color=colours,
                                              line=dict(width=1.8, color=colours)),
                                  hovertemplate="%{text}<br>x %{x:.1f}, y %{y:.1f}<extra>spot</extra>"))
+    other = [i for i, s in enumerate(spots) if isinstance(s.get("phase"), int) and s["phase"] >= 1]
+    if "spots" in show and other:  # explained by a coexisting phase, not by the answer: not unexplained
+        fig.add_trace(go.Scatter(x=sxy[other, 0], y=sxy[other, 1], mode="markers", name="Another phase",
+                                 customdata=[["spot", i, bool(spots[i].get("manual"))] for i in other],
+                                 text=[f"phase {spots[i]['phase'] + 1}" for i in other],
+                                 marker=dict(symbol="square-open", size=13, color=PHASE_COLOUR,
+                                             line=dict(width=1.8, color=PHASE_COLOUR)),
+                                 hovertemplate="spot of %{text}<br>x %{x:.1f}, y %{y:.1f}<extra></extra>"))
     if "unexplained" in show and len(spots):
-        un = [i for i, s in enumerate(spots) if s.get("kind") == "unexplained" or s.get("explained") is False]
+        un = [i for i, s in enumerate(spots) if (s.get("kind") == "unexplained" or s.get("explained") is False)
+              and i not in set(other)]
         if un:
             fig.add_trace(go.Scatter(x=sxy[un, 0], y=sxy[un, 1], mode="markers", name="Unexplained",
                                      customdata=[["spot", i, bool(spots[i].get("manual"))] for i in un],

@@ -10,6 +10,7 @@ from analysis.superstructure import format_matrix
 from webapp import figures, ids, service
 from webapp.pages.common import fail, note
 
+from .phases import phases_panel, plane_group_panel
 from .state import candidate, result_of
 
 __all__ = ["show_result", "on_domain_focus", "on_show_best"]
@@ -148,8 +149,11 @@ def _result_children(result, record, pick=None):
     kinds = [s.get("kind") for s in spots]
     spot_line = f"{len(spots)} spot" + ("" if len(spots) == 1 else "s")
     if any(kinds):
+        other = sum(1 for s in spots if s.get("kind") == "unexplained" and isinstance(s.get("phase"), int)
+                    and s["phase"] >= 1)  # explained by a coexisting phase
         spot_line += (f" ({kinds.count('integer')} substrate, {kinds.count('fractional')} overlayer, "
-                      f"{kinds.count('unexplained')} unexplained)")
+                      + (f"{other} of other phases, " if other else "")
+                      + f"{kinds.count('unexplained') - other} unexplained)")
     manual = sum(1 for s in spots if s.get("manual"))
     if manual:
         spot_line += f", {manual} added by hand"
@@ -181,7 +185,8 @@ def _result_children(result, record, pick=None):
             domains, f"of candidate {int(pick) + 1}, as drawn:" if shown is not None else None))]),
     ])])
     warn = [html.Div(str(w), className="note note-warn") for w in (result.get("warnings") or [])]
-    return [n for n in (_shown_note(result, pick), *warn, answer, table) if n is not None]
+    return [n for n in (_shown_note(result, pick), *warn, answer, phases_panel(ov), plane_group_panel(ov), table)
+            if n is not None]
 
 
 def on_show_best(n_clicks):
