@@ -122,6 +122,31 @@ def test_watch_analyses_every_frame_once_and_never_half_written(tmp_path):
     assert rec["parameter"]["name"] == "exposure" and rec["segments"]
 
 
+def test_renamed_or_closed_file_is_taken_without_the_settle_time(tmp_path):
+    # A file renamed into place (inotify IN_MOVED_TO) or closed by its writer (IN_CLOSE_WRITE)
+    # is complete; one still open for writing is not, and waits the settle time (here 5 s).
+    from analysis.follow.watch import CompleteFiles
+
+    raw = _tif_bytes(_frames(1)[0][1])
+    files = CompleteFiles(tmp_path, settle_s=5.0)
+    try:
+        tmp = tmp_path / "a.tif.part"
+        tmp.write_bytes(raw)
+        t0 = time.monotonic()
+        os.replace(tmp, tmp_path / "a.tif")
+        got = files.next_ready(3.0)
+        assert got is not None and got[0].name == "a.tif" and got[1].data.shape == (256, 256)
+        assert time.monotonic() - t0 < 3.0
+        with open(tmp_path / "b.tif", "wb") as fh:  # written in place, still open
+            fh.write(raw)
+            fh.flush()
+            assert files.next_ready(1.0) is None
+        got = files.next_ready(3.0)  # closed now
+        assert got is not None and got[0].name == "b.tif"
+    finally:
+        files.close()
+
+
 def test_watch_bad_input_is_one_line(tmp_path):
     env = dict(os.environ, PYTHONPATH=str(ROOT))
     r = subprocess.run([sys.executable, "-m", "analysis.cli", "watch", str(tmp_path / "missing"), "--energy", "200",

@@ -3,8 +3,10 @@
 File-system events come from ``watchdog`` (inotify, FSEvents, ReadDirectoryChangesW). A
 file is taken once it is *complete*: its name has an image suffix (a camera program
 that writes ``frame.tif.part`` or ``.frame.tif`` and renames it is seen at the rename),
-its size has stayed the same for `settle_s`, and it decodes; a file that does not decode
-yet is tried again until `max_wait_s` has passed, then reported and skipped. Every file
+it arrived by that rename or its writer closed it (when the platform reports closes),
+or else its size has stayed the same for `settle_s`; and it decodes. A file that does
+not decode yet is tried again after another settle time until `max_wait_s` has passed,
+then reported and skipped. Every file
 is analysed once (:class:`analysis.follow.LiveSeries`), its beams appended to the series
 CSV, and one line printed. Ctrl+C (SIGINT) stops cleanly: the last frame finishes, the
 JSON summary is written, the exit status is 0.
@@ -23,6 +25,12 @@ from pathlib import Path
 from ..errors import ImageError, RecinetError, SeriesError
 
 __all__ = ["CompleteFiles", "add_watch_parser", "watch_folder"]
+
+
+# Events that say a file is complete: it was renamed to its name, or its writer closed it.
+_DONE_EVENTS = ("moved", "closed")
+# Events that change nothing (reading a file opens and closes it, our own reads included).
+_QUIET_EVENTS = ("opened", "closed_no_write")
 
 
 def _is_image_name(path: Path) -> bool:
@@ -60,7 +68,7 @@ class CompleteFiles:
 
         class _Handler(FileSystemEventHandler):
             def on_any_event(self, event):  # called on the observer's thread
-                if event.is_directory:
+                if event.is_directory or event.event_type in _QUIET_EVENTS:
                     return
                 path = getattr(event, "dest_path", None) or event.src_path
                 events.put((event.event_type, Path(os.fsdecode(path))))
@@ -75,7 +83,7 @@ class CompleteFiles:
                 if p.is_file() and _is_image_name(p):
                     self._note(p)
 
-    def _note(self, path: Path) -> None:
+    def _note(self, path: Path, kind: str = "") -> None:
         if path in self.done or not _is_image_name(path) or path.parent != self.folder:
             return
         try:
@@ -86,8 +94,13 @@ class CompleteFiles:
         now = time.monotonic()
         got = self.pending.get(path)
         if got is None or (st.st_size, st.st_mtime_ns) != got["stat"]:
-            self.pending[path] = {"stat": (st.st_size, st.st_mtime_ns), "since": now,
-                                  "first": got["first"] if got else now, "error": None}
+            got = self.pending[path] = {"stat": (st.st_size, st.st_mtime_ns), "since": now,
+                                        "first": got["first"] if got else now, "closed": False}
+        if kind in _DONE_EVENTS:
+            got["closed"] = True  # renamed into place, or its writer closed it: no settle time
+
+    def _settled(self, info: dict, now: float) -> bool:
+        return info["stat"][0] > 0 and (info["closed"] or now - info["since"] >= self.settle_s)
 
     def next_ready(self, timeout_s: float = 0.1):
         """The next complete file as ``(path, LoadedImage)``; ``(path, error text)`` for a file
@@ -109,16 +122,17 @@ class CompleteFiles:
         while True:
             try:
                 while True:
-                    _, path = self.events.get_nowait()
-                    self._note(path)
+                    self._note(*self.events.get_nowait()[::-1])
             except queue.Empty:
                 pass
             now = time.monotonic()
             for path in sorted(self.pending, key=lambda p: (self.pending[p]["first"], _natural_key(p.name))):
-                info = self.pending[path]
-                self._note(path)
                 info = self.pending.get(path)
-                if info is None or now - info["since"] < self.settle_s or info["stat"][0] == 0:
+                if info is None or not self._settled(info, now):
+                    continue
+                self._note(path)  # stat again: still the same file?
+                info = self.pending.get(path)
+                if info is None or not self._settled(info, now):
                     continue
                 try:
                     img = load_image(path)
@@ -128,7 +142,7 @@ class CompleteFiles:
                         self.pending.pop(path, None)
                         self.done.add(path)
                         return path, str(err)
-                    info["since"] = now  # try again after another settle time
+                    info["since"], info["closed"] = now, False  # try again after another settle time
                     continue
                 if (st.st_size, st.st_mtime_ns) != info["stat"]:
                     self._note(path)  # changed while it was read: wait again
@@ -136,12 +150,14 @@ class CompleteFiles:
                 self.pending.pop(path, None)
                 self.done.add(path)
                 return path, img
-            left = end - time.monotonic()
+            now = time.monotonic()
+            left = end - now
             if left <= 0:
                 return None
+            # sleep until the next event or the moment the next pending file has settled
+            due = [i["since"] + self.settle_s - now for i in self.pending.values() if not self._settled(i, now)]
             try:
-                _, path = self.events.get(timeout=min(left, max(self.settle_s / 2, 0.02)))
-                self._note(path)
+                self._note(*self.events.get(timeout=max(min([left, *due]), 0.002))[::-1])
             except queue.Empty:
                 pass
 
