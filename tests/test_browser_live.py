@@ -88,11 +88,19 @@ def test_live_page_follows_a_folder_as_it_fills(page, live_server, watch_root):
     seg_text = page.inner_text("#live-segments")
     assert "p(2×2)" in seg_text and "(√3×√3)R30°" in seg_text
     assert page.locator("#live-curves .scatterlayer .trace").count() >= 3  # two families and the integer beams
+    # beside the sums: each beam, each family's order parameter and spot widths, the switch marked
+    page.wait_for_function("() => document.querySelector('#live-beams')?.innerText?.includes('switch')",
+                           timeout=WAIT_MS)
+    beams_text = page.inner_text("#live-beams")
+    assert "order parameter" in beams_text and "σ radial" in beams_text and "(1/2,0) beams" in beams_text
+    assert page.locator("#live-beams .scatterlayer .trace").count() >= 12  # the beams of two families, per panel
+    assert "switch at exposure" in seg_text and "→ (√3×√3)R30°" in seg_text
     page.wait_for_selector("#live-frame .imagelayer image", state="attached")
     log = page.inner_text("#live-log")
     for name, _ in frames:  # each frame once
         assert log.count(name) == 1
     _shot(page, "live-segments.png")
+    page.locator("#live-beams").screenshot(path=str(SHOTS / "live-beams.png"))
     with page.expect_download() as dl:
         page.click("#live-export-csv")
     text = Path(dl.value.path()).read_text()

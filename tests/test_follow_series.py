@@ -69,6 +69,33 @@ def test_drift_and_widths_followed(temperature_run):
 
 
 @pytest.mark.slow
+@pytest.mark.filterwarnings("ignore:All-NaN slice")
+def test_order_parameter_and_family_widths_against_the_render(temperature_run):
+    from analysis.optics import wavelength_A
+
+    t, res = temperature_run
+    fam = res.families[0]
+    v, eta = res.order_parameter(fam.label)
+    # truth given to the renderer: a family's photons go as ⟨m²⟩(T) (+ short-range order) times the
+    # Debye–Waller factor exp(−c T q²) of its |g|, so η = √(I / I_max) of that curve
+    model = OrderDisorderModel(tc=400.0)
+    g2 = float(np.sum(res.trace.beams.g_par[fam.members[0]] ** 2))
+    k = 1.0 / wavelength_A(E)
+    q2 = g2 + (k + math.sqrt(k * k - g2)) ** 2
+    share = np.array([model.fractional_share(x) * math.exp(-model.debye_waller * x * q2) for x in t])
+    truth = np.sqrt(share / share.max())
+    below = t < 370.0  # clearly ordered: the beams stand well out of the noise
+    assert np.all(v == t) and np.nanmax(eta) == pytest.approx(1.0)
+    assert np.max(np.abs(eta[below] - truth[below])) < 0.05  # ~5 %: counting noise of the weakest frames
+    assert np.nanmax(eta[t > 430.0]) < 0.35  # disordered: at most the short-range tail and noise
+    _, radial, tangential = res.family_widths(fam.label)
+    # truth: σ = 1.6 px far below Tc (both directions: round spots)
+    assert radial[0] == pytest.approx(1.6, rel=0.1) and tangential[0] == pytest.approx(1.6, rel=0.1)
+    with pytest.raises(SeriesError, match="No beam family"):
+        res.family_widths("(1/3,0)")
+
+
+@pytest.mark.slow
 def test_exposure_series_p2x2_then_sqrt3():
     model = ExposureModel()
     dose = np.linspace(0.0, 12.0, 25)

@@ -107,8 +107,11 @@ def test_upload_session_analyses_dropped_frames(live_env):
     # truth: the names carry the temperatures; the renderer drew p(2×2) below Tc = 400 K
     assert state["parameter"]["values"] == [300.0, 320.0, 340.0]
     assert state["segments"] and state["segments"][0]["label"].startswith("p(2×2)")
-    status, curves, frame, table, log, link = live.on_tick(1, tok)
+    status, curves, frame, table, log, link, beams = live.on_tick(1, tok)
     assert "3 frames" in status and len(curves.data) >= 2 and len(frame.data) >= 2
+    # every beam followed has its own curve; the (1/2,0) family its order parameter and widths
+    assert len([t for t in beams.data if t.name.endswith(" beams")]) == len(state["beams"]) >= 6
+    assert {"(1/2,0) order parameter", "(1/2,0) σ radial"} <= {t.name for t in beams.data}
     assert f"session={tok}" in link.href
     data, _ = call_callback(live.on_export, f"{ids.LIVE_EXPORT_JSON}.n_clicks", None, 1, tok)
     assert json.loads(data["content"])["n_frames"] == 3
@@ -138,6 +141,40 @@ def test_curves_figure_draws_families_segments_and_the_fit(live_env):
     assert [a.text for a in fig.layout.annotations] == ["p(2×2), commensurate", "(1×1)"]
     assert fig.layout.xaxis.title.text == "temperature (K)"
     assert "as the frames arrive" in live.curves_figure({}).layout.annotations[0].text
+
+
+def test_beams_figure_draws_each_beam_order_widths_and_switches(live_env):
+    from webapp.pages import live_view as live
+
+    # a hand-made state: one family fading from 9 to 0 (so √(I/I_max) = 1, 0.88, 0.33, 0), two
+    # beams of it, one integer beam, and a switch between frames 1 and 2 at 375 K
+    st = {"parameter": {"name": "temperature", "unit": "K", "values": [300.0, 350.0, 400.0, 450.0]},
+          "families": [{"label": "(1/2,0)", "total": [9.0, 7.0, 1.0, 0.0], "order": [1.0, 0.88, 0.33, 0.0],
+                        "width_radial": [1.6, 1.7, 2.3, None], "width_tangential": [1.6, 1.6, 2.0, None]}],
+          "beams": [{"label": "(1/2,0)", "family": "(1/2,0)", "intensity": [4.5, 3.5, 0.5, 0.0]},
+                    {"label": "(0,1/2)", "family": "(1/2,0)", "intensity": [4.5, 3.5, 0.5, 0.0]},
+                    {"label": "(1,0)", "family": "integer", "intensity": [5.0, 4.8, 4.6, 4.4]}],
+          "segments": [{"first": 0, "last": 1, "value_range": [300.0, 350.0], "label": "p(2×2)",
+                        "families": ["(1/2,0)"]},
+                       {"first": 2, "last": 3, "value_range": [400.0, 450.0], "label": "(1×1)", "families": []}],
+          "switches": [{"after_frame": 1, "before_frame": 2, "value": 375.0, "from": "p(2×2)", "to": "(1×1)"}],
+          "peaks": [{"family": "(1/2,0)", "frame": 0, "value": 300.0, "intensity": 9.0}]}
+    fig = live.beams_figure(st)
+    names = [t.name for t in fig.data]
+    assert names == ["(1/2,0) beams", "(1/2,0) beams", "integer beams", "(1/2,0) order parameter",
+                     "(1/2,0) σ radial", "(1/2,0) σ tangential"]
+    assert fig.data[2].visible == "legendonly"  # integer beams off until asked for
+    assert list(fig.data[3].y) == [1.0, 0.88, 0.33, 0.0] and fig.data[3].yaxis == "y2"
+    assert fig.data[4].yaxis == "y3" and fig.layout.xaxis3.title.text == "temperature (K)"
+    switch_lines = [s for s in fig.layout.shapes if s.type == "line"]
+    assert len(switch_lines) == 3 and all(s.x0 == 375.0 for s in switch_lines)  # one per panel
+    assert "switch 375" in [a.text for a in fig.layout.annotations]
+    curves = live.curves_figure(dict(st, integer_total=[5.0, 4.8, 4.6, 4.4]))
+    assert any(t.hovertemplate and "brightest" in t.hovertemplate for t in curves.data)
+    table = live._segments_table(st)
+    text = str(table)
+    assert "switch at temperature 375 K" in text and "brightest at temperature 300 K" in text
+    assert "as the frames arrive" in live.beams_figure({}).layout.annotations[0].text
 
 
 def test_uploads_only_into_an_upload_session_and_running_sessions_capped(live_env, monkeypatch):

@@ -268,13 +268,23 @@ def _state(live, lines: list, status: str, message: str, cfg: dict) -> dict:
     out["segments"] = [{"first": s.first, "last": s.last, "value_range": list(s.value_range), "label": s.label,
                         "families": list(s.families)} for s in res.segments]
     out["drift"] = tr.drift
+    out["switches"] = res.switches()
+    out["peaks"] = res.family_peaks()
+    fam_of = {int(j): f.label for f in res.families for j in f.members}
+    shown = tr.valid & np.isfinite(tr.intensity)
+    out["beams"] = [{"label": lab, "family": "integer" if integ else fam_of.get(j, ""),
+                     "intensity": np.where(shown[:, j], tr.intensity[:, j], np.nan).tolist()}
+                    for j, (lab, integ) in enumerate(zip(tr.beams.labels, tr.beams.integer))]
+    for n, f in enumerate(res.families):
+        _, eta = res.order_parameter(n)
+        _, w_r, w_t = res.family_widths(n)
+        out["families"][n].update(order=eta.tolist(), width_radial=w_r.tolist(), width_tangential=w_t.tolist())
     fit = res.transition() if len(tr.value) >= 8 else None
     if fit is not None:
         fam = next(sg.families[0] for sg in res.segments if sg.families)
         out["transition"] = {"family": fam, **fit.to_dict(), "model": fit.model(tr.value).tolist()}
     last = live.follower.rows[-1]
-    fam = {int(j): f.label for f in res.families for j in f.members}
-    out["last_beams"] = [{"x": float(x), "y": float(y), "label": lab, "family": "integer" if integ else fam.get(j, "")}
+    out["last_beams"] = [{"x": float(x), "y": float(y), "label": lab, "family": "integer" if integ else fam_of.get(j, "")}
                          for j, ((x, y), lab, integ) in enumerate(zip(last["xy"], tr.beams.labels, tr.beams.integer))
                          if np.isfinite(x) and np.isfinite(y)]
     return out
@@ -290,11 +300,15 @@ def _run(token: str, cfg: dict, folder: Path) -> None:
     def say(text):
         text = text.replace(str(folder), shown)  # the server's own paths stay on the server
         lines.append(text)
-        _write_json(d / "state.json", _state(holder["live"], lines, "watching", text, cfg))
+        # the series is summarised once per frame (on_frame); a line alone only updates the lines
+        st = dict(holder.get("state") or _state(None, lines, "watching", text, cfg))
+        st.update(lines=lines[-40:], message=text, updated=time.time())
+        _write_json(d / "state.json", st)
 
     def on_frame(live, line):
         holder["live"] = live
-        _write_json(d / "state.json", _state(live, lines, "watching", lines[-1] if lines else "", cfg))
+        holder["state"] = _state(live, lines, "watching", lines[-1] if lines else "", cfg)
+        _write_json(d / "state.json", holder["state"])
         try:
 
             frame = live.follower.last_frame

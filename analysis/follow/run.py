@@ -135,17 +135,69 @@ class ParameterSeriesResult:
         value, intensity, sigma : (F,) ndarray of float64
             The parameter of each frame, the family's summed intensity and its uncertainty.
         """
-        labels = [f.label for f in self.families]
-        if isinstance(family, str):
-            if family not in labels:
-                raise SeriesError(f"No beam family {family!r}; the series has {', '.join(labels) or 'none'}.")
-            family = labels.index(family)
-        fam = self.families[int(family)]
+        family = self._family_index(family)
+        fam = self.families[family]
         s = self.trace.sigma[:, fam.members]
         ok = np.isfinite(s) & np.isfinite(self.trace.intensity[:, fam.members])
         sig = np.sqrt(np.where(ok, s * s, 0.0).sum(axis=1))
         sig = np.where(ok.any(axis=1), sig, np.nan)
         return self.trace.value.copy(), self.family_intensity[:, int(family)].copy(), sig
+
+    def order_parameter(self, family) -> tuple[np.ndarray, np.ndarray]:
+        """(value, η) of one family: η = √(I / I_max), its summed intensity I (negative
+        values as 0) over the largest seen, i.e. the long-range order parameter when a
+        superstructure beam's intensity goes as its square (kinematic scattering; the same
+        I ∝ η² the order–disorder fit assumes); NaN where the family was not measured.
+
+        Parameters
+        ----------
+        family : str or int
+            The family's label or its position in ``families``.
+
+        Returns
+        -------
+        value, eta : (F,) ndarray of float64
+            The parameter of each frame and η (1 at the brightest frame).
+        """
+        v, total, _ = self.family_curve(family)
+        top = np.nanmax(total) if np.any(np.isfinite(total)) else np.nan
+        with np.errstate(invalid="ignore", divide="ignore"):
+            eta = np.sqrt(np.clip(total, 0.0, None) / top) if top > 0 else np.full_like(total, np.nan)
+        return v, eta
+
+    def family_widths(self, family) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """(value, radial σ, tangential σ) of one family: the median over its beams measured
+        well enough (signal-to-noise ≥ 10) in each frame, px; NaN where none was.
+
+        Parameters
+        ----------
+        family : str or int
+            The family's label or its position in ``families``.
+
+        Returns
+        -------
+        value, radial, tangential : (F,) ndarray of float64
+            The parameter of each frame and the family's spot widths (Gaussian σ, px) along
+            and across the direction to the pattern centre.
+        """
+        fam = self.families[self._family_index(family)]
+        out = []
+        for w in (self.trace.width_radial_px, self.trace.width_tangential_px):
+            m = w[:, fam.members]
+            ok = np.isfinite(m)
+            med = np.full(len(m), np.nan)
+            for i in np.flatnonzero(ok.any(axis=1)):
+                med[i] = np.median(m[i][ok[i]])
+            out.append(med)
+        return self.trace.value.copy(), out[0], out[1]
+
+    def _family_index(self, family) -> int:
+        labels = [f.label for f in self.families]
+        if isinstance(family, str):
+            if family not in labels:
+                raise SeriesError(f"No beam family {family!r}; the series has {', '.join(labels) or 'none'}.")
+            return labels.index(family)
+        return int(family)
 
     def order_disorder(self, family=None, **kw):
         """:func:`analysis.follow.fit_order_disorder` on a family's summed intensity against

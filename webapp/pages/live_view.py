@@ -23,7 +23,7 @@ from dash import Input, Output, State, callback, ctx, dcc, html, no_update
 from analysis.errors import RecinetError
 from webapp import ids, live_sessions, runtime
 
-__all__ = ["layout", "curves_figure", "frame_figure", "on_start", "on_stop", "on_upload", "on_tick", "on_export"]
+__all__ = ["layout", "curves_figure", "beams_figure", "frame_figure", "on_start", "on_stop", "on_upload", "on_tick", "on_export"]
 
 _COLOURS = ("#1f77b4", "#d62728", "#2ca02c", "#9467bd", "#ff7f0e", "#8c564b", "#e377c2", "#17becf")
 _SEG_FILL = ("rgba(31,119,180,0.08)", "rgba(214,39,40,0.08)", "rgba(44,160,44,0.08)", "rgba(148,103,189,0.08)")
@@ -66,18 +66,98 @@ def curves_figure(state: dict) -> go.Figure:
                                  line=dict(color="#000", dash="dash", width=1)))
     fig.add_trace(go.Scatter(x=x, y=state.get("integer_total", []), mode="lines", name="integer beams",
                              line=dict(color="#555", dash="dot"), yaxis="y2"))
-    for n, seg in enumerate(state.get("segments", [])):
-        lo, hi = seg["value_range"]
-        pad = 0.0 if hi > lo else 0.5 * (abs(x[-1] - x[0]) / max(len(x) - 1, 1))
-        fig.add_vrect(x0=lo - pad, x1=hi + pad, fillcolor=_SEG_FILL[n % len(_SEG_FILL)], line_width=0, layer="below")
-        fig.add_annotation(x=0.5 * (lo + hi), y=1.0, yref="paper", yanchor="bottom", showarrow=False,
-                           text=seg["label"], font=dict(size=11))
+    _segments_and_switches(fig, state, x)
+    for pk in state.get("peaks", []):  # where each family is brightest (e.g. a phase complete)
+        n = next((i for i, f in enumerate(state.get("families", [])) if f["label"] == pk["family"]), 0)
+        fig.add_trace(go.Scatter(x=[pk["value"]], y=[pk["intensity"]], mode="markers", showlegend=False,
+                                 marker=dict(symbol="triangle-down", size=11, color=_COLOURS[n % len(_COLOURS)]),
+                                 hovertemplate=f"{pk['family']} brightest at %{{x:.4g}}<extra></extra>"))
     fig.update_layout(template="plotly_white", height=420, margin=dict(l=60, r=60, t=40, b=50),
                       xaxis=dict(title=heading),
                       yaxis=dict(title="family intensity (frame units)", rangemode="tozero", tickformat=".3s"),
                       yaxis2=dict(title="integer beams", overlaying="y", side="right", showgrid=False,
                                   rangemode="tozero", tickformat=".3s"),
                       legend=dict(orientation="h", y=-0.25), uirevision="live")
+    return fig
+
+
+def _segments_and_switches(fig: go.Figure, state: dict, x: list, *, label_row: int | None = None) -> None:
+    """Shade the segments and draw each switch point as a dashed line (with its value) on `fig`."""
+    kw = {} if label_row is None else {"row": "all", "col": 1}
+    for n, seg in enumerate(state.get("segments", [])):
+        lo, hi = seg["value_range"]
+        pad = 0.0 if hi > lo else 0.5 * (abs(x[-1] - x[0]) / max(len(x) - 1, 1))
+        fig.add_vrect(x0=lo - pad, x1=hi + pad, fillcolor=_SEG_FILL[n % len(_SEG_FILL)], line_width=0, layer="below",
+                      **kw)
+        fig.add_annotation(x=0.5 * (lo + hi), y=1.0, yref="paper", yanchor="bottom", showarrow=False,
+                           text=seg["label"], font=dict(size=11))
+    for sw in state.get("switches", []):
+        fig.add_vline(x=sw["value"], line=dict(color="#333", dash="dash", width=1), **kw)
+        fig.add_annotation(x=sw["value"], y=0.0, yref="paper", yanchor="top", showarrow=False, xanchor="left",
+                           text=f"switch {sw['value']:.4g}", font=dict(size=10, color="#333"))
+
+
+def beams_figure(state: dict) -> go.Figure:
+    """What a surface scientist follows beside the family sums, on one parameter axis:
+    every beam's intensity, each family's order parameter √(I/I_max) (with the order–disorder
+    fit's), and each family's spot width (radial and tangential σ); segments shaded and
+    the switch points marked.
+
+    Parameters
+    ----------
+    state : dict
+        The session's state (:func:`webapp.live_sessions.read_state`).
+
+    Returns
+    -------
+    plotly.graph_objects.Figure
+        Three panels sharing the parameter axis.
+    """
+    from plotly.subplots import make_subplots
+
+    par = state.get("parameter")
+    if not par or not par.get("values") or not state.get("beams"):
+        return _empty("Each beam, the order parameter and the spot widths appear here as the frames arrive", 300)
+    x = par["values"]
+    heading = par["name"] + (f" ({par['unit']})" if par.get("unit") else "")
+    fams = state.get("families", [])
+    colour = {f["label"]: _COLOURS[n % len(_COLOURS)] for n, f in enumerate(fams)}
+    fig = make_subplots(rows=3, cols=1, shared_xaxes=True, vertical_spacing=0.06, row_heights=[0.45, 0.3, 0.25])
+    shown = set()
+    for b in state["beams"]:
+        integer = b["family"] == "integer"
+        group = "integer beams" if integer else f"{b['family'] or 'other'} beams"
+        fig.add_trace(go.Scatter(
+            x=x, y=b["intensity"], mode="lines+markers", name=group, legendgroup=group, showlegend=group not in shown,
+            text=[b["label"]] * len(x), hovertemplate="%{text}: %{y:.4s}<extra></extra>",
+            visible="legendonly" if integer else True, marker=dict(size=4),
+            line=dict(width=1, color="#888" if integer else colour.get(b["family"], "#444"))), row=1, col=1)
+        shown.add(group)
+    for f in fams:
+        if "order" not in f:
+            continue
+        c = colour[f["label"]]
+        fig.add_trace(go.Scatter(x=x, y=f["order"], mode="lines+markers", name=f"{f['label']} order parameter",
+                                 line=dict(color=c), marker=dict(size=5)), row=2, col=1)
+        fig.add_trace(go.Scatter(x=x, y=f["width_radial"], mode="lines+markers", name=f"{f['label']} σ radial",
+                                 line=dict(color=c), marker=dict(size=5)), row=3, col=1)
+        fig.add_trace(go.Scatter(x=x, y=f["width_tangential"], mode="lines", name=f"{f['label']} σ tangential",
+                                 line=dict(color=c, dash="dot")), row=3, col=1)
+    tr = state.get("transition")
+    if tr and tr.get("model"):
+        m = [v if v is not None else float("nan") for v in tr["model"]]
+        top = max((v for v in m if v == v), default=0.0)
+        if top > 0:
+            fig.add_trace(go.Scatter(x=x, y=[(max(v, 0.0) / top) ** 0.5 if v == v else None for v in m], mode="lines",
+                                     name=f"fit: Tc = {tr['tc']:.4g}", line=dict(color="#000", dash="dash", width=1)),
+                          row=2, col=1)
+    _segments_and_switches(fig, state, x, label_row=1)
+    fig.update_yaxes(title_text="beam intensity", rangemode="tozero", tickformat=".3s", row=1, col=1)
+    fig.update_yaxes(title_text="order √(I/I_max)", range=[0, 1.08], row=2, col=1)
+    fig.update_yaxes(title_text="spot σ (px)", rangemode="tozero", row=3, col=1)
+    fig.update_xaxes(title_text=heading, row=3, col=1)
+    fig.update_layout(template="plotly_white", height=620, margin=dict(l=60, r=20, t=30, b=50),
+                      legend=dict(orientation="h", y=-0.12), uirevision="live-beams")
     return fig
 
 
@@ -192,6 +272,7 @@ def layout(session: str | None = None, **_query):
     main = html.Div(className="main", children=[
         dcc.Graph(id=ids.LIVE_CURVES, figure=curves_figure({}), config={"displaylogo": False}),
         html.Div(id=ids.LIVE_SEGMENTS),
+        dcc.Graph(id=ids.LIVE_BEAMS, figure=beams_figure({}), config={"displaylogo": False}),
         dcc.Graph(id=ids.LIVE_FRAME, figure=frame_figure(None, None, []), config={"displaylogo": False}),
         html.Pre(id=ids.LIVE_LOG, className="log", style={"maxHeight": "14em", "overflow": "auto",
                                                          "fontSize": "0.8em"}),
@@ -328,14 +409,21 @@ def _segments_table(state: dict):
     rows = [html.Tr([html.Td(f"{s['first']}–{s['last']}"), html.Td(f"{s['value_range'][0]:g}–{s['value_range'][1]:g}"
                                                                   + (f" {unit}" if unit else "")),
                      html.Td(s["label"]), html.Td(", ".join(s["families"]) or "none")]) for s in segs]
-    return html.Table(className="segments", style={"borderSpacing": "1.2em 0.2em"}, children=[
+    table = html.Table(className="segments", style={"borderSpacing": "1.2em 0.2em"}, children=[
         html.Thead(html.Tr([html.Th("frames"), html.Th("range"), html.Th("structure"), html.Th("families")])),
         html.Tbody(rows)])
+    u = f" {unit}" if unit else ""
+    name = (state.get("parameter") or {}).get("name", "parameter")
+    notes = [f"switch at {name} {sw['value']:.4g}{u} (between frames {sw['after_frame']} and {sw['before_frame']}): "
+             f"{sw['from']} → {sw['to']}" for sw in state.get("switches") or []]
+    notes += [f"{pk['family']} family brightest at {name} {pk['value']:.4g}{u} (frame {pk['frame']})"
+              for pk in state.get("peaks") or []]
+    return html.Div([table, html.Ul(className="switches", children=[html.Li(t) for t in notes])])
 
 
 @callback(Output(ids.LIVE_STATUS, "children"), Output(ids.LIVE_CURVES, "figure"), Output(ids.LIVE_FRAME, "figure"),
           Output(ids.LIVE_SEGMENTS, "children"), Output(ids.LIVE_LOG, "children"), Output(ids.LIVE_LINK, "children"),
-          Input(ids.LIVE_TICK, "n_intervals"), Input(ids.LIVE_SESSION, "data"))
+          Output(ids.LIVE_BEAMS, "figure"), Input(ids.LIVE_TICK, "n_intervals"), Input(ids.LIVE_SESSION, "data"))
 def on_tick(_n, token):
     """Redraw from the session's summary (any web worker can read it).
 
@@ -349,15 +437,15 @@ def on_tick(_n, token):
     Returns
     -------
     tuple
-        Status, curves figure, frame figure, segments, log text and share link.
+        Status, curves figure, frame figure, segments, log text, share link and the beams' figure.
     """
     if not token:
-        return "No live series yet.", no_update, no_update, no_update, "", ""
+        return "No live series yet.", no_update, no_update, no_update, "", "", no_update
     try:
         state = live_sessions.read_state(token)
         d = live_sessions.session_dir(token)
     except RecinetError as err:
-        return str(err), no_update, no_update, no_update, "", ""
+        return str(err), no_update, no_update, no_update, "", "", no_update
     png = meta = None
     try:
         png = (d / "last.png").read_bytes()
@@ -378,7 +466,7 @@ def on_tick(_n, token):
                    f"± {tr['tc_sigma']:.2g} (statistics) ± {tr['tc_spread']:.2g} (refits)")
     link = html.A("Link to this series", href=f"/live?session={token}")
     return (status, curves_figure(state), frame_figure(png, meta, state.get("last_beams", [])),
-            _segments_table(state), "\n".join(state.get("lines", [])), link)
+            _segments_table(state), "\n".join(state.get("lines", [])), link, beams_figure(state))
 
 
 @callback(Output(ids.LIVE_DOWNLOAD, "data"), Output(ids.LIVE_MESSAGE, "children", allow_duplicate=True),
