@@ -85,6 +85,9 @@ def _summary(d: dict) -> str:
                      f"({', '.join(ov['domain_operations'])}); coverage {ov['coverage']:.4g} ML for one "
                      f"adsorbate per cell; overlayer net {ov['net']['type']} a = {ov['net']['a_angstrom']:.3f} Å, "
                      f"b = {ov['net']['b_angstrom']:.3f} Å, γ = {ov['net']['gamma_deg']:.2f}°")
+    for twin in ov.get("same_beams_as") or []:
+        lines.append(f"  same beams as {twin['name']} in {twin['n_domains']} domain(s): only the spot intensities "
+                     f"(domain populations, I(V)) tell the two apart")
     n = len(d["spots"])
     n_int = sum(s["kind"] == "integer" for s in d["spots"])
     lines.append(f"spots: {n} ({n_int} integer order, {ov['explained']} fractional explained, "

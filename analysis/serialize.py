@@ -28,7 +28,9 @@ Schema (``"schema": "recinet.analysis"``, ``"version": 1``), keys kept stable:
   ``matrix`` (real space, substrate basis), ``domains`` (every domain found,
   the first is ``matrix``), ``wood`` (text or null), ``coverage`` (one
   adsorbate per overlayer cell), ``net`` (real-space a, b, γ, type),
-  ``angle_to_substrate_deg``, counts, ``unexplained`` (spot indices).
+  ``angle_to_substrate_deg``, counts, ``unexplained`` (spot indices),
+  ``same_beams_as`` (other candidates whose domains put beams at the same places,
+  ``{"name", "n_domains"}``: only intensities tell them apart).
   ``overlayer.phases``: every overlayer phase found, the dominant one (this
   ``overlayer``, the model that explains most spots) first, then coexisting phases
   that explain the spots it leaves; each ``{"kind", "matrix", "domains", "n_domains",
@@ -139,6 +141,8 @@ def model_to_dict(model: OverlayerModel) -> dict:
         "score_terms": model.score_terms.to_dict() if model.score_terms is not None else None,
         "unexplained": [int(i) for i in np.flatnonzero(model.explained_by == -1)],
         "notes": list(model.notes),
+        # rational models whose domains put beams at the same places (only intensities tell them apart)
+        "same_beams_as": [{"name": name, "n_domains": int(n)} for name, n in model.same_beams_as],
     }
     if kind is not None and getattr(kind, "coincidence_cell", None) is not None:
         d["coincidence_cell"] = np.asarray(kind.coincidence_cell).tolist()

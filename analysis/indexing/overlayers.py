@@ -9,6 +9,7 @@ from __future__ import annotations
 import dataclasses
 import math
 from dataclasses import dataclass
+from fractions import Fraction
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -24,6 +25,7 @@ from ..superstructure import (
     classify_superstructure,
     coincidence_cell,
     coverage,
+    format_matrix,
     nice_matrix,
     overlayer_net,
     wood_notation,
@@ -98,6 +100,10 @@ class OverlayerModel:
     moire_period_A : float or None
         Incommensurate models: the period of the beat between overlayer and
         substrate nets (Å); None otherwise.
+    same_beams_as : tuple of (str, int)
+        Other rational models among the candidates whose domains put beams at exactly the
+        same places (name, domain count): the spot positions cannot tell them from this one,
+        only intensities can (e.g. p(2×2) and three domains of p(2×1) on a hexagonal net).
     total_domains : int
         Number of symmetry domains of the matrix on the substrate (used or not).
     notes : tuple of str
@@ -127,6 +133,7 @@ class OverlayerModel:
     net_type: str | None = None
     angle_to_substrate_deg: float | None = None
     moire_period_A: float | None = None
+    same_beams_as: tuple = ()
 
     @property
     def n_domains(self) -> int:
@@ -756,7 +763,42 @@ def find_overlayers(hk: np.ndarray, integer: np.ndarray, substrate_fit: Substrat
         keys.append(key)
         out.append(mm)
     out = out[:n_results]
-    return [_lead_with_plainest_domain(ctx, out[0])] + out[1:] if out else out
+    if not out:
+        return out
+    lead = _lead_with_plainest_domain(ctx, out[0])
+    twins = tuple((o.wood or format_matrix(o.matrix), o.n_domains) for o in out[1:] if _same_beams(lead, o))
+    if twins:
+        lead = dataclasses.replace(lead, same_beams_as=twins, notes=lead.notes + tuple(
+            f"{name} in {n} domain{'s' if n > 1 else ''} puts its beams at the same places: only the spots' "
+            f"intensities tell the two apart (unequal domain populations, or I(V) curves)" for name, n in twins))
+    return [lead] + out[1:]
+
+
+_RATIONAL_KINDS = ("commensurate", "coincidence")
+
+
+def _beam_set(model: OverlayerModel, reach: float = 2.0) -> frozenset:
+    """The fractional beams (h, k) with |h|, |k| ≤ `reach` of all the model's domains,
+    as exact fractions (rational models only)."""
+    out = set()
+    for d in model.domains:
+        m = np.asarray(d, dtype=np.float64)
+        n_max = int(math.ceil(reach * float(np.abs(m).sum(axis=0).max()))) + 1
+        n = np.stack(np.meshgrid(np.arange(-n_max, n_max + 1), np.arange(-n_max, n_max + 1)), -1).reshape(-1, 2)
+        hk = n @ np.linalg.inv(m).T  # beams of this domain: (h, k) = n M⁻ᵀ
+        hk = hk[np.all(np.abs(hk) <= reach + 1e-9, axis=1)]
+        for h, k in hk:
+            out.add((Fraction(float(h)).limit_denominator(144), Fraction(float(k)).limit_denominator(144)))
+    return frozenset(out)
+
+
+def _same_beams(a: OverlayerModel, b: OverlayerModel) -> bool:
+    """True when two different rational models put beams at exactly the same places."""
+    if a.kind not in _RATIONAL_KINDS or b.kind not in _RATIONAL_KINDS:
+        return False
+    if a.n_domains == b.n_domains and _same_lattice_fast(np.asarray(a.matrix, float), np.asarray(b.matrix, float), 1e-6):
+        return False
+    return _beam_set(a) == _beam_set(b)
 
 
 def _lead_with_plainest_domain(ctx: _Context, mm: OverlayerModel) -> OverlayerModel:
