@@ -539,6 +539,18 @@ def test_result_panel_shows_wood_and_matrix(ws, webapp_env):
     assert [t.name for t in real.data][-1] == "Domain 1"
 
 
+def test_result_panel_names_the_models_with_the_same_beams(ws, webapp_env):
+    # a hexagonal answer whose beams three p(2×1) domains would put at the same places
+    # (analysis side: tests/test_same_beams.py); the square result above names none
+    res = _square_result()
+    res["overlayer"]["same_beams_as"] = [{"name": "p(2×1)", "n_domains": 3}]
+    image = {"sha": "a" * 64, "width": 512, "height": 512}
+    panel = _call(ws.show_result, "result.data", {"sha": "a" * 64, "result": res}, image, None)[0]
+    assert "p(2×1) in 3 domains: its beams lie at the same places" in _text(panel)
+    plain = _call(ws.show_result, "result.data", {"sha": "a" * 64, "result": _square_result()}, image, None)[0]
+    assert "same places" not in _text(plain)
+
+
 def test_save_makes_a_share_link_and_read_only_page(ws, fresh_store, noisy_png):
     image, record, note, link = _saved(ws, fresh_store, noisy_png)
     assert "Saved" in _text(note)

@@ -73,6 +73,7 @@ UNDO_LAST = "undo-last"
 RESULT_PANEL = "result-panel"
 SPOT_COUNT = "spot-count"
 WOOD = "wood"
+SAME_BEAMS = "same-beams"  # the models whose beams lie at the same places as the answer's
 MATRIX = "matrix"
 PHASES = "phases"  # the phases found, beside the answer (pages/analyse/phases.py)
 PLANE_GROUP = "plane-group"

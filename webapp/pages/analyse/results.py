@@ -183,6 +183,12 @@ def _result_children(result, record, pick=None):
                                               if ov.get("coverage") is not None else "–")]),
         html.Tr([html.Th("Domains"), html.Td(_domain_buttons(
             domains, f"of candidate {int(pick) + 1}, as drawn:" if shown is not None else None))]),
+        *([html.Tr([html.Th("Same beams as"), html.Td(
+            "; ".join(f"{t['name']} in {t['n_domains']} domain{'s' if t['n_domains'] > 1 else ''}"
+                      for t in ov["same_beams_as"])
+            + ": its beams lie at the same places, so only the spots' intensities (domain populations, "
+              "I(V) curves) tell it from this answer", id=ids.SAME_BEAMS, className="muted")])]
+          if ov.get("same_beams_as") else []),
     ])])
     warn = [html.Div(str(w), className="note note-warn") for w in (result.get("warnings") or [])]
     return [n for n in (_shown_note(result, pick), *warn, answer, phases_panel(ov), plane_group_panel(ov), table)
