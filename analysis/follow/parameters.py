@@ -23,7 +23,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import SeriesError
-from ..series.energies import numbers_in_names
+from ..series.energies import _frame_numbers, numbers_in_names
 
 __all__ = [
     "ParameterTable",
@@ -164,17 +164,7 @@ def check_parameters(value, names: Sequence[str] | None = None, *, what: str = "
     >>> check_parameters([300, 310.5, 305]).tolist()
     [300.0, 310.5, 305.0]
     """
-    try:
-        v = np.array(value, dtype=np.float64).reshape(-1)
-    except (TypeError, ValueError):
-        raise SeriesError(f"The {what} values must be numbers, got {value!r}.") from None
-    if v.size == 0:
-        raise SeriesError(f"The series has no {what} values.")
-    bad = np.flatnonzero(~np.isfinite(v))
-    if bad.size:
-        i = int(bad[0])
-        label = f"frame {i}" + (f" ({names[i]})" if names is not None and i < len(names) else "")
-        raise SeriesError(f"The {what} of {label} must be a finite number, got {v[i]!r}.")
+    v = _frame_numbers(value, names, what=what)
     v.flags.writeable = False
     return v
 

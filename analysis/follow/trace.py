@@ -21,8 +21,8 @@ import numpy as np
 from ..errors import ParameterError, SeriesError
 from ..optics import ScreenGeometry
 from ..series.beams import BeamSet
-from ..series.integrate import BLOCKING_FLAGS, FLAG_OFF_SCREEN, _extract, _mask_map
-from ..series.track import _bootstrap, _one_frame
+from ..series.integrate import FLAG_OFF_SCREEN, _extract, _mask_map
+from ..series.track import _BeamCurves, _bootstrap, _one_frame
 
 __all__ = ["ParameterTrace", "BeamFollower", "fit_drift"]
 
@@ -30,7 +30,7 @@ _WIDTH_MIN_SNR = 10.0  # widths only where the beam stands clearly out of its no
 
 
 @dataclass(frozen=True, eq=False)
-class ParameterTrace:
+class ParameterTrace(_BeamCurves):
     """Every beam measured in every frame of a parameter series.
 
     Attributes
@@ -76,28 +76,7 @@ class ParameterTrace:
     flags: np.ndarray
     geometry: tuple
     drift: dict = field(default_factory=dict)
-
-    @property
-    def valid(self) -> np.ndarray:
-        """(F, K) bool: points that enter the curves."""
-        return ((self.flags & BLOCKING_FLAGS) == 0) & np.isfinite(self.intensity)
-
-    def curve(self, beam) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """(value, intensity, sigma) of one beam (label, (h, k) or index); NaN where left out.
-
-        Parameters
-        ----------
-        beam : str, (h, k) or int
-            The beam's label, indices or position.
-
-        Returns
-        -------
-        value, intensity, sigma : (F,) ndarray of float64
-            The parameter of each frame, the beam's intensity and its uncertainty.
-        """
-        j = beam if isinstance(beam, (int, np.integer)) else self.beams.index(beam)
-        ok = self.valid[:, j]
-        return self.value.copy(), np.where(ok, self.intensity[:, j], np.nan), np.where(ok, self.sigma[:, j], np.nan)
+    _AXIS = "value"  # curve(beam) is (value, intensity, sigma)
 
 
 def fit_drift(center_xy_px, scale_px) -> dict:

@@ -78,6 +78,25 @@ def _frame_text(i: int, names: Sequence[str] | None) -> str:
     return f"frame {i}"
 
 
+def _frame_numbers(value, names: Sequence[str] | None = None, *, what: str, unit: str = "",
+                   positive: bool = False) -> np.ndarray:
+    """One number per frame as a (F,) float64 array: numbers, at least one, every one finite
+    (and > 0 when `positive`); the first bad one named by its frame (energies of an energy
+    series, the parameter of a parameter series)."""
+    try:
+        v = np.array(value, dtype=np.float64).reshape(-1)
+    except (TypeError, ValueError):
+        raise SeriesError(f"The {what} values must be numbers, got {value!r}.") from None
+    if v.size == 0:
+        raise SeriesError(f"The series has no {what} values.")
+    bad = np.flatnonzero(~(np.isfinite(v) & (v > 0)) if positive else ~np.isfinite(v))
+    if bad.size:
+        i = int(bad[0])
+        kind = ("a positive number" + (f" of {unit}" if unit else "")) if positive else "a finite number"
+        raise SeriesError(f"The {what} of {_frame_text(i, names)} must be {kind}, got {v[i]!r}.")
+    return v
+
+
 def check_energies(energy_eV, names: Sequence[str] | None = None) -> np.ndarray:
     """Validate the energies of a series: finite, positive, strictly monotonic.
 
@@ -103,15 +122,7 @@ def check_energies(energy_eV, names: Sequence[str] | None = None) -> np.ndarray:
     >>> check_energies([50, 51, 52]).tolist()
     [50.0, 51.0, 52.0]
     """
-    try:
-        e = np.array(energy_eV, dtype=np.float64).reshape(-1)
-    except (TypeError, ValueError):
-        raise SeriesError(f"Energies must be numbers, got {energy_eV!r}.") from None
-    if e.size == 0:
-        raise SeriesError("The series has no energies.")
-    for i, v in enumerate(e):
-        if not (math.isfinite(v) and v > 0):
-            raise SeriesError(f"Energy of {_frame_text(i, names)} must be a positive number of eV, got {v!r}.")
+    e = _frame_numbers(energy_eV, names, what="energy", unit="eV", positive=True)
     if e.size > 1:
         d = np.diff(e)
         dup = np.flatnonzero(d == 0)
@@ -324,7 +335,7 @@ def energies_from_names(names: Sequence[str], *, pattern: str = DEFAULT_NAME_PAT
 
 
 def numbers_in_names(names: Sequence[str], pattern: str, *, what: str, instead: str) -> list[str]:
-    """The text of the last match of `pattern` (its first group, or the whole match) in each
+    r"""The text of the last match of `pattern` (its first group, or the whole match) in each
     file name, a ``#i`` page suffix, the folders and an image extension left out.
 
     Parameters

@@ -44,8 +44,39 @@ from .integrate import (
 __all__ = ["IVResult", "track_series"]
 
 
+class _BeamCurves:
+    """`valid` and `curve` of a series result: (F, K) `intensity`, `sigma` and `flags` of its
+    `beams`, against the (F,) axis named by ``_AXIS`` (energies, or a parameter)."""
+
+    _AXIS = "energy_eV"
+
+    @property
+    def valid(self) -> np.ndarray:
+        """(F, K) bool: points that enter the curves."""
+        return ((self.flags & BLOCKING_FLAGS) == 0) & np.isfinite(self.intensity)
+
+    def curve(self, beam) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """(axis, intensity, sigma) of one beam (label, (h, k) or index); NaN where left out.
+
+        Parameters
+        ----------
+        beam : str, (h, k) or int
+            The beam's label, indices or position.
+
+        Returns
+        -------
+        axis, intensity, sigma : (F,) ndarray of float64
+            The series' axis (energies in eV, or the parameter of each frame), the beam's
+            intensity and its uncertainty.
+        """
+        j = beam if isinstance(beam, (int, np.integer)) else self.beams.index(beam)
+        ok = self.valid[:, j]
+        return (np.array(getattr(self, self._AXIS), dtype=np.float64), np.where(ok, self.intensity[:, j], np.nan),
+                np.where(ok, self.sigma[:, j], np.nan))
+
+
 @dataclass(frozen=True, eq=False)
-class IVResult:
+class IVResult(_BeamCurves):
     """Everything measured in an energy series.
 
     Attributes
@@ -86,29 +117,6 @@ class IVResult:
     current: np.ndarray | None
     calibration: SeriesCalibration | None
     settings: dict = field(default_factory=dict)
-
-    @property
-    def valid(self) -> np.ndarray:
-        """(F, K) bool: points that enter the curves."""
-        return ((self.flags & BLOCKING_FLAGS) == 0) & np.isfinite(self.intensity)
-
-    def curve(self, beam) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """(energy_eV, intensity, sigma) of one beam (label, (h, k) or index); NaN where left out.
-
-        Parameters
-        ----------
-        beam : str, (h, k) or int
-            The beam's label, indices or position.
-
-        Returns
-        -------
-        energy_eV, intensity, sigma : (F,) ndarray of float64
-            Energies (eV), the beam's intensity and its uncertainty.
-        """
-        j = beam if isinstance(beam, (int, np.integer)) else self.beams.index(beam)
-        ok = self.valid[:, j]
-        return (self.energy_eV.copy(), np.where(ok, self.intensity[:, j], np.nan),
-                np.where(ok, self.sigma[:, j], np.nan))
 
     def overlap_eV(self) -> np.ndarray:
         """(K,) energy range in eV covered by each beam's valid points (sum of the steps between them).
