@@ -22,7 +22,7 @@ from ..errors import ParameterError, SeriesError
 from ..optics import ScreenGeometry
 from ..series.beams import BeamSet
 from ..series.integrate import FLAG_OFF_SCREEN, _extract, _mask_map
-from ..series.track import _BeamCurves, _bootstrap, _one_frame
+from ..series.track import _BeamCurves, _bootstrap, _one_frame, _untruncated_sigma
 
 __all__ = ["ParameterTrace", "BeamFollower", "fit_drift"]
 
@@ -146,16 +146,8 @@ def _widths(frame, xy, bg, ok, centre, r_ap, mask_map):
         m_r = (w * along * along).sum(axis=(1, 2)) / tot
         m_t = (w * across * across).sum(axis=(1, 2)) / tot
     out = []
-    for m in (m_r, m_t):
-        s = np.sqrt(np.maximum(m, 0.0))
-        raw = s.copy()
-        # a Gaussian cut at radius R has a smaller second moment: the same fixed-point
-        # correction as the series tracker's width, x = R² / (2σ²)
-        for _ in range(4):
-            with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
-                x = r_ap * r_ap / (2.0 * s * s)
-                f = 1.0 - x * np.exp(-x) / (-np.expm1(-x))
-                s = raw / np.sqrt(np.clip(f, 0.2, 1.0))
+    for m in (m_r, m_t):  # a Gaussian cut at the aperture has a smaller second moment
+        s = _untruncated_sigma(np.sqrt(np.maximum(m, 0.0)), r_ap)
         out.append(np.where(tot > 0, s, np.nan))
     wr[idx], wt[idx] = out
     return wr, wt

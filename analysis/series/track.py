@@ -572,12 +572,17 @@ def _refine(win: _Windows, rc_pred: np.ndarray, search_px: np.ndarray, radius_px
             c[good, 0], c[good, 1] = new_r[good], new_c[good]
     shift = np.hypot(c[:, 0] - rc_pred[:, 0], c[:, 1] - rc_pred[:, 1])
     ok = (snr >= min_snr) & (shift <= search_px)
-    # Correct the second moment for the truncation at radius R: for a Gaussian,
-    # <d²>/2 = σ² (1 − x e^{−x} / (1 − e^{−x})), x = R² / (2σ²); two fixed-point steps.
-    s_est = sigma.copy()
-    for _ in range(4):
-        with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
-            x = radius_px * radius_px / (2.0 * s_est * s_est)
+    return c, snr, ok, _untruncated_sigma(sigma, radius_px)
+
+
+def _untruncated_sigma(sigma_cut: np.ndarray, radius_px: float) -> np.ndarray:
+    """Gaussian σ (px) of spots whose second-moment σ `sigma_cut` (K,) was measured inside a
+    radius R: for a Gaussian cut at R, <d²>/2 = σ² (1 − x e^{−x} / (1 − e^{−x})), x = R² / (2σ²);
+    four fixed-point steps (NaN stays NaN)."""
+    s = sigma_cut.copy()
+    with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
+        for _ in range(4):
+            x = radius_px * radius_px / (2.0 * s * s)
             f = 1.0 - x * np.exp(-x) / (-np.expm1(-x))
-            s_est = sigma / np.sqrt(np.clip(f, 0.2, 1.0))
-    return c, snr, ok, s_est
+            s = sigma_cut / np.sqrt(np.clip(f, 0.2, 1.0))
+    return s
