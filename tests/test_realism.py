@@ -403,16 +403,6 @@ def test_jpeg_is_an_8_bit_colour_file_with_green_signal():
 # --------------------------------------------------------------------------- measurement and analysis
 
 SPOT_GAPS = {
-    "wide_spots": "spots of σ 3–6 px: the faint ones fail the profile fit ('no spot-shaped peak') and "
-                  "the others split into fragments 2–4 px off (σ measured 2.0 px)",
-    "tailed_spots": "Moffat wings of the bright integer spots are detected as extra spots 2–6 px from them",
-    "elongated_spots": "spots 1.8–3 × longer along one axis are split in two by the close-pair split, both "
-                       "halves 2–4 px off the centre",
-    "saturated_spots": "a clipped, bloomed spot is split along its bloom column into detections 3–12 px "
-                       "off its centre",
-    "dust": "the rims between dust specks are detected as spots (several false per frame)",
-    "jpeg": "8-bit JPEG of a colour (Bayer) camera: the noise map misses the correlated demosaic/JPEG "
-            "noise, thousands of false detections",
 }
 
 READ_GAPS = {
@@ -427,6 +417,45 @@ def _case(name, gaps):
 
 def _effects(name):
     return () if name == "none" else (name,)
+
+
+@pytest.mark.parametrize("seed", SEEDS)
+def test_point_spread_width_and_shape_are_measured_from_the_spots(seed):
+    # truth: the σ and the elongation the renderer drew. σ is the geometric mean of the two
+    # axes (σ across = 2 px, σ along = elongation × 2 px, so σ = 2 √elongation); 5 % and 2°
+    # leave room for the scatter of a median over some twenty bright spots at SNR 20–60
+    wide = _photo(("wide_spots",), seed)
+    m = measure_image(_image(wide), sigma_px=None)
+    assert m.sigma_px == pytest.approx(wide.truth["effects"]["wide_spots"]["sigma_px"], rel=0.05)
+    assert m.psf_axis_deg is None  # a round spread keeps radial axes
+    long = _photo(("elongated_spots",), seed)
+    q = long.truth["effects"]["elongated_spots"]
+    m = measure_image(_image(long), sigma_px=None)
+    assert m.sigma_px == pytest.approx(2.0 * math.sqrt(q["elongation"]), rel=0.05)
+    assert m.psf_elongation == pytest.approx(q["elongation"], rel=0.05)
+    turn = (m.psf_axis_deg - q["axis_deg"] + 90.0) % 180.0 - 90.0  # axes are lines: modulo 180°
+    assert abs(turn) < 2.0
+    # the widths the table reports follow from the drawn shape: for each spot the marginal σ
+    # along its direction from the centre, σ² = σ_a² cos² φ + σ_b² sin² φ (φ from the long axis)
+    a = math.radians(q["axis_deg"])
+    axis_rc = np.array([-math.sin(a), math.cos(a)])
+    radial = m.spots.rc - m.spots.center_rc
+    cos2 = (radial @ axis_rc) ** 2 / np.sum(radial**2, axis=1)
+    want = np.sqrt((2.0 * q["elongation"]) ** 2 * cos2 + 2.0**2 * (1 - cos2))
+    assert np.median(m.spots.fwhm_radial_px / GAUSSIAN.fwhm(want)) == pytest.approx(1.0, abs=0.1)
+
+
+def test_clipped_spot_is_one_spot_at_its_centre():
+    # truth: the renderer's positions of the beams it drew over full well (bloomed along their
+    # columns); each is reported once, flagged saturated, within 0.2 px (its wings hold
+    # thousands of photons: the bound is some 0.02 px)
+    ph = _photo(("saturated_spots",), 0)
+    m = measure_image(_image(ph), sigma_px=None)
+    beams = ph.truth["effects"]["saturated_spots"]["beams"]
+    for s in (s for s in ph.truth["spots"] if s["label"] in beams):
+        d = np.hypot(m.spots.xy[:, 0] - s["x"], m.spots.xy[:, 1] - s["y"])
+        assert np.sum(d < 15.0) == 1 and d.min() < 0.2
+        assert "saturated" in m.spots.to_records()[int(np.argmin(d))]["flags"]
 
 
 @pytest.mark.parametrize("effect", [_case(e, SPOT_GAPS) for e in ("none",) + EFFECTS])

@@ -18,7 +18,7 @@ import numpy as np
 
 from ..errors import ParameterError
 from ..profiles import GAUSSIAN
-from .fit import FLAG_FIT_FAILED, FLAG_SATURATED
+from .fit import FLAG_FIT_FAILED
 
 __all__ = ["MIN_SIGMA_PX", "MIN_LOCAL_SNR", "REJECT_NARROW", "REJECT_WIDE", "REJECT_NO_PEAK", "REJECT_FLAT", "judge_spots", "local_snr",
            "split_table"]
@@ -73,16 +73,17 @@ def judge_spots(table, sigma_px: float, *, narrow: float = 0.5, wide: float = 3.
     sig = GAUSSIAN.sigma_of_fwhm(fwhm)
     flags = np.asarray(table.flags)
     fitted = (flags & FLAG_FIT_FAILED) == 0
-    saturated = (flags & FLAG_SATURATED) != 0  # its core is left out of the fit: the width is the wings'
     reasons = np.full(len(sig), "", dtype=object)
-    too_narrow = fitted & ~saturated & (sig < max(narrow * s, MIN_SIGMA_PX))
+    # a saturated spot is fitted on its wings (spots.saturated): its width is its own too
+    too_narrow = fitted & (sig < max(narrow * s, MIN_SIGMA_PX))
     reasons[too_narrow] = REJECT_NARROW
     reasons[fitted & (sig > wide * s)] = REJECT_WIDE
     reasons[~fitted] = REJECT_NO_PEAK
     return reasons
 
 
-def local_snr(image: np.ndarray, valid: np.ndarray, noise: np.ndarray, rc: np.ndarray, sigma_px: float) -> np.ndarray:
+def local_snr(image: np.ndarray, valid: np.ndarray, noise: np.ndarray, rc: np.ndarray, sigma_px: float, *,
+              ring_sigma_px: float | None = None) -> np.ndarray:
     """Significance of each spot against its own surroundings (NaN where too little is valid).
 
     Parameters
@@ -97,6 +98,9 @@ def local_snr(image: np.ndarray, valid: np.ndarray, noise: np.ndarray, rc: np.nd
         Spot centres (row, col), px.
     sigma_px : float
         The spots' Gaussian σ, px.
+    ring_sigma_px : float, optional, keyword-only
+        σ that sets the ring (default `sigma_px`): the long axis of an elongated spread,
+        so that the ring clears the spot's own light along it.
 
     Returns
     -------
@@ -115,7 +119,8 @@ def local_snr(image: np.ndarray, valid: np.ndarray, noise: np.ndarray, rc: np.nd
     True
     """
     s = float(sigma_px)
-    r_in, r1, r2 = 1.5 * s, 3.0 * s, 5.0 * s
+    s_ring = s if ring_sigma_px is None else max(float(ring_sigma_px), s)
+    r_in, r1, r2 = 1.5 * s, 3.0 * s_ring, 5.0 * s_ring
     h = int(math.ceil(r2)) + 1
     m, n = image.shape
     out = np.full(len(rc), np.nan)

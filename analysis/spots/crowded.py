@@ -8,6 +8,7 @@ from __future__ import annotations
 import numpy as np
 
 from .fit import (
+    _FixedAxis,
     FLAG_FIT_FAILED,
     FLAG_NEAR_EDGE,
     _PROFILE,
@@ -18,6 +19,7 @@ from .fit import (
     _render,
     _spot_windows,
     _spots_dict,
+    _start_widths,
     _take,
     _unit_radial,
 )
@@ -37,7 +39,7 @@ def _fit_pass1(fitter, res, noise, ok_fit, valid, cand, s1, f1, centre, gain, si
         cc = cand[crowded].astype(np.float64)
         k = len(cc)
         ri, ci = cand[crowded, 0], cand[crowded, 1]
-        init = _spots_dict(cc, 2.0 * np.maximum(f1[ri, ci], 1e-3), np.full(k, sigma_px), np.full(k, sigma_px),
+        init = _spots_dict(cc, 2.0 * np.maximum(f1[ri, ci], 1e-3), *_start_widths(centre, sigma_px, k),
                            np.zeros(k), s1[ri, ci].astype(float), np.zeros(k), _unit_radial(cc, centre),
                            np.full((k, 2), np.nan), np.zeros(k, np.uint8))
         spots = _concat(spots, init)
@@ -204,3 +206,49 @@ def _refit_batch(fitter, res, noise, ok_fit, valid, spots, ids, nz_c, mdl, gain,
         _add_windows(mdl, o["rc"], -_spot_windows(o, half))
         _add_windows(mdl, n["rc"], _spot_windows(n, half))
     return changed
+
+
+def _refit_cut(fitter, res, noise, ok_fit, valid, spots, orient, gain, sigma_px, shape, half):
+    """Refit spots cut by a mask edge (the screen's rim, the gun shadow) with their shape held,
+    the others' models removed.
+
+    With part of its light beyond the edge, a spot's widths along and across the cut,
+    its offset and its centre trade off against each other, and a free fit drifts off
+    along the cut. The cut spot keeps the area of its free fit (its geometric-mean σ,
+    measured mostly along the edge) in the shape every spot has: round, or along the
+    spread's fixed axis with its elongation, when the data allow it: the held fit is kept
+    only where its χ² exceeds the free fit's by less than 6 (two widths fewer: the 95 %
+    point of χ² with 2 degrees of freedom), so a spot that is itself elongated (its own
+    broadening) keeps its free fit. A refit that fails keeps the free fit too.
+    """
+    cut = np.flatnonzero(((spots["flags"] & FLAG_NEAR_EDGE) > 0) & ((spots["flags"] & FLAG_FIT_FAILED) == 0))
+    if len(cut) == 0:
+        return spots
+    spots = {k: v.copy() for k, v in spots.items()}
+    mdl = _render(shape, spots["rc"], spots["amp"], spots["sr"], spots["st"], spots["u"], half)
+    sub = _take(spots, cut)
+    own = _spot_windows(sub, half)
+    r0, c0, inside, (rp, nz, okp, vp, mp), _ = fitter.patches([res, noise, ok_fit, valid, mdl], sub["rc"])
+    data = rp - mp + own
+    okp = okp & inside
+    nz2 = nz**2 + (gain * np.clip(mp - own, 0.0, None) if gain else 0.0)
+    # each keeps its own area (geometric-mean σ) in the shape of the spread: round, or along
+    # the fixed axis with the spread's elongation
+    s_own = np.sqrt(sub["sr"] * sub["st"])
+    e = np.sqrt(orient.elongation) if isinstance(orient, _FixedAxis) else 1.0
+    ls = np.column_stack([np.log(s_own * e), np.log(s_own / e)])
+    free = np.column_stack([sub["amp"], sub["rc"][:, 0] - r0, sub["rc"][:, 1] - c0, np.log(sub["sr"]),
+                            np.log(sub["st"]), sub["off"]])
+    _, _, rchi_free, _ = fitter.fit(data, nz2, okp, free, sub["u"], gain, n_iter=0)
+    p = free.copy()
+    p[:, fitter.profile.log_width_params] = ls
+    held = np.exp(ls)
+    p, cov, rchi_held, _ = fitter.fit(data, nz2, okp, p, sub["u"], gain, sigma_bounds=(held, held))
+    npix = np.maximum(okp.reshape(len(cut), -1).sum(axis=1) - fitter.n_par, 1)
+    new = _from_fit(p, cov, r0, c0, sub["u"], sub["snr"], vp & inside, okp, sigma_px, half, sub["rc"],
+                    flags0=(sub["flags"] & ~np.uint8(FLAG_FIT_FAILED | FLAG_NEAR_EDGE)).astype(np.uint8))
+    ok = ((new["flags"] & FLAG_FIT_FAILED) == 0) & ((rchi_held - rchi_free) * npix < 6.0)
+    for key in spots:
+        spots[key][cut[ok]] = new[key][ok]
+    return spots
+

@@ -60,12 +60,14 @@ class _Fitter:
         iteration as soon as their centre moves by less than 10⁻³ px, after three
         iterations; with `restart` (`p` is a previous solution) after one, and a lightly
         damped step below 10⁻³ px ends the fit even when it does not lower χ² (at the
-        minimum, rounding and the reweighting reject such steps).
+        minimum, rounding and the reweighting reject such steps). `sigma_bounds` (px) are
+        (low, high): scalars, or arrays broadcasting against the profile's widths, (K, n)
+        for one row per spot (equal bounds hold a width).
         """
         k, n = len(p), self.n_par
         cen, wid = self.profile.centre_params, self.profile.log_width_params
         p = np.array(p, dtype=np.float64)
-        lo, hi = math.log(sigma_bounds[0]), math.log(sigma_bounds[1])
+        lo, hi = np.log(np.asarray(sigma_bounds[0], float)), np.log(np.asarray(sigma_bounds[1], float))
         lam = np.full(k, 1e-2)
         act = np.arange(k)
         if isinstance(noise2, float) or np.ndim(noise2) == 0:
@@ -93,7 +95,7 @@ class _Fitter:
             step[:, cen] = np.clip(step[:, cen], -1.5, 1.5)
             step[:, wid] = np.clip(step[:, wid], -0.5, 0.5)
             pn = pa + step
-            pn[:, wid] = np.clip(pn[:, wid], lo, hi)
+            pn[:, wid] = np.clip(pn[:, wid], lo[act] if lo.ndim == 2 else lo, hi[act] if hi.ndim == 2 else hi)
             mdl_n, aux_n = self._model(pn, uu)
             chi2_n = np.sum(w * (d - mdl_n) ** 2, axis=(1, 2))
             better = np.isfinite(chi2_n) & (chi2_n <= chi2)
@@ -152,7 +154,30 @@ def _take(a, idx):
     return {k: v[idx] for k, v in a.items()}
 
 
+class _FixedAxis:
+    """Spot axes held fixed in the image instead of radial: the point-spread function is
+    elongated along one image direction (astigmatic optics, a tilted sensor, steps along
+    one crystal direction), so every spot's long axis lies along `u_rc` (row, col) and its
+    width along that axis is `elongation` × the width across it."""
+
+    __slots__ = ("u_rc", "elongation")
+
+    def __init__(self, u_rc, elongation: float):
+        u = np.asarray(u_rc, dtype=np.float64).reshape(2)
+        self.u_rc = u / np.hypot(*u)
+        self.elongation = float(elongation)
+
+
+def _start_widths(orient, sigma_px, k):
+    """(K,) starting σ along and across each spot's axis: round `sigma_px`, or, along a
+    fixed elongated axis, `sigma_px` × √elongation and ÷ √elongation (same area)."""
+    e = math.sqrt(orient.elongation) if isinstance(orient, _FixedAxis) else 1.0
+    return np.full(k, sigma_px * e), np.full(k, sigma_px / e)
+
+
 def _unit_radial(rc, centre):
+    if isinstance(centre, _FixedAxis):
+        return np.tile(centre.u_rc, (len(rc), 1))
     v = rc - centre[None]
     nrm = np.hypot(v[:, 0], v[:, 1])
     u = np.where(nrm[:, None] > 1e-9, v / np.maximum(nrm, 1e-9)[:, None], np.array([[1.0, 0.0]]))
@@ -173,8 +198,8 @@ def _fit_candidates(fitter, res, noise, ok_fit, valid, cand, snr_map, centre, ga
     u = _unit_radial(cand, centre)
     h = fitter.half
     amp0 = np.maximum(data[:, h, h], 1e-3)
-    p = np.column_stack([amp0, np.zeros(k), np.zeros(k), np.full(k, math.log(sigma_px)),
-                         np.full(k, math.log(sigma_px)), np.zeros(k)])
+    s_r, s_t = _start_widths(centre, sigma_px, k)
+    p = np.column_stack([amp0, np.zeros(k), np.zeros(k), np.log(s_r), np.log(s_t), np.zeros(k)])
     p, cov, rchi2, _ = fitter.fit(data, nz2, okp, p, u, gain)
     return _from_fit(p, cov, r0, c0, u, snr_map[r0, c0], vp & inside, okp, sigma_px, h, cand)
 
@@ -288,8 +313,10 @@ def _split_pairs(fitter, res, noise, ok_fit, valid, spots, centre, gain, sigma_p
         return spots
     s_ref = float(np.median(np.sqrt(spots["sr"][good] * spots["st"][good]))) if good.sum() >= 5 else sigma_px
     s_ref = min(max(s_ref, 0.5 * sigma_px), 2.0 * sigma_px)
-    smaj = np.maximum(spots["sr"], spots["st"])
-    smin = np.minimum(spots["sr"], spots["st"])
+    # widths relative to the point-spread's own shape (an elongated spread is no pair)
+    e = math.sqrt(centre.elongation) if isinstance(centre, _FixedAxis) else 1.0
+    smaj = np.maximum(spots["sr"] / e, spots["st"] * e)
+    smin = np.minimum(spots["sr"] / e, spots["st"] * e)
     nz_c = noise[np.clip(np.rint(spots["rc"][:, 0]).astype(int), 0, shape[0] - 1),
                  np.clip(np.rint(spots["rc"][:, 1]).astype(int), 0, shape[1] - 1)]
     pk = spots["amp"] / nz_c

@@ -15,8 +15,8 @@ import numpy as np
 from ..errors import ImageError, ParameterError
 from ._common import _as_float_image, _check_mask, _saturation_of
 from .background import BackgroundEstimate, estimate_background
-from .crowded import _fit_pass1, _refit_neighbours, _refit_weighted
-from .detect import _detect, _gauss_kernel_norm, _matched, _maxima, _residual_snr
+from .crowded import _fit_pass1, _refit_cut, _refit_neighbours, _refit_weighted
+from .detect import _dark_patches, _detect, _gauss_kernel_norm, _matched, _maxima, _residual_snr, _spot_scale_noise
 from .fit import (
     _FLAG_BLEND,
     _PROFILE,
@@ -26,16 +26,21 @@ from .fit import (
     FLAG_SPLIT,
     _concat,
     _dedupe,
+    _FixedAxis,
     _Fitter,
     _fit_candidates,
     _gain_from_spots,
     _render,
     _split_pairs,
     _take,
+    _unit_radial,
 )
-from .accept import MIN_LOCAL_SNR, MIN_SIGMA_PX, REJECT_FLAT, judge_spots, local_snr, split_table
+from .accept import MIN_LOCAL_SNR, REJECT_FLAT, judge_spots, local_snr, split_table
 from .gun_shadow import ShadowMask, find_gun_shadow
+from .psf import _psf_from_bright
+from .saturated import _clipped, _merge_saturated
 from .screen import ScreenMask, disk_mask, find_screen
+from .wings import _wing_image, _wing_profile
 
 
 @dataclass(frozen=True, eq=False)
@@ -128,7 +133,8 @@ def _empty_table(center_rc) -> SpotTable:
 
 def find_spots(image, *, sigma_px: float = 2.0, min_snr: float = 5.0, mask=None, background=None,
                center_rc=None, saturation_level=None, split_pairs: bool = True,
-               second_pass: bool = True) -> SpotTable:
+               second_pass: bool = True, psf_axis_deg: float | None = None,
+               psf_elongation: float = 1.0, fit_mask=None) -> SpotTable:
     """Detect spots and measure them with sub-pixel Gaussian fits.
 
     Detection: the background-subtracted image is correlated with a Gaussian of
@@ -161,6 +167,17 @@ def find_spots(image, *, sigma_px: float = 2.0, min_snr: float = 5.0, mask=None,
         Test wide spots for a close pair and split them with a two-spot fit.
     second_pass : bool, keyword-only
         Look again, with the found spots' models removed, for faint spots beside bright ones.
+    psf_axis_deg : float or None, keyword-only
+        Image angle (counter-clockwise from +x, y up) of the long axis shared by every
+        spot when the point-spread function is elongated along one image direction; the
+        fits then hold their axes along it instead of radial. None: radial axes.
+    psf_elongation : float, keyword-only
+        That spread's width along `psf_axis_deg` over its width across (≥ 1); `sigma_px`
+        is then the geometric mean of the two.
+    fit_mask : (M, N) array_like of bool, optional, keyword-only
+        Pixels the fits may use, default `mask`: a wider one (a safety margin of `mask`
+        that still holds good light) lets a spot cut by `mask` be fitted on the light
+        beyond it. Spots are still searched and reported on `mask` only.
 
     Returns
     -------
@@ -184,9 +201,15 @@ def find_spots(image, *, sigma_px: float = 2.0, min_snr: float = 5.0, mask=None,
         raise ParameterError(f"`sigma_px` must be between 0.3 and 30 px, got {sigma_px}.")
     if not (min_snr > 0 and math.isfinite(min_snr)):
         raise ParameterError(f"`min_snr` must be positive, got {min_snr}.")
+    if not (1.0 <= psf_elongation <= 10.0):
+        raise ParameterError(f"`psf_elongation` must be between 1 and 10, got {psf_elongation}.")
     valid = _check_mask(mask, shape)
     centre = np.array([(shape[0] - 1) / 2, (shape[1] - 1) / 2]) if center_rc is None else \
         np.asarray(center_rc, dtype=np.float64).reshape(2)
+    orient = centre  # each fit's axes: radial from the centre, or fixed along the spread's long axis
+    if psf_axis_deg is not None:
+        a = math.radians(float(psf_axis_deg))
+        orient = _FixedAxis((-math.sin(a), math.cos(a)), psf_elongation)
     bg = estimate_background(img, valid) if background is None else background
     if not isinstance(bg, BackgroundEstimate):
         raise ParameterError(f"`background` must be a BackgroundEstimate, got {type(bg).__name__}.")
@@ -194,32 +217,48 @@ def find_spots(image, *, sigma_px: float = 2.0, min_snr: float = 5.0, mask=None,
         return _empty_table(centre)
     noise = np.maximum(bg.noise, 1e-6)
     gain = bg.gain_adu
-    res = np.where(valid, img - bg.background, 0.0).astype(np.float32)
-    ok_fit = valid if sat is None else valid & (img < sat - 0.5)
+    usable = valid if fit_mask is None else _check_mask(fit_mask, shape, "fit_mask") | valid
+    res = np.where(usable, img - bg.background, 0.0).astype(np.float32)
+    clipped = _clipped(img, usable, sat)  # full-scale pixels and their neighbours: never fitted
+    ok_fit = usable if clipped is None else usable & ~clipped
     knorm = _gauss_kernel_norm(sigma_px)
-    half = max(3, int(math.ceil(3.0 * sigma_px)))
+    s_long = sigma_px * math.sqrt(psf_elongation if psf_axis_deg is not None else 1.0)
+    half = max(3, int(math.ceil(3.0 * s_long)))
     fitter = _Fitter(half)
     noise_f = (noise * knorm).astype(np.float32)
 
     # pass 1
     f1 = _matched(res, sigma_px)
     s1 = f1 / noise_f
+    nf = _spot_scale_noise(f1, s1, valid, sigma_px)  # correlated pixel noise (demosaicing, JPEG)
+    if nf is not None:
+        noise_f, s1 = nf, f1 / nf
+        noise = nf.astype(np.float64) / knorm
+        bg = dataclasses.replace(bg, noise=noise)
     cand = _maxima(s1, min_snr, valid)
-    spots = _fit_pass1(fitter, res, noise, ok_fit, valid, cand, s1, f1, centre, gain, sigma_px, shape, half)
+    spots = _fit_pass1(fitter, res, noise, ok_fit, valid, cand, s1, f1, orient, gain, sigma_px, shape, half)
     if gain is None and len(spots["rc"]):
         # no variance law from the background: measure it on the first fits, then refit those
         # with the new weights (detection does not use it; the residual search below does)
         g = _gain_from_spots(fitter, res, noise, ok_fit, spots, half, min_spots=3)  # a blend or two is outvoted
         if g is not None:
             gain, bg = g, dataclasses.replace(bg, gain_adu=g)
-            spots = _refit_weighted(fitter, res, noise, ok_fit, valid, spots, centre, gain, sigma_px, shape,
+            spots = _refit_weighted(fitter, res, noise, ok_fit, valid, spots, orient, gain, sigma_px, shape,
                                     half, crowded_too=not second_pass)
     hints = np.full((len(spots["rc"]), 3), np.nan)  # (row, col, amplitude) of a possible companion
     if second_pass and len(spots["rc"]):
         # pass 2: the matched-filter residual after removing every fitted spot
         good = (spots["flags"] & FLAG_FIT_FAILED) == 0
         sub = _take(spots, good)
-        s2, fm = _residual_snr(f1, sub, noise, gain, knorm, sigma_px, half)
+        # the spots' wings, where the frame has them: drawn under every spot, as seen through
+        # the filter, with a quarter of their light as its uncertainty
+        f2, wing, wing_var = f1, 0.0, None
+        prof = _wing_profile(res, noise, valid, spots)
+        if prof is not None:
+            wing = _wing_image(shape, sub, prof)
+            fw = _matched(wing, sigma_px)
+            f2, wing_var = f1 - fw, (0.25 * fw) ** 2
+        s2, fm = _residual_snr(f2, sub, noise, gain, knorm, sigma_px, half, model_var_f=wing_var)
         cand2 = _maxima(s2, min_snr, valid)
         if len(cand2):
             from scipy.spatial import cKDTree
@@ -231,19 +270,23 @@ def find_spots(image, *, sigma_px: float = 2.0, min_snr: float = 5.0, mask=None,
             spots["flags"][near[blend]] |= _FLAG_BLEND
             pairs_b = sorted(zip(cand2[blend].tolist(), near[blend].tolist()), key=lambda t: s2[t[0][0], t[0][1]])
             for (r, c), i in pairs_b:  # the strongest residual peak of a spot is written last
-                hints[i] = (r, c, 2.0 * max(float(f1[r, c] - fm[r, c]), 0.0))
+                hints[i] = (r, c, 2.0 * max(float(f2[r, c] - fm[r, c]), 0.0))
             cand2 = cand2[~blend]
         if len(cand2):
             mdl = _render(shape, sub["rc"], sub["amp"], sub["sr"], sub["st"], sub["u"], half)
-            new = _fit_candidates(fitter, res - mdl, noise, ok_fit, valid, cand2, s2, centre, gain, sigma_px,
+            new = _fit_candidates(fitter, res - mdl - wing, noise, ok_fit, valid, cand2, s2, orient, gain, sigma_px,
                                   mdl)
             spots = _concat(spots, new)
             hints = np.vstack([hints, np.full((len(new["rc"]), 3), np.nan)])
-        spots = _refit_neighbours(fitter, res, noise, ok_fit, valid, spots, centre, gain, sigma_px, shape, half,
+        spots = _refit_neighbours(fitter, res, noise, ok_fit, valid, spots, orient, gain, sigma_px, shape, half,
                                   sweeps=60)
     if split_pairs and len(spots["rc"]):
-        spots = _split_pairs(fitter, res, noise, ok_fit, valid, spots, centre, gain, sigma_px, shape, half,
+        spots = _split_pairs(fitter, res, noise, ok_fit, valid, spots, orient, gain, sigma_px, shape, half,
                              min_snr, hints)
+    if len(spots["rc"]):
+        spots = _refit_cut(fitter, res, noise, ok_fit, valid, spots, orient, gain, sigma_px, shape, half)
+    if clipped is not None:
+        spots = _merge_saturated(res, noise, ok_fit, valid, clipped, spots, s1, orient, gain, sigma_px, s_long)
     spots = _dedupe(spots, 0.75 * sigma_px)
     if gain is None and len(spots["rc"]):
         # too few clean first fits: measure it on the final (unsplit) spots and measure again
@@ -251,7 +294,8 @@ def find_spots(image, *, sigma_px: float = 2.0, min_snr: float = 5.0, mask=None,
         if g is not None:
             return find_spots(img, sigma_px=sigma_px, min_snr=min_snr, mask=valid,
                               background=dataclasses.replace(bg, gain_adu=g), center_rc=centre,
-                              saturation_level=sat, split_pairs=split_pairs, second_pass=second_pass)
+                              saturation_level=sat, split_pairs=split_pairs, second_pass=second_pass,
+                              psf_axis_deg=psf_axis_deg, psf_elongation=psf_elongation, fit_mask=fit_mask)
     return _table(spots, img, bg, sat, valid, centre, sigma_px)
 
 
@@ -278,9 +322,15 @@ def _table(spots, img, bg, sat, valid, centre, sigma_px) -> SpotTable:
     miss = ~np.all(np.isfinite(sig), axis=1)
     if miss.any():
         sig[miss] = (np.sqrt(sr * st) / np.maximum(amp / nz, 1e-3))[miss, None] * np.ones((1, 2))
+    # widths along and across each fit's axis → along and across the direction from the centre
+    # (the same when the axes were radial): the marginal σ² = σ_a² cos² + σ_b² sin²
+    ur = _unit_radial(rc, np.asarray(centre, float))
+    cos2 = np.clip(np.sum(spots["u"] * ur, axis=1) ** 2, 0.0, 1.0) if len(rc) else np.zeros(0)
+    s_rad = np.sqrt(sr**2 * cos2 + st**2 * (1 - cos2))
+    s_tan = np.sqrt(sr**2 * (1 - cos2) + st**2 * cos2)
     return SpotTable(rc=rc, sigma_rc=sig, intensity=_PROFILE.volume(amp, sr, st), amplitude=amp,
-                     peak_snr=amp / np.maximum(nz, 1e-12), snr=spots["snr"], fwhm_radial_px=_PROFILE.fwhm(sr),
-                     fwhm_tangential_px=_PROFILE.fwhm(st), background=bg.background[ri, ci] + spots["off"],
+                     peak_snr=amp / np.maximum(nz, 1e-12), snr=spots["snr"], fwhm_radial_px=_PROFILE.fwhm(s_rad),
+                     fwhm_tangential_px=_PROFILE.fwhm(s_tan), background=bg.background[ri, ci] + spots["off"],
                      flags=flags, center_rc=np.asarray(centre, float))
 
 
@@ -297,7 +347,15 @@ class Measurement:
     valid : (M, N) ndarray of bool
         Pixels searched (screen without the shadow).
     sigma_px : float
-        Spot σ used by the filter (given, or measured from the first pass).
+        Spot σ used by the filter (given, or measured from the first pass); for an
+        elongated spread the geometric mean of its two axes.
+    rejected : SpotTable or None
+        Detections that are no diffraction spots; `rejected_reasons` says why, row by row.
+    psf_axis_deg : float or None
+        Image angle of the long axis every spot shares (counter-clockwise from +x), when the
+        point-spread is elongated along one image direction; None when it is round or radial.
+    psf_elongation : float
+        Width along that axis over the width across it (1.0 when None).
     """
 
     spots: SpotTable
@@ -308,6 +366,8 @@ class Measurement:
     sigma_px: float
     rejected: SpotTable | None = None
     rejected_reasons: tuple = ()
+    psf_axis_deg: float | None = None
+    psf_elongation: float = 1.0
 
     def rejected_records(self) -> list[dict]:
         """The detections that are no spots, each with its `reason`."""
@@ -318,7 +378,8 @@ class Measurement:
     def to_dict(self) -> dict:
         return {"spots": self.spots.to_records(), "rejected_spots": self.rejected_records(),
                 "screen": self.screen.to_dict(), "gun": self.gun.to_dict(),
-                "sigma_px": float(self.sigma_px),
+                "sigma_px": float(self.sigma_px), "psf_axis_deg": self.psf_axis_deg,
+                "psf_elongation": float(self.psf_elongation),
                 "gain_adu": self.background.gain_adu, "dark_level": self.background.dark_level}
 
 
@@ -400,14 +461,18 @@ def measure_image(image, *, sigma_px: float | None = 2.0, min_snr: float = 5.0, 
     s = 2.0 if sigma_px is None else float(sigma_px)
     # detection only: where the spots are and roughly how bright
     res = np.where(valid, img - bg.background, 0.0).astype(np.float32)
-    rc1, amp1, snr1 = _detect(res, bg, valid, s, min_snr)
-    if sigma_px is None:  # the spot size from the brightest isolated spots
-        s_new = _sigma_from_bright(res, bg, valid, None if sat is None else img < sat - 0.5, rc1, snr1, s,
-                                   np.asarray(center_rc, float))
-        if s_new is not None:
-            s = s_new
+    rc1, amp1, snr1, smap, noise1 = _detect(res, bg, valid, s, min_snr)
+    if noise1 is not None:  # correlated pixels: the noise measured at the spot scale
+        bg = dataclasses.replace(bg, noise=noise1)
+    axis_deg, elong = spot_kw.pop("psf_axis_deg", None), spot_kw.pop("psf_elongation", 1.0)
+    if sigma_px is None:  # the spot size (and shape) from the brightest isolated spots
+        clipped = _clipped(img, valid, sat)
+        psf = _psf_from_bright(res, bg, valid, None if clipped is None else ~clipped, rc1, snr1, s,
+                               np.asarray(center_rc, float))
+        if psf is not None:
+            s, axis_deg, elong = psf
             if abs(math.log(s / 2.0)) > math.log(1.3):  # a filter matched to the real spot size
-                rc1, amp1, snr1 = _detect(res, bg, valid, s, min_snr)
+                rc1, amp1, snr1, smap, noise1 = _detect(res, bg, valid, s, min_snr)
     # second background pass with the spots masked out, out to where a spot falls below ½ σ of noise
     excl = np.zeros(img.shape, bool)
     if len(rc1):
@@ -416,47 +481,31 @@ def measure_image(image, *, sigma_px: float | None = 2.0, min_snr: float = 5.0, 
         excl = _disks(img.shape, rc1, np.clip(rad, 2.5 * s, 12 * s))
     bg2 = estimate_background(img, valid, block_px=block_px, exclude=excl, dark_mask=dark) \
         if (valid & ~excl).sum() > 64 else bg
+    # and dark patches (dust on the screen, a scratch), found against that background: they
+    # pull the block levels down, and the clear screen between them then reads as spots
+    patches = _dark_patches(img, bg2, valid, s, min_snr, noise1)
+    if patches is not None and (valid & ~excl & ~patches).sum() > 64:
+        bg2 = estimate_background(img, valid, block_px=block_px, exclude=excl | patches, dark_mask=dark)
+    # the fits may use the screen's light out to 1 px inside its rim (the mask keeps 3 px off it)
+    fit_mask = None
+    if scr.source != "frame" and scr.margin_px > 1.0:
+        a, b = scr.semi_axes_px
+        fit_mask = disk_mask(img.shape, scr.center_rc, 0, axes_px=(a - 1.0, b - 1.0), angle_deg=scr.angle_deg) & \
+            ~gsh.mask
     spots = find_spots(img, sigma_px=s, min_snr=min_snr, mask=valid, background=bg2, center_rc=center_rc,
-                       saturation_level=sat, **spot_kw)
+                       saturation_level=sat, psf_axis_deg=axis_deg, psf_elongation=elong, fit_mask=fit_mask,
+                       **spot_kw)
+    shape_kw = {"psf_axis_deg": axis_deg, "psf_elongation": elong}
     if not accept or not len(spots):
-        return Measurement(spots, scr, gsh, bg2, valid, s)
+        return Measurement(spots, scr, gsh, bg2, valid, s, **shape_kw)
     # keep what can be a diffraction spot: the spots' own width and shape, standing out of its ring
     reasons = judge_spots(spots, s)
-    contrast = local_snr(img, valid, bg2.noise, spots.rc, s)
+    s_long = s * math.sqrt(elong) if axis_deg is not None else s
+    contrast = local_snr(img, valid, bg2.noise if noise1 is None else noise1, spots.rc, s, ring_sigma_px=s_long)
     reasons[(reasons == "") & (contrast < MIN_LOCAL_SNR)] = REJECT_FLAT  # NaN (too little valid): kept
     keep = reasons == ""
     kept, rejected = split_table(spots, keep)
-    return Measurement(kept, scr, gsh, bg2, valid, s, rejected, tuple(reasons[~keep]))
-
-
-def _sigma_from_bright(res, bg, valid, unsaturated, rc, snr, s0, centre_rc, n_max: int = 40):
-    """Median Gaussian σ (px) of up to `n_max` bright, isolated spots; None when fewer than 3 fit.
-
-    Spots closer than 6 σ₀ to another detection are left out (their fits pull
-    on each other), and so are fits narrower than a spot can be (hot pixels); the
-    window is the one :func:`find_spots` uses for σ₀.
-    """
-    if len(rc) < 3:
-        return None
-    from scipy.spatial import cKDTree
-
-    d, _ = cKDTree(rc).query(rc, k=2)
-    pick = np.flatnonzero((d[:, 1] > 6.0 * s0) & (snr > 15.0))
-    pick = pick[np.argsort(-snr[pick])][:n_max]
-    if len(pick) < 3:
-        return None
-    ok_fit = valid if unsaturated is None else valid & unsaturated
-    half = max(3, int(math.ceil(3.0 * s0)))
-    fit = _fit_candidates(_Fitter(half), res, np.maximum(bg.noise, 1e-6), ok_fit, valid, rc[pick].astype(float),
-                          np.zeros(res.shape, np.float32), centre_rc, bg.gain_adu, s0)
-    noise_at = bg.noise[rc[pick, 0], rc[pick, 1]]
-    width = np.sqrt(fit["sr"] * fit["st"])
-    # hot pixels and cosmic rays are often the brightest detections of a sparse frame: a fit
-    # narrower than MIN_SIGMA_PX is one of them, never a diffraction spot (spots.accept)
-    good = (fit["flags"] == 0) & (fit["amp"] > 10.0 * np.maximum(noise_at, 1e-9)) & (width >= MIN_SIGMA_PX)
-    if good.sum() < 3:
-        return None
-    return float(min(max(np.median(width[good]), 0.5), 20.0))
+    return Measurement(kept, scr, gsh, bg2, valid, s, rejected, tuple(reasons[~keep]), **shape_kw)
 
 
 def _disks(shape, rc, rad) -> np.ndarray:
