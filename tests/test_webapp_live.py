@@ -13,6 +13,7 @@ import time
 import numpy as np
 import pytest
 import tifffile
+from dash import no_update
 
 from dash_helpers import call_callback, data_url
 
@@ -107,8 +108,10 @@ def test_upload_session_analyses_dropped_frames(live_env):
     # truth: the names carry the temperatures; the renderer drew p(2×2) below Tc = 400 K
     assert state["parameter"]["values"] == [300.0, 320.0, 340.0]
     assert state["segments"] and state["segments"][0]["label"].startswith("p(2×2)")
-    status, curves, frame, table, log, link, beams = live.on_tick(1, tok)
+    status, curves, frame, table, log, link, beams, drawn = live.on_tick(1, tok)
     assert "3 frames" in status and len(curves.data) >= 2 and len(frame.data) >= 2
+    # nothing new since: nothing is sent again
+    assert all(x is no_update for x in live.on_tick(2, tok, drawn))
     # every beam followed has its own curve; the (1/2,0) family its order parameter and widths
     assert len([t for t in beams.data if t.name.endswith(" beams")]) == len(state["beams"]) >= 6
     assert {"(1/2,0) order parameter", "(1/2,0) σ radial"} <= {t.name for t in beams.data}

@@ -280,6 +280,7 @@ def layout(session: str | None = None, **_query):
     return html.Div(className="page live", style={"display": "grid", "gridTemplateColumns": "minmax(300px, 28%) 1fr",
                                                   "gap": "1rem"}, children=[
         dcc.Store(id=ids.LIVE_SESSION, data=token),
+        dcc.Store(id=ids.LIVE_DRAWN),
         dcc.Interval(id=ids.LIVE_TICK, interval=1000, disabled=False),
         inputs, main])
 
@@ -423,9 +424,11 @@ def _segments_table(state: dict):
 
 @callback(Output(ids.LIVE_STATUS, "children"), Output(ids.LIVE_CURVES, "figure"), Output(ids.LIVE_FRAME, "figure"),
           Output(ids.LIVE_SEGMENTS, "children"), Output(ids.LIVE_LOG, "children"), Output(ids.LIVE_LINK, "children"),
-          Output(ids.LIVE_BEAMS, "figure"), Input(ids.LIVE_TICK, "n_intervals"), Input(ids.LIVE_SESSION, "data"))
-def on_tick(_n, token):
-    """Redraw from the session's summary (any web worker can read it).
+          Output(ids.LIVE_BEAMS, "figure"), Output(ids.LIVE_DRAWN, "data"), Input(ids.LIVE_TICK, "n_intervals"),
+          Input(ids.LIVE_SESSION, "data"), State(ids.LIVE_DRAWN, "data"))
+def on_tick(_n, token, drawn=None):
+    """Redraw from the session's summary (any web worker can read it) when it has changed
+    since the last drawing (every beam of a long series is a large figure to send each second).
 
     Parameters
     ----------
@@ -433,19 +436,25 @@ def on_tick(_n, token):
         Ticks of the interval.
     token : str or None
         The session's token.
+    drawn : str, optional
+        What was drawn last (the session and its summary's time and status).
 
     Returns
     -------
     tuple
-        Status, curves figure, frame figure, segments, log text, share link and the beams' figure.
+        Status, curves figure, frame figure, segments, log text, share link, the beams'
+        figure and what is drawn now.
     """
     if not token:
-        return "No live series yet.", no_update, no_update, no_update, "", "", no_update
+        return "No live series yet.", no_update, no_update, no_update, "", "", no_update, None
     try:
         state = live_sessions.read_state(token)
         d = live_sessions.session_dir(token)
     except RecinetError as err:
-        return str(err), no_update, no_update, no_update, "", "", no_update
+        return str(err), no_update, no_update, no_update, "", "", no_update, None
+    now = f"{token}|{state.get('updated')}|{state.get('status')}|{len(state.get('lines', []))}"
+    if drawn == now:
+        return (no_update,) * 8
     png = meta = None
     try:
         png = (d / "last.png").read_bytes()
@@ -466,7 +475,7 @@ def on_tick(_n, token):
                    f"± {tr['tc_sigma']:.2g} (statistics) ± {tr['tc_spread']:.2g} (refits)")
     link = html.A("Link to this series", href=f"/live?session={token}")
     return (status, curves_figure(state), frame_figure(png, meta, state.get("last_beams", [])),
-            _segments_table(state), "\n".join(state.get("lines", [])), link, beams_figure(state))
+            _segments_table(state), "\n".join(state.get("lines", [])), link, beams_figure(state), now)
 
 
 @callback(Output(ids.LIVE_DOWNLOAD, "data"), Output(ids.LIVE_MESSAGE, "children", allow_duplicate=True),
