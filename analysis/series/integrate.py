@@ -137,7 +137,7 @@ def _despike_windows(data: np.ndarray, bg: np.ndarray, sd: np.ndarray, rounds: i
     b_all = np.where(np.isfinite(bg), bg, 0.0)
     n_all = _SPIKE_SIGMAS * np.where(np.isfinite(sd), sd, 0.0)
     for _ in range(rounds):
-        top = np.argmax(flat[rows], axis=1)
+        top = np.argmax(flat if rows.size == k_all else flat[rows], axis=1)  # no copy of every window
         r, c = top // w, top % w
         inner = (r > 0) & (r < w - 1) & (c > 0) & (c < w - 1)
         rows, r, c = rows[inner], r[inner], c[inner]
@@ -262,11 +262,20 @@ class _Windows:
     """Small (K, w, w) cut-outs of one frame around K points."""
 
     data: np.ndarray  # (K, w, w) float64 pixel values (0 outside the image)
-    inside: np.ndarray  # (K, w, w) bool, pixel inside the image
+    edge: np.ndarray | None  # (K, w, w) bool, pixel inside the image; None: every pixel is
     usable: np.ndarray  # (K, w, w) bool, inside the image and not masked
     row0: np.ndarray  # (K,) int64 image row of window pixel [0, 0]
     col0: np.ndarray  # (K,) int64 image column of window pixel [0, 0]
-    all_inside: bool = False  # every window lies inside the image
+
+    @property
+    def all_inside(self) -> bool:
+        """Every window lies inside the image."""
+        return self.edge is None
+
+    @property
+    def inside(self) -> np.ndarray:
+        """(K, w, w) bool: pixel inside the image (made on demand when all are)."""
+        return np.ones(self.data.shape, dtype=bool) if self.edge is None else self.edge
 
     @property
     def half(self) -> int:
@@ -278,10 +287,8 @@ def _extract(frame: np.ndarray, rc: np.ndarray, half: int, mask: np.ndarray | No
     w = 2 * half + 1
     centre = np.rint(rc).astype(np.int64)
     data, inside, usable = _take(frame, mask, centre, half)
-    all_inside = inside is None
-    inside = np.ones((k, w, w), dtype=bool) if inside is None else inside.reshape(k, w, w)
-    return _Windows(data.reshape(k, w, w), inside, usable.reshape(k, w, w),
-                    centre[:, 0] - half, centre[:, 1] - half, all_inside)
+    return _Windows(data.reshape(k, w, w), None if inside is None else inside.reshape(k, w, w),
+                    usable.reshape(k, w, w), centre[:, 0] - half, centre[:, 1] - half)
 
 
 def _robust(values: np.ndarray, select: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
