@@ -11,6 +11,7 @@ import hashlib
 import hmac
 import json
 import logging
+import threading
 from html import escape
 from pathlib import Path
 from urllib.parse import quote
@@ -44,6 +45,19 @@ app = Dash(
     update_title=None,
 )
 server = app.server
+_SETUP_LOCK = threading.Lock()
+
+
+def _setup_before_first_request() -> None:
+    """Dash completes its set-up (callback map, scripts) in its first request's hook, and marks it done
+    before doing it: requests arriving together on a fresh server either failed ('dictionary changed size
+    during iteration', a 500 for one of eight clients) or read half a callback map. This hook runs first
+    and lets one request do the set-up while the others wait for it to finish."""
+    with _SETUP_LOCK:
+        app._setup_server()
+
+
+server.before_request_funcs.setdefault(None, []).insert(0, _setup_before_first_request)
 server.config["MAX_CONTENT_LENGTH"] = settings.max_request_bytes
 server.config["RECINET_MAX_UPLOAD_BYTES"] = settings.max_upload_bytes
 

@@ -48,6 +48,40 @@ class _OneResultPerJob:
         return key is not None and bool(self.result_ready(key))
 
 
+_PRELOAD = ["webapp.app"]  # imported once in the job launcher, so each job starts at once
+
+
+def _run_job(settings, job_fn, job_args):
+    """In a job process: the server's settings as they were when the job was asked for, then the job."""
+    from . import runtime  # a job process starts from the launcher, not from the server's state
+
+    runtime.reset(settings)
+    job_fn(*job_args)
+
+
+def _start_job(job_fn, job_args) -> int:
+    """Start a background job in its own process and return its pid.
+
+    The job is forked from a launcher process (multiprocess 'forkserver': one process, started on the
+    first job, with the app imported and no threads), never from the server. A threaded server forked
+    while another of its threads was inside SQLite hands the child SQLite's process-wide mutexes and
+    lock bookkeeping as they were, held by a thread the child does not have: with eight clients at
+    once a job hung for good in ``sqlite3.connect`` (seen three runs in seven, each client's call
+    then waiting out its 180 s), and others got 'database is locked' after the 30 s busy wait.
+    Holding forks back while our own threads are inside SQLite made it rarer but cannot cover every
+    SQLite call (Dash's own cache reads, statements the garbage collector finishes).
+    """
+    import multiprocess  # Dash's own dependency for diskcache jobs (dill pickles the job's closure)
+
+    from . import runtime
+
+    ctx = multiprocess.get_context("forkserver")
+    ctx.set_forkserver_preload(_PRELOAD)
+    proc = ctx.Process(target=_run_job, args=(runtime.get_settings(), job_fn, job_args), daemon=False)
+    proc.start()
+    return proc.pid
+
+
 def make_manager(settings: Settings):
     """Return ``(manager, celery_app_or_None)`` for ``Dash(background_callback_manager=...)``.
 
@@ -73,7 +107,26 @@ def make_manager(settings: Settings):
         celery_app = Celery("recinet", broker=settings.celery_broker, backend=settings.celery_broker)
         return _Celery(celery_app), celery_app
     class _Diskcache(_OneResultPerJob, DiskcacheManager):
-        pass
+        def call_job_fn(self, key, job_fn, args, context):
+            return _start_job(job_fn, (key, self._make_progress_key(key), args, context))
+
+        # a job is the launcher's child, not the server's: once ended it is reaped at once, and
+        # may vanish between Dash's "does it exist" and its next look
+        def terminate_job(self, job):
+            import psutil  # Dash's own dependency for diskcache jobs
+
+            try:
+                super().terminate_job(job)
+            except psutil.NoSuchProcess:
+                pass
+
+        def job_running(self, job):
+            import psutil
+
+            try:
+                return super().job_running(job)
+            except psutil.NoSuchProcess:
+                return False
 
     settings.cache_dir.mkdir(parents=True, exist_ok=True)
     return _Diskcache(diskcache.Cache(str(settings.cache_dir))), None
