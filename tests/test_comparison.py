@@ -50,3 +50,17 @@ def test_missing_results_compare_without_error():
     rows = _rows({"parameters": {}, "result": None}, _analysis([[2, 0], [0, 2]], [[[2, 0], [0, 2]]]))
     assert rows["Matrix"].a == "—" and rows["Matrix"].differs
     assert not _rows({"parameters": {}, "result": None}, {"parameters": {}, "result": None})["Matrix"].differs
+
+
+def test_the_phases_found_are_compared_by_their_cells():
+    # Pt(111) basis a1 = a(1, 0), a2 = a(-1/2, √3/2), worked by hand: (√3×√3)R30° = (2 1 / -1 1);
+    # (2 2 / 0 2) spans the same lattice as p(2×2) = (2 0 / 0 2)
+    def res(*phases):
+        return {"parameters": {}, "result": {"overlayer": {"phases": [
+            {"wood": w, "matrix": m, "intensity_share": s} for w, m, s in phases]}}}
+
+    p2x2, sqrt3 = ("p(2×2)", [[2, 0], [0, 2]], 0.66), ("(√3×√3)R30°", [[2, 1], [-1, 1]], 0.34)
+    rows = {r.label: r for r in compare_results(res(p2x2, sqrt3), res(("p(2×2)", [[2, 2], [0, 2]], 0.7), sqrt3))}
+    assert not rows["Phases"].differs and rows["Phases"].a == "p(2×2) (66 %); (√3×√3)R30° (34 %)"
+    rows = {r.label: r for r in compare_results(res(p2x2, sqrt3), res(p2x2))}
+    assert rows["Phases"].differs and rows["Phases"].b == "p(2×2) (66 %)"

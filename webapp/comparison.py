@@ -97,6 +97,19 @@ def _domains_differ(da: list, db: list) -> bool:
     return not (all(any(_same(x, y) for y in db) for x in da) and all(any(_same(y, x) for x in da) for y in db))
 
 
+def _phases(over: dict) -> list:
+    """Each phase found as (text, matrix): its Wood notation (else matrix) and share of the intensity."""
+    out = []
+    for p in over.get("phases") or []:
+        m = _matrix((p or {}).get("matrix"))
+        if m is None:
+            continue
+        share = _float(p.get("intensity_share"))
+        text = (p.get("wood") or format_matrix(m)) + (f" ({100 * share:.0f} %)" if share is not None else "")
+        out.append((text, m))
+    return out
+
+
 def compare_results(a: dict, b: dict) -> list[Row]:
     """The rows comparing two saved analyses.
 
@@ -108,7 +121,8 @@ def compare_results(a: dict, b: dict) -> list[Row]:
     Returns
     -------
     list of Row
-        Substrate, energy, kind, Wood notation, matrix, domains, coverage, the measured
+        Substrate, energy, kind, Wood notation, matrix, domains, coverage, the phases found
+        (each with its share of the intensity; they differ when their cells do), the measured
         substrate lattice constants and the overlayer's, in that order.
 
     Examples
@@ -144,6 +158,9 @@ def compare_results(a: dict, b: dict) -> list[Row]:
     rows.append(Row("Domains", f"{len(da)}: " + ", ".join(format_matrix(m) for m in da) if da else "—",
                     f"{len(db)}: " + ", ".join(format_matrix(m) for m in db) if db else "—", _domains_differ(da, db)))
     num_row("Coverage (one adsorbate per cell)", oa.get("coverage"), None, ob.get("coverage"), None, " ML", 3)
+    pha, phb = _phases(oa), _phases(ob)
+    rows.append(Row("Phases", "; ".join(t for t, _ in pha) or "—", "; ".join(t for t, _ in phb) or "—",
+                    _domains_differ([m for _, m in pha], [m for _, m in phb])))
     siga, sigb = sa.get("sigma") or {}, sb.get("sigma") or {}
     for key, label, unit in (("a_angstrom", "Substrate a", " Å"), ("b_angstrom", "Substrate b", " Å"),
                              ("gamma_deg", "Substrate γ", "°")):
