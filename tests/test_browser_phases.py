@@ -100,7 +100,7 @@ def test_two_phases_side_by_side_are_each_listed(page, live_server, fresh_store)
         # measured share against the rendered one: spot fits and shared beams, within 0.08 (as tests/test_phases.py)
         assert r["share"] == pytest.approx(share[r["wood"]], abs=0.08)
         assert r["cells"][1].split() == [r["wood"], "commensurate"]
-        assert re.fullmatch(r"\d+ %", r["cells"][5])
+        assert re.fullmatch(r"\d+\s%", r["cells"][5])
     cov = {r["wood"]: r["cells"][4] for r in rows}
     assert cov["(√3×√3)R30°"] == "0.333 ML" and cov["p(2×2)"] == "0.25 ML"  # one adsorbate per cell
     assert "2 phases side by side" in page.inner_text("#phases")

@@ -77,7 +77,7 @@ def _matrix_text(m) -> str:
 
 def _pct(v) -> str:
     try:
-        return f"{100 * float(v):.0f} %"
+        return f"{100 * float(v):.0f}\u00a0%"
     except (TypeError, ValueError):
         return "–"
 
