@@ -6,7 +6,7 @@ cubic interpolation to pixels, and the variance per unit signal).
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -37,6 +37,10 @@ class BackgroundEstimate:
     gain_adu: float | None
     dark_level: float | None
     block_px: int
+    # the raw statistics of every block (level, noise, kept count, usable) and of the dark
+    # pixels (level, variance), for a second estimate of the same frame (`reuse`)
+    _blocks: tuple | None = field(default=None, repr=False)
+    _dark: tuple | None = field(default=None, repr=False)
 
     def __iter__(self):
         return iter((self.background, self.noise))
@@ -50,7 +54,7 @@ class BackgroundEstimate:
 
 
 def estimate_background(image, mask=None, *, block_px: int = 32, exclude=None,
-                        dark_mask=None) -> BackgroundEstimate:
+                        dark_mask=None, reuse=None) -> BackgroundEstimate:
     """Smooth (inelastic) background and local noise, robust to the spots.
 
     Each `block_px` square block gives a clipped mean and standard deviation of
@@ -73,6 +77,10 @@ def estimate_background(image, mask=None, *, block_px: int = 32, exclude=None,
         Further pixels to leave out (e.g. around spots already found).
     dark_mask : (M, N) array_like of bool, optional, keyword-only
         Pixels that see no electrons (outside the screen) for the dark level.
+    reuse : BackgroundEstimate, optional, keyword-only
+        An estimate of the same image with the same `mask`, `block_px` and `dark_mask`
+        but no `exclude` (or less of it): blocks without excluded pixels, and the dark
+        level, are taken from it instead of measured again.
 
     Returns
     -------
@@ -98,12 +106,28 @@ def estimate_background(image, mask=None, *, block_px: int = 32, exclude=None,
     if b < 4:
         raise ParameterError(f"`block_px` must be at least 4, got {block_px}.")
     gm, gn = -(-m // b), -(-n // b)
-    sample = img[valid][:: max(1, int(valid.sum()) // 20000)]
+    k = max(1, int(math.sqrt(m * n / 40_000)))  # ≈ 40 000 pixels on a regular grid
+    sample = img[::k, ::k][valid[::k, ::k]]
+    if sample.size == 0:
+        sample = img[valid]
     step = 1.0 if np.allclose(sample, np.rint(sample)) else 1e-6 * max(float(np.ptp(sample)), 1e-12)
     pad = np.full((gm * b, gn * b), np.nan, dtype=np.float32)
-    pad[:m, :n] = np.where(valid, img, np.nan)
-    mean, sd, kn, good = _block_stats(pad, b, step)  # (memory-bound: a second thread does not help)
-    good &= kn >= 16
+    np.copyto(pad[:m, :n], img, where=valid, casting="unsafe")
+    blocks = pad.reshape(gm, b, gn, b).transpose(0, 2, 1, 3).reshape(gm * gn, b * b)
+    old = reuse._blocks if (reuse is not None and reuse._blocks is not None and reuse.block_px == b
+                           and reuse.background.shape == img.shape) else None
+    if old is not None and exclude is not None:
+        # only blocks that lost pixels to `exclude` are measured again
+        ex = np.zeros((gm * b, gn * b), bool)
+        ex[:m, :n] = _check_mask(exclude, img.shape, "exclude") & _check_mask(mask, img.shape)
+        redo = np.flatnonzero(ex.reshape(gm, b, gn, b).any(axis=(1, 3)).ravel())
+        mean, sd, kn, good = (a.copy() for a in old)
+        if len(redo):
+            mean[redo], sd[redo], kn[redo], good[redo] = _block_stats(blocks[redo], b, step)
+    else:
+        mean, sd, kn, good = _block_stats(blocks, b, step)  # (memory-bound: a second thread does not help)
+    raw = (mean, sd, kn, good)
+    good = good & (kn >= 16)
     lev = np.where(good, mean, np.nan).reshape(gm, gn)
     sig = np.where(good, sd, np.nan).reshape(gm, gn)
     if np.all(np.isnan(lev)):
@@ -124,8 +148,10 @@ def estimate_background(image, mask=None, *, block_px: int = 32, exclude=None,
     background = wr @ lev_f @ wc.T
     noise = np.sqrt(np.maximum(wr @ (sig_f**2) @ wc.T, 1e-12))
 
-    dark_level, gain = None, None
-    if dark_mask is not None:
+    dark_level, gain, dark = None, None, None
+    if reuse is not None and reuse._dark is not None and dark_mask is not None:
+        dark = reuse._dark
+    elif dark_mask is not None:
         dm = _check_mask(dark_mask, img.shape, "dark_mask")
         if dm.sum() >= 200:
             dv = img[dm]
@@ -133,14 +159,15 @@ def estimate_background(image, mask=None, *, block_px: int = 32, exclude=None,
             d_med = float(np.median(dq))
             d_sd = 1.4826 * float(np.median(np.abs(dq - d_med)))
             inl = np.abs(dv - d_med) < 5 * max(d_sd, 0.5)
-            dark_level = float(dv[inl].mean())
-            dark_var = float(dv[inl].var())
-            L, V = lev.ravel(), sig.ravel() ** 2
-            use = np.isfinite(L) & (L - dark_level > 3.0 * math.sqrt(dark_var + 1e-12) + 1.0)
-            if use.sum() >= 5:
-                ratio = (V[use] - dark_var) / (L[use] - dark_level)
-                g = float(np.median(ratio))
-                gain = g if g > 0 else None
+            dark = (float(dv[inl].mean()), float(dv[inl].var()))
+    if dark is not None:
+        dark_level, dark_var = dark
+        L, V = lev.ravel(), sig.ravel() ** 2
+        use = np.isfinite(L) & (L - dark_level > 3.0 * math.sqrt(dark_var + 1e-12) + 1.0)
+        if use.sum() >= 5:
+            ratio = (V[use] - dark_var) / (L[use] - dark_level)
+            g = float(np.median(ratio))
+            gain = g if g > 0 else None
     if gain is None:
         L, V = lev.ravel(), sig.ravel() ** 2
         use = np.isfinite(L)
@@ -148,14 +175,12 @@ def estimate_background(image, mask=None, *, block_px: int = 32, exclude=None,
             A = np.column_stack([L[use], np.ones(use.sum())])
             coef, *_ = np.linalg.lstsq(A, V[use], rcond=None)
             gain = float(coef[0]) if coef[0] > 0 else None
-    return BackgroundEstimate(background, noise, gain, dark_level, b)
+    return BackgroundEstimate(background, noise, gain, dark_level, b, raw, dark)
 
 
-def _block_stats(pad: np.ndarray, b: int, step: float):
-    """Clipped mean, noise, kept count and usability of each b×b block of `pad` (NaN = invalid),
-    blocks in row-major order."""
-    gm, gn = pad.shape[0] // b, pad.shape[1] // b
-    blocks = pad.reshape(gm, b, gn, b).transpose(0, 2, 1, 3).reshape(gm * gn, b * b)
+def _block_stats(blocks: np.ndarray, b: int, step: float):
+    """Clipped mean, noise, kept count and usability of each b×b block, given as the rows of
+    `blocks` ((K, b²) float32, row-major pixels, NaN = invalid)."""
     # quartiles (only used to set the clip limits) from every fourth pixel of a block
     sub = blocks.reshape(-1, b // 2, 2, b)[:, :, 0, ::2].reshape(len(blocks), -1) if b % 2 == 0 and b >= 16 \
         else blocks

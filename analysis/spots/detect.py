@@ -62,19 +62,19 @@ _WHITE_HP: dict = {}
 
 
 def _highpass_width(snr: np.ndarray, valid: np.ndarray, sigma_px: float) -> float:
-    """Robust width of `snr` less its own average over 4 σ (normalised over the valid pixels),
-    over what independent pixels give through the same filters (1.0 for them).
+    """Robust width of `snr` less its own mean over a box of ±4 σ (normalised over the valid
+    pixels), over what independent pixels give through the same filters (1.0 for them).
 
     The high pass removes what a smooth background model leaves (a bright diffuse background
     the blocks cannot follow reads as a wide spread of the significance, not as noise). The
     reference is a field of independent normal pixels (fixed seed, 256², cached per σ)
     filtered the same way. Width: half the 15.87–84.13 percentile range.
     """
-    w = 4.0 * sigma_px
+    w = 2 * int(round(4.0 * sigma_px)) + 1
 
     def width(z, ok):
-        num = ndi.gaussian_filter(np.where(ok, z, 0.0).astype(np.float32), w, truncate=3.0)
-        den = ndi.gaussian_filter(ok.astype(np.float32), w, truncate=3.0)
+        num = ndi.uniform_filter(np.where(ok, z, 0.0).astype(np.float32), w)
+        den = ndi.uniform_filter(ok.astype(np.float32), w)
         use = ok & (den > 0.98)
         if use.sum() < 200:
             return float("nan")
@@ -181,49 +181,63 @@ def _residual_snr(f1, spots, noise, gain, knorm, sigma_px, half, model_var_f=Non
     fm = _render(shape, spots["rc"], a2, sr2, st2, spots["u"], hf)
     err = _PROFILE.filtered(*_PROFILE.squared(0.03 * spots["amp"], spots["sr"], spots["st"]), sigma_px)
     fm2 = _render(shape, spots["rc"], *err, spots["u"], hf)
-    extra = fm2 + (gain * np.clip(fm, 0, None) if gain else 0.0)
-    var_f = knorm**2 * (noise**2 + extra)
+    d = f1 - fm
+    out = (d / (knorm * noise)).astype(np.float32)
+    # the extra variance lives on the spots' windows (and under the further terms): only there
+    # is the noise drawn again
+    near = fm2 > 0
     if model_var_f is not None:
-        var_f = var_f + model_var_f
-    noise2_f = np.sqrt(var_f).astype(np.float32)
-    return (f1 - fm) / noise2_f, fm
+        near |= model_var_f > 0
+    idx = np.flatnonzero(near)
+    if idx.size:
+        extra = fm2.ravel()[idx] + (gain * np.clip(fm.ravel()[idx], 0, None) if gain else 0.0)
+        var_f = knorm**2 * (noise.ravel()[idx] ** 2 + extra)
+        if model_var_f is not None:
+            var_f = var_f + model_var_f.ravel()[idx]
+        out.ravel()[idx] = d.ravel()[idx] / np.sqrt(var_f)
+    return out, fm
 
 
-def _dark_patches(img, bg, valid, s, min_snr, noise=None):
-    """(M, N) bool: valid pixels of patches darker than the background `bg` by `min_snr` in
+def _dark_patches(res, f1, valid, s, min_snr, noise):
+    """(M, N) bool: valid pixels of patches darker than the background by `min_snr` in
     matched-filter units (light missing over a spot's area, π σ² px at least) and than their own
     surroundings (a ring 4–7 σ out) by 0.9 × the pixel noise on average, widened by 3 σ so
-    their edges go too; None when there are none.
+    their edges go too; None when there are none. `res` is the background-subtracted image,
+    `f1` its matched filter (σ = `s`), `noise` the pixel noise.
 
     A patch that reaches the mask's edge is the penumbra of the gun shadow or of the rim
     (the masks cover the core only): it is left out, or the blocks beside the shadow would
     lose the pixels that say how the background rises towards the pattern's centre.
     """
-    res = np.where(valid, img - bg.background, 0.0).astype(np.float32)
-    nz = bg.noise if noise is None else noise
-    snr = _matched(res, s) / (np.maximum(nz, 1e-6) * _gauss_kernel_norm(s)).astype(np.float32)
+    nz = noise
+    snr = f1 / (np.maximum(nz, 1e-6) * _gauss_kernel_norm(s)).astype(np.float32)
     dark = (snr < -min_snr) & valid
     if not dark.any():
         return None
-    lab, _ = ndi.label(dark, structure=np.ones((3, 3)))
-    edge = np.unique(lab[ndi.binary_dilation(~valid, iterations=2) & dark])
-    z = res / np.maximum(nz, 1e-6)
+    lab, nlab = ndi.label(dark, structure=np.ones((3, 3)))
+    size = np.bincount(lab.ravel(), minlength=nlab + 1)
+    m, n = res.shape
     r_in, r_out = max(2, int(round(4.0 * s))), max(4, int(round(7.0 * s)))
-    keep = np.zeros(lab.max() + 1, bool)
+    keep = np.zeros(nlab + 1, bool)
     for k, sl in enumerate(ndi.find_objects(lab), start=1):
-        if sl is None or k in edge or np.sum(lab[sl] == k) < math.pi * s * s:  # smaller than a spot: noise
+        if sl is None or size[k] < math.pi * s * s:  # smaller than a spot: noise
             continue
+        if sl[0].start < 2 or sl[1].start < 2 or sl[0].stop > m - 2 or sl[1].stop > n - 2:
+            continue  # at the frame's edge
         r0, r1 = max(sl[0].start - r_out, 0), sl[0].stop + r_out
         c0, c1 = max(sl[1].start - r_out, 0), sl[1].stop + r_out
         own = lab[r0:r1, c0:c1] == k
-        ring = ndi.binary_dilation(own, iterations=r_out) & ~ndi.binary_dilation(own, iterations=r_in) & \
-            valid[r0:r1, c0:c1]
+        ok = valid[r0:r1, c0:c1]
+        if (ndi.binary_dilation(own, iterations=2) & ~ok).any():
+            continue  # reaches the mask's edge: a penumbra
+        ring = ndi.binary_dilation(own, iterations=r_out) & ~ndi.binary_dilation(own, iterations=r_in) & ok
         if ring.sum() < 10:
             continue
         # darker than its own surroundings by 0.9 of the pixel noise on average: a speck on the
         # screen; a dip that a smooth background leaves beside a narrow glare sits in a wide
         # region read too high, and its surroundings are as dark as itself
-        keep[k] = float(z[r0:r1, c0:c1][own].mean()) - float(np.median(z[r0:r1, c0:c1][ring])) < -0.9
+        z = res[r0:r1, c0:c1] / np.maximum(nz[r0:r1, c0:c1], 1e-6)
+        keep[k] = float(z[own].mean()) - float(np.median(z[ring])) < -0.9
     dark &= keep[lab]
     if not dark.any():
         return None

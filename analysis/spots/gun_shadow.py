@@ -195,8 +195,15 @@ def _auto_gun(img: np.ndarray, screen: ScreenMask, margin_px: float) -> ShadowMa
         return _none_shadow(img.shape, margin_px)
     dist = ndi.distance_transform_edt(cand)
     idx = np.arange(1, nlab + 1)
-    rmax = ndi.maximum(dist, lab, idx)
-    pos = np.array(ndi.maximum_position(dist, lab, idx), dtype=np.float64).reshape(-1, 2)
+    # each component's deepest pixel (the first in raster order among equals), from its own
+    # pixels only (ndimage's per-label maximum sorts the whole label image)
+    fr, fc = np.nonzero(lab)
+    lv, dv = lab[fr, fc], dist[fr, fc]
+    order = np.argsort(-dv, kind="stable")
+    _, first = np.unique(lv[order], return_index=True)
+    top = order[first]
+    rmax = dv[top]
+    pos = np.column_stack([fr[top], fc[top]]).astype(np.float64)
     sc = np.array([screen.center_rc[0] / f, screen.center_rc[1] / f])
     rs = screen.radius_px / f
     dcen = np.hypot(pos[:, 0] - sc[0], pos[:, 1] - sc[1])

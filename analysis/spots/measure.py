@@ -206,19 +206,36 @@ def find_spots(image, *, sigma_px: float = 2.0, min_snr: float = 5.0, mask=None,
     valid = _check_mask(mask, shape)
     centre = np.array([(shape[0] - 1) / 2, (shape[1] - 1) / 2]) if center_rc is None else \
         np.asarray(center_rc, dtype=np.float64).reshape(2)
-    orient = centre  # each fit's axes: radial from the centre, or fixed along the spread's long axis
-    if psf_axis_deg is not None:
-        a = math.radians(float(psf_axis_deg))
-        orient = _FixedAxis((-math.sin(a), math.cos(a)), psf_elongation)
+    orient = _orientation(centre, psf_axis_deg, psf_elongation)
     bg = estimate_background(img, valid) if background is None else background
     if not isinstance(bg, BackgroundEstimate):
         raise ParameterError(f"`background` must be a BackgroundEstimate, got {type(bg).__name__}.")
     if not valid.any():
         return _empty_table(centre)
+    usable = valid if fit_mask is None else _check_mask(fit_mask, shape, "fit_mask") | valid
+    return _find_spots(img, sat, sigma_px, min_snr, valid, usable, centre, orient, bg, split_pairs, second_pass,
+                       psf_axis_deg, psf_elongation)
+
+
+def _orientation(centre, psf_axis_deg, psf_elongation):
+    """Each fit's axes: radial from `centre`, or fixed along the spread's long axis."""
+    if psf_axis_deg is None:
+        return centre
+    a = math.radians(float(psf_axis_deg))
+    return _FixedAxis((-math.sin(a), math.cos(a)), psf_elongation)
+
+
+def _find_spots(img, sat, sigma_px, min_snr, valid, usable, centre, orient, bg, split_pairs, second_pass,
+                psf_axis_deg, psf_elongation, *, res=None, f1=None, spot_noise="measure") -> SpotTable:
+    """:func:`find_spots` on checked inputs. `res` and `f1` (the residual on `usable` and its
+    matched filter) may be given when already computed; `spot_noise` is "measure" (test the
+    pixels for correlated noise), None (independent pixels) or the pixel noise at the spot
+    scale ((M, N), from :func:`_spot_scale_noise` over √Σg²)."""
+    shape = img.shape
     noise = np.maximum(bg.noise, 1e-6)
     gain = bg.gain_adu
-    usable = valid if fit_mask is None else _check_mask(fit_mask, shape, "fit_mask") | valid
-    res = np.where(usable, img - bg.background, 0.0).astype(np.float32)
+    if res is None:
+        res = np.where(usable, img - bg.background, 0.0).astype(np.float32)
     clipped = _clipped(img, usable, sat)  # full-scale pixels and their neighbours: never fitted
     ok_fit = usable if clipped is None else usable & ~clipped
     knorm = _gauss_kernel_norm(sigma_px)
@@ -228,13 +245,19 @@ def find_spots(image, *, sigma_px: float = 2.0, min_snr: float = 5.0, mask=None,
     noise_f = (noise * knorm).astype(np.float32)
 
     # pass 1
-    f1 = _matched(res, sigma_px)
-    s1 = f1 / noise_f
-    nf = _spot_scale_noise(f1, s1, valid, sigma_px)  # correlated pixel noise (demosaicing, JPEG)
+    if f1 is None:
+        f1 = _matched(res, sigma_px)
+    if isinstance(spot_noise, str):
+        s1 = f1 / noise_f
+        nf = _spot_scale_noise(f1, s1, valid, sigma_px)  # correlated pixel noise (demosaicing, JPEG)
+    else:
+        s1, nf = None, None if spot_noise is None else (spot_noise * knorm).astype(np.float32)
     if nf is not None:
         noise_f, s1 = nf, f1 / nf
         noise = nf.astype(np.float64) / knorm
         bg = dataclasses.replace(bg, noise=noise)
+    elif s1 is None:
+        s1 = f1 / noise_f
     cand = _maxima(s1, min_snr, valid)
     spots = _fit_pass1(fitter, res, noise, ok_fit, valid, cand, s1, f1, orient, gain, sigma_px, shape, half)
     if gain is None and len(spots["rc"]):
@@ -292,10 +315,9 @@ def find_spots(image, *, sigma_px: float = 2.0, min_snr: float = 5.0, mask=None,
         # too few clean first fits: measure it on the final (unsplit) spots and measure again
         g = _gain_from_spots(fitter, res, noise, ok_fit, _take(spots, (spots["flags"] & FLAG_SPLIT) == 0), half)
         if g is not None:
-            return find_spots(img, sigma_px=sigma_px, min_snr=min_snr, mask=valid,
-                              background=dataclasses.replace(bg, gain_adu=g), center_rc=centre,
-                              saturation_level=sat, split_pairs=split_pairs, second_pass=second_pass,
-                              psf_axis_deg=psf_axis_deg, psf_elongation=psf_elongation, fit_mask=fit_mask)
+            return _find_spots(img, sat, sigma_px, min_snr, valid, usable, centre, orient,
+                               dataclasses.replace(bg, gain_adu=g), split_pairs, second_pass, psf_axis_deg,
+                               psf_elongation, res=res, f1=f1, spot_noise=None if nf is None else noise)
     return _table(spots, img, bg, sat, valid, centre, sigma_px)
 
 
@@ -479,22 +501,28 @@ def measure_image(image, *, sigma_px: float | None = 2.0, min_snr: float = 5.0, 
         nz = bg.noise[rc1[:, 0].astype(int), rc1[:, 1].astype(int)]
         rad = _PROFILE.reach_px(s, 2.0 * amp1 / np.maximum(nz, 1e-9)) + 1.0
         excl = _disks(img.shape, rc1, np.clip(rad, 2.5 * s, 12 * s))
-    bg2 = estimate_background(img, valid, block_px=block_px, exclude=excl, dark_mask=dark) \
+    bg2 = estimate_background(img, valid, block_px=block_px, exclude=excl, dark_mask=dark, reuse=bg) \
         if (valid & ~excl).sum() > 64 else bg
-    # and dark patches (dust on the screen, a scratch), found against that background: they
-    # pull the block levels down, and the clear screen between them then reads as spots
-    patches = _dark_patches(img, bg2, valid, s, min_snr, noise1)
-    if patches is not None and (valid & ~excl & ~patches).sum() > 64:
-        bg2 = estimate_background(img, valid, block_px=block_px, exclude=excl | patches, dark_mask=dark)
     # the fits may use the screen's light out to 1 px inside its rim (the mask keeps 3 px off it)
-    fit_mask = None
+    usable = valid
     if scr.source != "frame" and scr.margin_px > 1.0:
         a, b = scr.semi_axes_px
-        fit_mask = disk_mask(img.shape, scr.center_rc, 0, axes_px=(a - 1.0, b - 1.0), angle_deg=scr.angle_deg) & \
-            ~gsh.mask
-    spots = find_spots(img, sigma_px=s, min_snr=min_snr, mask=valid, background=bg2, center_rc=center_rc,
-                       saturation_level=sat, psf_axis_deg=axis_deg, psf_elongation=elong, fit_mask=fit_mask,
-                       **spot_kw)
+        usable = valid | disk_mask(img.shape, scr.center_rc, 0, axes_px=(a - 1.0, b - 1.0),
+                                   angle_deg=scr.angle_deg) & ~gsh.mask
+    res2 = np.where(usable, img - bg2.background, 0.0).astype(np.float32)
+    f2 = _matched(res2, s)
+    # and dark patches (dust on the screen, a scratch), found against that background: they
+    # pull the block levels down, and the clear screen between them then reads as spots
+    patches = _dark_patches(res2, f2, valid, s, min_snr, bg2.noise if noise1 is None else noise1)
+    if patches is not None and (valid & ~excl & ~patches).sum() > 64:
+        bg2 = estimate_background(img, valid, block_px=block_px, exclude=excl | patches, dark_mask=dark, reuse=bg)
+        res2 = f2 = None
+    split, second = spot_kw.pop("split_pairs", True), spot_kw.pop("second_pass", True)
+    if spot_kw:
+        raise TypeError(f"measure_image() got unexpected keyword arguments {sorted(spot_kw)}")
+    centre = np.asarray(center_rc, dtype=np.float64).reshape(2)
+    spots = _find_spots(img, sat, s, min_snr, valid, usable, centre, _orientation(centre, axis_deg, elong), bg2,
+                        split, second, axis_deg, elong, res=res2, f1=f2, spot_noise=noise1)
     shape_kw = {"psf_axis_deg": axis_deg, "psf_elongation": elong}
     if not accept or not len(spots):
         return Measurement(spots, scr, gsh, bg2, valid, s, **shape_kw)
