@@ -32,3 +32,26 @@ def text_of(component) -> str:
     if isinstance(component, (list, tuple)):
         return " ".join(text_of(c) for c in component)
     return text_of(getattr(component, "children", None))
+
+
+def click_drawn_pattern(page, x: float, y: float, *, added: int | None = None, timeout_ms: int = 120_000):
+    """Click the pattern (``#graph``) at page point (x, y) as a user would.
+
+    Two waits make the click land. (1) With `added`, the figure drawn must show that many spots
+    added by hand: the result panel updates before the new figure arrives and is drawn, and a
+    click while Plotly redraws is lost. (2) The pointer rests on the point until Plotly has found
+    what lies under it, then the button goes down: a synthetic click moves, presses and releases
+    at once, and on a loaded machine the hover came after the press, so Plotly reported no click
+    and the page sent no request at all.
+    """
+    if added is not None:
+        page.wait_for_function("""n => { const gd = document.querySelector('#graph .js-plotly-plot');
+            if (!gd || !gd._fullData) return false;
+            const t = gd._fullData.find(d => d.name === 'Added by hand');  // arrays decoded here
+            return (t ? t.x.length : 0) === n; }""", arg=added, timeout=timeout_ms)
+    page.evaluate("() => { const gd = document.querySelector('#graph .js-plotly-plot'); if (gd) gd._hoverdata = undefined; }")
+    page.mouse.move(x, y)
+    page.wait_for_function("() => ((document.querySelector('#graph .js-plotly-plot') || {})._hoverdata || []).length > 0",
+                           timeout=timeout_ms)
+    page.mouse.down()
+    page.mouse.up()

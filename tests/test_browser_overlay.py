@@ -13,6 +13,7 @@ import os
 from pathlib import Path
 
 import pytest
+from dash_helpers import click_drawn_pattern
 
 pytestmark = pytest.mark.browser
 
@@ -107,37 +108,14 @@ def test_a_huge_model_and_a_picked_candidate_say_so(page, live_server):
     assert page.locator("#candidate-pick input:checked").count() == 0
 
 
-def _click_drawn_plot(page, fx, fy, added):
-    """Click at (fx, fy) of the plot area once the pattern shows `added` spots added by hand.
-
-    Two waits make a click land as a user's would. (1) The figure drawn must be the one with
-    the last edit: the spot count (result panel) is updated before the new figure arrives and
-    is drawn, and a click while Plotly redraws is lost. (2) The pointer rests on the point and
-    Plotly has found what lies under it before the button goes down: a synthetic click moves,
-    presses and releases at once, and on a loaded machine the hover came after the press, so
-    Plotly had nothing to report and no click event was sent (seen: no request at all).
-    """
-    page.wait_for_function("""n => { const w = document.querySelector('#graph');
-        const gd = w && w.querySelector('.js-plotly-plot');
-        if (!gd || !gd._fullData) return false;
-        const t = gd._fullData.find(d => d.name === 'Added by hand');  // arrays decoded here
-        return (t ? t.x.length : 0) === n; }""", arg=added, timeout=WAIT_MS)
-    box = page.locator("#graph .nsewdrag").first.bounding_box()
-    x, y = box["x"] + box["width"] * fx, box["y"] + box["height"] * fy
-    page.evaluate("() => { document.querySelector('#graph .js-plotly-plot')._hoverdata = undefined; }")
-    page.mouse.move(x, y)
-    page.wait_for_function("() => (document.querySelector('#graph .js-plotly-plot')._hoverdata || []).length > 0",
-                           timeout=WAIT_MS)
-    page.mouse.down()
-    page.mouse.up()
-
-
 def test_undo_last_edit_takes_back_one_click(page, live_server):
     _analyse(page, live_server, "pt111_PX-7_oxygen_p2x2.png")
     before = int(page.get_attribute("#spot-count", "data-count"))
     for i, fx in enumerate((0.2, 0.25)):  # dark places near the edge of the screen, far from every spot
         n = int(page.get_attribute("#spot-count", "data-count"))
-        _click_drawn_plot(page, fx, 0.5, added=i)
+        box = page.locator("#graph .nsewdrag").first.bounding_box()
+        click_drawn_pattern(page, box["x"] + box["width"] * fx, box["y"] + box["height"] * 0.5, added=i,
+                            timeout_ms=WAIT_MS)
         page.wait_for_function(f"() => {{ const e = document.querySelector('#spot-count');"
                                f" return e && parseInt(e.dataset.count) === {n + 1}; }}", timeout=WAIT_MS)
     assert "2 added" in page.inner_text("#edit-summary")

@@ -15,6 +15,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from dash_helpers import click_drawn_pattern
 
 pytestmark = pytest.mark.browser
 
@@ -129,8 +130,8 @@ def test_turned_mirrored_view_and_background_view(page, live_server, tmp_path):
     dx, dy = _display_xy(*target)
     page.locator("#click-mode").get_by_text("sets the centre", exact=True).click()
     box = page.locator("#graph .nsewdrag").first.bounding_box()
-    page.mouse.click(box["x"] + (dx - xr[0]) / (xr[1] - xr[0]) * box["width"],
-                     box["y"] + (dy - yr[1]) / (yr[0] - yr[1]) * box["height"])
+    click_drawn_pattern(page, box["x"] + (dx - xr[0]) / (xr[1] - xr[0]) * box["width"],
+                        box["y"] + (dy - yr[1]) / (yr[0] - yr[1]) * box["height"])
     page.wait_for_function("document.querySelector('#edit-summary').innerText.includes('centre set to')")
     got = [float(v) for v in re.search(r"centre set to \(([-\d.]+), ([-\d.]+)\)",
                                        page.inner_text("#edit-summary")).groups()]

@@ -12,6 +12,7 @@ import os
 from pathlib import Path
 
 import pytest
+from dash_helpers import click_drawn_pattern
 
 pytestmark = pytest.mark.browser
 
@@ -133,7 +134,8 @@ def test_click_adds_a_spot_and_the_count_changes(page, live_server):
     before = int(page.get_attribute("#spot-count", "data-count"))
     box = page.locator("#graph .nsewdrag").first.bounding_box()
     # a dark place near the corner of the screen: far from every spot
-    page.mouse.click(box["x"] + box["width"] * 0.2, box["y"] + box["height"] * 0.5)
+    click_drawn_pattern(page, box["x"] + box["width"] * 0.2, box["y"] + box["height"] * 0.5, added=0,
+                        timeout_ms=WAIT_MS)
     page.wait_for_function(f"() => {{ const e = document.querySelector('#spot-count');"
                            f" return e && parseInt(e.dataset.count) === {before + 1}; }}", timeout=WAIT_MS)
     assert "1 added" in page.inner_text("#edit-summary")
