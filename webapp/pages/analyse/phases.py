@@ -34,9 +34,11 @@ def beam_text(hk) -> str:
     ('(−3/2, 0)', '(1/4, 1/2)')
     """
     parts = []
-    for v in hk:
-        f = Fraction(float(v)).limit_denominator(12)
-        parts.append(str(f).replace("-", "−"))
+    for v in list(hk or [])[:2]:
+        try:
+            parts.append(str(Fraction(float(v)).limit_denominator(12)).replace("-", "−"))
+        except (TypeError, ValueError, OverflowError):
+            parts.append("?")
     return "(" + ", ".join(parts) + ")"
 
 
@@ -59,7 +61,11 @@ def axis_text(axis) -> str:
     ('2a₁', 'a₁ − a₂', '4a₂')
     """
     out = ""
-    for n, name in zip((int(axis[0]), int(axis[1])), ("a1", "a2")):
+    try:
+        comps = (int(axis[0]), int(axis[1]))
+    except (TypeError, ValueError, IndexError, OverflowError):
+        return "?"
+    for n, name in zip(comps, ("a1", "a2")):
         if n == 0:
             continue
         mag = "" if abs(n) == 1 else str(abs(n))
@@ -75,11 +81,17 @@ def _matrix_text(m) -> str:
         return "–"
 
 
-def _pct(v) -> str:
+def _float(v):
     try:
-        return f"{100 * float(v):.0f}\u00a0%"
+        f = float(v)
     except (TypeError, ValueError):
-        return "–"
+        return None
+    return f if f == f else None  # NaN: not known
+
+
+def _pct(v) -> str:
+    f = _float(v)
+    return "–" if f is None else f"{100 * f:.0f}\u00a0%"
 
 
 def phases_panel(overlayer: dict | None):
@@ -107,18 +119,18 @@ def phases_panel(overlayer: dict | None):
     rows = []
     for i, p in enumerate(phases):
         doms = p.get("domains") or ([p["matrix"]] if p.get("matrix") is not None else [])
-        cov = p.get("coverage")
+        cov, share = _float(p.get("coverage")), _float(p.get("intensity_share"))
         rows.append(html.Tr(className="phase-row", **{"data-wood": str(p.get("wood") or ""),
-                                                      "data-share": f"{float(p.get('intensity_share') or 0):.4f}"},
+                                                      "data-share": "" if share is None else f"{share:.4f}"},
                             children=[
             html.Th(f"{i + 1}"),
             html.Td([str(p.get("wood") or "no Wood notation"), html.Br(),
                      html.Span(str(p.get("kind") or "–"), className="muted")]),
             html.Td(_matrix_text(p.get("matrix"))),
             html.Td(html.Span(f"{len(doms)}", title="; ".join(_matrix_text(d) for d in doms))),
-            html.Td("–" if cov is None else f"{float(cov):.3g} ML"),
+            html.Td("–" if cov is None else f"{cov:.3g} ML"),
             html.Td(_pct(p.get("intensity_share"))),
-            html.Td(str(int(p.get("explained") or len(p.get("spots") or [])))),
+            html.Td(str(int(_float(p.get("explained")) or len(p.get("spots") or [])))),
         ]))
     return html.Div(id=ids.PHASES, className="phases", children=[
         html.H3("Phases on the surface"),
@@ -158,10 +170,10 @@ def plane_group_panel(overlayer: dict | None):
     evidence = []
     for g in lines:
         miss = [beam_text(b) for b in (g.get("missing_beams") or [])]
-        weak = [f"{beam_text((w.get('h'), w.get('k')))} at {100 * float(w.get('relative_intensity', 0)):.0f} %"
+        weak = [f"{beam_text((w.get('h'), w.get('k')))} at {_pct(w.get('relative_intensity'))}"
                 for w in (g.get("weak_beams") or []) if isinstance(w, dict)]
         filled = [beam_text(b) for b in (g.get("filled_by_other_domains") or [])]
-        parts = [html.B(f"Domain {int(g.get('domain', 0)) + 1}: glide line along {axis_text(g.get('axis') or [0, 0])}"),
+        parts = [html.B(f"Domain {int(_float(g.get('domain')) or 0) + 1}: glide line along {axis_text(g.get('axis') or [0, 0])}"),
                  html.Br(), "odd beams along it with no spot: " + (", ".join(miss) or "none")]
         if weak:
             parts += [html.Br(), "seen only weakly (of the domain's typical beam): " + ", ".join(weak)]
@@ -172,7 +184,7 @@ def plane_group_panel(overlayer: dict | None):
         if not isinstance(a, dict):
             continue
         filled = [beam_text(b) for b in (a.get("filled_beams") or [])]
-        evidence.append(html.Li([html.B(f"Domain {int(a.get('domain', 0)) + 1}, along "
+        evidence.append(html.Li([html.B(f"Domain {int(_float(a.get('domain')) or 0) + 1}, along "
                                         f"{axis_text(a.get('axis') or [0, 0])}: cannot be told"), html.Br(),
                                  "its odd beams are made by another domain too: " + (", ".join(filled) or "–")],
                                 className="open-axis"))
