@@ -109,6 +109,7 @@ def test_two_phases_side_by_side_are_each_listed(page, live_server, fresh_store)
         .map(t => [t.name, t.x ? t.x.length : 0]))""")
     second = [r for r in rows if r["wood"] != rows[0]["wood"]][0]
     assert traces.get("Another phase") == int(second["cells"][6])
+    assert traces.get("Phase 2 net", 0) > 0  # its net drawn through its spots
     assert f"{second['cells'][6]} of other phases" in page.inner_text("#spot-count")
     # neither cell is rectangular: the missing beams cannot tell the plane group, and the page says so
     assert "cannot tell" in page.inner_text("#plane-group-verdict")

@@ -189,6 +189,12 @@ def pattern_figure(source: str | None, *, width: int, height: int, factor: int =
                     opacity=0.55 if strong else 0.2, text=[hk_text(*q) for q in p["hk"][absent]],
                     hovertemplate=f"domain {i + 1} %{{text}}: predicted, no spot<extra></extra>"))
 
+    if "domains" in show and candidate is None and sub.get("a_star_px") is not None and center is not None:
+        sub_hk, sub_xy = _substrate_points(result, center, width, height)
+        for k, (lx, ly) in _phase_nets(result.get("overlayer") or {}, spots, sxy, sub_hk, sub_xy):
+            fig.add_trace(go.Scatter(x=lx, y=ly, mode="lines", name=f"Phase {k + 1} net", hoverinfo="skip",
+                                     line=dict(color=PHASE_COLOUR, width=1.0, dash="dot"), opacity=0.7))
+
     if "model" in show and model:
         rows = model.get("domains")
         if rows:
@@ -331,6 +337,37 @@ def net_lines(xy: np.ndarray, idx: np.ndarray) -> tuple[list, list]:
             xs += [float(xy[q, 0]) for q in run] + [None]
             ys += [float(xy[q, 1]) for q in run] + [None]
     return xs, ys
+
+
+def _phase_nets(overlayer: dict, spots, sxy, sub_hk, sub_xy, *, tol: float = 0.15) -> list:
+    """Net lines of each coexisting phase (after the first) through its measured spots.
+
+    A phase's spots (``phase`` = its index) sit on its domains' nets: at substrate indices hk
+    (measured) a domain of matrix M has n = hk Mᵀ, whole to within `tol` (a measured position);
+    the substrate beams (camera model) lie on every net. Returns ``[(phase, (x, y))]``.
+    """
+    out = []
+    phase_of = np.array([s.get("phase") if isinstance(s.get("phase"), int) else -1 for s in spots], dtype=int)
+    hk_all = np.array([[s.get("h_measured", np.nan), s.get("k_measured", np.nan)] for s in spots],
+                      dtype=float).reshape(-1, 2)
+    for k, ph in enumerate(overlayer.get("phases") or []):
+        if k == 0 or not isinstance(ph, dict) or not np.any(phase_of == k):
+            continue
+        xs, ys = [], []
+        for m in _domain_matrices(ph):
+            own = (phase_of == k) & np.all(np.isfinite(hk_all), axis=1)
+            n = hk_all[own] @ m.T
+            near = np.all(np.abs(n - np.rint(n)) < tol, axis=1)
+            n_sub = sub_hk @ m.T
+            on = np.all(np.abs(n_sub - np.rint(n_sub)) < 1e-3, axis=1)  # substrate beams on this net
+            xy = np.vstack([sxy[own][near], sub_xy[on]])
+            idx = np.vstack([np.rint(n[near]), np.rint(n_sub[on])])
+            lx, ly = net_lines(xy, idx)
+            xs += lx
+            ys += ly
+        if xs:
+            out.append((k, (xs, ys)))
+    return out
 
 
 def _domain_matrices(overlayer: dict) -> list[np.ndarray]:
