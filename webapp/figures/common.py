@@ -18,7 +18,7 @@ PALETTE = {
 #   domains: the six colours below, in this order, and nothing else uses them;
 #   substrate net, centre and a1*/a2*: white; a tried model: white dashed; screen edge: steel
 #   dashed; gun shadow: light grey dotted; unexplained spots: white crosses; hand edits: white stars; spots of a coexisting phase:
-#   light magenta open squares.
+#   light magenta open squares, its net light magenta dotted.
 DOMAIN_COLOURS = [PALETTE["orange"], PALETTE["sky"], PALETTE["green"], PALETTE["vermillion"], PALETTE["purple"],
                   PALETTE["yellow"]]
 DOMAIN_DASHES = ["solid", "dash", "dot", "dashdot"]  # after six domains the colours repeat with another dash
