@@ -448,7 +448,8 @@ def _score(ctx: _Context, matrix, *, all_domains: bool, satellites: bool, absent
     terms = overlayer_breakdown(explained=e_r, satellites=e_sat_r, unexplained=u_r, n_domains=len(chosen),
                                 det=det, miss=miss, own_log_i=own_li, satellite_log_i=sat_li,
                                 moire=bool(moire[chosen].any()),
-                                symmetry_domains=_distinct_nets(bs, a_star, tol_g) if moire.any() else None)
+                                symmetry_domains=_distinct_nets(bs, a_star, tol_g) if moire.any() else None,
+                                denominator=1 if satellites else _common_denominator(m))
     bound = terms.total  # A not counted yet: an upper bound of the score
     sc = _Scored(domains=[mats[i] for i in chosen], domain_ops=[names[i] for i in chosen], all_domains=mats,
                  explained=e, unexplained=u, satellites=e_sat, satellites_allowed=bool(satellites),
@@ -478,6 +479,23 @@ def _with_absent(ctx: _Context, sc: _Scored) -> _Scored:
                 missing[missing] = ~glide_excused(ctx, sc.domains, pts[seen][missing])
             absent = int(np.sum(missing))
     return dataclasses.replace(sc, absent=absent, terms=sc.terms.replace(absent=absent))
+
+
+def _common_denominator(m: np.ndarray) -> int:
+    """q, the least common denominator of a rational matrix's entries (≤ 12; 1 when not rational).
+
+    The same in every basis of the cell (integer changes of basis keep it).
+
+    >>> _common_denominator(np.array([[3, 0], [0, 1.5]])), _common_denominator(np.array([[2, 1], [-1, 1]]))
+    (2, 1)
+    """
+    q = 1
+    for v in np.asarray(m, dtype=np.float64).ravel():
+        f = Fraction(float(v)).limit_denominator(12)
+        if abs(float(f) - v) > 1e-6:
+            return 1
+        q = q * f.denominator // math.gcd(q, f.denominator)
+    return q
 
 
 def _describe(ctx: _Context, sc: _Scored, *, kind_tol: float) -> OverlayerModel:

@@ -2,7 +2,7 @@
 
 Overlayer score (:data:`OVERLAYER_TERMS`; ranks the models for the fractional-order spots)::
 
-    score = E − ¼·S − U − (D − 1) − ½·|log₂ det M| − mean((miss/tol)²) + tanh(ΔlogI) + 2·Q − 2·Y − ½·A − H + P
+    score = E − ¼·S − U − (D − 1) − ½·|log₂ det M| − K − mean((miss/tol)²) + tanh(ΔlogI) + 2·Q − 2·Y − ½·A − H + P
 
 E     fractional spots the model explains; S of them only as multiple-scattering
       satellites (so a satellite-only spot counts ¾); U fractional spots left
@@ -22,6 +22,9 @@ Q, Y  for a layer that nearly coincides with the substrate (a moiré: its first-
       symmetry than the substrate's, seen in one domain, is one of the module's nets, not
       the layer). Both 0 for other layers.
 A     predicted fractional beams absent where a spot could have been seen.
+K     log₂ q of a rational matrix with non-integer entries (a coincidence cell), q the common
+      denominator of its entries (the same in every basis of the cell); 0 for integer and
+      irrational matrices.
 H     irrational handicap 1.5 + 0.05·E′ + 2·(D − 1) of an incommensurate model
       (E′: every spot explained, trusted or not): four free parameters can absorb a
       small camera error, and each further irrational domain is a new free orientation.
@@ -89,6 +92,9 @@ OVERLAYER_TERMS = (
     Term("unexplained", -1.0, "U", "fractional spots left unexplained (trusted spots)"),
     Term("extra_domains", -1.0, "(D − 1)", "domains used beyond the first"),
     Term("cell_size", -0.5, "|log₂ det M|", "the cell's area away from the substrate's, in octaves"),
+    Term("coincidence", -1.0, "K",
+         "log₂ q for a rational matrix that is not integer, q the common denominator of its entries: "
+         "a coincidence cell puts adsorbates on inequivalent sites and needs more description"),
     Term("miss", -1.0, "mean((miss/tol)²)", "mean squared miss of the explained spots, in tolerances"),
     Term("satellite_contrast", 1.0, "tanh(ΔlogI)", "the layer's own beams outshine its satellites"),
     Term("moire_contrast", 2.0, "Q",
@@ -244,7 +250,7 @@ class ScoreBreakdown:
 def overlayer_breakdown(*, explained: int, satellites: int, unexplained: int, n_domains: int, det: float,
                         miss: np.ndarray | None = None, own_log_i: np.ndarray | None = None,
                         satellite_log_i: np.ndarray | None = None, moire: bool = False,
-                        symmetry_domains: int | None = None) -> ScoreBreakdown:
+                        symmetry_domains: int | None = None, denominator: int = 1) -> ScoreBreakdown:
     """The overlayer terms known before the absent beams are counted (A, H and P are 0).
 
     Parameters
@@ -265,6 +271,8 @@ def overlayer_breakdown(*, explained: int, satellites: int, unexplained: int, n_
         of the net's `symmetry_domains` as ``moire_symmetry``.
     symmetry_domains : int, optional
         The number of symmetry domains of the net on the substrate.
+    denominator : int, optional
+        q, the common denominator of a rational matrix's entries (1 for an integer matrix).
 
     Returns
     -------
@@ -279,7 +287,8 @@ def overlayer_breakdown(*, explained: int, satellites: int, unexplained: int, n_
     5.75 -1.0
     """
     values = dict(explained=explained, satellites=satellites, unexplained=unexplained,
-                  extra_domains=n_domains - 1, cell_size=abs(math.log2(det)))
+                  extra_domains=n_domains - 1, cell_size=abs(math.log2(det)),
+                  coincidence=math.log2(max(int(denominator), 1)))
     if miss is not None and len(miss):
         values["miss"] = float(np.mean(miss**2))
     if own_log_i is not None and satellite_log_i is not None and len(own_log_i) and len(satellite_log_i):
