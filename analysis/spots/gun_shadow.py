@@ -167,21 +167,19 @@ def _auto_gun(img: np.ndarray, screen: ScreenMask, margin_px: float) -> ShadowMa
     # local screen level: a high percentile per coarse block, so dark shadows do not pull it down,
     # of the pixels below the spots (a dense bright pattern would otherwise lift it above the
     # diffuse background between the spots, which then reads as shadow)
-    # (the cut is each block's own: a bright diffuse glow around the centre is screen level, not
-    # spots, and a cut from the whole screen would drop it and leave the level there too low)
     b = max(8, min(small.shape) // 12)
     gm, gn = -(-small.shape[0] // b), -(-small.shape[1] // b)
+    on = small[scr]
+    med = float(np.median(on))
+    cut = med + 5.0 * max(1.4826 * float(np.median(np.abs(on - med))), 1e-12)
     pad = np.full((gm * b, gn * b), np.nan)
-    pad[: small.shape[0], : small.shape[1]] = np.where(scr, small, np.nan)
+    pad[: small.shape[0], : small.shape[1]] = np.where(scr & (small <= cut), small, np.nan)
     blocks = pad.reshape(gm, b, gn, b).transpose(0, 2, 1, 3).reshape(gm, gn, b * b)
+    cnt = np.sum(np.isfinite(blocks), axis=2)
     import warnings
 
     with np.errstate(all="ignore"), warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN blocks outside the screen
-        med_b = np.nanmedian(blocks, axis=2)
-        cut_b = med_b + 5.0 * np.maximum(1.4826 * np.nanmedian(np.abs(blocks - med_b[..., None]), axis=2), 1e-12)
-        blocks = np.where(blocks <= cut_b[..., None], blocks, np.nan)
-        cnt = np.sum(np.isfinite(blocks), axis=2)
         lev = _nan_percentile(np.where(cnt[..., None] > 0.1 * b * b, blocks, np.nan), 75.0) \
             if np.any(cnt > 0.1 * b * b) else np.full((gm, gn), np.nan)
     lev = _fill_nan_grid(lev)
