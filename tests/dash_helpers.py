@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import base64
+import time
 from contextvars import copy_context
 
 
@@ -49,9 +50,21 @@ def click_drawn_pattern(page, x: float, y: float, *, added: int | None = None, t
             if (!gd || !gd._fullData) return false;
             const t = gd._fullData.find(d => d.name === 'Added by hand');  // arrays decoded here
             return (t ? t.x.length : 0) === n; }""", arg=added, timeout=timeout_ms)
+    from playwright.sync_api import TimeoutError as PlaywrightTimeoutError
+
     page.evaluate("() => { const gd = document.querySelector('#graph .js-plotly-plot'); if (gd) gd._hoverdata = undefined; }")
-    page.mouse.move(x, y)
-    page.wait_for_function("() => ((document.querySelector('#graph .js-plotly-plot') || {})._hoverdata || []).length > 0",
-                           timeout=timeout_ms)
+    # the pointer comes from one pixel away each time: a pointer already resting on (x, y) (the
+    # previous click's place) sends no move, and a redraw since then leaves Plotly no hover
+    hovered = "() => ((document.querySelector('#graph .js-plotly-plot') || {})._hoverdata || []).length > 0"
+    deadline = time.monotonic() + timeout_ms / 1000.0
+    while True:
+        page.mouse.move(x + 1, y + 1)
+        page.mouse.move(x, y)
+        try:
+            page.wait_for_function(hovered, timeout=5_000)
+            break
+        except PlaywrightTimeoutError:
+            if time.monotonic() > deadline:
+                raise
     page.mouse.down()
     page.mouse.up()
