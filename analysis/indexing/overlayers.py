@@ -28,6 +28,7 @@ from ..superstructure import (
     format_matrix,
     nice_matrix,
     overlayer_net,
+    rational_matrix,
     wood_notation,
 )
 from ..wood import WoodNotation
@@ -489,13 +490,8 @@ def _common_denominator(m: np.ndarray) -> int:
     >>> _common_denominator(np.array([[3, 0], [0, 1.5]])), _common_denominator(np.array([[2, 1], [-1, 1]]))
     (2, 1)
     """
-    q = 1
-    for v in np.asarray(m, dtype=np.float64).ravel():
-        f = Fraction(float(v)).limit_denominator(12)
-        if abs(float(f) - v) > 1e-6:
-            return 1
-        q = q * f.denominator // math.gcd(q, f.denominator)
-    return q
+    fr = rational_matrix(m, max_denominator=12)
+    return 1 if fr is None else math.lcm(*(f.denominator for row in fr for f in row))
 
 
 def _describe(ctx: _Context, sc: _Scored, *, kind_tol: float) -> OverlayerModel:
