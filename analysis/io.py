@@ -127,7 +127,16 @@ def _check_pixels(rows: int, cols: int, max_pixels: int, name: str) -> None:
                          f"{max_pixels / 1e6:.0f}-megapixel limit (or a decompression bomb).")
 
 
-def _finalise(a: np.ndarray, name: str) -> np.ndarray:
+def _finalise(a: np.ndarray, name: str, as_float: bool = True) -> np.ndarray:
+    if not as_float:
+        raw = np.asarray(a)
+        if raw.ndim == 3 and raw.shape[2] in (1, 2):
+            raw = raw[..., 0]
+        if raw.ndim == 2 and min(raw.shape) >= 2 and np.issubdtype(raw.dtype, np.integer) and raw.dtype != bool:
+            # an integer grey frame is always finite; the type's own values are kept
+            if raw.max() == raw.min():
+                raise ImageError(f"{name}: the image is empty (every pixel has the same value).")
+            return raw
     a = to_luminance(a, name=name)
     finite = np.isfinite(a)
     if not finite.all():
@@ -392,7 +401,7 @@ def load_image(source, *, dark=None, flat=None, max_pixels: int = MAX_PIXELS,
                        saturation_level=sat, n_frames=int(n))
 
 
-def iter_frames(source, *, max_pixels: int = MAX_PIXELS, max_bytes: int = MAX_BYTES
+def iter_frames(source, *, max_pixels: int = MAX_PIXELS, max_bytes: int = MAX_BYTES, as_float: bool = True
                 ) -> Iterator[tuple[str, np.ndarray]]:
     """Yield the frames of a stack one at a time, as (name, (M, N) float64 array).
 
@@ -406,12 +415,16 @@ def iter_frames(source, *, max_pixels: int = MAX_PIXELS, max_bytes: int = MAX_BY
     max_pixels, max_bytes : int, keyword-only
         Limits per frame / file, as in :func:`load_image`; a zip member that
         would inflate beyond `max_bytes` is refused.
+    as_float : bool, keyword-only
+        False: a grey frame stored as integers comes in its own integer type (no float64
+        copy of the whole frame, for readers that take small cut-outs); colour and
+        floating-point frames still come as float64.
 
     Yields
     ------
     name : str
         File name, with ``#i`` appended for page i of a multi-page file.
-    frame : (M, N) ndarray of float64
+    frame : (M, N) ndarray of float64 (or of the stored integer type, see `as_float`)
 
     Raises
     ------
@@ -427,18 +440,18 @@ def iter_frames(source, *, max_pixels: int = MAX_PIXELS, max_bytes: int = MAX_BY
     [('<bytes>#0', (3, 5)), ('<bytes>#1', (3, 5))]
     """
     if isinstance(source, (str, os.PathLike)) and Path(source).is_dir():
-        yield from _iter_folder(Path(source), max_pixels, max_bytes)
+        yield from _iter_folder(Path(source), max_pixels, max_bytes, as_float)
         return
     raw, path, name = _read_source(source, max_bytes)
     head = _head(raw, path)
     if head[:4] == b"PK\x03\x04":
-        yield from _iter_zip(raw, path, name, max_pixels, max_bytes)
+        yield from _iter_zip(raw, path, name, max_pixels, max_bytes, as_float)
         return
     for fname, arr, _, _ in _frames_of_file(raw, path, name, max_pixels):
-        yield fname, _finalise(arr, fname)
+        yield fname, _finalise(arr, fname, as_float)
 
 
-def _iter_folder(folder: Path, max_pixels: int, max_bytes: int):
+def _iter_folder(folder: Path, max_pixels: int, max_bytes: int, as_float: bool = True):
     files = sorted((p for p in folder.iterdir() if p.is_file() and not p.name.startswith(".")
                     and p.suffix.lower() in IMAGE_SUFFIXES), key=lambda p: _natural_key(p.name))
     if not files:
@@ -446,10 +459,10 @@ def _iter_folder(folder: Path, max_pixels: int, max_bytes: int):
     for p in files:
         raw, path, name = _read_source(p, max_bytes)
         for fname, arr, _, _ in _frames_of_file(raw, path, name, max_pixels):
-            yield fname, _finalise(arr, fname)
+            yield fname, _finalise(arr, fname, as_float)
 
 
-def _iter_zip(raw, path, name, max_pixels, max_bytes):
+def _iter_zip(raw, path, name, max_pixels, max_bytes, as_float: bool = True):
     try:
         zf = zipfile.ZipFile(_stdio.BytesIO(raw) if raw is not None else path)
     except (zipfile.BadZipFile, OSError) as exc:
@@ -476,4 +489,4 @@ def _iter_zip(raw, path, name, max_pixels, max_bytes):
             if not data:
                 raise ImageError(f"{mname}: the file is empty (0 bytes), not an image.")
             for fname, arr, _, _ in _frames_of_file(data, None, mname, max_pixels):
-                yield fname, _finalise(arr, fname)
+                yield fname, _finalise(arr, fname, as_float)

@@ -496,7 +496,7 @@ def project_derivatives(k_par, lam: float, geom) -> tuple[np.ndarray, np.ndarray
     v = (sc_px * f_over)[:, None] * w  # before the ellipse, y up
     e = _ellipse(geom)
     flip = np.array([1.0, -1.0])
-    d_k = flip[None, :, None] * np.einsum("ij,kjl->kil", e, dv_dw @ (lam * rot))
+    d_k = flip[None, :, None] * (e @ (dv_dw @ (lam * rot)))
     xy_up = v @ e.T
     xy = np.column_stack([geom.center_x_px + xy_up[:, 0], geom.center_y_px - xy_up[:, 1]])
     d_geom = np.zeros((len(k), 2, 11))
@@ -504,7 +504,7 @@ def project_derivatives(k_par, lam: float, geom) -> tuple[np.ndarray, np.ndarray
     d_geom[:, 1, 1] = 1.0
     d_geom[:, :, 2] = flip * xy_up
     turn = lam * k @ rot.T @ np.array([[0.0, 1.0], [-1.0, 0.0]])  # ∂(R k)/∂angle = J90 R k (rows)
-    d_geom[:, :, 3] = flip * (np.einsum("kij,kj->ki", dv_dw, turn) @ e.T) * (math.pi / 180.0)
+    d_geom[:, :, 3] = flip * ((dv_dw @ turn[:, :, None])[:, :, 0] @ e.T) * (math.pi / 180.0)
     d_geom[:, :, 4] = flip * (((sc_px * df_dd)[:, None] * w) @ e.T)
     eps1 = geom.ellipticity - 1.0
     b2 = math.radians(2.0 * geom.ellipse_deg)
@@ -515,7 +515,7 @@ def project_derivatives(k_par, lam: float, geom) -> tuple[np.ndarray, np.ndarray
     de2 = 0.5 * np.array([[c2, 1.0], [1.0, c2]])
     d_geom[:, :, 5] = flip * (v @ de1.T)
     d_geom[:, :, 6] = flip * (v @ de2.T)
-    d_t = flip[None, :, None] * np.einsum("ij,kjl->kil", e, dv_dw)  # ∂(x, y)/∂t
+    d_t = flip[None, :, None] * (e @ dv_dw)  # ∂(x, y)/∂t
     d_geom[:, :, 7] = d_t[:, :, 0]
     d_geom[:, :, 8] = d_t[:, :, 1]
     persp = _perspective(geom)
@@ -526,9 +526,9 @@ def project_derivatives(k_par, lam: float, geom) -> tuple[np.ndarray, np.ndarray
         chain = (np.eye(2)[None] - out[:, :, None] * persp[None, None, :] / sc_px) / den[:, None, None]
         fl = np.diag(flip)
         # the columns so far are flip · ∂q/∂·: map them through flip · chain · flip
-        m_all = np.einsum("ij,kjl,lm->kim", fl, chain, fl)
-        d_k = np.einsum("kij,kjl->kil", m_all, d_k)
-        d_geom[:, :, 2:9] = np.einsum("kij,kjl->kil", m_all, d_geom[:, :, 2:9])
+        m_all = fl @ chain @ fl
+        d_k = m_all @ d_k
+        d_geom[:, :, 2:9] = m_all @ d_geom[:, :, 2:9]
         d_geom[:, :, 2] = flip * out  # out ∝ s (den does not depend on s)
         xy = np.column_stack([geom.center_x_px + out[:, 0], geom.center_y_px - out[:, 1]])
     else:

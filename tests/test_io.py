@@ -110,6 +110,28 @@ def test_multipage_tiff_stack_streams_frames(tmp_path):
     assert_array_equal(first.data, stack[0].astype(float))
 
 
+def test_iter_frames_can_keep_integer_frames_in_their_type(tmp_path):
+    """as_float=False: grey integer pages come as stored (same values), colour pages still
+    as float64 luminance, and a constant integer page is still refused as empty."""
+    grey = np.stack([_ramp(np.uint16, top=4000), _ramp(np.uint16, top=60000)])
+    path = tmp_path / "stack.tif"
+    tifffile.imwrite(path, grey, photometric="minisblack")
+    got = list(iter_frames(path, as_float=False))
+    assert [f.dtype for _, f in got] == [np.uint16, np.uint16]
+    assert_array_equal(got[1][1], grey[1])
+    as_float = list(iter_frames(path))
+    assert as_float[1][1].dtype == np.float64
+    assert_array_equal(as_float[1][1], got[1][1].astype(np.float64))
+    rgb = np.zeros((20, 30, 3), dtype=np.uint8)
+    rgb[..., 1] = _ramp(np.uint8, shape=(20, 30), top=200)
+    Image.fromarray(rgb).save(tmp_path / "colour.png")
+    (_, frame), = iter_frames(tmp_path / "colour.png", as_float=False)
+    assert frame.dtype == np.float64 and frame.max() > 0
+    tifffile.imwrite(tmp_path / "flat.tif", np.full((2, 8, 8), 7, dtype=np.uint16), photometric="minisblack")
+    with pytest.raises(ImageError, match="empty"):
+        list(iter_frames(tmp_path / "flat.tif", as_float=False))
+
+
 def test_iter_frames_folder_and_zip_in_natural_order(tmp_path):
     folder = tmp_path / "run"
     folder.mkdir()

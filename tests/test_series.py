@@ -485,6 +485,24 @@ def test_series_read_ahead_gives_the_same_result(small, tmp_path):
     assert np.array_equal(ahead.flags, inline.flags) and ahead.frame_names == inline.frame_names
 
 
+def test_a_stack_on_disk_is_tracked_as_its_frames_in_memory(small, tmp_path):
+    """A 16-bit stack read from disk (integer frames, only the beams' windows made float)
+    gives exactly what the same frames give as float64 arrays with the same full scale."""
+    import tifffile
+
+    e, frames, beams, geom = small
+    ints = np.stack([np.clip(np.rint(f), 0, 65535).astype(np.uint16) for _, f in frames])
+    stack = tmp_path / "stack16.tif"
+    tifffile.imwrite(stack, ints, photometric="minisblack")
+    on_disk = track_series(stack, beams, geom, energies=e, prefetch=False)
+    in_memory = track_series([f.astype(np.float64) for f in ints], beams, geom, energies=e,
+                             saturation_level=65535.0)
+    assert_allclose(on_disk.intensity, in_memory.intensity, rtol=0, atol=0, equal_nan=True)
+    assert_allclose(on_disk.xy_px, in_memory.xy_px, rtol=0, atol=0, equal_nan=True)
+    assert np.array_equal(on_disk.flags, in_memory.flags)
+    assert np.isfinite(on_disk.intensity).sum() > 10
+
+
 def test_tracked_intensities_are_those_of_integrate_spots(small):
     # Start 3 px off and never refit: the refined spots then sit beyond the part of the
     # search windows that integration reuses, so both ways of cutting pixels are used.

@@ -107,14 +107,15 @@ def overlayer_matrices(overlayer, substrate: Net2D):
     return out or "none"
 
 
-def _source(frames):
-    """A function giving a fresh iterator of (name, frame) over the series."""
+def _source(frames, *, as_float: bool = True):
+    """A function giving a fresh iterator of (name, frame) over the series (`as_float`
+    False: integer frames in their own type, as :func:`analysis.io.iter_frames`)."""
     if callable(frames):
         return frames
     if isinstance(frames, (str, Path, bytes)):
         from ..io import iter_frames
 
-        return lambda: iter_frames(frames, max_bytes=_STACK_MAX_BYTES)
+        return lambda: iter_frames(frames, max_bytes=_STACK_MAX_BYTES, as_float=as_float)
     frames = list(frames)
 
     def it():
@@ -304,7 +305,8 @@ def run_iv(frames, *, substrate: str | Net2D, energies=None, overlayer=None, geo
     say(0.2, "following the beams")
     try:
         with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-            res = track_series(source(), beams, geometry,
+            res = track_series((_source(frames, as_float=False) if isinstance(frames, (str, Path, bytes))
+                                else source)(), beams, geometry,
                                energies=energies if isinstance(energies, EnergyTable) else np.asarray(e), mask=mask, radius_px=radius_px,
                                background=background, method=method, gain=gain, saturation_level=saturation_level,
                                normalise_current=normalise_current, progress=progress,

@@ -142,8 +142,9 @@ def _as_frames(frames) -> Iterator[tuple[str, np.ndarray]]:
 
         # A stack on disk is decoded page by page, so its file size is not held in memory:
         # only the per-frame pixel limit of analysis.io applies to it.
+        # Integer frames keep their type: only the beams' small windows become float64.
         kw = {"max_bytes": _STACK_MAX_BYTES} if isinstance(frames, (str, os.PathLike)) else {}
-        yield from iter_frames(frames, **kw)
+        yield from iter_frames(frames, as_float=False, **kw)
         return
     for i, item in enumerate(frames):
         if isinstance(item, tuple) and len(item) == 2:
