@@ -23,6 +23,7 @@ from .io import LoadedImage, load_image
 from .nets import Net2D, parse_substrate, reciprocal
 from .optics import ScreenGeometry, local_jacobian
 from .spots import FLAG_FIT_FAILED, FLAG_NEAR_EDGE, Measurement, measure_image
+from .spots.accept import FAINT_UNEXPLAINED_SNR, REJECT_FAINT_UNEXPLAINED
 from .superstructure import parse_matrix, parse_wood
 from .timelimit import check_time
 
@@ -235,6 +236,16 @@ def _local_intensity(img: np.ndarray, bg: np.ndarray, x: float, y: float, half: 
     return float(np.sum(img[r0:r1, c0:c1] - bg[r0:r1, c0:c1]))
 
 
+def _faint_unexplained(idx, snr: np.ndarray, manual: np.ndarray) -> np.ndarray:
+    """Indices, among the spots found (those added by hand come after them and never count),
+    of those whose detection SNR is below FAINT_UNEXPLAINED_SNR and that no fitted net labels."""
+    labelled = np.all(np.isfinite(np.asarray(idx.best_indices, float).reshape(len(snr), -1)), axis=1)
+    for phase in getattr(idx, "phases", ()):  # a second phase's spots are explained by its own net
+        labelled[np.asarray(phase.spots, dtype=np.int64)] = True
+    faint = ~labelled & ~manual & (np.nan_to_num(snr, nan=np.inf) < FAINT_UNEXPLAINED_SNR)
+    return np.flatnonzero(faint[~manual])
+
+
 def _apply_edits(meas: Measurement, img: np.ndarray, edits: Edits):
     st = meas.spots
     xy = st.xy
@@ -257,7 +268,7 @@ def _apply_edits(meas: Measurement, img: np.ndarray, edits: Edits):
     snr_all = np.concatenate([snr, np.full(len(add), np.nan)]) if len(add) else snr
     manual = np.concatenate([np.zeros(len(xy_k), bool), np.ones(len(add), bool)])
     trusted_all = np.concatenate([trusted, np.ones(len(add), bool)])  # spots placed by hand are trusted
-    return xy_all, inten_all, snr_all, manual, trusted_all
+    return xy_all, inten_all, snr_all, manual, trusted_all, np.flatnonzero(keep)
 
 
 def analyze_image(image, *, energy_eV: float, substrate: str | Net2D, reference=None,
@@ -347,7 +358,7 @@ def analyze_image(image, *, energy_eV: float, substrate: str | Net2D, reference=
             raise
         timings["spots"] = time.perf_counter() - t0
         ref_meas = ref_job.result() if ref_job is not None else None
-    xy, inten, snr, manual, trusted = _apply_edits(meas, img.data, ed)
+    xy, inten, snr, manual, trusted, rows = _apply_edits(meas, img.data, ed)
     if len(xy) < 3:
         raise FitError(f"Only {len(xy)} spots found (signal-to-noise ≥ {min_snr:g}); an ordered surface shows "
                        f"at least the first-order substrate spots. Check the energy, exposure and screen.")
@@ -397,6 +408,17 @@ def analyze_image(image, *, energy_eV: float, substrate: str | Net2D, reference=
                         screen_radius_px=(0.45 * min(img.shape) if framed else screen.radius_px),
                         screen_prior_sigma=0.3 if framed else 0.15,
                         valid_mask=meas.valid, tol_px=tol_px, reliable=trusted, azimuth_a_star_px=azimuth)
+    # faint detections that none of the fitted nets explains are set aside, and the pattern
+    # indexed once more without them (spots.accept.FAINT_UNEXPLAINED_SNR says why)
+    faint = _faint_unexplained(idx, snr, manual)
+    if faint.size and len(xy) - faint.size >= 3:
+        meas = meas.set_aside(rows[faint], REJECT_FAINT_UNEXPLAINED)
+        xy, inten, snr, manual, trusted, rows = _apply_edits(meas, img.data, ed)
+        idx = index_pattern(xy, e, hint, intensity=inten, geometry=geometry, center_px=ed.center_xy,
+                            center_guess=center_guess,
+                            screen_radius_px=(0.45 * min(img.shape) if framed else screen.radius_px),
+                            screen_prior_sigma=0.3 if framed else 0.15,
+                            valid_mask=meas.valid, tol_px=tol_px, reliable=trusted, azimuth_a_star_px=azimuth)
     if geometry is not None and camera_sigma:
         idx = _with_camera_sigma(idx, xy, e, camera_sigma, camera_cov)
     timings["total"] = time.perf_counter() - t0

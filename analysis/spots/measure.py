@@ -391,6 +391,22 @@ class Measurement:
     psf_axis_deg: float | None = None
     psf_elongation: float = 1.0
 
+    def set_aside(self, rows, reason: str) -> "Measurement":
+        """This measurement with the spots `rows` (bool mask or indices into `spots`) moved to
+        the rejected detections, each with `reason`."""
+        drop = np.zeros(len(self.spots), bool)
+        drop[np.asarray(rows)] = True
+        if not drop.any():
+            return self
+        moved = self.spots.select(drop)
+        if self.rejected is None or len(self.rejected) == 0:
+            rejected, reasons = moved, (reason,) * len(moved)
+        else:
+            rejected = SpotTable(**{n: np.concatenate([getattr(self.rejected, n), getattr(moved, n)])
+                                    for n in _ROW_FIELDS}, center_rc=self.spots.center_rc)
+            reasons = tuple(self.rejected_reasons) + (reason,) * len(moved)
+        return dataclasses.replace(self, spots=self.spots.select(~drop), rejected=rejected, rejected_reasons=reasons)
+
     def rejected_records(self) -> list[dict]:
         """The detections that are no spots, each with its `reason`."""
         if self.rejected is None:
