@@ -403,22 +403,22 @@ def analyze_image(image, *, energy_eV: float, substrate: str | Net2D, reference=
     # the screen's radius sets a scale prior; when no screen edge was found, the image frame's
     # half-size stands in for it with a wider prior (screens usually fill most of the frame)
     framed = screen.source == "frame"
-    idx = index_pattern(xy, e, hint, intensity=inten, geometry=geometry, center_px=ed.center_xy,
-                        center_guess=center_guess,
-                        screen_radius_px=(0.45 * min(img.shape) if framed else screen.radius_px),
-                        screen_prior_sigma=0.3 if framed else 0.15,
-                        valid_mask=meas.valid, tol_px=tol_px, reliable=trusted, azimuth_a_star_px=azimuth)
+
+    def index(xy, inten, trusted):
+        return index_pattern(xy, e, hint, intensity=inten, geometry=geometry, center_px=ed.center_xy,
+                             center_guess=center_guess,
+                             screen_radius_px=(0.45 * min(img.shape) if framed else screen.radius_px),
+                             screen_prior_sigma=0.3 if framed else 0.15,
+                             valid_mask=meas.valid, tol_px=tol_px, reliable=trusted, azimuth_a_star_px=azimuth)
+
+    idx = index(xy, inten, trusted)
     # faint detections that none of the fitted nets explains are set aside, and the pattern
     # indexed once more without them (spots.accept.FAINT_UNEXPLAINED_SNR says why)
     faint = _faint_unexplained(idx, snr, manual)
     if faint.size and len(xy) - faint.size >= 3:
         meas = meas.set_aside(rows[faint], REJECT_FAINT_UNEXPLAINED)
         xy, inten, snr, manual, trusted, rows = _apply_edits(meas, img.data, ed)
-        idx = index_pattern(xy, e, hint, intensity=inten, geometry=geometry, center_px=ed.center_xy,
-                            center_guess=center_guess,
-                            screen_radius_px=(0.45 * min(img.shape) if framed else screen.radius_px),
-                            screen_prior_sigma=0.3 if framed else 0.15,
-                            valid_mask=meas.valid, tol_px=tol_px, reliable=trusted, azimuth_a_star_px=azimuth)
+        idx = index(xy, inten, trusted)
     if geometry is not None and camera_sigma:
         idx = _with_camera_sigma(idx, xy, e, camera_sigma, camera_cov)
     timings["total"] = time.perf_counter() - t0
