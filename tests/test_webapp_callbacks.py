@@ -419,6 +419,23 @@ def test_pattern_figure_draws_nets_spots_and_absent_beams(webapp_env):
     assert [t.name for t in hidden.data] == []
 
 
+def test_pattern_figure_shows_faint_detections_set_aside_and_a_click_keeps_them(webapp_env):
+    from analysis.spots.accept import REJECT_FAINT_UNEXPLAINED, REJECT_NARROW
+    from webapp import figures
+
+    res = dict(_square_result())
+    res["rejected_spots"] = [{"x": 100.5, "y": 140.0, "snr": 6.2, "reason": REJECT_FAINT_UNEXPLAINED},
+                             {"x": 30.0, "y": 40.0, "snr": 300.0, "reason": REJECT_NARROW}]
+    fig = figures.pattern_figure(None, width=512, height=512, result=res, overlays=["spots", "unexplained"])
+    names = [t.name for t in fig.data]
+    aside = fig.data[names.index("Set aside (faint, on no net)")]
+    assert list(aside.x) == [100.5] and list(aside.y) == [140.0]  # the hot pixel is not drawn
+    assert aside.customdata is None  # a click on it adds a spot there (see on_edit)
+    assert "6.2" in aside.text[0]
+    off = figures.pattern_figure(None, width=512, height=512, result=res, overlays=["spots"])
+    assert "Set aside (faint, on no net)" not in [t.name for t in off.data]
+
+
 def _two_domain_result():
     """p(2×1) in two domains on the hand-made square net: (2 0 / 0 1) and (1 0 / 0 2); the spots at
     (1/2, 0) and (0, 1/2) belong to one domain each, (1, 0) to the substrate."""

@@ -17,8 +17,9 @@ PALETTE = {
 # One meaning per colour and line style on the pattern (dark background):
 #   domains: the six colours below, in this order, and nothing else uses them;
 #   substrate net, centre and a1*/a2*: white; a tried model: white dashed; screen edge: steel
-#   dashed; gun shadow: light grey dotted; unexplained spots: white crosses; hand edits: white stars; spots of a coexisting phase:
-#   light magenta open squares, its net light magenta dotted.
+#   dashed; gun shadow: light grey dotted; unexplained spots: white crosses; faint detections set aside: small
+#   grey crosses; hand edits: white stars; spots of a coexisting phase: light magenta open squares, its net light
+#   magenta dotted.
 DOMAIN_COLOURS = [PALETTE["orange"], PALETTE["sky"], PALETTE["green"], PALETTE["vermillion"], PALETTE["purple"],
                   PALETTE["yellow"]]
 DOMAIN_DASHES = ["solid", "dash", "dot", "dashdot"]  # after six domains the colours repeat with another dash
@@ -28,6 +29,7 @@ SCREEN_COLOUR = "#8FA8C0"
 GUN_COLOUR = "#D9D9D9"
 INTEGER_SPOT_COLOUR = "#C8C8C8"
 UNEXPLAINED_COLOUR = "#FFFFFF"
+SET_ASIDE_COLOUR = "#9A9A9A"
 PHASE_COLOUR = "#FF8CF0"  # spots of a coexisting phase (not the answer's): light magenta open squares
 # each domain gets its own marker shape as well as its own colour (the PNG/SVG export)
 DOMAIN_STYLES = [(shape, DOMAIN_COLOURS[i % len(DOMAIN_COLOURS)]) for i, shape in enumerate(

@@ -6,7 +6,9 @@ import numpy as np
 import plotly.graph_objects as go
 from scipy.spatial import cKDTree
 
-from .common import (GUN_COLOUR, INTEGER_SPOT_COLOUR, MODEL_COLOUR, PHASE_COLOUR, SCREEN_COLOUR,
+from analysis.spots.accept import REJECT_FAINT_UNEXPLAINED
+
+from .common import (GUN_COLOUR, INTEGER_SPOT_COLOUR, MODEL_COLOUR, PHASE_COLOUR, SCREEN_COLOUR, SET_ASIDE_COLOUR,
                      SUBSTRATE_COLOUR, UNEXPLAINED_COLOUR, domain_colour, domain_dash, hk_text, num)
 
 __all__ = ["OVERLAY_CHOICES", "pattern_figure", "predicted_spots", "net_lines"]
@@ -19,6 +21,12 @@ OVERLAY_CHOICES = [
     ("unexplained", "Unexplained spots"),
     ("model", "Model being tried"),
 ]
+
+
+def _set_aside(result: dict) -> list[dict]:
+    """The detections the analysis set aside as faint and on none of its nets."""
+    return [r for r in result.get("rejected_spots") or [] if r.get("reason") == REJECT_FAINT_UNEXPLAINED
+            and r.get("x") is not None and r.get("y") is not None]
 
 
 def _lattice_hk(a_star_px: np.ndarray, center, width, height, *, inv_m=None, limit=4000):
@@ -246,6 +254,14 @@ def pattern_figure(source: str | None, *, width: int, height: int, factor: int =
                                      marker=dict(symbol="x-thin-open", size=14, color=UNEXPLAINED_COLOUR,
                                                  line=dict(width=2, color=UNEXPLAINED_COLOUR)),
                                      hovertemplate="unexplained spot<br>x %{x:.1f}, y %{y:.1f}<extra></extra>"))
+    aside = _set_aside(result) if "unexplained" in show else []
+    if aside:  # no customdata: a click on one keeps it as a spot placed by hand
+        fig.add_trace(go.Scatter(x=[r["x"] for r in aside], y=[r["y"] for r in aside], mode="markers",
+                                 name="Set aside (faint, on no net)", text=[num(r.get("snr"), "{:.1f}") for r in aside],
+                                 marker=dict(symbol="x-thin-open", size=8, color=SET_ASIDE_COLOUR,
+                                             line=dict(width=1.2, color=SET_ASIDE_COLOUR)),
+                                 hovertemplate="set aside: faint (SNR %{text}) and on none of the fitted nets"
+                                               "<br>click to keep it as a spot<extra></extra>"))
     added = edits.get("added") or []
     if added:
         a = np.asarray(added, dtype=float).reshape(-1, 2)
