@@ -191,12 +191,15 @@ def _mask_map(mask: np.ndarray | None) -> _MaskMap | None:
     return _MaskMap(m, table)
 
 
-def _take(frame: np.ndarray, mask, centre: np.ndarray, half: int, cols: np.ndarray | None = None):
+def _take(frame, mask, centre: np.ndarray, half: int, cols: np.ndarray | None = None,
+          layer: np.ndarray | None = None):
     """Pixels of the (2h+1)² squares about K integer centres (or the columns `cols` of them).
 
     Squares inside the image are gathered in one fancy-indexing step on a sliding-window
     view; the few that cross the image edge through clipped flat indices. `mask` is None,
-    an (M, N) bool array or a :class:`_MaskMap`.
+    an (M, N) bool array or a :class:`_MaskMap`. `frame` is one (M, N) frame, or a sequence
+    of frames of that shape with `layer` ((K,) int, sorted) numbering the frame of each
+    centre: one gather per frame, the mask's part once for all.
 
     Returns ``data`` (K, n) float64 (0 outside the image), ``inside`` (K, n) bool or None
     when every pixel is inside, and ``usable`` (K, n) bool (inside and not masked), with
@@ -204,7 +207,8 @@ def _take(frame: np.ndarray, mask, centre: np.ndarray, half: int, cols: np.ndarr
     """
     from numpy.lib.stride_tricks import sliding_window_view
 
-    rows, ncols = frame.shape
+    frames = [frame] if layer is None else frame
+    rows, ncols = frames[0].shape
     k = centre.shape[0]
     w = 2 * half + 1
     dy, dx, _ = _square_offsets(half)
@@ -226,17 +230,24 @@ def _take(frame: np.ndarray, mask, centre: np.ndarray, half: int, cols: np.ndarr
         ins = (rr >= 0) & (rr < rows) & (cc >= 0) & (cc < ncols)
         return np.where(ins, rr * ncols + cc, 0), ins
 
+    def by_frame(sel):
+        """(frame, slice of `sel`) pairs: where the sorted rows `sel` of each frame are."""
+        if layer is None:
+            return [(frame, slice(None))]
+        cut = np.searchsorted(layer[sel], np.arange(len(frames) + 1))
+        return [(img, slice(a, b)) for img, a, b in zip(frames, cut[:-1], cut[1:]) if b > a]
+
     inside = None
     if part.size == 0:
-        data = squares(frame, fi)
-        if data.dtype != np.float64:
-            data = data.astype(np.float64)
+        sq = [squares(img, fi[at]) for img, at in by_frame(fi)]
+        data = sq[0].astype(np.float64, copy=False) if len(sq) == 1 else np.concatenate(sq, dtype=np.float64)
     else:
         data = np.empty((k, n))
-        if fi.size:
-            data[fi] = squares(frame, fi)
+        for img, at in by_frame(fi):
+            data[fi[at]] = squares(img, fi[at])
         idx, ins = edge(part)
-        data[part] = np.where(ins, frame.reshape(-1).take(idx), 0.0)
+        for img, at in by_frame(part):
+            data[part[at]] = np.where(ins[at], img.reshape(-1).take(idx[at]), 0.0)
         inside = np.ones((k, n), dtype=bool)
         inside[part] = ins
     usable = np.ones((k, n), dtype=bool) if inside is None else inside.copy()
@@ -259,13 +270,14 @@ def _take(frame: np.ndarray, mask, centre: np.ndarray, half: int, cols: np.ndarr
 
 @dataclass(eq=False)
 class _Windows:
-    """Small (K, w, w) cut-outs of one frame around K points."""
+    """Small (K, w, w) cut-outs of one frame (or of several, see `layer`) around K points."""
 
     data: np.ndarray  # (K, w, w) float64 pixel values (0 outside the image)
     edge: np.ndarray | None  # (K, w, w) bool, pixel inside the image; None: every pixel is
     usable: np.ndarray  # (K, w, w) bool, inside the image and not masked
     row0: np.ndarray  # (K,) int64 image row of window pixel [0, 0]
     col0: np.ndarray  # (K,) int64 image column of window pixel [0, 0]
+    layer: np.ndarray | None = None  # (K,) int64 frame each window was cut from; None: one frame
 
     @property
     def all_inside(self) -> bool:
@@ -282,13 +294,15 @@ class _Windows:
         return (self.data.shape[1] - 1) // 2
 
 
-def _extract(frame: np.ndarray, rc: np.ndarray, half: int, mask: np.ndarray | None) -> _Windows:
+def _extract(frame, rc: np.ndarray, half: int, mask: np.ndarray | None, layer: np.ndarray | None = None) -> _Windows:
+    """(2h+1)² windows about the pixels nearest to (row, col) `rc` (K, 2), of one frame or, with
+    `layer`, of the frames it numbers (as :func:`_take`)."""
     k = rc.shape[0]
     w = 2 * half + 1
     centre = np.rint(rc).astype(np.int64)
-    data, inside, usable = _take(frame, mask, centre, half)
+    data, inside, usable = _take(frame, mask, centre, half, layer=layer)
     return _Windows(data.reshape(k, w, w), None if inside is None else inside.reshape(k, w, w),
-                    usable.reshape(k, w, w), centre[:, 0] - half, centre[:, 1] - half)
+                    usable.reshape(k, w, w), centre[:, 0] - half, centre[:, 1] - half, layer)
 
 
 def _robust(values: np.ndarray, select: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -385,7 +399,8 @@ def _normal_equations(cols: list, wts: np.ndarray, y: np.ndarray) -> tuple[np.nd
 
 def _disk_pixels(frame, mask, centre: np.ndarray, hi_px: float, window: _Windows | None):
     """:func:`_take` of the distance-sorted disk of radius `hi_px` about each centre, cut
-    from the refinement windows where they hold it (no second pass over the frame)."""
+    from the refinement windows where they hold it (no second pass over the frame); `frame`
+    is the sequence of frames when ``window.layer`` numbers several."""
     dy, dx, _, sq_half, sq_cols = _disk_offsets(hi_px)
     if window is None:
         return _take(frame, mask, centre, sq_half, sq_cols)
@@ -402,7 +417,8 @@ def _disk_pixels(frame, mask, centre: np.ndarray, hi_px: float, window: _Windows
     if rows.size == k:
         return data, inside, usable
     rest = np.flatnonzero(~held)
-    d2, i2, u2 = _take(frame, mask, centre[rest], sq_half, sq_cols)
+    layer = None if window.layer is None else window.layer[rest]
+    d2, i2, u2 = _take(frame, mask, centre[rest], sq_half, sq_cols, layer)
     out_d, out_u = np.empty((k, dy.size)), np.empty((k, dy.size), dtype=bool)
     out_d[rows], out_u[rows], out_d[rest], out_u[rest] = data, usable, d2, u2
     if inside is None and i2 is None:
@@ -415,11 +431,15 @@ def _disk_pixels(frame, mask, centre: np.ndarray, hi_px: float, window: _Windows
     return out_d, out_i, out_u
 
 
-def _integrate(frame: np.ndarray, rc: np.ndarray, mask: np.ndarray | None, saturation_level: float | None, *,
+def _integrate(frame, rc: np.ndarray, mask: np.ndarray | None, saturation_level: float | None, *,
                radius_px: float, annulus_px: tuple[float, float], background: str, method: str,
-               spot_sigma_px: float | None, gain: float, window: _Windows | None = None) -> SpotIntegrals:
+               spot_sigma_px, gain: float, window: _Windows | None = None) -> SpotIntegrals:
     """Integrate K spots at (row, col) `rc` straight from the frame (one gather of the disk
-    of radius r_out + 0.75 px about each spot's nearest pixel)."""
+    of radius r_out + 0.75 px about each spot's nearest pixel).
+
+    With `window` cut from several frames, `frame` is the sequence of them (see
+    :func:`_disk_pixels`); `spot_sigma_px` is one σ for all spots or a (K,) σ per spot.
+    """
     k = rc.shape[0]
     r_in, r_out = annulus_px
     scale = max(r_out, 1.0)
@@ -480,9 +500,10 @@ def _integrate(frame: np.ndarray, rc: np.ndarray, mask: np.ndarray | None, satur
         inten = _rowdot(p_data, apf) - sum_bg
         var = gain * np.maximum(inten, 0.0) + n_ap * s2 + var_bg
     else:
-        if not (spot_sigma_px and spot_sigma_px > 0):
+        sg = np.asarray(np.nan if spot_sigma_px is None else spot_sigma_px, dtype=np.float64)
+        if not np.all(sg > 0):
             raise ParameterError(f"The profile fit needs a spot width `spot_sigma_px` > 0, got {spot_sigma_px!r}.")
-        sg = float(spot_sigma_px)
+        sg = sg[:, None] if sg.ndim else float(sg)  # one σ per spot, or one for all
         dr, dc = ofr[:, None] + dy[None, :], ofc[:, None] + dx[None, :]
         in_ann = (d2 >= r_in * r_in) & (d2 <= r_out * r_out)
         lo_b, hi_b = mean - 3.0 * sd - 1e-9, mean + 3.0 * sd + 1e-9
