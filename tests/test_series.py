@@ -259,6 +259,110 @@ def test_json_has_metadata_flags_and_groups(series, tmp_path):
     ScreenGeometry.from_dict(d["calibration"]["geometry"])  # reusable as a calibration
 
 
+# --------------------------------------------------------------------------- frames tracked together
+# The reference is the same extraction with one frame per pass (the tracker as it was before
+# frames between refits were tracked together): every number must agree to the last bit.
+
+
+def _spy_passes(monkeypatch) -> list:
+    """Record every refinement pass as (frames in it, some window crosses the image edge) and
+    every cut of disk pixels from the frames themselves as ("cut", frames in it)."""
+    from analysis.series import integrate, track
+
+    seen = []
+    refine, take = track._refine, integrate._take
+
+    def spy_refine(win, *args):
+        seen.append((1 if win.layer is None else len(set(win.layer.tolist())), not win.all_inside))
+        return refine(win, *args)
+
+    def spy_take(frame, mask, centre, half, cols=None, layer=None):
+        if cols is not None and layer is not None:
+            seen.append(("cut", len(set(layer.tolist()))))
+        return take(frame, mask, centre, half, cols, layer)
+
+    monkeypatch.setattr(track, "_refine", spy_refine)
+    monkeypatch.setattr(integrate, "_take", spy_take)
+    return seen
+
+
+def _assert_identical(a, b):
+    for name in ("intensity", "sigma", "xy_px", "background_per_px"):
+        assert_allclose(getattr(a, name), getattr(b, name), rtol=0, atol=0, equal_nan=True)
+    assert np.array_equal(a.flags, b.flags)
+    assert a.calibration.geometry.to_dict() == b.calibration.geometry.to_dict()
+    assert a.calibration.rms_px == b.calibration.rms_px
+
+
+@pytest.mark.parametrize("method, background, masked, pixels", [
+    ("aperture", "annulus", True, None), ("aperture", "plane", False, 100_000),  # passes of 1–3 frames
+    ("profile", "annulus", False, None), ("profile", "plane", True, None)])
+def test_frames_tracked_together_give_what_each_frame_gives_alone(series, monkeypatch, method, background, masked,
+                                                                  pixels):
+    from analysis.series import track
+
+    frames, _, beams, _, mask, start = series
+    n = 40
+    kw = dict(energies=ENERGIES[:n], mask=mask if masked else None, gain=GAIN, method=method, background=background)
+    if pixels:
+        monkeypatch.setattr(track, "_BATCH_PIXELS", pixels)
+    seen = _spy_passes(monkeypatch)
+    together = track_series(frames[:n], beams, start, **kw)
+    passes = [p for p in seen if p[0] != "cut"]
+    assert max(f for f, _ in passes) > 1  # several frames in one pass ...
+    assert any(f > 1 and edge for f, edge in passes)  # ... with windows crossing the image edge
+    monkeypatch.setattr(track, "_BATCH_FRAMES", 1)
+    seen.clear()
+    alone = track_series(frames[:n], beams, start, **kw)
+    assert max(p[0] for p in seen if p[0] != "cut") == 1
+    _assert_identical(together, alone)
+    # the render has beams crossing the gun arm and beams entering at the screen edge
+    assert not masked or (together.flags & FLAG_MASKED).any()
+    assert (together.flags & FLAG_OFF_SCREEN).any() and np.isfinite(together.intensity).sum() > 500
+
+
+def test_frames_of_a_stack_tracked_together_give_what_each_gives_alone(small, tmp_path, monkeypatch):
+    """A 16-bit stack on disk read ahead on a second thread, the spot width measured frame by
+    frame (profile fit), no refits, and a start 3 px off: refined spots leave the part of their
+    windows that integration reuses, so their disk pixels are cut again from their own frame."""
+    import tifffile
+
+    from analysis.series import track
+
+    e, frames, beams, geom = small
+    stack = tmp_path / "stack16.tif"
+    tifffile.imwrite(stack, np.stack([np.clip(np.rint(f), 0, 65535).astype(np.uint16) for _, f in frames]),
+                     photometric="minisblack")
+    off = ScreenGeometry(geom.center_x_px + 3.0, geom.center_y_px, geom.scale_px, rotation_deg=geom.rotation_deg)
+    kw = dict(energies=e, fit=(), method="profile", gain=GAIN)
+    seen = _spy_passes(monkeypatch)
+    together = track_series(stack, beams, off, prefetch=True, **kw)
+    assert max(p[1] for p in seen if p[0] == "cut") > 1  # cut from several frames in one pass
+    monkeypatch.setattr(track, "_BATCH_FRAMES", 1)
+    alone = track_series(stack, beams, off, prefetch=False, **kw)
+    _assert_identical(together, alone)
+    assert np.isfinite(together.intensity).sum() > 10
+
+
+def test_frames_with_one_beam_or_none_tracked_together(small, monkeypatch):
+    """(3/2,1/2) of the rendered p(2×2) enters the screen within the series: the frames before
+    hold no beam on the screen, those after one (one-row matrices in a pass of several)."""
+    from analysis.series import BeamSet, track
+
+    e, frames, _, geom = small
+    one = BeamSet.from_hk(SUB, [[1.5, 0.5]])
+    together = track_series(frames, one, geom, energies=e, fit=(), method="profile")
+    monkeypatch.setattr(track, "_BATCH_FRAMES", 1)
+    alone = track_series(frames, one, geom, energies=e, fit=(), method="profile")
+    for name in ("intensity", "sigma", "xy_px", "background_per_px"):
+        assert_allclose(getattr(together, name), getattr(alone, name), rtol=0, atol=0, equal_nan=True)
+    assert np.array_equal(together.flags, alone.flags)
+    # it reaches the 52° acceptance where λ|g| = sin 52°
+    e_enter = H2_OVER_2ME_EV_A2 * (float(np.hypot(*one.g_par[0])) / math.sin(math.radians(52.0))) ** 2
+    assert e[0] < e_enter < e[-2]
+    assert np.all(together.flags[e < e_enter, 0] & FLAG_OFF_SCREEN) and np.isfinite(together.xy_px[e > e_enter]).all()
+
+
 # --------------------------------------------------------------------------- integration
 
 

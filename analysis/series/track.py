@@ -1,20 +1,23 @@
 """Following every beam through an energy series: predict, refine, integrate, refit.
 
-:func:`track_series` streams the frames one at a time; a stack on disk is read a frame
-or two ahead on a second thread (:class:`_Prefetch`). Each frame's beams are predicted
-from the current screen geometry, refined locally by a peak search and a
-background-subtracted centroid (:func:`_refine`), integrated there, and the geometry is
-refitted from all frames so far. :class:`IVResult` holds the intensity, uncertainty,
+:func:`track_series` streams the frames; a stack on disk is read a few frames ahead on a
+second thread (:class:`_Prefetch`). Each frame's beams are predicted from the current
+screen geometry, refined locally by a peak search and a background-subtracted centroid
+(:func:`_refine`), integrated there, and the geometry is refitted from all frames so far.
+Frames between two refits share one geometry, so a few of them are refined and integrated
+in one vectorised pass (:func:`_track_frames`), each with the numbers it gets alone. :class:`IVResult` holds the intensity, uncertainty,
 position and flags of every beam in every frame. Pixel arrays are (row, col) inside;
 positions at the API are (x, y) pixels as in :mod:`analysis.optics`.
 """
 
 from __future__ import annotations
 
+import itertools
 import math
 import os
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
+from typing import NamedTuple
 
 import numpy as np
 
@@ -133,6 +136,11 @@ class IVResult(_BeamCurves):
 
 
 _STACK_MAX_BYTES = 16_000_000_000  # a multi-page file streamed from disk
+# Frames between two refits are tracked together: at most this many, with at most this many
+# window pixels in one pass (beyond, the larger arrays cost more per pixel than the numpy calls
+# saved: measured with benchmarks/bench_series.py).
+_BATCH_FRAMES = 4
+_BATCH_PIXELS = 400_000
 
 
 def _as_frames(frames) -> Iterator[tuple[str, np.ndarray]]:
@@ -244,13 +252,15 @@ def track_series(frames, beams: BeamSet, geometry: ScreenGeometry, *, energies=N
                  prefetch: bool | None = None) -> IVResult:
     """Follow every beam through an energy series and integrate it in every frame.
 
-    Frames are streamed: only the current frame is held. For each frame the beams are
-    predicted from the current screen geometry, refined locally (peak search within
-    `search_px`, then a background-subtracted centroid), and integrated at the refined
-    position (at the predicted one when the spot is too weak, flagged "not_refined").
-    The geometry is refitted from all frames so far after frames 1, 2, 4, 8, … and once
-    more at the end (:func:`fit_series_geometry`), so beams entering at the screen edge
-    are picked up where the geometry predicts them.
+    Frames are streamed: only the few frames tracked together are held. For each frame the
+    beams are predicted from the current screen geometry, refined locally (peak search
+    within `search_px`, then a background-subtracted centroid), and integrated at the
+    refined position (at the predicted one when the spot is too weak, flagged
+    "not_refined"). The geometry is refitted from all frames so far after frames 1, 2, 4,
+    8, … and once more at the end (:func:`fit_series_geometry`), so beams entering at the
+    screen edge are picked up where the geometry predicts them. Frames between two refits
+    are tracked together, up to four in one vectorised pass (fewer when they hold many
+    beams); every number is the one the frame gives when tracked alone.
 
     Parameters
     ----------
@@ -295,10 +305,11 @@ def track_series(frames, beams: BeamSet, geometry: ScreenGeometry, *, energies=N
     normalise_current : bool, keyword-only
         Divide by the beam current when the energy table has one.
     progress : callable(i, n, energy_eV), optional
-        Called after each frame (n is None when the count is not known in advance).
+        Called after each frame, once the frames tracked with it are done (n is None when the
+        count is not known in advance).
     prefetch : bool, optional, keyword-only
-        Read the next frames on a second thread (at most two ahead) while one is tracked;
-        default: when `frames` is a path or bytes (decoding is then worth overlapping).
+        Read the next frames on a second thread (at most four ahead) while others are
+        tracked; default: when `frames` is a path or bytes (decoding is then worth overlapping).
 
     Returns
     -------
@@ -336,63 +347,76 @@ def track_series(frames, beams: BeamSet, geometry: ScreenGeometry, *, energies=N
     i = -1
     it = _as_frames(frames)
     if prefetch or (prefetch is None and isinstance(frames, (str, os.PathLike, bytes, bytearray))):
-        it = _Prefetch(it)  # decode the next frames while this one is tracked
+        it = _Prefetch(it, depth=max(2, _BATCH_FRAMES))  # decode the next frames while others are tracked
     n_total = en.n if en.by_name is None else None
+    batch = []  # (index, frame, saturation level) read and not yet tracked
+    ended = False
     try:
-        while True:
+        while not ended:
             try:
                 name, frame = next(it)
             except StopIteration:
-                break
+                ended = True
             except ImageError as err:
                 where = f"frame {i + 1}" + (f" (after {rec_names[-1]})" if rec_names else "")
                 raise SeriesError(f"Cannot read {where}: {err}") from None
-            i += 1
-            frame = np.ascontiguousarray(frame)  # flat gathers below need one contiguous buffer
-            if frame.ndim != 2:
-                raise SeriesError(f"Frame {i} ({name}) is not a 2-D image (shape {frame.shape}).")
-            if shape is None:
-                shape = frame.shape
-                if mask is not None:
-                    mask = np.ascontiguousarray(mask, dtype=bool)
-                    if mask.shape != shape:
-                        raise SeriesError(f"The mask is {mask.shape[1]}×{mask.shape[0]} px but frame 0 ({name}) "
-                                          f"is {shape[1]}×{shape[0]} px.")
-                mask_map = _mask_map(mask)
-            elif frame.shape != shape:
-                raise SeriesError(f"Frame {i} ({name}) is {frame.shape[1]}×{frame.shape[0]} px but frame 0 "
-                                  f"({rec_names[0]}) is {shape[1]}×{shape[0]} px: all frames must have one size.")
-            e, cur = en.at(i, name)
-            sat = saturation_level
-            if sat is None and np.issubdtype(frame.dtype, np.integer):
-                sat = float(np.iinfo(frame.dtype).max)
-            if i == 0:
-                geom, r_ap, ann, last_sigma = _bootstrap(frame, e, g, geom, mask_map, sat, r_ap, ann, ann_given,
-                                                         search_px, min_snr, fit, spot_sigma_px)
-            out = _one_frame(frame, e, g, geom, mask_map, sat, r_ap, ann, background, method, search_px, min_snr, gain,
-                             spot_sigma_px if spot_sigma_px else last_sigma)
-            inten, sig, xy, flags, bgpx, okpos, sig_est = out
-            if spot_sigma_px is None and np.isfinite(sig_est):
-                last_sigma = sig_est
-            if cur is not None and normalise_current:
-                inten, sig = inten / cur, sig / cur
-            rec_e.append(e)
-            rec_names.append(name)
-            rec_cur.append(cur)
-            rec_I.append(inten)
-            rec_s.append(sig)
-            rec_xy.append(xy)
-            rec_f.append(flags)
-            rec_bg.append(bgpx)
-            if okpos.any():
-                pts_e.append(np.full(int(okpos.sum()), e))
-                pts_g.append(g[okpos])
-                pts_xy.append(xy[okpos])
-            if fit and ((i + 1) & i) == 0 and i > 0 and pts_e:  # after frames 1, 2, 4, 8, … (0-based 1, 3, 7)
-                geom = _refit(pts_e, pts_g, pts_xy, geom, fit)
-            check_time()  # a caller's time limit stops the extraction between frames
-            if progress is not None:
-                progress(i + 1, n_total, e)
+            if not ended:
+                i += 1
+                frame = np.ascontiguousarray(frame)  # flat gathers below need one contiguous buffer
+                if frame.ndim != 2:
+                    raise SeriesError(f"Frame {i} ({name}) is not a 2-D image (shape {frame.shape}).")
+                if shape is None:
+                    shape = frame.shape
+                    if mask is not None:
+                        mask = np.ascontiguousarray(mask, dtype=bool)
+                        if mask.shape != shape:
+                            raise SeriesError(f"The mask is {mask.shape[1]}×{mask.shape[0]} px but frame 0 "
+                                              f"({name}) is {shape[1]}×{shape[0]} px.")
+                    mask_map = _mask_map(mask)
+                elif frame.shape != shape:
+                    raise SeriesError(f"Frame {i} ({name}) is {frame.shape[1]}×{frame.shape[0]} px but frame 0 "
+                                      f"({rec_names[0]}) is {shape[1]}×{shape[0]} px: all frames must have one "
+                                      f"size.")
+                e, cur = en.at(i, name)
+                rec_e.append(e)
+                rec_names.append(name)
+                rec_cur.append(cur)
+                sat = saturation_level
+                if sat is None and np.issubdtype(frame.dtype, np.integer):
+                    sat = float(np.iinfo(frame.dtype).max)
+                if i == 0:
+                    geom, r_ap, ann, last_sigma = _bootstrap(frame, e, g, geom, mask_map, sat, r_ap, ann, ann_given,
+                                                             search_px, min_snr, fit, spot_sigma_px)
+                batch.append((i, frame, sat))
+                # frames between two refits share one geometry: they are tracked together
+                if len(batch) < _BATCH_FRAMES and not _refit_after(i, fit):
+                    continue
+            if not batch:
+                continue
+            outs, last_sigma = _track_frames([b[1] for b in batch], [rec_e[b[0]] for b in batch],
+                                             [b[2] for b in batch], g, geom, mask_map, r_ap, ann, background,
+                                             method, search_px, min_snr, gain,
+                                             spot_sigma_px if spot_sigma_px else last_sigma,
+                                             carry=spot_sigma_px is None)
+            for (j, _, _), (inten, sig, xy, flags, bgpx, okpos, _) in zip(batch, outs):
+                e, cur = rec_e[j], rec_cur[j]
+                if cur is not None and normalise_current:
+                    inten, sig = inten / cur, sig / cur
+                rec_I.append(inten)
+                rec_s.append(sig)
+                rec_xy.append(xy)
+                rec_f.append(flags)
+                rec_bg.append(bgpx)
+                if okpos.any():
+                    pts_e.append(np.full(int(okpos.sum()), e))
+                    pts_g.append(g[okpos])
+                    pts_xy.append(xy[okpos])
+                if _refit_after(j, fit) and pts_e:
+                    geom = _refit(pts_e, pts_g, pts_xy, geom, fit)
+                check_time()  # a caller's time limit stops the extraction between frames
+                if progress is not None:
+                    progress(j + 1, n_total, e)
+            batch = []
     finally:
         if isinstance(it, _Prefetch):
             it.close()
@@ -416,6 +440,11 @@ def track_series(frames, beams: BeamSet, geometry: ScreenGeometry, *, energies=N
                     np.array(rec_s).reshape(-1, k), np.array(rec_xy).reshape(-1, k, 2),
                     np.array(rec_f, dtype=np.uint8).reshape(-1, k), np.array(rec_bg).reshape(-1, k),
                     currents, calibration, settings)
+
+
+def _refit_after(i: int, fit) -> bool:
+    """The geometry is refitted after frames 1, 2, 4, 8, … (0-based i = 1, 3, 7, …) when `fit` is set."""
+    return bool(fit) and i > 0 and ((i + 1) & i) == 0
 
 
 def _bootstrap(frame, e, g, geom, mask, sat, r_ap, ann, ann_given, search_px, min_snr, fit, spot_sigma_px):
@@ -453,42 +482,113 @@ def _bootstrap(frame, e, g, geom, mask, sat, r_ap, ann, ann_given, search_px, mi
 
 
 def _one_frame(frame, e, g, geom, mask, sat, r_ap, ann, background, method, search_px, min_snr, gain, sigma):
-    k = len(g)
-    inten = np.full(k, np.nan)
-    sig = np.full(k, np.nan)
-    bgpx = np.full(k, np.nan)
-    xy_out = np.full((k, 2), np.nan)
-    flags = np.full(k, FLAG_OFF_SCREEN, dtype=np.uint8)
-    okpos = np.zeros(k, dtype=bool)
-    xy, ins = _predict(g, e, geom, frame.shape)
+    """One frame tracked alone: (inten, sig, xy, flags, bgpx, okpos, sig_est), see :func:`_track_frames`."""
+    return _track_frames([frame], [e], [sat], g, geom, mask, r_ap, ann, background, method, search_px, min_snr,
+                         gain, sigma, carry=False)[0][0]
+
+
+class _Aim(NamedTuple):
+    """Where to look in one frame."""
+
+    xy: np.ndarray  # (K, 2) float64 predicted (x, y) of every beam, px
+    idx: np.ndarray  # (n,) int64 the beams on the screen
+    nn: np.ndarray  # (n,) float64 distance from each to its nearest other beam, px
+    search: np.ndarray  # (n,) float64 search radius of each, px
+    half: int  # half-width of the windows, px
+
+
+def _aim(shape, e, g, geom, r_ap, ann, search_px) -> _Aim:
+    """Predicted beams of a frame at `e` eV, their search radii and the window size."""
+    xy, ins = _predict(g, e, geom, shape)
     idx = np.flatnonzero(ins)
-    sig_est = float("nan")
-    if idx.size == 0:
-        return inten, sig, xy_out, flags, bgpx, okpos, sig_est
     nn = _neighbour_distance(xy[idx])
     search = np.minimum(search_px, 0.45 * nn)
-    half = int(math.ceil(max(ann[1], search.max(initial=0.0) + r_ap))) + 2
-    rc_pred = xy[idx, ::-1]
-    win = _extract(frame, rc_pred, half, mask)
-    ref, snr, ok, s_est = _refine(win, rc_pred, search, r_ap, min_snr)
-    good = np.isfinite(s_est) & ok
-    if good.any():
-        sig_est = _median(s_est[good])
-    rc = np.where(ok[:, None], ref, rc_pred)
-    s_use = sigma if sigma else (sig_est if np.isfinite(sig_est) else r_ap / 3.0)
-    res = _integrate(frame, rc, mask, sat, radius_px=r_ap, annulus_px=ann, background=background,
-                     method=method, spot_sigma_px=s_use, gain=gain, window=win)
-    f = res.flags.copy()
-    f[nn < 2.0 * r_ap] |= FLAG_CROWDED
-    f[~ok] |= FLAG_NOT_REFINED
-    blocked = (f & BLOCKING_FLAGS) != 0
-    inten[idx] = np.where(blocked, np.nan, res.intensity)
-    sig[idx] = np.where(blocked, np.nan, res.sigma)
-    bgpx[idx] = res.background_per_px
-    xy_out[idx] = rc[:, ::-1]
-    flags[idx] = f
-    okpos[idx] = ok & ~blocked
-    return inten, sig, xy_out, flags, bgpx, okpos, sig_est
+    return _Aim(xy, idx, nn, search, int(math.ceil(max(ann[1], search.max(initial=0.0) + r_ap))) + 2)
+
+
+def _runs(aims: list[_Aim], sats: list) -> Iterator[list[int]]:
+    """Indices of consecutive frames tracked in one pass: one window size and saturation level,
+    at most ``_BATCH_PIXELS`` window pixels together (a frame with more goes alone); a frame with
+    no beam on the screen goes alone."""
+    run, key, size = [], None, 0
+    for j, (aim, sat) in enumerate(zip(aims, sats)):
+        n = aim.idx.size * (2 * aim.half + 1) ** 2
+        this = (aim.half, sat) if n else None
+        if run and (this is None or this != key or size + n > _BATCH_PIXELS):
+            yield run
+            run, size = [], 0
+        run.append(j)
+        key, size = this, size + n
+    if run:
+        yield run
+
+
+def _track_frames(frames, energies, sats, g, geom, mask, r_ap, ann, background, method, search_px, min_snr, gain,
+                  sigma, *, carry: bool):
+    """Refine and integrate the beams of several frames predicted from one geometry.
+
+    Consecutive frames with one window size and one saturation level are tracked in one
+    vectorised pass: their windows are cut frame by frame and stacked, each row knowing its
+    frame (`layer` of :func:`_extract`), so the fixed cost of the many small numpy calls is paid
+    once for all of them. Every row's result is what tracking its frame alone gives. A
+    frame's spots are integrated with the spot σ `sigma` (px) or, when that is None, the
+    width measured in it; with `carry` the width measured in each frame (when finite)
+    becomes `sigma` for the next one.
+
+    Returns
+    -------
+    list of tuple
+        Per frame: intensity, σ, (x, y), flags, background per px, usable position (each
+        (K,) or (K, 2), NaN / off-screen for beams not on the screen) and the median spot
+        σ measured in it (NaN when no spot was strong enough).
+    float or None
+        `sigma` after the last frame.
+    """
+    k = len(g)
+    aims = [_aim(f.shape, e, g, geom, r_ap, ann, search_px) for f, e in zip(frames, energies)]
+    out = []
+    for run in _runs(aims, sats):
+        part = [aims[j] for j in run]
+        if part[0].idx.size == 0:  # no beam on the screen
+            out.append((np.full(k, np.nan), np.full(k, np.nan), np.full((k, 2), np.nan),
+                        np.full(k, FLAG_OFF_SCREEN, dtype=np.uint8), np.full(k, np.nan), np.zeros(k, dtype=bool),
+                        float("nan")))
+            continue
+        sizes = [a.idx.size for a in part]
+        layer = np.repeat(np.arange(len(run)), sizes)
+        rc_pred = np.concatenate([a.xy[a.idx, ::-1] for a in part])
+        win = _extract([frames[j] for j in run], rc_pred, part[0].half, mask, layer)
+        ref, snr, ok, s_est = _refine(win, rc_pred, np.concatenate([a.search for a in part]), r_ap, min_snr)
+        good = np.isfinite(s_est) & ok
+        sig_est, s_use = [], []
+        for lo, hi in itertools.pairwise(np.cumsum([0] + sizes)):
+            sig_est.append(_median(s_est[lo:hi][good[lo:hi]]) if good[lo:hi].any() else float("nan"))
+            s_use.append(sigma if sigma else (sig_est[-1] if np.isfinite(sig_est[-1]) else r_ap / 3.0))
+            if carry and np.isfinite(sig_est[-1]):
+                sigma = sig_est[-1]
+        rc = np.where(ok[:, None], ref, rc_pred)
+        res = _integrate([frames[j] for j in run], rc, mask, sats[run[0]], radius_px=r_ap, annulus_px=ann,
+                         background=background, method=method, spot_sigma_px=np.repeat(s_use, sizes),
+                         gain=gain, window=win)
+        f = res.flags.copy()
+        f[np.concatenate([a.nn for a in part]) < 2.0 * r_ap] |= FLAG_CROWDED
+        f[~ok] |= FLAG_NOT_REFINED
+        blocked = (f & BLOCKING_FLAGS) != 0
+        # every frame's K beams in one (B, K) table: row layer, column the beam's index
+        at = layer * k + np.concatenate([a.idx for a in part])
+        b = len(run)
+        inten, sig, bgpx = np.full((b, k), np.nan), np.full((b, k), np.nan), np.full((b, k), np.nan)
+        xy_out = np.full((b, k, 2), np.nan)
+        flags = np.full((b, k), FLAG_OFF_SCREEN, dtype=np.uint8)
+        okpos = np.zeros((b, k), dtype=bool)
+        inten.reshape(-1)[at] = np.where(blocked, np.nan, res.intensity)
+        sig.reshape(-1)[at] = np.where(blocked, np.nan, res.sigma)
+        bgpx.reshape(-1)[at] = res.background_per_px
+        xy_out.reshape(-1, 2)[at] = rc[:, ::-1]
+        flags.reshape(-1)[at] = f
+        okpos.reshape(-1)[at] = ok & ~blocked
+        out += list(zip(inten, sig, xy_out, flags, bgpx, okpos, sig_est))
+    return out, sigma
 
 
 def _local(win: _Windows, rc: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -564,7 +664,7 @@ def _refine(win: _Windows, rc_pred: np.ndarray, search_px: np.ndarray, radius_px
             dr2, dc2 = dr * dr, dc * dc
             wgt = pos * (dr2[:, :, None] + dc2[:, None, :] <= r2)
             w_r, w_c = wgt @ ones, ones @ wgt  # (K, m) marginals, as matrix products (BLAS)
-            tot = w_r @ ones
+            tot = _by_layer(w_r, ones, win.layer)  # frame by frame: the bits of a frame alone
             good = tot > 0
             new_r, new_c = _rowdot(w_r, rows) / tot, _rowdot(w_c, cols) / tot
             if it == 2:
@@ -574,6 +674,23 @@ def _refine(win: _Windows, rc_pred: np.ndarray, search_px: np.ndarray, radius_px
     shift = np.hypot(c[:, 0] - rc_pred[:, 0], c[:, 1] - rc_pred[:, 1])
     ok = (snr >= min_snr) & (shift <= search_px)
     return c, snr, ok, _untruncated_sigma(sigma, radius_px)
+
+
+def _by_layer(a: np.ndarray, b: np.ndarray, layer: np.ndarray | None) -> np.ndarray:
+    """``a @ b`` for a (K, n) `a` whose rows come from several frames (`layer`, (K,) sorted, or
+    None for one frame), one frame's rows at a time.
+
+    A BLAS matrix-vector product sums a row in an order that depends on the row's place in the
+    matrix and on the matrix's size, so each frame's rows are multiplied as a matrix of their
+    own: the values are those of the frame tracked alone, to the last bit.
+    """
+    if layer is None or layer.size == 0 or layer[0] == layer[-1]:
+        return a @ b
+    out = np.empty(a.shape[:1] + b.shape[1:])
+    cuts = np.concatenate([[0], np.flatnonzero(np.diff(layer)) + 1, [a.shape[0]]])
+    for lo, hi in itertools.pairwise(cuts):
+        np.matmul(a[lo:hi], b, out=out[lo:hi])
+    return out
 
 
 def _untruncated_sigma(sigma_cut: np.ndarray, radius_px: float) -> np.ndarray:
