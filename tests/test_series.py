@@ -126,6 +126,26 @@ def test_calibration_recovers_the_true_geometry(series):
         assert 0 < cal.uncertainty[name] < 0.05 * max(1.0, abs(getattr(TRUTH, name)))
 
 
+def test_calibration_from_a_spread_subset_of_the_positions_holds(series, monkeypatch):
+    """A series with more beam positions than the calibration takes: an evenly spread subset
+    (here a fifth) gives the geometry within a few of its σ of the all-position fit and of the
+    truth, with its larger σ, and the intensities do not change (the calibration comes last)."""
+    from analysis.series import track as track_module
+
+    frames, _, beams, full, mask, start = series
+    n_all = full.calibration.n_points
+    monkeypatch.setattr(track_module, "_CALIBRATION_POINTS", n_all // 5)
+    table = EnergyTable(ENERGIES, np.array([current_of(i) for i in range(len(ENERGIES))]))
+    part = track_series(frames, beams, start, energies=table, mask=mask, gain=GAIN)
+    assert part.calibration.n_points == n_all // 5 and part.calibration.n_frames == full.calibration.n_frames
+    assert_allclose(part.intensity, full.intensity, rtol=0, atol=0, equal_nan=True)
+    for name in ("center_x_px", "center_y_px", "scale_px", "rotation_deg"):
+        sub, every = getattr(part.calibration.geometry, name), getattr(full.calibration.geometry, name)
+        assert part.calibration.uncertainty[name] > full.calibration.uncertainty[name]
+        assert abs(sub - every) < 4 * part.calibration.uncertainty[name]
+        assert abs(sub - getattr(TRUTH, name)) < max(0.05, 1e-3 * abs(getattr(TRUTH, name)))
+
+
 def test_positions_follow_the_truth(series):
     _, truths, beams, res, _, _ = series
     errs = []

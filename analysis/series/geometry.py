@@ -202,7 +202,7 @@ def fit_series_geometry(energy_eV, g_par, xy_px, *, initial: ScreenGeometry,
     return SeriesCalibration(geom_of(sol.x), unc, float(np.sqrt(np.mean(dist[inl] ** 2))), int(e.size), n_frames)
 
 
-_REFIT_POINTS = 2000  # points in the refits while tracking (the final calibration uses all)
+_REFIT_POINTS = 2000  # points in the refits while tracking (the final calibration: track._CALIBRATION_POINTS)
 
 
 def _refit(pts_e, pts_g, pts_xy, geom, fit) -> ScreenGeometry:
