@@ -549,3 +549,27 @@ def test_gun_shadow_margin_is_the_same_along_the_diagonals():
                          for a in (0.0, 45.0, 90.0, 315.0)]
     grown = np.subtract(reach[4.0], reach[0.0])
     assert np.all(grown > 3.4) and np.all(grown < 4.6), grown
+
+
+def test_nan_medians_of_the_spot_measurement_never_warn():
+    """The block medians (background, noise, wings, local contrast) meet all-NaN blocks off the
+    screen; they must give NaN there without a RuntimeWarning even when warnings are errors,
+    since filtering warnings is not thread-safe and the reference image is measured on a
+    second thread. Values as numpy's own nanmedian."""
+    import warnings
+
+    from analysis.spots._common import _nanmedian
+    from analysis.spots.background import _nan_median3
+
+    rng = np.random.default_rng(3)
+    a = rng.normal(size=(6, 40))
+    a[1] = np.nan
+    a[4, ::2] = np.nan
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", RuntimeWarning)
+        got = _nanmedian(a, 1)
+        grid = _nan_median3(np.full((3, 4), np.nan))
+    assert np.isnan(got[1]) and np.all(np.isnan(grid))
+    keep = [0, 2, 3, 4, 5]
+    assert_allclose(got[keep], np.nanmedian(a[keep], axis=1), rtol=0, atol=0)
+    assert_allclose(_nanmedian(a.T, 0)[keep], got[keep], rtol=0, atol=0)

@@ -52,6 +52,25 @@ def _check_mask(mask, shape, name="mask") -> np.ndarray:
     return m.astype(bool, copy=False)
 
 
+def _nanmedian(a: np.ndarray, axis: int) -> np.ndarray:
+    """``np.nanmedian`` along `axis`, NaN where a slice holds no finite value, and no warning
+    (``warnings.catch_warnings`` is not thread-safe, and a reference image is measured on a
+    second thread while the image is: one thread leaving its block could let the other's
+    warning through).
+
+    Examples
+    --------
+    >>> _nanmedian(np.array([[1.0, np.nan], [3.0, np.nan], [2.0, np.nan]]), 0).tolist()
+    [2.0, nan]
+    """
+    a = np.moveaxis(np.asarray(a), axis, -1)
+    out = np.full(a.shape[:-1], np.nan, dtype=np.result_type(a.dtype, np.float32))
+    some = np.isfinite(a).any(axis=-1)
+    if some.any():
+        out[some] = np.nanmedian(a[some], axis=-1)
+    return out
+
+
 def _block_reduce_mean(a: np.ndarray, f: int) -> np.ndarray:
     m, n = (a.shape[0] // f) * f, (a.shape[1] // f) * f
     return a[:m, :n].reshape(m // f, f, n // f, f).mean(axis=(1, 3))

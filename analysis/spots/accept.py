@@ -13,12 +13,12 @@ reason it is rejected; `split_table` separates the two.
 from __future__ import annotations
 
 import math
-import warnings
 
 import numpy as np
 
 from ..errors import ParameterError
 from ..profiles import GAUSSIAN
+from ._common import _nanmedian
 from .fit import FLAG_FIT_FAILED
 
 __all__ = ["MIN_SIGMA_PX", "MIN_LOCAL_SNR", "FAINT_UNEXPLAINED_SNR", "REJECT_NARROW", "REJECT_WIDE", "REJECT_NO_PEAK",
@@ -153,9 +153,7 @@ def local_snr(image: np.ndarray, valid: np.ndarray, noise: np.ndarray, rc: np.nd
     ok = (k >= 3) & (q >= 10)
     if not ok.any():
         return out
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)
-        nz = np.nanmedian(np.where(ap, noise[rr, cc], np.nan).reshape(len(rc), -1), axis=1)
+    nz = _nanmedian(np.where(ap, noise[rr, cc], np.nan).reshape(len(rc), -1), 1)
     basis = (np.ones_like(dy), dy, dx)
 
     def plane(use):

@@ -11,7 +11,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..errors import ImageError, ParameterError
-from ._common import _as_float_image, _check_mask, _fill_nan_grid, _interp_matrix
+from ._common import _as_float_image, _check_mask, _fill_nan_grid, _interp_matrix, _nanmedian
 
 
 @dataclass(frozen=True, eq=False)
@@ -216,9 +216,4 @@ def _block_stats(blocks: np.ndarray, b: int, step: float):
 def _nan_median3(g: np.ndarray) -> np.ndarray:
     p = np.pad(g, 1, mode="constant", constant_values=np.nan)
     stack = np.stack([p[i:i + g.shape[0], j:j + g.shape[1]] for i in range(3) for j in range(3)])
-    with np.errstate(all="ignore"):
-        import warnings
-
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", RuntimeWarning)
-            return np.nanmedian(stack, axis=0)
+    return _nanmedian(stack, 0)

@@ -11,7 +11,7 @@ import math
 import numpy as np
 from scipy import ndimage as ndi
 
-from ._common import _by_row_strips
+from ._common import _by_row_strips, _nanmedian
 from .fit import _PROFILE, _render
 
 
@@ -122,8 +122,6 @@ def _spot_scale_noise(f1: np.ndarray, snr: np.ndarray, valid: np.ndarray, sigma_
         return None
     if not _highpass_width(snr, valid, sigma_px) > 1.5:  # the spread is the background's, not noise
         return None
-    import warnings
-
     from ._common import _fill_nan_grid, _interp_matrix
     from .background import _nan_median3
 
@@ -133,11 +131,9 @@ def _spot_scale_noise(f1: np.ndarray, snr: np.ndarray, valid: np.ndarray, sigma_
     pad = np.full((gm * b, gn * b), np.nan, np.float32)
     pad[:m, :n] = np.where(valid, f1, np.nan)
     blocks = pad.reshape(gm, b, gn, b).transpose(0, 2, 1, 3).reshape(gm * gn, b * b)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)
-        cnt = np.sum(np.isfinite(blocks), axis=1)
-        bm = np.nanmedian(blocks, axis=1)
-        wid = 1.4826 * np.nanmedian(np.abs(blocks - bm[:, None]), axis=1)
+    cnt = np.sum(np.isfinite(blocks), axis=1)
+    bm = _nanmedian(blocks, 1)
+    wid = 1.4826 * _nanmedian(np.abs(blocks - bm[:, None]), 1)
     wid = np.where((cnt >= b * b // 8) & (wid > 0), wid, np.nan).reshape(gm, gn)
     wid = _fill_nan_grid(_nan_median3(wid))
     if np.all(np.isnan(wid)):

@@ -90,7 +90,6 @@ def find_gun_shadow(image, screen: ScreenMask | None = None, *, disk_xyr=None, a
     """
     img = _as_float_image(image)
     shape = img.shape
-    grow = int(math.ceil(margin_px))
     if polygon_xy is not None:
         from skimage.draw import polygon as _polygon
 
@@ -176,10 +175,7 @@ def _auto_gun(img: np.ndarray, screen: ScreenMask, margin_px: float) -> ShadowMa
     pad[: small.shape[0], : small.shape[1]] = np.where(scr & (small <= cut), small, np.nan)
     blocks = pad.reshape(gm, b, gn, b).transpose(0, 2, 1, 3).reshape(gm, gn, b * b)
     cnt = np.sum(np.isfinite(blocks), axis=2)
-    import warnings
-
-    with np.errstate(all="ignore"), warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN blocks outside the screen
+    with np.errstate(all="ignore"):  # all-NaN blocks outside the screen give NaN (no numpy nan-function)
         lev = _nan_percentile(np.where(cnt[..., None] > 0.1 * b * b, blocks, np.nan), 75.0) \
             if np.any(cnt > 0.1 * b * b) else np.full((gm, gn), np.nan)
     lev = _fill_nan_grid(lev)

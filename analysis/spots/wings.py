@@ -15,10 +15,10 @@ nothing is drawn.
 from __future__ import annotations
 
 import math
-import warnings
 
 import numpy as np
 
+from ._common import _nanmedian
 from .fit import FLAG_FIT_FAILED, FLAG_NEAR_EDGE, FLAG_SATURATED, _PROFILE
 
 _RHO_EDGES = np.arange(0.0, 6.01, 0.5)  # rings of ρ = r / σ
@@ -70,10 +70,11 @@ def _wing_profile(res, noise, valid, spots, n_max: int = 40):
     if len(rows) < 5:
         return None
     rows = np.array(rows)
-    with warnings.catch_warnings():  # a ring no spot reaches (masked) stays NaN, then 0
-        warnings.simplefilter("ignore", RuntimeWarning)
-        prof = np.nanmedian(rows, axis=0)
-        err = 1.2533 * np.nanstd(rows, axis=0) / math.sqrt(len(rows))  # standard error of a median
+    prof = _nanmedian(rows, 0)  # a ring no spot reaches (masked) stays NaN, then 0
+    cnt = np.isfinite(rows).sum(axis=0)
+    mean = np.nansum(rows, axis=0) / np.maximum(cnt, 1)
+    sd = np.sqrt(np.nansum((rows - mean) ** 2, axis=0) / np.maximum(cnt, 1))  # as np.nanstd
+    err = np.where(cnt > 0, 1.2533 * sd / math.sqrt(len(rows)), np.nan)  # standard error of a median
     far = _RHO_MID > 2.0
     if not np.any(far & (prof > 0.005) & (prof > 4.0 * np.nan_to_num(err, nan=np.inf))):
         return None
