@@ -462,7 +462,7 @@ def _with_absent(ctx: _Context, sc: _Scored) -> _Scored:
     """Count predicted fractional beams missing where they could be seen; finish the score."""
     if sc.absent is not None:
         return sc
-    absent = 0
+    absent = weight = 0
     center = np.array(ctx.geom.center_px)
     a_star = ctx.a_star
     try:
@@ -478,8 +478,42 @@ def _with_absent(ctx: _Context, sc: _Scored) -> _Scored:
             missing = ~np.isfinite(d)
             if missing.any() and not sc.satellites_allowed:  # odd beams of glide lines the spots show
                 missing[missing] = ~glide_excused(ctx, sc.domains, pts[seen][missing])
-            absent = int(np.sum(missing))
-    return dataclasses.replace(sc, absent=absent, terms=sc.terms.replace(absent=absent))
+            absent = weight = int(np.sum(missing))
+            if absent and not sc.satellites_allowed:
+                # a rational net's beams of one symmetry class (the substrate's point group, all
+                # domains together) share one intensity: a class missing is one dark class, not
+                # one absence per beam. A continuous fit, whose beams its free parameters place,
+                # answers for each predicted beam.
+                _, n_c = np.unique(_class_keys(pts[seen][missing], ctx.ops), axis=0, return_counts=True)
+                weight = _absent_weight(n_c)
+    return dataclasses.replace(sc, absent=absent, terms=sc.terms.replace(absent=weight))
+
+
+def _absent_weight(n_missing: np.ndarray) -> float:
+    """What the absent beams weigh in the score: Σ over symmetry classes of 1 + log₂ n, n the
+    class's members missing. Beams of one class (the substrate's point group acting on all
+    domains together) share one intensity at normal incidence, so a whole class dark is one
+    fact (a structure factor near zero), not n independent absences; its further members still
+    count a little (log₂ n), since unequal domain populations and an off-normal beam break
+    the equality.
+
+    Examples
+    --------
+    >>> _absent_weight(np.array([1, 1])), _absent_weight(np.array([4]))
+    (2.0, 3.0)
+    """
+    n = np.asarray(n_missing, dtype=np.float64)
+    return float(np.sum(1.0 + np.log2(n)))
+
+
+def _class_keys(hk: np.ndarray, ops) -> np.ndarray:
+    """(N, 2) key of each beam's symmetry class: the lexicographically largest image of its
+    index (substrate units) under the substrate's point group."""
+    inv_t = np.array([np.linalg.inv(op.matrix).T for op in ops])
+    img = np.round(np.einsum("si,gij->sgj", np.asarray(hk, float).reshape(-1, 2), inv_t), 3) + 0.0
+    k0 = img[:, :, 0].max(axis=1)
+    k1 = np.where(img[:, :, 0] == k0[:, None], img[:, :, 1], -np.inf).max(axis=1)
+    return np.column_stack([k0, k1])
 
 
 def _common_denominator(m: np.ndarray) -> int:
@@ -602,13 +636,8 @@ def _population_test(hk: np.ndarray, by: np.ndarray, intensity: np.ndarray, ops,
     if sel.sum() < 6:
         return None
     li = np.log(np.clip(intensity[sel], 1e-9, None))
-    inv_t = np.array([np.linalg.inv(op.matrix).T for op in ops])
     hk_sel = hk[sel] if not denominator else np.rint(hk[sel] * denominator) / denominator
-    # class key: the lexicographically largest image of the beam index under the group
-    img = np.round(np.einsum("si,gij->sgj", hk_sel, inv_t), 3) + 0.0  # (S, G, 2)
-    k0 = img[:, :, 0].max(axis=1)
-    k1 = np.where(img[:, :, 0] == k0[:, None], img[:, :, 1], -np.inf).max(axis=1)
-    _, cls = np.unique(np.column_stack([k0, k1]), axis=0, return_inverse=True)
+    _, cls = np.unique(_class_keys(hk_sel, ops), axis=0, return_inverse=True)
     cls = cls.ravel()
     dom = by[sel]
 

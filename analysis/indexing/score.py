@@ -21,7 +21,10 @@ Q, Y  for a layer that nearly coincides with the substrate (a moiré: its first-
       Y = 1 − D/D_sym, the share of the net's symmetry domains left out (a net of lower
       symmetry than the substrate's, seen in one domain, is one of the module's nets, not
       the layer). Both 0 for other layers.
-A     predicted fractional beams absent where a spot could have been seen.
+A     predicted fractional beams absent where a spot could have been seen; for a rational
+      model by symmetry class: Σ (1 + log₂ n) over the classes (orbits under the substrate's
+      point group, all domains together) with n members absent (a class shares one
+      intensity, so a dark class is one fact more than n); for a continuous fit one per beam.
 K     log₂ q of a rational matrix with non-integer entries (a coincidence cell), q the common
       denominator of its entries (the same in every basis of the cell); 0 for integer and
       irrational matrices.
