@@ -21,7 +21,8 @@ series as a whole (``index_series_joint`` on the frames ``recinet iv`` picks). O
 the ratio is also given in CPU time of that thread (``time.thread_time``), which other work
 on a shared machine disturbs less than the wall clock. Targets: ≤ 30 s total, ≤ 3× decode
 with the prefetch thread and on one thread, peak < 2 GB. Pin the process to the cores you
-want (e.g. ``taskset -c 0,1``). Times are the best of three runs.
+want (e.g. ``taskset -c 0,1``). Times are the best of three rounds that time every reader
+and both extractions in turn.
 """
 
 from __future__ import annotations
@@ -149,16 +150,11 @@ def main() -> int:
         t = time.perf_counter()
         res = track_series(stack, beams, start, energies=energies, mask=mask, gain=4.0)
         t_track = time.perf_counter() - t
-    t_dec = min(decode_io() for _ in range(3))
-    t_raw = min(decode_raw() for _ in range(3))
-    t_int = min(decode_int() for _ in range(3))
     def decode_cpu() -> float:
         c = time.thread_time()
         for _ in iter_frames(stack, max_bytes=16_000_000_000):
             pass
         return time.thread_time() - c
-
-    c_dec = min(decode_cpu() for _ in range(3))
 
     def one_thread() -> tuple[float, float]:
         t, c = time.perf_counter(), time.thread_time()
@@ -170,10 +166,14 @@ def main() -> int:
         track_series(stack, beams, start, energies=energies, mask=mask, gain=4.0)
         return time.perf_counter() - t
 
-    # the best of three runs, as for the decode (other work on the machine only adds time)
-    t_track = min([t_track] + [with_prefetch() for _ in range(2)])
-    ones = [one_thread() for _ in range(3)]
-    t_one, c_one = min(t for t, _ in ones), min(c for _, c in ones)
+    # Three rounds, each timing every reader and both extractions one after the other, and
+    # the best of each kept: the machine's speed drifts over minutes (other work, clocks), and
+    # interleaving lets the drift touch the decode and the extraction alike.
+    rounds = [(decode_io(), decode_raw(), decode_int(), decode_cpu(), one_thread(), with_prefetch())
+              for _ in range(3)]
+    t_dec, t_raw, t_int, c_dec = (min(r[j] for r in rounds) for j in range(4))
+    t_one, c_one = min(r[4][0] for r in rounds), min(r[4][1] for r in rounds)
+    t_track = min([t_track] + [r[5] for r in rounds])
 
     # indexing the series as a whole (what recinet iv does first without a geometry): the
     # frames it picks are read, measured and indexed together; reported on its own

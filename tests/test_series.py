@@ -596,13 +596,36 @@ def test_series_energies_from_names_and_start_step(small):
     assert_allclose(stepped.intensity, by_name.intensity, equal_nan=True)
 
 
+def test_only_frames_that_need_decoding_are_read_ahead(small, tmp_path):
+    """A second reading thread by default for compressed stacks and image folders, not for an
+    uncompressed TIFF (a page copy it cannot hide) or frames already in memory."""
+    import tifffile
+
+    from analysis.series.track import _worth_reading_ahead
+
+    e, frames, beams, geom = small
+    data = np.stack([f for _, f in frames]).astype(np.uint16)
+    plain, packed = tmp_path / "plain.tif", tmp_path / "packed.tif"
+    tifffile.imwrite(plain, data, photometric="minisblack")
+    tifffile.imwrite(packed, data, photometric="minisblack", compression="zlib")
+    folder = tmp_path / "frames"
+    folder.mkdir()
+    assert not _worth_reading_ahead(plain) and not _worth_reading_ahead(str(plain))
+    assert not _worth_reading_ahead(plain.read_bytes())
+    assert _worth_reading_ahead(packed) and _worth_reading_ahead(folder)
+    assert not _worth_reading_ahead([f for _, f in frames])
+    a = track_series(packed, beams, geom, energies=e)  # read ahead by default
+    b = track_series(plain, beams, geom, energies=e)
+    assert_allclose(a.intensity, b.intensity, rtol=0, atol=0, equal_nan=True)
+
+
 def test_series_read_ahead_gives_the_same_result(small, tmp_path):
     import tifffile
 
     e, frames, beams, geom = small
     stack = tmp_path / "stack.tif"
     tifffile.imwrite(stack, np.stack([f for _, f in frames]), photometric="minisblack")
-    ahead = track_series(stack, beams, geom, energies=e)  # a path: read on a second thread
+    ahead = track_series(stack, beams, geom, energies=e, prefetch=True)  # read on a second thread
     inline = track_series(stack, beams, geom, energies=e, prefetch=False)
     assert_allclose(ahead.intensity, inline.intensity, rtol=0, atol=0, equal_nan=True)
     assert_allclose(ahead.xy_px, inline.xy_px, rtol=0, atol=0, equal_nan=True)

@@ -310,7 +310,7 @@ def run_iv(frames, *, substrate: str | Net2D, energies=None, overlayer=None, geo
                                energies=energies if isinstance(energies, EnergyTable) else np.asarray(e), mask=mask, radius_px=radius_px,
                                background=background, method=method, gain=gain, saturation_level=saturation_level,
                                normalise_current=normalise_current, progress=progress,
-                               prefetch=isinstance(frames, (str, Path)))
+                               prefetch=None if isinstance(frames, (str, Path, bytes)) else False)
     except ImageError as err:
         raise SeriesError(f"Cannot read a frame: {err}") from None
     if found is not None:
