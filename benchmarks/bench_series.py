@@ -21,8 +21,8 @@ series as a whole (``index_series_joint`` on the frames ``recinet iv`` picks). O
 the ratio is also given in CPU time of that thread (``time.thread_time``), which other work
 on a shared machine disturbs less than the wall clock. Targets: ≤ 30 s total, ≤ 3× decode
 with the prefetch thread and on one thread, peak < 2 GB. Pin the process to the cores you
-want (e.g. ``taskset -c 0,1``). Times are the best of three rounds that time every reader
-and both extractions in turn.
+want (e.g. ``taskset -c 0,1``). Times are the best of five rounds that time every reader
+and both extractions in turn; the ratio targets use the median of the ratios within a round.
 """
 
 from __future__ import annotations
@@ -170,10 +170,14 @@ def main() -> int:
     # the best of each kept: the machine's speed drifts over minutes (other work, clocks), and
     # interleaving lets the drift touch the decode and the extraction alike.
     rounds = [(decode_io(), decode_raw(), decode_int(), decode_cpu(), one_thread(), with_prefetch())
-              for _ in range(3)]
+              for _ in range(5)]
     t_dec, t_raw, t_int, c_dec = (min(r[j] for r in rounds) for j in range(4))
     t_one, c_one = min(r[4][0] for r in rounds), min(r[4][1] for r in rounds)
     t_track = min([t_track] + [r[5] for r in rounds])
+    # the ratios within each round (measured minutes apart, the best times can come from
+    # rounds of different machine speed): their median is the figure the targets use
+    r_one = float(np.median([r[4][0] / r[0] for r in rounds]))
+    r_track = float(np.median([r[5] / r[0] for r in rounds]))
 
     # indexing the series as a whole (what recinet iv does first without a geometry): the
     # frames it picks are read, measured and indexed together; reported on its own
@@ -207,10 +211,12 @@ def main() -> int:
     print(f"decode only (analysis.io.iter_frames): {t_dec:6.2f} s   raw tifffile pages: {t_raw:6.2f} s   "
           f"integer frames as tracked (as_float=False): {t_int:6.2f} s")
     print(f"whole extraction (track_series):       {t_track:6.2f} s   target ≤ 30 s")
-    print(f"ratio extraction / decode:             {t_track / t_dec:6.2f}     target ≤ 3")
+    print(f"ratio extraction / decode:             {r_track:6.2f}     target ≤ 3 (median within rounds; "
+          f"best times: {t_track / t_dec:.2f})")
     print(f"ratio extraction / raw decode:         {t_track / t_raw:6.2f}   (tracking alone: "
           f"{(t_one - t_int) / t_dec:.2f} × the float64 decode)")
-    print(f"one thread only (prefetch=False):      {t_one:6.2f} s   ratio to decode {t_one / t_dec:.2f}   target ≤ 3")
+    print(f"one thread only (prefetch=False):      {t_one:6.2f} s   ratio to decode {r_one:.2f}   target ≤ 3 "
+          f"(median within rounds; best times: {t_one / t_dec:.2f})")
     print(f"one thread, CPU time of the thread:    {c_one:6.2f} s   decode {c_dec:.2f} s, ratio {c_one / c_dec:.2f}")
     print(f"joint indexing of {len(picks)} frames (apart):    {t_joint:6.2f} s   ratio to decode {t_joint / t_dec:.2f}; "
           f"read {found.label}, {found.joint['frames_agreeing']} of {found.joint['frames_total']} frames agree")
@@ -218,7 +224,7 @@ def main() -> int:
     print(f"peak resident memory while tracking:   {rss.peak / 1e9:6.3f} GB   target < 2 GB")
     print(f"peak traced allocations (tracemalloc): {traced_peak / 1e6:6.1f} MB "
           f"(one float64 frame is {args.size * args.size * 8 / 1e6:.1f} MB)")
-    ok = t_track <= 30 and t_track <= 3 * t_dec and t_one <= 3 * t_dec and rss.peak < 2e9
+    ok = t_track <= 30 and r_track <= 3 and r_one <= 3 and rss.peak < 2e9
     print("targets met" if ok else "targets NOT met")
     return 0 if ok else 1
 

@@ -637,7 +637,10 @@ def _refine(win: _Windows, rc_pred: np.ndarray, search_px: np.ndarray, radius_px
     """
     k, w, _ = win.data.shape
     h = win.half
-    _, _, ring = _square_offsets(h)  # border of the window
+    # every other pixel of the window's border (about 250 of its 500 at the usual size) gives
+    # the level and noise the search and the centroid need; the intensities' background is the
+    # annulus's, all of it (measured: 11 % less tracking time)
+    ring = _square_offsets(h)[2][::2]
     flat = win.data.reshape(k, -1)
     bg, noise, _ = _robust(flat[:, ring], win.usable.reshape(k, -1)[:, ring])
     noise = np.maximum(noise, 1e-6)
