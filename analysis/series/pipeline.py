@@ -22,7 +22,7 @@ from ..optics import ScreenGeometry
 from .energies import EnergyTable, _Energies, _StartStep, read_energy_file
 from .index_frames import SeriesIndexing, index_series_frame, vote_frame_choices
 from .joint import index_series_joint
-from .track import _STACK_MAX_BYTES, IVResult, track_series
+from .track import _STACK_MAX_BYTES, IVResult, _worth_reading_ahead, track_series
 
 __all__ = ["IVRun", "run_iv", "overlayer_matrices"]
 
@@ -310,7 +310,7 @@ def run_iv(frames, *, substrate: str | Net2D, energies=None, overlayer=None, geo
                                energies=energies if isinstance(energies, EnergyTable) else np.asarray(e), mask=mask, radius_px=radius_px,
                                background=background, method=method, gain=gain, saturation_level=saturation_level,
                                normalise_current=normalise_current, progress=progress,
-                               prefetch=None if isinstance(frames, (str, Path, bytes)) else False)
+                               prefetch=_worth_reading_ahead(frames))  # the series as given, not its iterator
     except ImageError as err:
         raise SeriesError(f"Cannot read a frame: {err}") from None
     if found is not None:

@@ -399,12 +399,10 @@ class Measurement:
         if not drop.any():
             return self
         moved = self.spots.select(drop)
-        if self.rejected is None or len(self.rejected) == 0:
-            rejected, reasons = moved, (reason,) * len(moved)
-        else:
-            rejected = SpotTable(**{n: np.concatenate([getattr(self.rejected, n), getattr(moved, n)])
-                                    for n in _ROW_FIELDS}, center_rc=self.spots.center_rc)
-            reasons = tuple(self.rejected_reasons) + (reason,) * len(moved)
+        before = self.rejected if self.rejected is not None else self.spots.select(np.zeros(len(drop), bool))
+        rejected = SpotTable(**{n: np.concatenate([getattr(before, n), getattr(moved, n)]) for n in _ROW_FIELDS},
+                             center_rc=self.spots.center_rc)
+        reasons = tuple(self.rejected_reasons) + (reason,) * len(moved)
         return dataclasses.replace(self, spots=self.spots.select(~drop), rejected=rejected, rejected_reasons=reasons)
 
     def rejected_records(self) -> list[dict]:
